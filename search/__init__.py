@@ -1,0 +1,32 @@
+"""burstlens numerical engine: Gaussian-smoothed Wigner–Ville filterbanks scored by sharpness.
+
+Names are imported lazily so that ``import search`` stays cheap (ObsPy, scikit-optimize and
+joblib load only when the part that needs them is used).
+"""
+from importlib import import_module
+
+__version__ = "0.1.0"
+
+_EXPORTS = {
+    "Channel": "search.filterbank",
+    "Filterbank": "search.filterbank",
+    "center_grid": "search.filterbank",
+    "transform": "search.transform",
+    "prepare": "search.transform",
+    "renyi_entropy": "search.criteria",
+    "Criterion": "search.criteria",
+    "read_corpus": "search.corpus",
+    "Corpus": "search.corpus",
+    "CorpusError": "search.corpus",
+    "FilterbankSearch": "search.optimize",
+}
+
+__all__ = sorted(_EXPORTS)
+
+
+def __getattr__(name):
+    try:
+        module = _EXPORTS[name]
+    except KeyError:
+        raise AttributeError(f"module 'search' has no attribute {name!r}") from None
+    return getattr(import_module(module), name)

@@ -1,0 +1,1 @@
+"""burstlens service: HTTP API, job store, workers, reports and the ``burstlens`` CLI."""

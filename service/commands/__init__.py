@@ -1,0 +1,1 @@
+"""One module per ``burstlens`` command; each exposes ``register(subparsers)``."""
