@@ -30,3 +30,9 @@ def __getattr__(name):
     except KeyError:
         raise AttributeError(f"module 'search' has no attribute {name!r}") from None
     return getattr(import_module(module), name)
+
+
+# `transform` is both a submodule and a function: importing the submodule binds the module to
+# the package attribute and would shadow the lazy export, so bind the function eagerly (this
+# loads only numpy and scipy).
+from search.transform import prepare, transform  # noqa: E402

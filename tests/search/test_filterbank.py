@@ -1,0 +1,185 @@
+"""Tests of search.filterbank: parameters, derived spreads, validation, JSON, families, grids."""
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from search import Channel, Filterbank, center_grid
+
+FS = 4000.0
+
+
+@settings(max_examples=60, deadline=None, derandomize=True)
+@given(
+    sigma=st.floats(1e-4, 1.0),
+    area=st.floats(0.05, 20.0),
+    chirp=st.floats(-1e5, 1e5),
+)
+def test_derived_spreads_invert(sigma, area, chirp):
+    """σ_f, ρ derived from (σ_t, a, β) satisfy a = 4πσ_tσ_f√(1−ρ²), β = ρσ_f/σ_t and
+    σ_f√(1−ρ²) = a/(4πσ_t), and from_spreads(σ_t, σ_f, ρ) gives back the same channel.
+    Source: the parametrisation of a 2-D Gaussian by its covariance (DESIGN §3; common practice)."""
+    c = Channel(100.0, sigma, area, chirp)
+    rho, sigma_f = c.correlation, c.freq_spread_hz
+    assert abs(rho) < 1.0
+    root = math.sqrt((1 - rho) * (1 + rho))
+    tol = 1e-9 + 1e-14 / (1 - abs(rho))  # √(1−ρ²) is ill-conditioned as |ρ| → 1
+    assert math.isclose(4 * math.pi * sigma * sigma_f * root, area, rel_tol=tol)
+    assert math.isclose(rho * sigma_f / sigma, chirp, rel_tol=1e-9, abs_tol=1e-9)
+    assert math.isclose(c.conditional_freq_spread_hz, sigma_f * root, rel_tol=tol)
+    back = Channel.from_spreads(100.0, sigma, sigma_f, rho)
+    assert math.isclose(back.cell_area, area, rel_tol=tol)
+    assert math.isclose(back.chirp_hz_per_s, chirp, rel_tol=1e-9, abs_tol=1e-6)
+
+
+@pytest.mark.parametrize(
+    "make, field, value",
+    [
+        (lambda: Channel(float("nan"), 0.01), "center_hz", "nan"),
+        (lambda: Channel(100.0, -0.01), "time_spread_s", "-0.01"),
+        (lambda: Channel(100.0, 0.01, 0.0), "cell_area", "0.0"),
+        (lambda: Channel(100.0, 0.01, -2.0), "cell_area", "-2.0"),
+        (lambda: Channel(100.0, 0.01, 1.0, float("inf")), "chirp_hz_per_s", "inf"),
+        (lambda: Channel.from_spreads(100.0, 0.01, 20.0, 1.0), "correlation", "1.0"),
+        (lambda: Channel.from_spreads(100.0, 0.01, 20.0, -1.5), "correlation", "-1.5"),
+        (lambda: Channel(2500.0, 0.01).validate(FS), "center_hz", "2500.0"),
+        (lambda: Channel(2000.0, 0.01).validate(FS), "center_hz", "2000.0"),
+        (lambda: Channel(0.0, 0.01), "center_hz", "0.0"),
+    ],
+)
+def test_validation_names_field_and_value(make, field, value):
+    """NaN centre, negative spread, cell area ≤ 0, |ρ| ≥ 1 and a centre at or above fs/2 each
+    raise ValueError naming the field and the value. Common practice."""
+    with pytest.raises(ValueError) as info:
+        make()
+    assert f"{field}={value}" in str(info.value)
+
+
+def test_nyquist_message_and_channel_index():
+    """A centre above fs/2 names the Nyquist frequency and, in a filterbank, the channel index.
+    Common practice."""
+    with pytest.raises(ValueError, match=r"channel 1: center_hz=2500.0 is at or above the "
+                                         r"Nyquist frequency fs/2=2000.0"):
+        Filterbank([Channel(100.0, 0.01), Channel(2500.0, 0.01)], FS)
+    with pytest.raises(ValueError, match="sampling_rate_hz"):
+        Filterbank([Channel(100.0, 0.01)], -1.0)
+    with pytest.raises(ValueError, match="at least one channel"):
+        Filterbank([], FS)
+
+
+def test_equivalent_reading():
+    """The reading for people: kind by cell area (|a−1| < 0.05 spectrogram, > 1 smoothed, < 1
+    super-resolved by 1/a), window length = FWHM of h(u) = exp(−u²/4σ_t²) = 4√(ln 2)·σ_t, and a
+    one-line text. Source: Gaussian window conventions (common practice)."""
+    e = Channel(100.0, 0.00375, 0.5, 800.0).equivalent()
+    assert e["kind"] == "super-resolved"
+    assert e["super_resolution"] == pytest.approx(2.0)
+    assert e["window_ms"] == pytest.approx(4 * math.sqrt(math.log(2)) * 3.75)
+    assert e["window_std_ms"] == pytest.approx(3.75)
+    assert e["gaussian_std_ms"] == pytest.approx(3.75 * math.sqrt(2))
+    assert e["text"] == "Gaussian spectrogram window 12.5 ms, super-resolved ×2.0, chirp +800 Hz/s"
+    assert Channel(100.0, 0.01, 1.03).equivalent()["kind"] == "spectrogram"
+    smoothed = Channel(100.0, 0.01, 1.5, -2.5).equivalent()
+    assert smoothed["kind"] == "smoothed spectrogram"
+    assert smoothed["text"].endswith("smoothed ×1.5, chirp -2.5 Hz/s")
+    # the window really is the one whose |h|² has std σ_t: FWHM of h from its samples
+    sigma = 0.01
+    u = np.linspace(-0.05, 0.05, 200001)
+    h = np.exp(-(u**2) / (4 * sigma**2))
+    fwhm = u[h >= 0.5][-1] - u[h >= 0.5][0]
+    assert Channel(100.0, sigma).equivalent()["window_ms"] == pytest.approx(fwhm * 1e3, rel=1e-4)
+
+
+def test_json_round_trip():
+    """to_json → json text → from_json gives an equal filterbank with its provenance, and the
+    document carries format, version, derived spreads and the reading. Common practice."""
+    fb = Filterbank([Channel(30.0, 0.02, 1.0), Channel(300.0, 0.004, 0.4, 1234.5),
+                     Channel(1900.0, 0.002, 3.0, -50.0)], FS)
+    doc = fb.to_json(window_samples=1024, criterion={"name": "renyi", "alpha": 3.0},
+                     objective=7.25)
+    text = json.dumps(doc)
+    back = Filterbank.from_json(json.loads(text))
+    assert back == fb and hash(back) == hash(fb)
+    assert back.provenance == {"window_samples": 1024,
+                               "criterion": {"name": "renyi", "alpha": 3.0}, "objective": 7.25}
+    assert doc["format"] == "burstlens-filterbank" and doc["version"] == 1
+    assert doc["sampling_rate_hz"] == FS
+    assert doc["channels"][1]["correlation"] == pytest.approx(fb[1].correlation)
+    assert doc["channels"][1]["equivalent"]["kind"] == "super-resolved"
+    np.testing.assert_allclose(back.freq_spread_hz, fb.freq_spread_hz)
+    # a channel may be given by its spreads instead of (cell_area, chirp)
+    spread_only = {k: doc["channels"][1][k]
+                   for k in ("center_hz", "time_spread_s", "freq_spread_hz", "correlation")}
+    one = Filterbank.from_json({**doc, "channels": [spread_only]})
+    assert one[0].cell_area == pytest.approx(0.4) and one[0].chirp_hz_per_s == pytest.approx(1234.5)
+
+
+@pytest.mark.parametrize(
+    "change, message",
+    [
+        (lambda d: d.update(format="other"), "format='other'"),
+        (lambda d: d.update(version=2), "version=2"),
+        (lambda d: d.pop("sampling_rate_hz"), "sampling_rate_hz is missing"),
+        (lambda d: d.update(channels=[]), "channels must be a non-empty list"),
+        (lambda d: d["channels"][0].pop("time_spread_s"),
+         r"channels\[0\].time_spread_s is missing"),
+        (lambda d: d["channels"][1].update(correlation=1.2), r"channels\[1\].correlation=1.2"),
+        (lambda d: d["channels"][1].update(correlation=0.1),
+         r"channels\[1\].correlation=0.1 disagrees"),
+        (lambda d: d["channels"][0].update(freq_spread_hz=99.0),
+         r"channels\[0\].freq_spread_hz=99.0 disagrees"),
+        (lambda d: d["channels"][0].update(center_hz="x"), r"channels\[0\].center_hz='x'"),
+        (lambda d: d["channels"][1].update(center_hz=2100.0),
+         r"channels\[1\].center_hz=2100.0 is at or above"),
+        (lambda d: d["channels"][0].update(cell_area=-1.0), r"channels\[0\].cell_area=-1.0"),
+    ],
+)
+def test_from_json_names_bad_fields(change, message):
+    """from_json rejects a wrong format or version, missing or non-finite fields, |ρ| ≥ 1 and
+    derived fields that disagree with the parameters, naming the JSON path. Common practice."""
+    doc = Filterbank([Channel(30.0, 0.02), Channel(300.0, 0.004, 0.4, 1234.5)], FS).to_json()
+    change(doc)
+    with pytest.raises(ValueError, match=message):
+        Filterbank.from_json(doc)
+
+
+def test_families():
+    """constant_window: one σ_t, a = 1; constant_q: σ_t = cycles/f_c (σ_t·f_c constant, so the
+    kernel spans the same number of periods, i.e. constant Q); constant_area: a chosen a.
+    Common practice."""
+    centers = center_grid((20.0, 1500.0), 12)
+    window = Filterbank.constant_window(centers, 0.01, FS)
+    assert np.all(window.time_spread_s == 0.01) and np.all(window.cell_area == 1.0)
+    q = Filterbank.constant_q(centers, 3.0, FS)
+    np.testing.assert_allclose(q.time_spread_s * q.center_hz, 3.0)
+    # constant Q: bandwidth / centre frequency is the same for every channel
+    np.testing.assert_allclose(q.freq_spread_hz / q.center_hz, 1 / (4 * np.pi * 3.0))
+    area = Filterbank.constant_area(centers, np.linspace(0.002, 0.05, 12), 0.5, FS,
+                                    chirp_hz_per_s=100.0)
+    assert np.all(area.cell_area == 0.5) and np.all(area.chirp_hz_per_s == 100.0)
+    assert area.center_hz.shape == area.correlation.shape == (12,)
+    with pytest.raises(ValueError, match="channel 3: time_spread_s"):
+        Filterbank.constant_area(centers, [0.01, 0.01, 0.01, -1.0] + [0.01] * 8, 1.0, FS)
+    replaced = window.with_channel(2, Channel(50.0, 0.02))
+    assert replaced[2] == Channel(50.0, 0.02) and replaced[3] == window[3]
+
+
+def test_center_grid():
+    """Centres include both band ends; 'log' has a constant ratio, 'linear' a constant step;
+    bad bands, counts and spacings are named. Common practice."""
+    log = center_grid((10.0, 1000.0), 5, "log")
+    np.testing.assert_allclose(log, [10, 10**1.5, 100, 10**2.5, 1000])
+    lin = center_grid((10.0, 1000.0), 4, "linear")
+    np.testing.assert_allclose(np.diff(lin), 330.0)
+    assert center_grid((10.0, 1000.0), 1)[0] == pytest.approx(100.0)
+    with pytest.raises(ValueError, match="band_hz"):
+        center_grid((100.0, 10.0), 5)
+    with pytest.raises(ValueError, match="channels=0"):
+        center_grid((10.0, 100.0), 0)
+    with pytest.raises(ValueError, match="spacing='mel'"):
+        center_grid((10.0, 100.0), 5, "mel")

@@ -1,0 +1,315 @@
+"""FilterbankSearch: closed-form optima, guarantees, stop rules, resume and determinism.
+
+Corpora are generated here (Gaussian atoms and Gaussian-envelope linear chirps), small enough
+that the whole file runs in a few minutes on two cores.
+"""
+import json
+import math
+import pickle
+
+import numpy as np
+import pytest
+from scipy.optimize import minimize_scalar
+
+from search.corpus import Corpus
+from search.criteria import Criterion
+from search.optimize import (FilterbankSearch, bounded_brent, row_stats, scores_from_stats,
+                             separable)
+from search.settings import split_settings
+
+
+def make_corpus(windows, fs):
+    windows = np.asarray(windows, dtype=np.float64)
+    meta = [{"file": "generated", "trace_id": "XX.GEN..HHZ", "start": None, "offset_s": 0.0}
+            for _ in windows]
+    return Corpus(windows, float(fs), meta, [], [{"file": "generated", "trace_id": "XX.GEN..HHZ",
+                                                 "offset_s": 9.0, "reason": "flat"}], {}, "test")
+
+
+def atoms(m, n, fs, sigma0, f0, seed=0):
+    """Gaussian atoms x(t) = exp(−t²/4σ0²)·cos(2π f0 t + φ): |x|² has time std σ0."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(n) / fs - n / (2 * fs)
+    out = []
+    for _ in range(m):
+        u = t - rng.uniform(-0.1, 0.1) * n / fs
+        out.append(np.exp(-u**2 / (4 * sigma0**2)) * np.cos(2 * np.pi * f0 * u + rng.uniform(0, 2 * np.pi)))
+    return np.array(out)
+
+
+def chirps(m, n, fs, beta, sigma0, f0, seed=0):
+    """Linear chirps of rate β (Hz/s) around f0 under a Gaussian envelope of duration σ0."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(n) / fs - n / (2 * fs)
+    out = []
+    for _ in range(m):
+        u = t - rng.uniform(-0.02, 0.02)
+        phase = 2 * np.pi * (f0 * u + 0.5 * beta * u**2) + rng.uniform(0, 2 * np.pi)
+        out.append(np.exp(-u**2 / (4 * sigma0**2)) * np.cos(phase))
+    return np.array(out)
+
+
+@pytest.fixture(scope="module")
+def mixed():
+    """Atoms and chirps in noise: a small corpus with something for every parameter."""
+    fs, n = 1000.0, 256
+    rng = np.random.default_rng(11)
+    w = np.concatenate([atoms(6, n, fs, 0.012, 180.0, seed=1),
+                        chirps(6, n, fs, 600.0, 0.04, 250.0, seed=2)])
+    w += 0.05 * rng.standard_normal(w.shape)
+    return make_corpus(w, fs)
+
+
+SMALL = dict(channels=8, band_hz=[120.0, 360.0], spacing="log", evaluations=8, subset=8,
+             bootstrap=4, batch=4, refine_maxiter=3)
+
+
+# ----------------------------------------------------------------------------- pure parts
+
+@pytest.mark.parametrize("f", [lambda x: (x - 0.3) ** 2, lambda x: math.cos(3 * x) + 0.1 * x,
+                               lambda x: abs(x + 0.7) ** 1.5])
+def test_bounded_brent_takes_scipys_steps(f):
+    """Started where scipy starts (a + (3 − √5)/2·(b − a)), the coroutine proposes exactly the
+    trial points of scipy.optimize.minimize_scalar(method="bounded") and ends at its minimum
+    (reference library; R. P. Brent, Algorithms for Minimization without Derivatives, 1973)."""
+    a, b, xatol = -2.0, 1.5, 1e-5
+    seen = []
+    ref = minimize_scalar(lambda x: seen.append(x) or f(x), bounds=(a, b), method="bounded",
+                          options={"xatol": xatol, "maxiter": 500})
+    x0 = a + 0.5 * (3 - math.sqrt(5)) * (b - a)
+    gen = bounded_brent(a, b, x0, f(x0), xatol, 500)
+    ours = []
+    try:
+        x = next(gen)
+        while True:
+            ours.append(x)
+            x = gen.send(f(x))
+    except StopIteration as stop:
+        x_best, f_best = stop.value
+    assert np.allclose(ours, seen[1:], rtol=0, atol=1e-15)
+    assert x_best == pytest.approx(ref.x, abs=1e-12) and f_best == pytest.approx(ref.fun)
+
+
+@pytest.mark.parametrize("spec", [
+    {"name": "renyi", "alpha": 3.0}, {"name": "renyi", "alpha": 2.5}, {"name": "renyi", "alpha": 1.0},
+    {"name": "renyi", "alpha": 3.0, "negative_mass_penalty": 0.7},
+    {"name": "concentration", "p": 2.0}, {"name": "sparsity", "measure": "hoyer"}])
+@pytest.mark.parametrize("signed", [False, True])
+def test_row_sums_reproduce_the_criteria(spec, signed):
+    """Scoring from per-(window, channel) sums equals search.criteria.Criterion.score on the
+    images (the project's reference criteria: Baraniuk et al. 2001, Stanković 2001, Hoyer
+    2004), for non-negative and signed images, and after replacing one row."""
+    full = {"name": "renyi", "alpha": 3.0, "p": 2.0, "measure": "gini", "negative_mass_penalty": 0.0}
+    full.update(spec)
+    rng = np.random.default_rng(4)
+    images = rng.gamma(0.5, size=(5, 7, 40))
+    if signed:
+        images -= 0.2 * rng.gamma(0.5, size=images.shape)
+    crit = Criterion(**{k: v for k, v in full.items()})
+    stats = row_stats(images, full)
+    assert np.allclose(scores_from_stats(stats, full, 40), crit.score(images), rtol=1e-10, atol=0)
+    images2 = images.copy()
+    images2[:, 3] = rng.gamma(2.0, size=(5, 40))
+    stats[:, 3] = row_stats(images2[:, 3:4], full)[:, 0]
+    assert np.allclose(scores_from_stats(stats, full, 40), crit.score(images2), rtol=1e-10)
+    assert not separable({**full, "name": "sparsity", "measure": "gini"})
+
+
+# ----------------------------------------------------------------------------- closed forms
+
+def test_spectrogram_search_recovers_the_atom_duration():
+    """Cell area fixed at 1 and no chirp (a Gaussian spectrogram): for Gaussian atoms of duration
+    σ0 the entropy-minimising window has time spread σ0 (DESIGN §3 closed form from the
+    determinant of the smoothed Gaussian; L. Cohen, Time-Frequency Analysis, 1995; Rényi entropy
+    as in Baraniuk et al., IEEE Trans. IT 47(4), 2001). Within 3 %."""
+    fs, sigma0, f0 = 1000.0, 0.02, 200.0
+    corpus = make_corpus(atoms(6, 256, fs, sigma0, f0), fs)
+    est = FilterbankSearch(channels=16, band_hz=[170.0, 230.0], spacing="linear", cell_area=[1, 1],
+                           chirp=False, refine=False, evaluations=8, bootstrap=0).fit(corpus)
+    fb = est.filterbank_
+    c = int(np.argmin(abs(fb.center_hz - f0)))
+    assert fb.time_spread_s[c] == pytest.approx(sigma0, rel=0.03)
+    assert np.all(fb.cell_area == 1.0) and np.all(fb.chirp_hz_per_s == 0.0)
+
+
+def test_spectrogram_search_on_long_chirps_recovers_the_chirp_window():
+    """For a long linear chirp of rate β the optimal Gaussian spectrogram window tends to
+    s* = 1/√(4π|β|); in general s*⁴ = σ0⁴/(1 + 16π²β²σ0⁴) (DESIGN §3; Cohen 1995). Here
+    σ0 = 60 ms, β = 400 Hz/s: the general form is within 0.05 % of the limit. Within 3 %."""
+    fs, beta, sigma0 = 1000.0, 400.0, 0.06
+    corpus = make_corpus(chirps(4, 512, fs, beta, sigma0, 250.0), fs)
+    est = FilterbankSearch(channels=32, band_hz=[100.0, 400.0], spacing="linear", cell_area=[1, 1],
+                           chirp=False, refine=False, evaluations=8, bootstrap=0).fit(corpus)
+    s_star = 1.0 / math.sqrt(4 * math.pi * beta)
+    c = int(np.argmin(abs(est.filterbank_.center_hz - 250.0)))
+    assert est.filterbank_.time_spread_s[c] == pytest.approx(s_star, rel=0.03)
+
+
+def test_chirped_search_recovers_the_chirp_rate():
+    """Chirp allowed, cell area fixed at 1: the kernel shears onto the chirp. Under DESIGN §3's
+    convention (G centred on ν = β·u with u = t − t', i.e. the spectrogram of the chirped window
+    exp(−jπβu²), which dechirps a signal of rate −β) the matched channel has β = −(chirp rate).
+    The channels that carry the chirp recover it within 3 % (the dechirped spectrogram of a
+    linear chirp is sharpest at the matched rate: Cohen 1995, ch. 7; Baraniuk et al. 2001)."""
+    fs, beta, sigma0 = 1000.0, 400.0, 0.06
+    corpus = make_corpus(chirps(4, 512, fs, beta, sigma0, 250.0), fs)
+    est = FilterbankSearch(channels=12, band_hz=[150.0, 350.0], spacing="linear", cell_area=[1, 1],
+                           chirp=True, evaluations=12, bootstrap=0, refine_sweeps=2,
+                           refine_maxiter=8).fit(corpus)
+    fb = est.filterbank_
+    carrying = (fb.center_hz > 200.0) & (fb.center_hz < 300.0)
+    assert np.median(fb.chirp_hz_per_s[carrying]) == pytest.approx(-beta, rel=0.03)
+
+
+# ----------------------------------------------------------------------------- guarantees
+
+@pytest.mark.parametrize("options", [dict(), dict(refine=False, seed=3), dict(cell_area=[0.5, 2.0], chirp=False)])
+def test_gain_is_never_negative_and_intervals_hold_the_estimate(mixed, options):
+    """The best spectrogram (a = 1, β = 0) lies in the search space, so the result never scores
+    worse than it (gain ≥ 0, by construction: it seeds stage 1 and is the fallback); the
+    bootstrap interval of the objective contains the estimate (percentile bootstrap of a mean,
+    Efron & Tibshirani 1993)."""
+    est = FilterbankSearch(**{**SMALL, **options}).fit(mixed)
+    d = est.diagnostics_
+    assert d["gain_bits"] >= 0.0
+    assert d["result"]["objective"] <= d["baselines"]["spectrogram"]["objective"]
+    assert d["result"]["low"] <= d["result"]["objective"] <= d["result"]["high"]
+    per = np.array(d["per_window"]["result"])
+    assert d["result"]["objective"] == pytest.approx(per.mean())
+    assert per.shape == (len(mixed.windows),)
+
+
+def test_diagnostics_follow_the_contract(mixed):
+    """diagnostics_ carries every key of the DEVELOPERS.md contract, is strict JSON, and records
+    every setting and default used (DESIGN §8). The filterbank carries its provenance."""
+    est = FilterbankSearch(**SMALL).fit(mixed)
+    d = est.diagnostics_
+    for key in ("stop_reason", "evaluations", "best_so_far", "refinement", "bootstrap", "baselines",
+                "result", "gain_bits", "per_window", "windows", "corpus", "settings", "seed",
+                "elapsed_s", "version"):
+        assert key in d, key
+    json.dumps(d, allow_nan=False)
+    assert d["stop_reason"] in ("budget", "stall", "time_limit", "cancelled")
+    assert set(d["baselines"]) == {"spectrogram", "scalogram", "pseudo_wvd"}
+    assert {"stage", "round", "params", "objective", "seconds"} <= set(d["evaluations"][0])
+    assert len(d["refinement"]) == 8 and len(d["bootstrap"]["channels"]) == 8
+    assert d["windows"] == {"used": 12, "rejected": 1, "rejected_by_reason": {"flat": 1}}
+    for key in ("band_hz", "criterion", "cell_area", "evaluations", "time_spread_bounds_s",
+                "chirp_bound_hz_per_s", "subset", "n_jobs", "initial_points", "smoothness"):
+        assert key in d["settings"], key
+    fb_json = est.filterbank_.to_json()
+    assert fb_json["window_samples"] == 256 and fb_json["criterion"]["name"] == "renyi"
+    assert fb_json["objective"] == d["result"]["objective"]
+    assert est.transform(mixed.windows[:2]).shape == (2, 8, 256)
+    for ch in d["bootstrap"]["channels"]:
+        for key in ("time_spread_s", "cell_area", "chirp_hz_per_s"):
+            assert ch[key][0] <= ch[key][1]
+
+
+def test_refinement_never_raises_its_objective(mixed):
+    """Coordinate rounds accept a step only if the objective drops, so the refinement objective
+    is below its start, and the result is no worse than the family's best on all windows
+    (common practice for descent methods)."""
+    est = FilterbankSearch(**SMALL).fit(mixed)
+    d = est.diagnostics_
+    refine = [e["objective"] for e in d["evaluations"] if e["stage"] == "refine"]
+    before = [r["objective_before"] for r in d["refinement"] if r["objective_before"] is not None]
+    assert refine and before
+    assert d["refine"]["objective"] <= max(before) + 1e-12
+
+
+# ----------------------------------------------------------------------------- stop rules
+
+def test_stop_rules_are_recorded(mixed):
+    """Budget, stall, time limit and cancel each end the search with their reason (DESIGN §5)."""
+    base = {**SMALL, "refine": False, "bootstrap": 0}
+    assert FilterbankSearch(**base).fit(mixed).diagnostics_["stop_reason"] == "budget"
+    stalled = FilterbankSearch(**{**base, "evaluations": 40, "initial_points": 2, "stall_rounds": 1,
+                                  "stall_tol": 10.0}).fit(mixed)
+    assert stalled.diagnostics_["stop_reason"] == "stall"
+    assert stalled.diagnostics_["family"]["evaluations"] < 40
+    timed = FilterbankSearch(**{**base, "time_limit_s": 1e-3}).fit(mixed)
+    assert timed.diagnostics_["stop_reason"] == "time_limit"
+    calls = []
+    cancelled = FilterbankSearch(**base).fit(mixed, should_stop=lambda: calls.append(1) or len(calls) > 3)
+    assert cancelled.diagnostics_["stop_reason"] == "cancelled"
+    assert cancelled.diagnostics_["gain_bits"] is None and hasattr(cancelled, "filterbank_")
+
+
+def test_progress_reports_every_round(mixed):
+    """progress(dict) after each round with stage, round, evaluations, budget, best objective and
+    a fraction that never decreases and ends at 1 (DEVELOPERS.md contract)."""
+    seen = []
+    FilterbankSearch(**SMALL).fit(mixed, progress=seen.append)
+    assert {"stage", "round", "evaluations", "budget", "best_objective", "fraction"} <= set(seen[0])
+    fractions = [p["fraction"] for p in seen]
+    assert fractions == sorted(fractions) and fractions[-1] == 1.0
+    assert {p["stage"] for p in seen} == {"baselines", "family", "refine", "judge"}
+
+
+# ----------------------------------------------------------------------------- resume, determinism
+
+def test_resume_from_a_checkpoint_equals_the_uninterrupted_run(mixed):
+    """Checkpoints pickle the scikit-optimize Optimizer itself with the refinement state; resuming
+    from one taken mid-family-search, or mid-refinement, ends with exactly the uninterrupted
+    filterbank and objective (DESIGN §5: replaying told points would not reproduce the run)."""
+    states = []
+    whole = FilterbankSearch(**SMALL).fit(mixed, checkpoint=lambda s: states.append(pickle.dumps(s)))
+    phases = [pickle.loads(s)["phase"] for s in states]
+    family = phases.index("family") + 1             # after the first family round
+    refine = len(phases) - 1 - phases[::-1].index("refine") - 1
+    assert phases[family] == "family" and phases[refine] == "refine"
+    for k in (family, refine):
+        resumed = FilterbankSearch(**SMALL).fit(mixed, resume_from=pickle.loads(states[k]))
+        assert resumed.filterbank_ == whole.filterbank_
+        assert resumed.diagnostics_["result"] == whole.diagnostics_["result"]
+        assert len(resumed.diagnostics_["evaluations"]) == len(whole.diagnostics_["evaluations"])
+    with pytest.raises(ValueError, match="different corpus or different settings"):
+        FilterbankSearch(**{**SMALL, "channels": 9}).fit(mixed, resume_from=pickle.loads(states[family]))
+
+
+def test_same_filterbank_for_one_or_two_loky_workers(mixed):
+    """Chunks are fixed and per-window scores are reduced in window order, so n_jobs = 1 and 2
+    give identical filterbanks (DESIGN §5 determinism; joblib loky backend)."""
+    one = FilterbankSearch(**SMALL, n_jobs=1).fit(mixed)
+    two = FilterbankSearch(**SMALL, n_jobs=2).fit(mixed)
+    assert one.filterbank_ == two.filterbank_
+    assert one.diagnostics_["per_window"] == two.diagnostics_["per_window"]
+
+
+def test_same_filterbank_on_a_dask_cluster(mixed):
+    """joblib's Dask backend on a real distributed.LocalCluster (2 worker processes) gives the
+    filterbank of the local run, windows scattered once (reference library: joblib
+    parallel_config(backend="dask"), dask.distributed)."""
+    distributed = pytest.importorskip("distributed")
+    from joblib import parallel_config
+
+    local = FilterbankSearch(**SMALL, n_jobs=1).fit(mixed)
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  host="127.0.0.1", dashboard_address=None) as cluster, \
+            distributed.Client(cluster) as client:
+        with parallel_config(backend="dask"):
+            remote = FilterbankSearch(**SMALL, n_jobs=2).fit(mixed)
+        assert client.run(lambda: 1)            # the workers were alive throughout
+    assert remote.filterbank_ == local.filterbank_
+
+
+# ----------------------------------------------------------------------------- bad settings
+
+@pytest.mark.parametrize("options, name", [
+    ({"band_hz": [10.0, 600.0]}, "band_hz"),
+    ({"cell_area": [2.0, 1.0]}, "cell_area"),
+    ({"evaluations": 0}, "evaluations"),
+    ({"criterion": "sharpest"}, "criterion.name"),
+])
+def test_bad_settings_raise_naming_the_setting(mixed, options, name):
+    """fit validates (scikit-learn convention) and the message names the setting (project rule);
+    the band is checked against the corpus' Nyquist frequency, 500 Hz here."""
+    with pytest.raises(ValueError, match=name.replace(".", r"\.")):
+        FilterbankSearch(**{**SMALL, **options}).fit(mixed)
+
+
+def test_unknown_setting_is_named():
+    """Unknown keys in job settings are refused by name (DESIGN §7)."""
+    with pytest.raises(ValueError, match="'window_length'"):
+        split_settings({"window_length": 3})
