@@ -32,5 +32,10 @@ demo: venv
 bench: venv
 	$(BIN)/python bench/run.py
 
+# Reliability and security campaign (about 20 minutes; not part of `make test`): real servers on
+# 127.0.0.1, bounded fault, bad-input, tenant and load experiments, one table of figures.
+reliability: venv
+	$(BIN)/python -m reliability.run
+
 clean:
 	rm -rf $(VENV) demo_out .pytest_cache

@@ -14,6 +14,9 @@ Prints, from one run on this machine:
 - peak resident memory of a search over 1000 windows × 1024 samples, in a child process
   (reduced budget: the arrays, hence the memory, have the same sizes as in a default run).
 
+Each time is printed with the CPU seconds it used and the load average before it: on a shared
+machine the wall-time ratios move with the other work, the CPU-time ratios much less.
+
 Usage: ``python bench/bench_search.py [--quick]`` (``--quick``: smaller budgets, for a smoke run).
 """
 from __future__ import annotations
@@ -61,9 +64,24 @@ def by_hand(windows: np.ndarray, fs: float, n_windows_grid: int = 24) -> dict:
 
 
 def timed(fn, *args, **kwargs):
-    t0 = time.perf_counter()
+    """(result, wall seconds). The CPU seconds of the call (this process and its children,
+    user + system) and the load average before it go to ``timed.last``: on a shared machine
+    the wall time depends on what else runs, the CPU time much less."""
+    load = os.getloadavg()[0]
+    c0, t0 = _cpu(), time.perf_counter()
     out = fn(*args, **kwargs)
-    return out, time.perf_counter() - t0
+    wall = time.perf_counter() - t0
+    timed.last = {"wall": wall, "cpu": _cpu() - c0, "load": load}
+    return out, wall
+
+
+def _cpu() -> float:
+    t = os.times()
+    return t.user + t.system + t.children_user + t.children_system
+
+
+def _note() -> str:
+    return f"[cpu {timed.last['cpu']:.1f} s, load {timed.last['load']:.1f}]"
 
 
 def search(corpus, **options):
@@ -128,23 +146,27 @@ def main() -> int:
     options = dict(evaluations=8, refine_maxiter=3) if args.quick else {}
 
     hand, t_hand = timed(by_hand, corpus.windows, fs)
-    print(f"  by hand (24 ShortTimeFFT Gaussian windows): {t_hand:.1f} s; best window std "
+    cpu_hand = timed.last["cpu"]
+    print(f"  by hand (24 ShortTimeFFT Gaussian windows): {t_hand:.1f} s {_note()}; best window std "
           f"{hand['time_spread_s'] * 1e3:.2f} ms, H3 {hand['entropy_grid_bits']:.3f} bits on its "
           f"grid (mfft {hand['mfft']}), {hand['entropy_continuous_bits']:.3f} bits continuous")
 
     est, t_search = timed(search, corpus, **options)
+    cpu_search = timed.last["cpu"]
     d = est.diagnostics_
     spec = d["baselines"]["spectrogram"]
-    print(f"  default search: {t_search:.1f} s  (stop: {d['stop_reason']}; stages "
+    print(f"  default search: {t_search:.1f} s {_note()} (stop: {d['stop_reason']}; stages "
           + ", ".join(f"{k} {v:.0f} s" for k, v in d["stage_seconds"].items()) + ")")
     print(f"    result H3 {d['result']['objective']:.3f} bits on the filterbank grid "
           f"[{d['result']['low']:.3f}, {d['result']['high']:.3f}]; best spectrogram on the same "
           f"grid {spec['objective']:.3f} bits (std {spec['parameters']['time_spread_s'] * 1e3:.2f} ms);"
           f" gain {d['gain_bits']:.3f} bits")
-    print(f"  RATIO search / by hand: {t_search / t_hand:.2f}  (target <= 1.5)")
+    print(f"  RATIO search / by hand: {t_search / t_hand:.2f} wall, {cpu_search / cpu_hand:.2f} cpu"
+          f"  (target <= 1.5)")
 
     _, t_double = timed(search, with_copy(corpus, 2), **options)
-    print(f"  2x windows: {t_double:.1f} s; RATIO 2x / 1x: {t_double / t_search:.2f}  (target <= 2.1)")
+    print(f"  2x windows: {t_double:.1f} s {_note()}; RATIO 2x / 1x: {t_double / t_search:.2f} wall, "
+          f"{timed.last['cpu'] / cpu_search:.2f} cpu  (target <= 2.1)")
 
     cmd = [sys.executable, os.path.abspath(__file__), "--memory-child", "1000"] + \
         (["--quick"] if args.quick else [])

@@ -7,6 +7,14 @@ from importlib import import_module
 
 # command name -> module under service.commands; each module defines register(subparsers)
 COMMANDS = {
+    "inspect": "inspect",
+    "demo-corpus": "demo_corpus",
+    "serve": "serve",
+    "worker": "worker",
+    "submit": "submit",
+    "tokens": "tokens",
+    "tune": "tune",
+    "transform": "transform_cmd",
 }
 
 

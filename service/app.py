@@ -1,0 +1,115 @@
+"""The FastAPI application: ``create_app(settings)`` wires store, auth, limits, routers and errors.
+
+Every error leaves as JSON ``{"error": {"status": N, "message": "..."}}`` (422s add ``fields``);
+a 500 names no internals and carries no stack trace (the log has it, under the same reference).
+"""
+from __future__ import annotations
+
+import logging
+import sqlite3
+import uuid
+
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import JSONResponse
+from starlette.exceptions import HTTPException as StarletteHTTPException
+
+from service.config import ServiceSettings
+from service.limits import BodySizeLimit
+from service.store import Conflict, IdempotencyMismatch, LeaseLost, NotFound, QueueFull, Store
+
+log = logging.getLogger("burstlens.api")
+
+_STORE_STATUS = {NotFound: 404, Conflict: 409, LeaseLost: 409, QueueFull: 429,
+                 IdempotencyMismatch: 422}
+
+DESCRIPTION = """\
+Tune a Gaussian-smoothed Wigner–Ville filterbank to a site's unlabeled microseismic corpus, then
+apply it to new data.
+
+Typical use: `POST /v1/corpora` (multipart `files`) → `POST /v1/jobs` with the corpus id and
+settings → poll `GET /v1/jobs/{id}` until `succeeded` → `GET /v1/jobs/{id}/filterbank`.
+Authenticate with `Authorization: Bearer TOKEN` (tokens come from `burstlens tokens add NAME`).
+Errors are JSON `{"error": {"status", "message"}}`.
+"""
+
+
+def error_response(status: int, message: str, headers: dict | None = None,
+                   fields: list | None = None) -> JSONResponse:
+    body: dict = {"status": status, "message": message}
+    if fields is not None:
+        body["fields"] = fields
+    return JSONResponse({"error": body}, status_code=status, headers=headers)
+
+
+def _field_errors(exc: RequestValidationError) -> tuple[str, list[dict]]:
+    fields, parts = [], []
+    for err in exc.errors():
+        loc = [str(x) for x in err.get("loc", ()) if x not in ("body",)]
+        where = ".".join(loc) or "body"
+        reason = err.get("msg", "invalid")
+        if err.get("type") == "extra_forbidden":
+            reason = "unknown key (not a setting)"
+        elif err.get("type") == "json_invalid":
+            where = "body"
+            reason = f"not valid JSON ({(err.get('ctx') or {}).get('error', 'decode error')}, " \
+                     f"at character {err.get('loc', ('', '?'))[-1]})"
+        fields.append({"field": where, "reason": reason})
+        parts.append(f"{where}: {reason}")
+    return "invalid request: " + "; ".join(parts), fields
+
+
+def install_error_handlers(app: FastAPI) -> None:
+    @app.exception_handler(StarletteHTTPException)
+    async def _http(request: Request, exc: StarletteHTTPException):
+        return error_response(exc.status_code, str(exc.detail), headers=getattr(exc, "headers", None))
+
+    @app.exception_handler(RequestValidationError)
+    async def _validation(request: Request, exc: RequestValidationError):
+        message, fields = _field_errors(exc)
+        return error_response(422, message, fields=fields)
+
+    for cls, status in _STORE_STATUS.items():
+        def make(status):
+            async def _store(request: Request, exc: Exception):
+                return error_response(status, str(exc))
+            return _store
+        app.add_exception_handler(cls, make(status))
+
+    @app.exception_handler(sqlite3.OperationalError)
+    async def _store_unavailable(request: Request, exc: sqlite3.OperationalError):
+        text = str(exc).lower()
+        if "full" in text:
+            return error_response(507, "the server's disk is full; nothing was stored")
+        if "locked" in text or "busy" in text:
+            return error_response(503, "the job store is busy; retry shortly",
+                                  headers={"Retry-After": "1"})
+        return await _internal(request, exc)
+
+    @app.exception_handler(Exception)
+    async def _internal(request: Request, exc: Exception):
+        ref = uuid.uuid4().hex[:12]
+        log.exception("internal error %s on %s %s", ref, request.method, request.url.path)
+        return error_response(500, f"internal server error (reference {ref} in the server log)")
+
+
+def create_app(settings: ServiceSettings | None = None) -> FastAPI:
+    """Build the API over ``settings.data_dir`` (creating the store if it does not exist)."""
+    from search import __version__
+    from service.routers import corpora, health, jobs, transform
+
+    settings = settings or ServiceSettings()
+    store = Store(settings.data_dir)
+    store.sweep()
+    app = FastAPI(title="burstlens", version=__version__, description=DESCRIPTION,
+                  openapi_url="/openapi.json", docs_url=None, redoc_url=None)
+    app.state.settings = settings
+    app.state.store = store
+    install_error_handlers(app)
+    app.include_router(health.router)
+    app.include_router(corpora.router)
+    app.include_router(jobs.router)
+    app.include_router(transform.router)
+    app.add_middleware(BodySizeLimit, max_body_bytes=settings.max_body_bytes)
+    return app
+

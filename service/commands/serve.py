@@ -1,0 +1,45 @@
+"""``burstlens serve``: the HTTP API plus N local job worker processes over one data dir."""
+from __future__ import annotations
+
+import argparse
+
+
+def register(subparsers) -> None:
+    p = subparsers.add_parser(
+        "serve", help="run the HTTP API and local job workers",
+        description="Run the burstlens HTTP API (uvicorn) and N local worker processes sharing "
+                    "the SQLite store under --data-dir. Without any token stored the server only "
+                    "binds to loopback; add one with `burstlens tokens add NAME`. Every flag "
+                    "defaults to its BURSTLENS_* environment variable.")
+    p.add_argument("--host", help="address to bind (default 127.0.0.1)")
+    p.add_argument("--port", type=int, help="port (default 8000)")
+    p.add_argument("--data-dir", help="store and blob folder (default ./burstlens-data)")
+    p.add_argument("--workers", type=int, metavar="N", help="local worker processes (default 1)")
+    p.add_argument("--dask", metavar="ADDR", help="Dask scheduler, e.g. tcp://HOST:8786")
+    p.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"])
+    p.set_defaults(func=run)
+
+
+def settings_from(args: argparse.Namespace, *names: str):
+    from service.config import ServiceSettings
+
+    overrides = {n: getattr(args, n) for n in names if getattr(args, n, None) is not None}
+    return ServiceSettings(**overrides)
+
+
+def run(args: argparse.Namespace) -> int:
+    import logging
+    import sys
+
+    from pydantic import ValidationError
+
+    try:
+        settings = settings_from(args, "host", "port", "data_dir", "workers", "dask")
+    except ValidationError as exc:
+        print(f"burstlens serve: {exc}", file=sys.stderr)
+        return 2
+    logging.basicConfig(level=args.log_level.upper(),
+                        format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    from service.serving import serve
+
+    return serve(settings, log_level=args.log_level)

@@ -1,0 +1,168 @@
+"""``burstlens tune PATH... --out DIR``: fit a filterbank locally (no server), with a progress bar.
+
+Writes ``filterbank.json`` and ``diagnostics.json`` (DESIGN §8) into DIR, and ``report.html``
+when the report module is available; prints a short summary. Exit codes: 0 done (also when
+cancelled with Ctrl-C: the best result so far is written), 2 bad input or bad settings.
+"""
+from __future__ import annotations
+
+import argparse
+
+
+def register(subparsers) -> None:
+    from service.commands.submit import add_settings_flags
+
+    p = subparsers.add_parser(
+        "tune", help="fit a filterbank to a corpus on this machine",
+        description="Read the waveform files, cut burst windows, search the filterbank whose "
+                    "output is sharpest, and write filterbank.json, diagnostics.json and "
+                    "report.html into --out.")
+    p.add_argument("paths", nargs="+", metavar="PATH", help="waveform files or folders")
+    p.add_argument("--out", required=True, metavar="DIR", help="folder for the results")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    add_settings_flags(p)
+    p.set_defaults(func=run)
+
+
+def _write_json(path, obj) -> None:
+    """JSON to ``path`` through a temp file and a rename, so a reader never sees half a file."""
+    import json
+    import os
+
+    tmp = f"{path}.tmp"
+    with open(tmp, "w", encoding="utf-8") as fh:
+        json.dump(obj, fh, indent=1, allow_nan=False)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+
+
+def summary_lines(diagnostics: dict) -> list[str]:
+    """The few lines a person reads after a tune (also used by tests)."""
+    from search.diagnostics import wide_channels
+
+    d = diagnostics
+    lines = [f"windows used: {d['windows']['used']} (rejected {d['windows']['rejected']})",
+             f"stop reason: {d['stop_reason']}"]
+    result = d.get("result")
+    if result:
+        iv = ""
+        if result.get("low") is not None:
+            iv = f" [{result['low']:.4f}, {result['high']:.4f}]"
+        lines.append(f"objective: {result['objective']:.4f} bits{iv}")
+        spec = d["baselines"]["spectrogram"]
+        window_ms = 1e3 * spec["parameters"]["time_spread_s"]
+        lines.append(f"best spectrogram: {spec['objective']:.4f} bits (window std {window_ms:.3g} ms); "
+                     f"gain {d['gain_bits']:.4f} bits")
+        if d.get("fallback"):
+            lines.append(f"note: {d['fallback']['reason']}; the spectrogram is returned")
+    boot = d.get("bootstrap") or {}
+    if boot.get("channels"):
+        wide = wide_channels(boot, chirp_bound_hz_per_s=d["settings"].get("chirp_bound_hz_per_s", 0.0))
+        lines.append(f"channels with wide bootstrap intervals: {len(wide)} of {len(boot['channels'])}"
+                     + (f" ({', '.join(map(str, wide[:12]))}{' …' if len(wide) > 12 else ''})"
+                        if wide else ""))
+        off = [i for i, ch in enumerate(boot["channels"]) if ch.get("at_optimum") is False]
+        if off:
+            lines.append(f"channels whose resamples all move one way (against a bound, or not "
+                         f"converged): {len(off)}")
+    return lines
+
+
+def run(args: argparse.Namespace) -> int:
+    import os
+    import sys
+    from pathlib import Path
+
+    from service.commands.submit import settings_from_args
+
+    def fail(message: str) -> int:
+        print(f"burstlens tune: {message}", file=sys.stderr)
+        return 2
+
+    try:
+        from search.settings import split_settings
+
+        corpus_options, search_options = split_settings(settings_from_args(args))
+    except ValueError as exc:
+        return fail(str(exc))
+    out = Path(args.out)
+    if out.exists() and not out.is_dir():
+        return fail(f"--out {out}: exists and is not a folder")
+
+    from search.corpus import CorpusError, read_corpus
+    from search.optimize import FilterbankSearch
+
+    missing = [p for p in args.paths if not os.path.exists(p)]
+    if missing:
+        return fail(f"{missing[0]}: no such file or folder")
+    try:
+        corpus = read_corpus(args.paths, **corpus_options)
+    except (CorpusError, ValueError, OSError) as exc:
+        return fail(str(exc))
+
+    bar = None
+    if not args.quiet:
+        from tqdm import tqdm
+
+        bar = tqdm(total=1000, desc="tune", file=sys.stderr, bar_format="{desc} {percentage:3.0f}%"
+                   "|{bar}| {elapsed}<{remaining} {postfix}")
+
+    def progress(msg: dict) -> None:
+        if bar is None:
+            return
+        bar.n = int(round(1000 * msg["fraction"]))
+        best = msg.get("best_objective")
+        bar.set_postfix_str(f"{msg['stage']} round {msg['round']} eval {msg['evaluations']}"
+                            + (f" best {best:.4f}" if best is not None else ""), refresh=False)
+        bar.refresh()
+
+    interrupted = []
+
+    def should_stop() -> bool:
+        return bool(interrupted)
+
+    import signal
+
+    previous = signal.getsignal(signal.SIGINT)
+
+    def on_sigint(signum, frame):  # first Ctrl-C: stop after the round; second: abort
+        if interrupted:
+            raise KeyboardInterrupt
+        interrupted.append(True)
+
+    signal.signal(signal.SIGINT, on_sigint)
+    try:
+        search = FilterbankSearch(**search_options)
+        search.fit(corpus, progress=progress, should_stop=should_stop)
+    except ValueError as exc:
+        return fail(str(exc))
+    finally:
+        signal.signal(signal.SIGINT, previous)
+        if bar is not None:
+            bar.close()
+
+    out.mkdir(parents=True, exist_ok=True)
+    fb_json = search.filterbank_.to_json()
+    _write_json(out / "filterbank.json", fb_json)
+    _write_json(out / "diagnostics.json", search.diagnostics_)
+    wrote = ["filterbank.json", "diagnostics.json"]
+    report = _render_report(fb_json, search.diagnostics_, corpus)
+    if report is not None:
+        tmp = out / "report.html.tmp"
+        tmp.write_text(report, encoding="utf-8")
+        os.replace(tmp, out / "report.html")
+        wrote.append("report.html")
+    for line in summary_lines(search.diagnostics_):
+        print(line)
+    print(f"wrote {', '.join(wrote)} to {out}")
+    return 0
+
+
+def _render_report(fb_json: dict, diagnostics: dict, corpus):
+    """report.html text if ``service.report.render_report`` exists, else None."""
+    try:
+        from service.report import render_report
+    except ImportError:
+        return None
+    return render_report(fb_json, diagnostics, corpus.windows, corpus.sampling_rate_hz)

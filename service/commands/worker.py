@@ -1,0 +1,36 @@
+"""``burstlens worker``: job workers alone, against the same data dir as a ``serve``."""
+from __future__ import annotations
+
+import argparse
+
+
+def register(subparsers) -> None:
+    p = subparsers.add_parser(
+        "worker", help="run a job worker against a data dir",
+        description="Claim and run tuning jobs from the store under --data-dir until SIGTERM "
+                    "(then: checkpoint, release the job, exit 0).")
+    p.add_argument("--data-dir", help="store and blob folder (default ./burstlens-data)")
+    p.add_argument("--dask", metavar="ADDR", help="Dask scheduler, e.g. tcp://HOST:8786")
+    p.add_argument("--parent-pid", type=int, help=argparse.SUPPRESS)  # set by `serve`
+    p.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"])
+    p.set_defaults(func=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    import logging
+    import sys
+
+    from pydantic import ValidationError
+
+    from service.commands.serve import settings_from
+
+    try:
+        settings = settings_from(args, "data_dir", "dask")
+    except ValidationError as exc:
+        print(f"burstlens worker: {exc}", file=sys.stderr)
+        return 2
+    logging.basicConfig(level=args.log_level.upper(),
+                        format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    from service.worker import run_worker
+
+    return run_worker(settings, parent_pid=args.parent_pid)

@@ -1,0 +1,138 @@
+"""Reading stored uploads with the engine's corpus reader, in the client's terms.
+
+Files are stored under server-chosen names; the reader's messages and summaries would show those
+paths, so everything that goes back to a client is rewritten to the client's own file names.
+"""
+from __future__ import annotations
+
+import logging
+import math
+from pathlib import Path
+from typing import Any
+
+from fastapi import HTTPException
+
+log = logging.getLogger("burstlens.corpus")
+
+WINDOWINGS = ("bursts", "whole", "sliding")
+
+
+class CorpusRejected(ValueError):
+    """The files cannot be read as a corpus (message names the client's file and the cause)."""
+
+
+class CorpusTooLarge(ValueError):
+    """The corpus passes a server limit (windows or samples)."""
+
+
+def parse_read_options(fields: dict[str, str]) -> dict[str, Any]:
+    """Form fields of an upload → corpus reader options (422 naming a bad field)."""
+    options: dict[str, Any] = {}
+    if "windowing" in fields:
+        if fields["windowing"] not in WINDOWINGS:
+            raise HTTPException(status_code=422, detail=f"windowing: expected one of {list(WINDOWINGS)}, "
+                                                        f"got {fields['windowing']!r}")
+        options["windowing"] = fields["windowing"]
+    for name in ("window_s", "csv_sampling_rate_hz"):
+        if name in fields:
+            try:
+                value = float(fields[name])
+            except ValueError:
+                value = float("nan")
+            if not math.isfinite(value) or value <= 0:
+                raise HTTPException(status_code=422, detail=f"{name}: expected a positive number, "
+                                                            f"got {fields[name]!r}")
+            options[name] = value
+    return options
+
+
+def _renamer(paths: list[Path], names: list[str]):
+    pairs = sorted(((str(p), n) for p, n in zip(paths, names)), key=lambda x: -len(x[0]))
+    folders = sorted({str(p.parent) for p in paths}, key=len, reverse=True)
+
+    def rename(text: str) -> str:
+        for path, name in pairs:
+            text = text.replace(path, name)
+        for folder in folders:
+            text = text.replace(folder + "/", "").replace(folder, "")
+        return text
+    return rename
+
+
+def jsonable(obj: Any, rename=lambda s: s) -> Any:
+    """Plain JSON types: numpy scalars/arrays unwrapped, non-finite floats → None, names mapped."""
+    import numpy as np
+
+    if isinstance(obj, dict):
+        return {str(k): jsonable(v, rename) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [jsonable(v, rename) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return jsonable(obj.tolist(), rename)
+    if isinstance(obj, (bool, np.bool_)):
+        return bool(obj)
+    if isinstance(obj, (int, np.integer)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        value = float(obj)
+        return value if math.isfinite(value) else None
+    if isinstance(obj, (str, Path)):
+        return rename(str(obj))
+    if obj is None:
+        return None
+    return rename(str(obj))
+
+
+def load_corpus(paths: list[Path], names: list[str], options: dict[str, Any]):
+    """``search.read_corpus`` over stored files; errors become :class:`CorpusRejected`."""
+    from search.corpus import CorpusError, read_corpus
+
+    rename = _renamer(paths, names)
+    try:
+        return read_corpus([str(p) for p in paths], **options)
+    except CorpusError as exc:
+        raise CorpusRejected(rename(str(exc))) from None
+    except (ValueError, TypeError) as exc:
+        raise CorpusRejected(f"could not read the files: {rename(str(exc))}") from None
+    except Exception as exc:  # a reader library failing on hostile bytes is still bad input
+        log.warning("corpus reader failed: %r", exc)
+        raise CorpusRejected(f"could not read the files: {rename(str(exc))}") from None
+
+
+def corpus_samples(corpus) -> int:
+    """Samples read over all traces (duration × rate), the quantity ``max_samples`` bounds."""
+    return int(sum(round(float(t.get("duration_s", 0)) * float(t.get("sampling_rate_hz", 0)))
+                   for t in corpus.traces))
+
+
+def enforce_limits(corpus, settings) -> None:
+    if corpus.n_windows > settings.max_windows:
+        raise CorpusTooLarge(f"the corpus has {corpus.n_windows} windows, more than the server's "
+                             f"limit of {settings.max_windows}")
+    samples = corpus_samples(corpus)
+    if samples > settings.max_samples:
+        raise CorpusTooLarge(f"the corpus has {samples} samples, more than the server's limit of "
+                             f"{settings.max_samples}")
+    if corpus.n_windows == 0:
+        reasons = sorted({r.get("reason", "?") for r in corpus.rejections})
+        raise CorpusRejected("no usable windows in the files" +
+                             (f" (rejected: {', '.join(reasons)})" if reasons else ""))
+
+
+def check_corpus(paths: list[Path], files: list[dict], options: dict[str, Any], settings
+                 ) -> tuple[dict[str, Any], str | None]:
+    """Read an upload as the jobs will; returns (summary for the client, source hash).
+
+    Raises HTTPException 422 (unreadable, no windows) or 413 (over a limit).
+    """
+    names = [f["name"] for f in files]
+    try:
+        corpus = load_corpus(paths, names, options)
+        enforce_limits(corpus, settings)
+    except CorpusRejected as exc:
+        raise HTTPException(status_code=422, detail=str(exc)) from None
+    except CorpusTooLarge as exc:
+        raise HTTPException(status_code=413, detail=str(exc)) from None
+    summary = jsonable(corpus.to_json(), _renamer(paths, names))
+    summary.pop("window_meta", None)  # one entry per window: too much for a record
+    return summary, getattr(corpus, "source_hash", None)

@@ -1,0 +1,200 @@
+"""Request and response bodies of the /v1 API (pydantic), with the examples shown in OpenAPI.
+
+``JobSettings`` mirrors the CLI settings flags in snake_case (DESIGN §7). Every field is optional:
+a missing one takes the engine's default, which the result records. Unknown keys are rejected
+(``extra="forbid"``) so a typo never silently runs a different job.
+"""
+from __future__ import annotations
+
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, field_validator
+
+JobState = Literal["queued", "running", "succeeded", "failed", "cancelled"]
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", allow_inf_nan=False)
+
+
+class CriterionSettings(_Strict):
+    """Sharpness criterion (lower is sharper)."""
+
+    name: Literal["renyi", "concentration", "sparsity"] | None = Field(
+        None, description="renyi (default), concentration (Stanković M_p) or sparsity.")
+    alpha: float | None = Field(None, gt=0, le=100, description="Rényi order α (default 3).")
+    p: float | None = Field(None, gt=0, le=100, description="Concentration exponent p (default 2).")
+    measure: Literal["gini", "hoyer"] | None = Field(None, description="Sparsity measure.")
+    negative_mass_penalty: float | None = Field(
+        None, ge=0, le=1e6, description="λ: adds λ·Σ|p⁻|/Σ|p| to the score.")
+
+    @field_validator("alpha")
+    @classmethod
+    def _alpha_not_one(cls, value):
+        if value is not None and value == 1:
+            raise ValueError("alpha = 1 is the Shannon limit, not a Rényi order; use e.g. 3")
+        return value
+
+
+def _pair(name: str, value, *, positive: bool) -> list[float] | None:
+    if value is None:
+        return None
+    lo, hi = value
+    if positive and lo <= 0:
+        raise ValueError(f"{name}: the lower bound must be > 0, got {lo}")
+    if lo > hi:
+        raise ValueError(f"{name}: expected [low, high] with low <= high, got [{lo}, {hi}]")
+    return [float(lo), float(hi)]
+
+
+class JobSettings(_Strict):
+    """Settings of one tuning job; keys as the CLI flags in snake_case."""
+
+    model_config = ConfigDict(extra="forbid", allow_inf_nan=False, json_schema_extra={"examples": [
+        {"channels": 48, "band_hz": [20.0, 1500.0], "spacing": "log", "criterion": {"name": "renyi",
+         "alpha": 3.0}, "evaluations": 120, "bootstrap": 8, "seed": 7}]})
+
+    channels: int | None = Field(None, ge=2, le=512, description="Number of channels.")
+    band_hz: list[float] | None = Field(None, min_length=2, max_length=2,
+                                        description="[low, high] channel band, Hz.")
+    spacing: Literal["log", "linear"] | None = Field(None, description="Channel centre spacing.")
+    window_s: float | None = Field(None, gt=0, le=60, description="Window length, s.")
+    criterion: CriterionSettings | None = None
+    cell_area: list[float] | None = Field(
+        None, min_length=2, max_length=2,
+        description="[min, max] cell area a (1 = Heisenberg minimum).")
+    chirp: bool | None = Field(None, description="Search chirp rates (false: β = 0).")
+    refine: bool | None = Field(None, description="Per-channel refinement stage.")
+    evaluations: int | None = Field(None, ge=1, le=100_000, description="Evaluation budget.")
+    time_limit_s: float | None = Field(None, gt=0, le=7 * 86400, description="Time budget, s.")
+    bootstrap: int | None = Field(None, ge=0, le=1000, description="Bootstrap resamples "
+                                                                   "(0 = none, else at least 2).")
+    seed: int | None = Field(None, ge=0, le=2**32 - 1, description="Random seed.")
+    windowing: Literal["bursts", "whole", "sliding"] | None = Field(None, description="Windowing.")
+    max_windows: int | None = Field(None, ge=1, le=1_000_000, description="Cap on windows used.")
+    jobs: int | None = Field(None, ge=1, le=256, description="Parallel evaluations (the worker "
+                                                             "caps it at its cores).")
+
+    @field_validator("band_hz")
+    @classmethod
+    def _band(cls, value):
+        value = _pair("band_hz", value, positive=True)
+        if value is not None and value[0] == value[1]:
+            raise ValueError(f"band_hz: the high edge must be above the low edge, got {value}")
+        return value
+
+    @field_validator("cell_area")
+    @classmethod
+    def _area(cls, value):
+        return _pair("cell_area", value, positive=True)
+
+    def to_options(self) -> dict[str, Any]:
+        """The settings dict handed to ``search.settings.split_settings`` (unset keys left out)."""
+        return self.model_dump(exclude_none=True, mode="json")
+
+
+class JobRequest(_Strict):
+    model_config = ConfigDict(extra="forbid", allow_inf_nan=False, json_schema_extra={"examples": [
+        {"corpus_id": "3f2a0c9e5b8d4e7f9a1b2c3d4e5f6a7b",
+         "settings": {"channels": 48, "evaluations": 120, "seed": 7}}]})
+
+    corpus_id: str = Field(..., min_length=1, max_length=64, description="From POST /v1/corpora.")
+    settings: JobSettings = Field(default_factory=JobSettings)
+
+
+class Progress(BaseModel):
+    """Where a job is: rounds and evaluations done of budget, best objective so far, stage."""
+
+    model_config = ConfigDict(extra="allow")
+
+    stage: str | None = None
+    round: int | None = None
+    evaluations: int | None = None
+    budget: int | None = None
+    best_objective: float | None = None
+    fraction: float | None = None
+
+
+class JobView(BaseModel):
+    model_config = ConfigDict(json_schema_extra={"examples": [
+        {"id": "8c1d2e3f4a5b6c7d8e9f0a1b2c3d4e5f", "state": "running",
+         "progress": {"stage": "family", "round": 3, "evaluations": 24, "budget": 120,
+                      "best_objective": 9.81, "fraction": 0.2},
+         "attempts": 1, "error": None, "corpus_id": "3f2a0c9e5b8d4e7f9a1b2c3d4e5f6a7b",
+         "settings": {"channels": 48}, "stop_reason": None, "cancel_requested": False,
+         "created_at": 1780000000.0, "started_at": 1780000001.0, "finished_at": None,
+         "summary": None}]})
+
+    id: str
+    state: JobState
+    progress: Progress
+    attempts: int
+    error: str | None
+    corpus_id: str
+    settings: dict[str, Any]
+    stop_reason: str | None = None
+    cancel_requested: bool = False
+    created_at: float
+    started_at: float | None = None
+    finished_at: float | None = None
+    summary: dict[str, Any] | None = Field(None, description="objective, gain_bits, stop_reason "
+                                                             "once the job succeeded.")
+
+    @classmethod
+    def from_job(cls, job: dict[str, Any]) -> "JobView":
+        return cls(id=job["id"], state=job["state"], progress=Progress(**job["progress"]),
+                   attempts=job["attempts"], error=job["error"], corpus_id=job["corpus_id"],
+                   settings=job["settings"], stop_reason=job["stop_reason"],
+                   cancel_requested=job["cancel_requested"], created_at=job["created_at"],
+                   started_at=job["started_at"], finished_at=job["finished_at"],
+                   summary=job["summary"])
+
+
+class JobList(BaseModel):
+    jobs: list[JobView]
+
+
+class CorpusFile(BaseModel):
+    name: str = Field(..., description="The client's file name (kept for display only).")
+    bytes: int
+    sha256: str
+
+
+class CorpusView(BaseModel):
+    model_config = ConfigDict(json_schema_extra={"examples": [
+        {"id": "3f2a0c9e5b8d4e7f9a1b2c3d4e5f6a7b", "created_at": 1780000000.0, "bytes": 1048576,
+         "files": [{"name": "site-A.mseed", "bytes": 1048576, "sha256": "ab" * 32}],
+         "summary": {"n_windows": 120, "sampling_rate_hz": 4000.0}}]})
+
+    id: str
+    created_at: float
+    bytes: int
+    files: list[CorpusFile]
+    summary: dict[str, Any] = Field(..., description="What the corpus reader found (no samples).")
+
+    @classmethod
+    def from_corpus(cls, corpus: dict[str, Any]) -> "CorpusView":
+        return cls(id=corpus["id"], created_at=corpus["created_at"], bytes=corpus["bytes"],
+                   files=[CorpusFile(name=f["name"], bytes=f["bytes"], sha256=f["sha256"])
+                          for f in corpus["files"]],
+                   summary=corpus["summary"])
+
+
+class ErrorBody(BaseModel):
+    status: int
+    message: str
+    fields: list[dict[str, Any]] | None = Field(
+        None, description="For 422: each invalid field's location and the reason.")
+
+
+class ErrorResponse(BaseModel):
+    model_config = ConfigDict(json_schema_extra={"examples": [
+        {"error": {"status": 404, "message": "no job '8c1d2e3f'"}}]})
+
+    error: ErrorBody
+
+
+class Health(BaseModel):
+    status: Literal["ok"]
+    version: str
+    auth: bool = Field(..., description="Whether /v1 routes need a bearer token.")

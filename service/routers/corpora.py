@@ -1,0 +1,71 @@
+"""POST/GET/DELETE /v1/corpora: upload waveform files, checked by the corpus reader before the ack."""
+from __future__ import annotations
+
+import shutil
+
+from fastapi import APIRouter, Depends, HTTPException, Request, Response
+from starlette.concurrency import run_in_threadpool
+
+from service.auth import require_tenant
+from service.corpus_check import check_corpus, parse_read_options
+from service.models import CorpusView
+from service.routers import COMMON, errors
+from service.uploads import receive_multipart
+
+router = APIRouter(prefix="/v1/corpora", tags=["corpora"])
+
+READ_FIELDS = {"windowing", "window_s", "csv_sampling_rate_hz"}
+
+_UPLOAD_BODY = {"requestBody": {"required": True, "content": {"multipart/form-data": {"schema": {
+    "type": "object", "required": ["files"],
+    "properties": {
+        "files": {"type": "array", "items": {"type": "string", "format": "binary"},
+                  "description": "Waveform files: miniSEED, SAC, WAV, .npy/.npz, CSV."},
+        "windowing": {"type": "string", "enum": ["bursts", "whole", "sliding"],
+                      "description": "How the upload check cuts windows (default bursts)."},
+        "window_s": {"type": "number", "exclusiveMinimum": 0, "description": "Window length, s."},
+        "csv_sampling_rate_hz": {"type": "number", "exclusiveMinimum": 0,
+                                 "description": "Sampling rate of CSV files, Hz."}}}}}}}
+
+
+@router.post("", status_code=201, response_model=CorpusView, openapi_extra=_UPLOAD_BODY,
+             responses=errors(*COMMON, 400, 415))
+async def create_corpus(request: Request, tenant: str = Depends(require_tenant)) -> CorpusView:
+    """Upload a corpus (multipart field `files`, one part per file).
+
+    The files stream to disk, the corpus reader checks them, and only then is the corpus recorded
+    and its `id` returned. A rejected upload leaves nothing behind.
+    """
+    store, settings = request.app.state.store, request.app.state.settings
+    folder = await run_in_threadpool(store.new_upload_dir)
+    try:
+        upload = await receive_multipart(request, folder, file_fields={"files"},
+                                         text_fields=READ_FIELDS, max_files=settings.max_files)
+        files = upload.files.get("files", [])
+        if not files:
+            raise HTTPException(status_code=422, detail="no files: send the waveforms as the "
+                                                        "multipart field 'files'")
+        options = parse_read_options(upload.fields)
+        summary, source_hash = await run_in_threadpool(
+            check_corpus, upload.paths(folder, "files"), files, options, settings)
+        summary["read_options"] = options
+        corpus = await run_in_threadpool(store.add_corpus, tenant, folder, files, summary,
+                                         source_hash)
+    except BaseException:
+        await run_in_threadpool(shutil.rmtree, folder, True)
+        raise
+    return CorpusView.from_corpus(corpus)
+
+
+@router.get("/{corpus_id}", response_model=CorpusView, responses=errors(*COMMON, 404))
+def get_corpus(corpus_id: str, request: Request, tenant: str = Depends(require_tenant)) -> CorpusView:
+    """What the corpus holds: files, traces, windows found, rejections with reasons."""
+    return CorpusView.from_corpus(request.app.state.store.get_corpus(corpus_id, tenant))
+
+
+@router.delete("/{corpus_id}", status_code=204, response_class=Response,
+               responses=errors(*COMMON, 404, 409))
+def delete_corpus(corpus_id: str, request: Request, tenant: str = Depends(require_tenant)) -> Response:
+    """Delete a corpus and its files (refused while a queued or running job uses it)."""
+    request.app.state.store.delete_corpus(corpus_id, tenant)
+    return Response(status_code=204)

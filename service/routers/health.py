@@ -1,0 +1,55 @@
+"""Liveness, Prometheus metrics and the jobs page for people (GET /)."""
+from __future__ import annotations
+
+from pathlib import Path
+
+from fastapi import APIRouter, HTTPException, Request
+from fastapi.responses import FileResponse, PlainTextResponse
+
+from search import __version__
+from service.auth import auth_required
+from service.models import Health
+from service.routers import errors
+
+router = APIRouter(tags=["health"])
+
+STATIC = Path(__file__).resolve().parent.parent / "static"
+
+
+@router.get("/healthz", response_model=Health, responses=errors(500, 503))
+def healthz(request: Request) -> Health:
+    """The API is up and its store answers."""
+    store = request.app.state.store
+    store.counts_by_state()
+    return Health(status="ok", version=__version__,
+                  auth=auth_required(store, request.app.state.settings.tokens_required))
+
+
+@router.get("/metrics", response_class=PlainTextResponse, responses={
+    200: {"content": {"text/plain": {"example": 'burstlens_jobs{state="queued"} 2\n'}}},
+    **errors(500, 503)})
+def metrics(request: Request) -> PlainTextResponse:
+    """Prometheus text format: jobs by state, evaluations done and their throughput."""
+    store = request.app.state.store
+    counts = store.counts_by_state()
+    total, rate = store.evaluation_totals(window_s=60.0)
+    lines = ["# HELP burstlens_jobs Jobs in the store by state.", "# TYPE burstlens_jobs gauge"]
+    lines += [f'burstlens_jobs{{state="{state}"}} {n}' for state, n in counts.items()]
+    lines += ["# HELP burstlens_evaluations_total Candidate filterbank evaluations done.",
+              "# TYPE burstlens_evaluations_total counter", f"burstlens_evaluations_total {total}",
+              "# HELP burstlens_evaluations_per_second Evaluations per second over the last 60 s.",
+              "# TYPE burstlens_evaluations_per_second gauge",
+              f"burstlens_evaluations_per_second {rate:.6g}",
+              "# HELP burstlens_workers_busy Workers holding a live lease.",
+              "# TYPE burstlens_workers_busy gauge", f"burstlens_workers_busy {store.live_workers()}"]
+    return PlainTextResponse("\n".join(lines) + "\n",
+                             media_type="text/plain; version=0.0.4; charset=utf-8")
+
+
+@router.get("/", response_class=FileResponse, include_in_schema=False)
+def index() -> FileResponse:
+    """The jobs page: a static page that calls the /v1 API from the browser."""
+    page = STATIC / "index.html"
+    if not page.is_file():
+        raise HTTPException(status_code=503, detail="the jobs page is not installed")
+    return FileResponse(page, media_type="text/html; charset=utf-8")

@@ -1,0 +1,406 @@
+"""Job worker: claim a job, run the search with leases and checkpoints, record the outcome.
+
+One worker runs one job at a time:
+
+1. ``claim`` (BEGIN IMMEDIATE) takes the oldest fresh job, else one whose lease expired;
+2. a heartbeat thread renews the lease every third of its length and reads the cancel flag;
+3. ``FilterbankSearch.fit`` runs with ``progress`` (→ the job's progress), ``checkpoint``
+   (→ a pickle blob whose sha256 is kept in the store) and ``resume_from`` (the last checkpoint,
+   when this is a reclaimed job; a torn or corrupt one is detected and the job restarts clean);
+4. the result files go under ``results/<job>/attempt-<n>/`` and the job is finished — every
+   write conditioned on owner and attempt, so a worker that lost its lease changes nothing.
+
+SIGTERM (or the parent ``serve`` going away): stop claiming, let the current round end with its
+checkpoint, release the lease without using up an attempt, exit 0.
+"""
+from __future__ import annotations
+
+import hashlib
+import io
+import logging
+import os
+import pickle
+import signal
+import socket
+import threading
+import uuid
+from contextlib import nullcontext
+from pathlib import Path
+from typing import Any, Callable
+
+from service.config import ServiceSettings
+from service.corpus_check import CorpusRejected, CorpusTooLarge, enforce_limits, jsonable, load_corpus
+from service.store import LeaseLost, NotFound, Store, write_blob
+
+log = logging.getLogger("burstlens.worker")
+
+REPORT_MAX_VALUES = 4_000_000  # windows × samples handed to the report renderer
+
+
+class Terminated(Exception):
+    """Raised inside ``fit`` right after a checkpoint was saved, when the worker must stop."""
+
+
+class PermanentError(Exception):
+    """Bad input that no retry can fix (settings, corpus gone or unreadable): fail at once."""
+
+
+class Heartbeat(threading.Thread):
+    """Renews one job's lease every ``lease_s / 3`` and records the cancel flag or a lost lease."""
+
+    def __init__(self, store: Store, job: dict, lease_s: float,
+                 parent_alive: Callable[[], bool] = lambda: True, on_orphan=lambda: None):
+        super().__init__(name=f"heartbeat-{job['id'][:8]}", daemon=True)
+        self.store, self.job, self.lease_s = store, job, lease_s
+        self.parent_alive, self.on_orphan = parent_alive, on_orphan
+        self.cancelled = False
+        self.lost = False
+        self._done = threading.Event()
+
+    def run(self) -> None:
+        while not self._done.wait(self.lease_s / 3.0):
+            if not self.parent_alive():
+                self.on_orphan()
+            try:
+                self.cancelled = self.store.heartbeat(self.job, self.lease_s) or self.cancelled
+            except LeaseLost:
+                self.lost = True
+                log.info("job %s: lease no longer held", self.job["id"])
+                return
+            except Exception:  # a busy or briefly unavailable store: try again next beat
+                log.exception("job %s: heartbeat failed", self.job["id"])
+
+    def stop(self) -> None:
+        self._done.set()
+        self.join(timeout=5.0)
+
+
+def default_search_factory(**options):
+    from search.optimize import FilterbankSearch
+
+    return FilterbankSearch(**options)
+
+
+class Worker:
+    """A job worker over ``settings.data_dir`` (see the module docstring)."""
+
+    def __init__(self, settings: ServiceSettings, *, owner: str | None = None,
+                 search_factory: Callable[..., Any] = default_search_factory,
+                 parent_pid: int | None = None):
+        self.settings = settings
+        self.store = Store(settings.data_dir)
+        self.owner = owner or f"{socket.gethostname()}:{os.getpid()}:{uuid.uuid4().hex[:6]}"
+        self.search_factory = search_factory
+        self.parent_pid = parent_pid
+        self.stopping = threading.Event()
+        self._dask_client = None
+
+    # -- the loop ---------------------------------------------------------------------------
+    def parent_alive(self) -> bool:
+        return self.parent_pid is None or os.getppid() == self.parent_pid
+
+    def request_stop(self, *_args) -> None:
+        self.stopping.set()
+
+    def install_signal_handlers(self) -> None:
+        signal.signal(signal.SIGTERM, self.request_stop)
+        signal.signal(signal.SIGINT, self.request_stop)
+
+    def run(self, *, max_jobs: int | None = None, exit_when_idle: bool = False) -> int:
+        """Claim and run jobs until stopped; returns the process exit code (0)."""
+        done = 0
+        log.info("worker %s on %s", self.owner, self.settings.data_dir)
+        while not self.stopping.is_set() and (max_jobs is None or done < max_jobs):
+            if not self.parent_alive():
+                log.warning("parent process gone; stopping")
+                break
+            job = self.store.claim(self.owner, self.settings.lease_s, self.settings.max_attempts)
+            if job is None:
+                if exit_when_idle:
+                    break
+                self.stopping.wait(self.settings.poll_s)
+                continue
+            self.run_job(job)
+            done += 1
+        if self._dask_client is not None:
+            self._dask_client.close()
+        return 0
+
+    # -- one job ----------------------------------------------------------------------------
+    def run_job(self, job: dict) -> str:
+        """Run one claimed job to an outcome: succeeded, failed, cancelled, queued (retry or
+        released) or lost. Returns that outcome."""
+        log.info("job %s: attempt %d by %s", job["id"], job["attempts"], self.owner)
+        beat = Heartbeat(self.store, job, self.settings.lease_s, self.parent_alive, self.request_stop)
+        beat.start()
+        run = _JobRun(self, job, beat)
+        try:
+            outcome = run.execute()
+        finally:
+            beat.stop()
+        log.info("job %s: %s", job["id"], outcome)
+        return outcome
+
+    def dask_context(self):
+        """joblib's Dask backend on the cluster of ``--dask ADDR`` (service.dask_backend); a
+        no-op without it. An unreachable scheduler fails the attempt with a clear reason."""
+        if not self.settings.dask:
+            return nullcontext()
+        from service.dask_backend import ensure_client, evaluations_on
+
+        self._dask_client = ensure_client(self._dask_client, self.settings.dask)
+        return evaluations_on(self._dask_client)
+
+
+class _JobRun:
+    """State of one attempt at one job (callbacks handed to ``fit``)."""
+
+    def __init__(self, worker: Worker, job: dict, beat: Heartbeat):
+        self.worker, self.store, self.job, self.beat = worker, worker.store, job, beat
+        self.settings = worker.settings
+        self.seq = 0
+        self.last_round: int | None = None
+        self.last_evaluations = 0
+        self.resumed = False
+        self.checkpoint_problem: str | None = None
+        self.progressed = False
+
+    # callbacks ------------------------------------------------------------------------------
+    def should_stop(self) -> bool:
+        # SIGTERM is not a cancel: it ends at the next checkpoint (see checkpoint), so the job
+        # resumes elsewhere instead of being judged on a partial search
+        return self.beat.cancelled or self.beat.lost
+
+    def progress(self, info: dict) -> None:
+        if self.beat.lost:
+            raise LeaseLost(f"job {self.job['id']}: lease lost")
+        self.progressed = True
+        info = jsonable(dict(info))
+        info["attempt"] = self.job["attempts"]
+        info["resumed"] = self.resumed
+        if self.checkpoint_problem:
+            info["checkpoint_problem"] = self.checkpoint_problem
+        evaluations = info.get("evaluations")
+        new = 0
+        if isinstance(evaluations, int):
+            new = max(0, evaluations - self.last_evaluations)
+            self.last_evaluations = max(self.last_evaluations, evaluations)
+        if isinstance(info.get("round"), int):
+            self.last_round = info["round"]
+        self.store.record_progress(self.job, info, new)
+
+    def checkpoint(self, state: Any) -> None:
+        if self.beat.lost:
+            raise LeaseLost(f"job {self.job['id']}: lease lost")
+        data = pickle.dumps(state, protocol=pickle.HIGHEST_PROTOCOL)
+        self.seq += 1
+        path = self.store.checkpoint_path(self.job, self.seq)
+        write_blob(path, data)
+        try:
+            old = self.store.record_checkpoint(self.job, path, hashlib.sha256(data).hexdigest(),
+                                               self.last_round)
+        except LeaseLost:
+            path.unlink(missing_ok=True)
+            raise
+        if old and old != str(path):
+            Path(old).unlink(missing_ok=True)
+        if self.worker.stopping.is_set():
+            raise Terminated("stopping after a saved checkpoint")
+
+    # steps ----------------------------------------------------------------------------------
+    def load_checkpoint(self) -> Any:
+        """The last checkpoint's state, or None; a missing/torn/corrupt one is dropped (logged)."""
+        path, digest = self.job.get("checkpoint_path"), self.job.get("checkpoint_sha256")
+        if not path:
+            return None
+        try:
+            data = Path(path).read_bytes()
+            if hashlib.sha256(data).hexdigest() != digest:
+                raise ValueError("sha256 does not match the store (torn or altered file)")
+            state = pickle.loads(data)  # our own blob, verified by its digest
+        except Exception as exc:
+            log.warning("job %s: checkpoint %s unusable (%s); starting over", self.job["id"], path, exc)
+            self.store.drop_checkpoint(self.job)
+            Path(path).unlink(missing_ok=True)
+            self.checkpoint_problem = str(exc)
+            return None
+        self.resumed = True
+        self.last_evaluations = int(self.job["progress"].get("evaluations") or 0)
+        return state
+
+    def prepare(self):
+        from search.settings import split_settings
+
+        try:
+            corpus_options, search_options = split_settings(dict(self.job["settings"]))
+        except ValueError as exc:
+            raise PermanentError(f"invalid settings: {exc}") from None
+        try:
+            record = self.store.get_corpus(self.job["corpus_id"], None)
+        except NotFound:
+            raise PermanentError(f"corpus {self.job['corpus_id']} no longer exists") from None
+        options = {**record["summary"].get("read_options", {}), **corpus_options}
+        paths = self.store.corpus_paths(record)
+        try:
+            corpus = load_corpus(paths, [f["name"] for f in record["files"]], options)
+            enforce_limits(corpus, self.settings)
+        except (CorpusRejected, CorpusTooLarge) as exc:
+            raise PermanentError(str(exc)) from None
+        if self.settings.dask:
+            if search_options.get("n_jobs", 1) == 1:
+                search_options["n_jobs"] = -1  # every Dask worker core
+        else:
+            search_options["n_jobs"] = min(int(search_options.get("n_jobs", 1)), os.cpu_count() or 1)
+        rename = {str(p): f["name"] for p, f in zip(paths, record["files"])}
+        return corpus, search_options, rename
+
+    def execute(self) -> str:
+        job = self.job
+        try:
+            corpus, search_options, rename = self.prepare()
+            resume = self.load_checkpoint()
+            try:
+                search = self.worker.search_factory(**search_options)
+            except (ValueError, TypeError) as exc:
+                raise PermanentError(f"invalid settings: {exc}") from None
+            with self.worker.dask_context():
+                try:
+                    search.fit(corpus, progress=self.progress, checkpoint=self.checkpoint,
+                               resume_from=resume, should_stop=self.should_stop)
+                except ValueError as exc:
+                    if resume is None or self.progressed:
+                        raise
+                    # the engine refused the state (other version, settings or corpus): start over
+                    log.warning("job %s: checkpoint not resumable (%s); starting over", job["id"], exc)
+                    self.store.drop_checkpoint(job)
+                    self.checkpoint_problem = f"checkpoint not resumable: {exc}"
+                    self.resumed, self.last_evaluations = False, 0
+                    search = self.worker.search_factory(**search_options)
+                    search.fit(corpus, progress=self.progress, checkpoint=self.checkpoint,
+                               resume_from=None, should_stop=self.should_stop)
+        except Terminated:
+            return self._release()
+        except LeaseLost:
+            return "lost"
+        except PermanentError as exc:
+            return self._finish_quietly("failed", error=str(exc))
+        except Exception as exc:
+            if self.beat.lost:
+                return "lost"
+            if self.worker.stopping.is_set():
+                return self._release()
+            log.exception("job %s: attempt %d raised", job["id"], job["attempts"])
+            try:
+                return self.store.retry_or_fail(job, f"{type(exc).__name__}: {exc}",
+                                                self.settings.max_attempts)
+            except LeaseLost:
+                return "lost"
+        if self.beat.lost:
+            return "lost"
+        if self.beat.cancelled:
+            return self._finish_quietly("cancelled", stop_reason="cancelled")
+        return self._succeed(search, corpus, rename)  # a finished fit is kept, even on SIGTERM
+
+    def _release(self) -> str:
+        try:
+            self.store.release(self.job)
+        except LeaseLost:
+            return "lost"
+        return "released"
+
+    def _finish_quietly(self, state: str, **fields) -> str:
+        try:
+            self.store.finish(self.job, state, **fields)
+        except LeaseLost:
+            return "lost"
+        self._cleanup_checkpoints()
+        return state
+
+    def _cleanup_checkpoints(self) -> None:
+        for path in (self.store.blob_dir / "checkpoints").glob(f"{self.job['id']}-*.pkl"):
+            path.unlink(missing_ok=True)
+
+    def _succeed(self, search, corpus, rename: dict[str, str]) -> str:
+        job = self.job
+
+        def names(text: str) -> str:
+            for stored, name in rename.items():
+                text = text.replace(stored, name)
+            return text
+
+        try:
+            diagnostics = jsonable(search.diagnostics_, names)
+            filterbank_json = jsonable(filterbank_document(search, job), names)
+            folder = self.store.blob_dir / "results" / job["id"] / f"attempt-{job['attempts']}"
+            write_blob(folder / "filterbank.json", _dumps(filterbank_json))
+            write_blob(folder / "diagnostics.json", _dumps(diagnostics))
+        except Exception as exc:
+            log.exception("job %s: writing the results failed", job["id"])
+            try:
+                return self.store.retry_or_fail(job, f"writing results: {type(exc).__name__}: {exc}",
+                                                self.settings.max_attempts)
+            except LeaseLost:
+                return "lost"
+        self._write_report(folder, filterbank_json, diagnostics, corpus)
+        summary = {"objective": (diagnostics.get("result") or {}).get("objective"),
+                   "gain_bits": diagnostics.get("gain_bits"),
+                   "stop_reason": diagnostics.get("stop_reason"),
+                   "channels": len(filterbank_json.get("channels", []))}
+        try:
+            self.store.finish(job, "succeeded", stop_reason=diagnostics.get("stop_reason"),
+                              result_dir=str(folder), summary=summary,
+                              evaluations=diagnostics.get("evaluations") or [])
+        except LeaseLost:
+            return "lost"
+        self._cleanup_checkpoints()
+        return "succeeded"
+
+    def _write_report(self, folder: Path, filterbank_json: dict, diagnostics: dict, corpus) -> None:
+        """Keep a window sample for the plots and cache report.html; a failure here never fails
+        the job (GET /report renders it later)."""
+        import numpy as np
+
+        windows = corpus.windows
+        if windows.size > REPORT_MAX_VALUES:
+            windows = windows[: max(1, REPORT_MAX_VALUES // windows.shape[1])]
+        try:
+            buffer = io.BytesIO()
+            np.save(buffer, np.ascontiguousarray(windows), allow_pickle=False)
+            write_blob(folder / "windows.npy", buffer.getvalue())
+            from service.report import render_report
+
+            html = render_report(filterbank_json, diagnostics, windows, corpus.sampling_rate_hz)
+            write_blob(folder / "report.html", html.encode("utf-8"))
+        except Exception:
+            log.exception("job %s: report rendering failed", self.job["id"])
+
+
+def filterbank_document(search, job: dict) -> dict:
+    """The filterbank JSON of DESIGN §8. The engine records window samples, criterion,
+    objective and provenance (corpus hash, settings, version); the service adds which job made
+    it and the settings as submitted."""
+    return search.filterbank_.to_json(job={"id": job["id"], "settings": job["settings"]})
+
+
+def _dumps(obj: Any) -> bytes:
+    import json
+
+    return (json.dumps(obj, indent=1, allow_nan=False) + "\n").encode("utf-8")
+
+
+def run_worker(settings: ServiceSettings, parent_pid: int | None = None) -> int:
+    """Entry point of ``burstlens worker``: run until SIGTERM, then exit 0 (2: no Dask cluster)."""
+    if settings.dask:
+        import sys
+
+        from service.dask_backend import DaskUnavailable, probe
+
+        try:
+            probe(settings.dask)
+        except DaskUnavailable as exc:
+            print(f"burstlens worker: {exc}", file=sys.stderr)
+            return 2
+    worker = Worker(settings, parent_pid=parent_pid)
+    worker.install_signal_handlers()
+    return worker.run()
+

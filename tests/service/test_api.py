@@ -1,0 +1,214 @@
+"""The /v1 API in process: corpora, job submission, idempotency, validation, errors, metrics."""
+from __future__ import annotations
+
+import os
+
+from service_helpers import TINY, corpus_files, make_client  # noqa: F401  (fixture)
+
+
+def _upload(client, count=2, seed=0):
+    response = client.post("/v1/corpora", files=corpus_files(count, seed))
+    assert response.status_code == 201, response.text
+    return response.json()
+
+
+def test_corpus_upload_is_checked_and_described(make_client, tmp_path):
+    """An upload answers with its id after the corpus reader has read it: windows found, the
+    sampling rate, and the client's file names (only for display; common practice)."""
+    client = make_client()
+    corpus = _upload(client)
+    assert corpus["summary"]["n_windows"] > 0
+    assert corpus["summary"]["sampling_rate_hz"] == 1000.0
+    assert [f["name"] for f in corpus["files"]] == ["trace0.npz", "trace1.npz"]
+    assert client.get(f"/v1/corpora/{corpus['id']}").json() == corpus
+
+
+def test_uploaded_file_names_are_never_paths(make_client, tmp_path):
+    """A file named with '..' or '/' is stored under a server-chosen name inside the corpus
+    folder; nothing is written outside it (OWASP, "Unrestricted File Upload": never use the
+    client's file name as a path)."""
+    client = make_client()
+    files = corpus_files(1)
+    name, body, kind = files[0][1]
+    response = client.post("/v1/corpora", files=[("files", ("../../../escape.npz", body, kind))])
+    assert response.status_code == 201, response.text
+    corpus = response.json()
+    assert corpus["files"][0]["name"] == "escape.npz"
+    stored = os.listdir(tmp_path / "data" / "blobs" / "corpora" / corpus["id"])
+    assert stored == ["0000.npz"]
+    assert not list(tmp_path.rglob("escape.npz"))
+
+
+def test_rejected_upload_leaves_nothing(make_client, tmp_path):
+    """A file the reader cannot read is a 422 naming the client's file, and no trace of the
+    upload stays on disk or in the store (DESIGN §6: nothing half-ingested is kept)."""
+    client = make_client()
+    good = corpus_files(1)[0]
+    response = client.post("/v1/corpora", files=[good, ("files", ("junk.sac", b"\x00\x01" * 400,
+                                                                    "application/octet-stream"))])
+    assert response.status_code == 422
+    message = response.json()["error"]["message"]
+    assert "junk.sac" in message and str(tmp_path) not in message
+    data = tmp_path / "data"
+    assert os.listdir(data / "tmp") == [] and os.listdir(data / "blobs" / "corpora") == []
+
+
+def test_delete_corpus(make_client):
+    """DELETE removes the corpus (then 404), and is refused with 409 while a queued job uses it
+    (DESIGN §7; RFC 9110 §15.5.10, 409 Conflict)."""
+    client = make_client()
+    corpus = _upload(client)
+    job = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": TINY}).json()
+    assert client.delete(f"/v1/corpora/{corpus['id']}").status_code == 409
+    client.post(f"/v1/jobs/{job['id']}/cancel")
+    assert client.delete(f"/v1/corpora/{corpus['id']}").status_code == 204
+    assert client.get(f"/v1/corpora/{corpus['id']}").status_code == 404
+
+
+def test_job_is_queued_and_listed(make_client):
+    """POST /v1/jobs answers 201 with id, state, progress, attempts and error (DESIGN §7)."""
+    client = make_client()
+    corpus = _upload(client)
+    response = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": TINY})
+    assert response.status_code == 201
+    job = response.json()
+    assert {"id", "state", "progress", "attempts", "error"} <= set(job)
+    assert job["state"] == "queued" and job["attempts"] == 0 and job["error"] is None
+    assert response.headers["location"] == f"/v1/jobs/{job['id']}"
+    listed = client.get("/v1/jobs").json()["jobs"]
+    assert [j["id"] for j in listed] == [job["id"]]
+    assert client.get("/v1/jobs", params={"state": "running"}).json()["jobs"] == []
+
+
+def test_idempotency_key(make_client):
+    """Same key and body → the same job (200); same key, other body → 422; empty key → 400
+    (IETF draft "The Idempotency-Key HTTP Header Field")."""
+    client = make_client()
+    corpus = _upload(client)
+    body = {"corpus_id": corpus["id"], "settings": TINY}
+    first = client.post("/v1/jobs", json=body, headers={"Idempotency-Key": "order-1"})
+    again = client.post("/v1/jobs", json=body, headers={"Idempotency-Key": "order-1"})
+    assert (first.status_code, again.status_code) == (201, 200)
+    assert first.json()["id"] == again.json()["id"]
+    other = client.post("/v1/jobs", json={**body, "settings": {**TINY, "seed": 99}},
+                        headers={"Idempotency-Key": "order-1"})
+    assert other.status_code == 422 and "Idempotency-Key" in other.json()["error"]["message"]
+    assert client.post("/v1/jobs", json=body, headers={"Idempotency-Key": ""}).status_code == 400
+    assert len(client.get("/v1/jobs").json()["jobs"]) == 1
+
+
+def test_unknown_setting_is_named(make_client):
+    """Unknown keys in settings are a 422 whose message names each of them (DESIGN §7)."""
+    client = make_client()
+    corpus = _upload(client)
+    response = client.post("/v1/jobs", json={"corpus_id": corpus["id"],
+                                             "settings": {"chanels": 8, "bogus": 1}})
+    assert response.status_code == 422
+    message = response.json()["error"]["message"]
+    assert "settings.chanels" in message and "settings.bogus" in message
+
+
+def test_invalid_setting_values(make_client):
+    """Out-of-range values are a 422 naming the field, including the engine's own checks
+    (bootstrap = 1 is refused by search.settings)."""
+    client = make_client()
+    corpus = _upload(client)
+    for settings, field in (({"band_hz": [500, 100]}, "band_hz"), ({"channels": 0}, "channels"),
+                            ({"bootstrap": 1}, "bootstrap"), ({"cell_area": [0, 2]}, "cell_area")):
+        response = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": settings})
+        assert response.status_code == 422, settings
+        assert field in response.json()["error"]["message"]
+
+
+def test_unknown_ids_are_404(make_client):
+    """Unknown corpus and job ids answer 404 with a JSON error (DESIGN §7)."""
+    client = make_client()
+    assert client.post("/v1/jobs", json={"corpus_id": "nope"}).status_code == 404
+    for path in ("/v1/jobs/nope", "/v1/jobs/nope/filterbank", "/v1/corpora/nope"):
+        response = client.get(path)
+        assert response.status_code == 404 and "nope" in response.json()["error"]["message"]
+    assert client.post("/v1/jobs/nope/cancel").status_code == 404
+
+
+def test_results_before_success_are_409(make_client):
+    """A queued job has no filterbank yet: 409 saying its state (RFC 9110 §15.5.10)."""
+    client = make_client()
+    corpus = _upload(client)
+    job = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": TINY}).json()
+    for what in ("filterbank", "diagnostics", "report"):
+        response = client.get(f"/v1/jobs/{job['id']}/{what}")
+        assert response.status_code == 409 and "queued" in response.json()["error"]["message"]
+
+
+def test_cancel_queued_job(make_client):
+    """Cancelling a queued job ends it at once; cancelling it again is a 409 (DESIGN §7)."""
+    client = make_client()
+    corpus = _upload(client)
+    job = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": TINY}).json()
+    cancelled = client.post(f"/v1/jobs/{job['id']}/cancel").json()
+    assert cancelled["state"] == "cancelled"
+    assert client.post(f"/v1/jobs/{job['id']}/cancel").status_code == 409
+
+
+def test_internal_errors_carry_no_stack_trace(make_client, monkeypatch):
+    """An unexpected exception becomes a JSON 500 with a reference, never a traceback
+    (OWASP, "Improper Error Handling")."""
+    client = make_client()
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("secret internal detail")
+
+    monkeypatch.setattr(client.app.state.store, "list_jobs", broken)
+    response = client.get("/v1/jobs")
+    assert response.status_code == 500
+    text = response.text
+    assert "Traceback" not in text and "secret internal detail" not in text
+    assert "reference" in response.json()["error"]["message"]
+
+
+def test_errors_are_json_everywhere(make_client):
+    """Unknown routes and wrong methods answer the same JSON error shape (DESIGN §7: errors
+    are JSON with a message)."""
+    client = make_client()
+    for response in (client.get("/v1/nothing"), client.put("/v1/jobs")):
+        assert response.status_code in (404, 405)
+        assert set(response.json()["error"]) >= {"status", "message"}
+
+
+def test_metrics_and_health(make_client):
+    """/metrics is Prometheus text with jobs by state and evaluation counters (Prometheus
+    "Exposition formats", text format 0.0.4); /healthz answers ok."""
+    client = make_client()
+    corpus = _upload(client)
+    client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": TINY})
+    text = client.get("/metrics").text
+    assert 'burstlens_jobs{state="queued"} 1' in text
+    assert "# TYPE burstlens_evaluations_total counter" in text
+    assert "burstlens_evaluations_per_second" in text
+    assert client.get("/healthz").json()["status"] == "ok"
+
+
+def test_jobs_page_is_served(make_client):
+    """GET / serves the jobs page for people as HTML (DESIGN §7)."""
+    response = make_client().get("/")
+    assert response.status_code == 200
+    assert response.headers["content-type"].startswith("text/html")
+    assert "/v1/jobs" in response.text
+
+
+def test_store_trouble_is_503_or_507(make_client, monkeypatch):
+    """SQLite answering "database is locked" past its busy timeout is a 503 with Retry-After;
+    "database or disk is full" is a 507 (RFC 9110 §15.6.4, RFC 4918 §11.5)."""
+    import sqlite3
+
+    client = make_client()
+    for text, status, retry in (("database is locked", 503, "1"),
+                                ("database or disk is full", 507, None)):
+        def failing(*args, text=text, **kwargs):
+            raise sqlite3.OperationalError(text)
+
+        monkeypatch.setattr(client.app.state.store, "list_jobs", failing)
+        response = client.get("/v1/jobs")
+        assert response.status_code == status
+        assert response.headers.get("retry-after") == retry
+        assert "message" in response.json()["error"]

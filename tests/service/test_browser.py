@@ -1,0 +1,238 @@
+"""The report page and the jobs page, rendered by the system Chromium through Playwright.
+
+Chromium is Debian's (/usr/bin/chromium, installed by `make test`); no browser is downloaded.
+Screenshots of every page land in the test's tmp_path (report.png, jobs.png, ...).
+"""
+from __future__ import annotations
+
+import os
+import re
+
+import httpx
+import numpy as np
+import pytest
+from service_helpers import TINY, corpus_files, live_server, wait_for  # noqa: F401  (fixture)
+
+CHROMIUM = "/usr/bin/chromium"
+LAUNCH_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+               "--disable-background-networking", "--disable-component-update", "--disable-sync",
+               "--disable-dev-shm-usage"]  # small /dev/shm in CI containers
+
+pytestmark = [
+    pytest.mark.browser,
+    pytest.mark.skipif(not os.access(CHROMIUM, os.X_OK),
+                       reason=f"no system Chromium at {CHROMIUM} (`make test` installs Debian's)"),
+]
+
+# Every image loaded and decoded (naturalWidth > 0), per the HTML Living Standard img element.
+IMAGES_JS = """() => Array.from(document.images).map(i => ({
+    alt: i.alt, complete: i.complete, width: i.naturalWidth, src: i.src.slice(0, 22)}))"""
+
+# Channel table rows as [field -> {value: data-value, text: shown}] (report.py's table).
+TABLE_JS = """() => Array.from(document.querySelectorAll('#channel-table tbody tr')).map(tr => {
+    const row = {};
+    tr.querySelectorAll('td[data-field]').forEach(td => {
+        row[td.dataset.field] = {value: td.dataset.value, text: td.textContent.trim()};
+    });
+    return row;
+})"""
+
+
+@pytest.fixture(scope="module")
+def browser():
+    from playwright.sync_api import sync_playwright
+
+    with sync_playwright() as playwright:
+        chromium = playwright.chromium.launch(executable_path=CHROMIUM, headless=True,
+                                              args=LAUNCH_ARGS)
+        yield chromium
+        chromium.close()
+
+
+class Console:
+    """Collects console errors, uncaught page errors and every requested URL of one page."""
+
+    def __init__(self, page):
+        self.errors: list[str] = []
+        self.requests: list[str] = []
+        page.on("console", lambda msg: msg.type == "error" and self.errors.append(msg.text))
+        page.on("pageerror", lambda exc: self.errors.append(str(exc)))
+        page.on("request", lambda request: self.requests.append(request.url))
+
+    def foreign(self, *origins: str) -> list[str]:
+        """Requested URLs outside ``origins`` and inline schemes (an external asset)."""
+        return [u for u in self.requests if not u.startswith(("data:", "blob:", *origins))]
+
+
+def tiny_fit():
+    """A real FilterbankSearch on a small generated corpus of Gaussian tone bursts in noise."""
+    from search import FilterbankSearch
+    from search.corpus import Corpus
+
+    fs, n, m = 1000.0, 256, 8
+    t = np.arange(n) / fs
+    rng = np.random.default_rng(1)
+    windows = np.array([np.exp(-0.5 * ((t - 0.12) / 0.02) ** 2) * np.cos(2 * np.pi * (80 + 30 * k) * (t - 0.12))
+                        + 0.02 * rng.standard_normal(n) for k in range(m)])
+    corpus = Corpus(windows=windows, sampling_rate_hz=fs,
+                    window_meta=[{"file": "bursts.npz", "trace_id": "XX.T01..HHZ", "start": None,
+                                  "offset_s": 0.5 * k} for k in range(m)],
+                    traces=[{"file": "bursts.npz", "trace_id": "XX.T01..HHZ", "sampling_rate_hz": fs,
+                             "start": None, "duration_s": 4.0, "windows": m}],
+                    rejections=[{"file": "bursts.npz", "trace_id": "XX.T01..HHZ", "offset_s": 3.9,
+                                 "reason": "flat", "detail": "constant samples"}],
+                    defaults={"windowing": "bursts", "window_s": n / fs}, source_hash="5e" * 32,
+                    files=["bursts.npz"])
+    search = FilterbankSearch(channels=6, evaluations=8, bootstrap=2, seed=3).fit(corpus)
+    return search, corpus
+
+
+def test_report_from_disk_renders_every_image_and_the_channel_table(browser, tmp_path):
+    """The report written to disk and opened as file:// shows every plot (naturalWidth > 0) and
+    a channel table equal to the filterbank JSON, logs no console error and requests nothing
+    beyond the file (HTML Living Standard img decoding; DESIGN §8 channel fields)."""
+    from service.report import render_report
+
+    search, corpus = tiny_fit()
+    filterbank = search.filterbank_.to_json()
+    path = tmp_path / "report.html"
+    path.write_text(render_report(filterbank, search.diagnostics_, corpus.windows,
+                                  corpus.sampling_rate_hz), encoding="utf-8")
+    page = browser.new_page(viewport={"width": 1280, "height": 900})
+    console = Console(page)
+    page.goto(path.as_uri())
+    page.wait_for_load_state("load")
+    images = page.evaluate(IMAGES_JS)
+    assert len(images) == 5  # tiling, examples, convergence, channels, baselines
+    for image in images:
+        assert image["complete"] and image["width"] > 0, image
+        assert image["alt"].strip() and image["src"].startswith("data:image/png;base64")
+    rows = page.evaluate(TABLE_JS)
+    assert len(rows) == len(filterbank["channels"])
+    for row, channel in zip(rows, filterbank["channels"]):
+        for field in ("center_hz", "time_spread_s", "cell_area", "chirp_hz_per_s"):
+            assert float(row[field]["value"]) == channel[field]
+            assert float(row[field]["text"]) == pytest.approx(channel[field], rel=1e-4, abs=1e-12)
+        assert row["equivalent"]["text"] == channel["equivalent"]["text"]
+    assert "not a certified safety" in page.inner_text("#cautions")
+    page.screenshot(path=str(tmp_path / "report.png"), full_page=True)
+    assert console.errors == []
+    assert console.foreign(path.as_uri()) == []  # nothing loaded but the file itself
+    page.close()
+
+
+def _upload_and_submit(url: str, headers: dict, settings: dict) -> str:
+    with httpx.Client(base_url=url, headers=headers, timeout=30.0) as client:
+        corpus = client.post("/v1/corpora", files=corpus_files(2))
+        assert corpus.status_code == 201, corpus.text
+        job = client.post("/v1/jobs", json={"corpus_id": corpus.json()["id"], "settings": settings})
+        assert job.status_code == 201, job.text
+        return job.json()["id"]
+
+
+def _row_state(page, job_id: str) -> str | None:
+    return page.evaluate("id => { const r = document.querySelector(`tr[data-job-id=\"${id}\"]`);"
+                         " return r ? r.dataset.state : null; }", job_id)
+
+
+def test_jobs_page_with_a_token_follows_a_job_to_succeeded_and_opens_its_report(
+        browser, live_server, tmp_path):
+    """With tokens stored, GET / answers the API's 401 by asking for a bearer token (again, with
+    a reason, after a wrong one), keeps it in sessionStorage only so a reload does not ask again;
+    a job submitted after the page loaded appears without a reload and its row moves to
+    `succeeded` by polling, while Cancel moves a second, queued job to `cancelled`; the report
+    link fetches the page with the token and every image renders (RFC 6750 bearer tokens;
+    DESIGN §7 job states)."""
+    from service.auth import create_token
+    from service.store import Store
+
+    data_dir = tmp_path / "data"
+    token = create_token(Store(data_dir), "browser-test")
+    auth = {"Authorization": f"Bearer {token}"}
+    server = live_server(workers=1, data_dir=data_dir)
+    page = browser.new_page(viewport={"width": 1280, "height": 720})
+    console = Console(page)
+    page.goto(server.url + "/")
+    page.wait_for_selector("#token-panel:not([hidden])")
+    page.screenshot(path=str(tmp_path / "jobs-token.png"))
+    page.fill("#token-input", "bl_wrong")
+    page.click("#token-panel button[type=submit]")
+    page.wait_for_selector("#token-error:not([hidden])")  # rejected: asked again, with a reason
+    assert page.evaluate("() => sessionStorage.getItem('burstlens.token')") is None
+    page.fill("#token-input", token)
+    page.click("#token-panel button[type=submit]")
+    page.wait_for_selector("#empty:not([hidden])")  # listed, nothing yet
+    assert page.evaluate("() => sessionStorage.getItem('burstlens.token')") == token
+    assert page.evaluate("() => localStorage.length") == 0
+    page.reload()
+    page.wait_for_selector("#empty:not([hidden])")
+    assert page.locator("#token-panel").is_hidden()
+
+    job_id = _upload_and_submit(server.url, auth, TINY)
+    queued_id = _upload_and_submit(server.url, auth, {**TINY, "seed": 4})  # waits for the worker
+    page.click(f'tr[data-job-id="{queued_id}"] button.cancel')
+    seen = []
+
+    def state():
+        value = _row_state(page, job_id)
+        if value and (not seen or seen[-1] != value):
+            seen.append(value)
+            if value == "running":
+                page.screenshot(path=str(tmp_path / "jobs-running.png"))
+        return value in ("succeeded", "failed", "cancelled")
+
+    wait_for(state, timeout=120.0, interval=0.2)
+    assert seen[-1] == "succeeded", seen
+    assert set(seen) <= {"queued", "running", "succeeded"}
+    page.wait_for_selector(f'tr[data-job-id="{queued_id}"][data-state="cancelled"]', timeout=30000)
+    row = page.locator(f'tr[data-job-id="{job_id}"]')
+    assert row.locator(".state").inner_text() == "succeeded"
+    assert re.search(r"[+-]\d\.\d{3} bits", row.inner_text())  # gain over the spectrogram
+    assert row.locator("button.cancel").count() == 0
+    page.screenshot(path=str(tmp_path / "jobs.png"), full_page=True)
+    link = row.locator("a.report-link")
+    assert link.get_attribute("href") == f"/v1/jobs/{job_id}/report"
+    with page.expect_popup() as popup:
+        link.click()
+    report_page = popup.value
+    report_console = Console(report_page)
+    report_page.wait_for_selector("#channel-table")
+    report_page.wait_for_load_state("load")
+    images = report_page.evaluate(IMAGES_JS)
+    assert len(images) == 5 and all(i["complete"] and i["width"] > 0 for i in images), images
+    with httpx.Client(base_url=server.url, headers=auth) as client:
+        filterbank = client.get(f"/v1/jobs/{job_id}/filterbank").json()
+    rows = report_page.evaluate(TABLE_JS)
+    assert [float(r["center_hz"]["value"]) for r in rows] == \
+        [c["center_hz"] for c in filterbank["channels"]]
+    report_page.screenshot(path=str(tmp_path / "job-report.png"), full_page=True)
+    assert report_console.errors == []
+    # the 401 answers before the token was given are the protocol at work, not page errors
+    assert [e for e in console.errors if "401" not in e] == []
+    report_page.close()
+    page.close()
+
+
+def test_jobs_page_without_tokens_lists_and_cancels_a_queued_job(browser, live_server, tmp_path):
+    """A loopback server without tokens needs none: GET / lists a queued job at once (no token
+    prompt, no report link yet), its Cancel button moves it to `cancelled`, and the page loads
+    nothing but its own origin (DESIGN §7)."""
+    server = live_server(workers=0)  # no worker: the job stays queued
+    job_id = _upload_and_submit(server.url, {}, TINY)
+    page = browser.new_page(viewport={"width": 1280, "height": 720})
+    console = Console(page)
+    page.goto(server.url + "/")
+    row = f'tr[data-job-id="{job_id}"]'
+    page.wait_for_selector(f'{row}[data-state="queued"]')
+    assert page.locator("#token-panel").is_hidden()
+    assert page.locator(f"{row} a.report-link").count() == 0
+    assert "waiting for a worker" in page.inner_text(row)
+    page.click(f"{row} button.cancel")
+    page.wait_for_selector(f'{row}[data-state="cancelled"]', timeout=15000)
+    with httpx.Client(base_url=server.url) as client:
+        assert client.get(f"/v1/jobs/{job_id}").json()["state"] == "cancelled"
+    assert page.locator(f"{row} button.cancel").count() == 0
+    page.screenshot(path=str(tmp_path / "jobs-cancelled.png"), full_page=True)
+    assert console.errors == []
+    assert console.foreign(server.url + "/") == []  # no external asset: only its own API
+    page.close()

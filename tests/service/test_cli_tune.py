@@ -1,0 +1,129 @@
+"""`burstlens tune` and `burstlens transform`: files written, summary, NPZ layout, exit codes."""
+import json
+
+import numpy as np
+import pytest
+from scipy.io import wavfile
+
+from service.cli import main
+
+
+def atoms(m, n, fs, sigma0, f0, seed=0):
+    """Gaussian atoms exp(−t²/4σ0²)·cos(2π f0 t + φ) at random offsets."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(n) / fs - n / (2 * fs)
+    return np.array([np.exp(-(t - d) ** 2 / (4 * sigma0**2)) * np.cos(2 * np.pi * f0 * (t - d) + p)
+                     for d, p in zip(rng.uniform(-0.02, 0.02, m), rng.uniform(0, 6.28, m))])
+
+
+def chirps(m, n, fs, beta, sigma0, f0, seed=0):
+    """Linear chirps of rate β (Hz/s) under a Gaussian envelope of duration σ0."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(n) / fs - n / (2 * fs)
+    return np.array([np.exp(-(t - d) ** 2 / (4 * sigma0**2))
+                     * np.cos(2 * np.pi * (f0 * (t - d) + 0.5 * beta * (t - d) ** 2) + p)
+                     for d, p in zip(rng.uniform(-0.02, 0.02, m), rng.uniform(0, 6.28, m))])
+
+FAST = ["--windowing", "whole", "--channels", "8", "--band", "120", "360", "--evaluations", "6",
+        "--bootstrap", "2"]
+
+
+@pytest.fixture(scope="module")
+def wav_dir(tmp_path_factory):
+    """Six event files (WAV, 1 kHz, int16): Gaussian atoms and linear chirps."""
+    folder = tmp_path_factory.mktemp("events")
+    w = np.concatenate([atoms(3, 256, 1000.0, 0.012, 180.0, seed=1),
+                        chirps(3, 256, 1000.0, 600.0, 0.04, 250.0, seed=2)])
+    for i, x in enumerate(w):
+        wavfile.write(folder / f"event{i}.wav", 1000, (x * 20000).astype(np.int16))
+    return folder
+
+
+@pytest.fixture(scope="module")
+def tuned(wav_dir, tmp_path_factory):
+    out = tmp_path_factory.mktemp("tuned")
+    code = main(["tune", str(wav_dir), "--out", str(out), "--quiet", *FAST])
+    return code, out
+
+
+def test_tune_writes_the_results(tuned, capsys):
+    """tune exits 0 and writes filterbank.json (format burstlens-filterbank, version 1, DESIGN
+    §8) and diagnostics.json (strict JSON with the stop reason); the filterbank reads back."""
+    from search import Filterbank
+
+    code, out = tuned
+    assert code == 0
+    fb_json = json.loads((out / "filterbank.json").read_text())
+    assert fb_json["format"] == "burstlens-filterbank" and fb_json["version"] == 1
+    fb = Filterbank.from_json(fb_json)
+    assert len(fb) == 8 and fb.sampling_rate_hz == 1000.0
+    diag = json.loads((out / "diagnostics.json").read_text())
+    assert diag["stop_reason"] in ("budget", "stall", "time_limit")
+    assert diag["windows"]["used"] == 6 and diag["gain_bits"] >= 0
+    assert diag["settings"]["evaluations"] == 6 and diag["settings"]["band_hz"] == [120.0, 360.0]
+    try:
+        from service.report import render_report  # noqa: F401
+    except ImportError:
+        return
+    assert "<html" in (out / "report.html").read_text().lower()
+
+
+def test_tune_prints_a_summary(wav_dir, tmp_path, capsys):
+    """The summary names windows used, stop reason, objective, gain over the best spectrogram
+    and the channels with wide bootstrap intervals (issue 4, deliverable 5)."""
+    assert main(["tune", str(wav_dir), "--out", str(tmp_path), "--quiet", *FAST, "--no-refine"]) == 0
+    text = capsys.readouterr().out
+    for phrase in ("windows used: 6", "stop reason:", "objective:", "gain", "wide bootstrap"):
+        assert phrase in text, phrase
+
+
+@pytest.mark.parametrize("extra, needle", [
+    (["--cell-area", "4", "1"], "cell_area"),
+    (["--band", "100", "700"], "band_hz"),
+    (["--evaluations", "0"], "evaluations"),
+])
+def test_tune_bad_settings_exit_2_naming_them(wav_dir, tmp_path, capsys, extra, needle):
+    """Bad settings exit 2 with a message naming the setting (DEVELOPERS.md: 2 = bad input)."""
+    code = main(["tune", str(wav_dir), "--out", str(tmp_path / "x"), "--quiet", *FAST, *extra])
+    assert code == 2
+    err = capsys.readouterr().err
+    assert needle in err and "Traceback" not in err
+    assert not (tmp_path / "x").exists()
+
+
+def test_tune_missing_input_exits_2(tmp_path, capsys):
+    """A path that does not exist is named in the message (project rule: name file and cause)."""
+    assert main(["tune", str(tmp_path / "nothing.mseed"), "--out", str(tmp_path), "--quiet"]) == 2
+    assert "nothing.mseed" in capsys.readouterr().err
+
+
+def test_transform_writes_plain_npz(tuned, wav_dir, tmp_path):
+    """transform writes the NPZ of DESIGN §8 — representation (M, C, N) float32, times_s,
+    center_hz and the channel table — loadable without pickles, equal to search.transform."""
+    from search import Filterbank, read_corpus, transform
+
+    _, out = tuned
+    npz = tmp_path / "rep.npz"
+    assert main(["transform", "--filterbank", str(out / "filterbank.json"), str(wav_dir),
+                 "--windowing", "whole", "--out", str(npz)]) == 0
+    with np.load(npz, allow_pickle=False) as data:
+        arrays = {k: data[k] for k in data.files}
+    assert arrays["representation"].dtype == np.float32
+    assert arrays["representation"].shape == (6, 8, 256)
+    assert np.allclose(arrays["times_s"], np.arange(256) / 1000.0)
+    for key in ("center_hz", "time_spread_s", "freq_spread_hz", "correlation", "cell_area",
+                "chirp_hz_per_s"):
+        assert arrays[key].shape == (8,) and arrays[key].dtype == np.float64
+    assert all(a.dtype != object for a in arrays.values())
+    fb = Filterbank.from_json(json.loads((out / "filterbank.json").read_text()))
+    corpus = read_corpus([str(wav_dir)], windowing="whole")
+    assert np.array_equal(arrays["representation"], transform(corpus.windows, fb))
+
+
+def test_transform_bad_filterbank_exits_2(wav_dir, tmp_path, capsys):
+    """An unreadable or invalid filterbank file exits 2 naming the file (project rule)."""
+    bad = tmp_path / "fb.json"
+    bad.write_text(json.dumps({"format": "something-else"}))
+    assert main(["transform", "--filterbank", str(bad), str(wav_dir), "--out",
+                 str(tmp_path / "o.npz")]) == 2
+    assert "fb.json" in capsys.readouterr().err

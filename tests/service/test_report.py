@@ -1,0 +1,254 @@
+"""The job report (service/report.py): self-contained HTML, escaped text, a faithful channel table.
+
+Most tests use a small hand-built filterbank JSON and diagnostics dict that follow the documented
+schema (DEVELOPERS.md, "Contracts between the pieces"); the example-burst test runs the project's
+own transform on generated windows.
+"""
+import base64
+import copy
+from html.parser import HTMLParser
+
+import numpy as np
+import pytest
+
+from search import Channel, Filterbank
+from service import report
+
+HOSTILE = '<script>alert("x")</script><img src=x onerror=alert(1)>'
+
+
+class Page(HTMLParser):
+    """Collects every start tag with its attributes, the channel table cells and visible text."""
+
+    def __init__(self, text):
+        super().__init__(convert_charrefs=True)
+        self.tags, self.rows, self.text = [], [], []
+        self._row, self._cell = None, None
+        self.feed(text)
+
+    def handle_starttag(self, tag, attrs):
+        attrs = dict(attrs)
+        self.tags.append((tag, attrs))
+        if tag == "tr" and "data-channel" in attrs:
+            self._row = {"channel": int(attrs["data-channel"]), "cells": {}}
+        if tag == "td" and self._row is not None and "data-field" in attrs:
+            self._cell = {"field": attrs["data-field"], "value": attrs.get("data-value"), "text": ""}
+
+    def handle_endtag(self, tag):
+        if tag == "td" and self._cell is not None:
+            self._row["cells"][self._cell["field"]] = self._cell
+            self._cell = None
+        if tag == "tr" and self._row is not None:
+            self.rows.append(self._row)
+            self._row = None
+
+    def handle_data(self, data):
+        self.text.append(data)
+        if self._cell is not None:
+            self._cell["text"] += data
+
+
+def filterbank_json(channels=5):
+    """A filterbank JSON written by the project's own Filterbank.to_json (DESIGN §8)."""
+    centres = np.geomspace(60.0, 900.0, channels)
+    bank = Filterbank([Channel(float(fc), 0.006 * (fc / 60.0) ** -0.4, [0.6, 1.0, 1.4, 2.0, 0.8][i % 5],
+                               100.0 * (i - 2)) for i, fc in enumerate(centres)], 2000.0)
+    return bank.to_json(window_samples=256, criterion={"name": "renyi", "alpha": 3.0},
+                        objective=9.1, corpus_hash="ab" * 32,
+                        job={"id": "j-1", "settings": {"channels": channels}})
+
+
+def diagnostics(channels=5, windows=6):
+    rng = np.random.default_rng(11)
+    evaluations = [{"stage": "family", "round": r, "params": {"q": -0.5}, "objective": 10 - 0.1 * r,
+                    "seconds": 0.01} for r in range(8)]
+    best = [{"evaluation": i, "stage": "family", "objective": 10 - 0.1 * i} for i in range(8)]
+    result = rng.uniform(8.5, 9.5, windows)
+    return {
+        "stop_reason": "budget", "evaluations": evaluations, "best_so_far": best,
+        "refinement": [{"channel": c, "center_hz": 100.0, "status": "converged",
+                        "objective_before": 9.3, "objective_after": 9.1} for c in range(channels)],
+        "bootstrap": {"resamples": 4, "objective": {"estimate": 9.1, "low": 9.0, "high": 9.3},
+                      "channels": [{"time_spread_s": [0.001, 0.01], "cell_area": [0.5, 2.0],
+                                    "chirp_hz_per_s": [-300.0, 300.0]} for _ in range(channels)]},
+        "baselines": {"spectrogram": {"objective": 9.6, "low": 9.5, "high": 9.8,
+                                      "parameters": {"time_spread_s": 0.004}},
+                      "scalogram": {"objective": 9.9, "low": 9.7, "high": 10.1,
+                                    "parameters": {"cycles": 5.0}},
+                      "pseudo_wvd": {"objective": 8.9, "low": 8.7, "high": 9.0, "parameters": {}}},
+        "result": {"objective": 9.1, "low": 9.0, "high": 9.3}, "gain_bits": 0.5,
+        "per_window": {"result": result.tolist(),
+                       "spectrogram": (result + rng.uniform(-0.2, 1.0, windows)).tolist()},
+        "windows": {"used": windows, "rejected": 3, "rejected_by_reason": {"flat": 2, "clipped": 1}},
+        "corpus": {"sampling_rate_hz": 2000.0, "n_windows": windows, "window_samples": 256,
+                   "source_hash": "ab" * 32,
+                   "traces": [{"file": "site-A.mseed", "trace_id": "XX.S01..HHZ", "windows": windows}],
+                   "defaults": {"sta_s": 0.01, "lta_s": 0.2, "window_s": 0.128}},
+        "settings": {"channels": channels, "evaluations": 8, "seed": 7},
+        "seed": 7, "elapsed_s": 1.5, "version": "0.1.0",
+    }
+
+
+@pytest.fixture(scope="module")
+def page_text():
+    """The report of the hand-built filterbank and diagnostics, without windows, rendered once;
+    the pseudo-WVD baseline scored invalid (null), as a search records an image with no valid
+    Rényi sum."""
+    diag = diagnostics(channels=7)
+    diag["baselines"]["pseudo_wvd"].update(objective=None, low=None, high=None)
+    return report.render_report(filterbank_json(channels=7), diag, None, None)
+
+
+def test_report_is_self_contained_with_alt_text(page_text):
+    """No external asset: every <img> is an inline data: PNG with alt text, no script, no link
+    but the empty inline icon, no http(s) or protocol-relative src/href, and a CSP forbidding
+    network loads (HTML Living Standard; CSP Level 3, W3C)."""
+    page = Page(page_text)
+    images = [a for t, a in page.tags if t == "img"]
+    assert len(images) == 4  # tiling, convergence, channels, baselines (no windows: no examples)
+    for attrs in images:
+        assert attrs.get("alt", "").strip()
+        assert attrs["src"].startswith("data:image/png;base64,")
+        assert base64.b64decode(attrs["src"].split(",", 1)[1])[:8] == b"\x89PNG\r\n\x1a\n"
+    for tag, attrs in page.tags:
+        assert tag not in ("script", "iframe", "object", "embed")
+        if tag == "link":  # only the empty inline icon that stops a favicon request
+            assert attrs.get("href") == "data:,"
+        for name in ("src", "href", "action"):
+            value = (attrs.get(name) or "").strip().lower()
+            assert not value.startswith(("http:", "https:", "//")), (tag, attrs)
+    csp = [a for t, a in page.tags if t == "meta" and a.get("http-equiv") == "Content-Security-Policy"]
+    assert csp and "default-src 'none'" in csp[0]["content"]
+
+
+def test_report_escapes_hostile_strings():
+    """Text from data (file names, settings, reasons, readings, provenance) is escaped, so no
+    element or event handler can be injected (OWASP XSS prevention, output encoding)."""
+    fb = filterbank_json()
+    fb["channels"][0]["equivalent"] = {"text": HOSTILE}
+    fb["job"]["settings"] = {"note": HOSTILE}
+    diag = diagnostics()
+    diag["stop_reason"] = HOSTILE
+    diag["settings"][HOSTILE] = HOSTILE
+    diag["windows"]["rejected_by_reason"] = {HOSTILE: 1}
+    diag["corpus"]["traces"][0]["file"] = HOSTILE
+    diag["corpus"]["defaults"]["trigger"] = HOSTILE
+    text = report.render_report(fb, diag, None, None)
+    page = Page(text)
+    assert "<script>alert" not in text and "onerror=alert" not in text.replace("onerror=alert(1)&gt;", "")
+    assert not [t for t, _ in page.tags if t == "script"]
+    assert len([t for t, _ in page.tags if t == "img"]) == 4  # the hostile <img> stayed text
+    assert not [a for _, attrs in page.tags for a in attrs if a.startswith("on")]
+    visible = "".join(page.text)
+    assert visible.count(HOSTILE) >= 6  # shown to the reader as the literal text
+
+
+def test_channel_table_matches_filterbank_json(page_text):
+    """One row per channel with the filterbank JSON's center_hz, time_spread_s, cell_area and
+    chirp_hz_per_s (exact value in data-value, 5 significant digits shown) and the equivalent
+    reading text (DESIGN §8 channel fields)."""
+    fb = filterbank_json(channels=7)
+    page = Page(page_text)
+    assert [r["channel"] for r in page.rows] == list(range(7))
+    for row, channel in zip(page.rows, fb["channels"]):
+        for field in report.CHANNEL_FIELDS:
+            cell = row["cells"][field]
+            assert float(cell["value"]) == channel[field]
+            assert float(cell["text"]) == pytest.approx(channel[field], rel=1e-4, abs=1e-12)
+        assert row["cells"]["equivalent"]["text"] == channel["equivalent"]["text"]
+
+
+def test_summary_shows_the_run_and_the_cautions(page_text):
+    """The summary states the gain, stop reason, windows used and rejected with reasons, the
+    settings and the defaults chosen; a baseline without a finite score is named, not dropped
+    silently; the cautions of DESIGN §10 are on the page."""
+    diag = diagnostics(channels=7)
+    visible = " ".join(" ".join(Page(page_text).text).split())
+    assert "+0.500 bits" in visible
+    assert "budget" in visible
+    assert "6 / 3" in visible  # windows used / rejected
+    assert "given" in visible and "default" in visible  # settings tagged against the job's own
+    for reason in diag["windows"]["rejected_by_reason"]:
+        assert reason in visible
+    assert "sta_s" in visible and "lta_s" in visible
+    assert "evaluations" in visible and "seed" in visible
+    assert "site-A.mseed" in visible and "XX.S01..HHZ" in visible
+    assert "not a certified safety" in visible
+    assert "licensed professionals" in visible
+    assert "ab" * 32 in visible  # provenance: corpus hash
+    assert "Not shown, no finite score (an invalid image): pseudo-Wigner–Ville." in visible
+
+
+def test_without_windows_the_example_plot_is_omitted_with_a_note(page_text):
+    """windows=None leaves out the example-burst plot and says why; report_plots offers the
+    other plots as PNG bytes by name."""
+    assert 'id="plot-examples"' in page_text and "without the corpus windows" in page_text
+    plots = report.report_plots(filterbank_json(), diagnostics(), None, None)
+    assert sorted(plots) == sorted(set(report.PLOT_NAMES) - {"examples"})
+    assert all(png[:8] == b"\x89PNG\r\n\x1a\n" for png in plots.values())
+
+
+def test_example_windows_are_the_best_median_and_worst_gain():
+    """The example rows are the windows with the largest, the median and the smallest gain
+    (spectrogram score − result score), in that order, among the windows available (DESIGN §8)."""
+    per_window = {"result": [5.0, 5.0, 5.0, 5.0, 5.0], "spectrogram": [5.3, 6.0, 4.9, 5.1, 5.5]}
+    picks = report.example_indices(per_window, 5)
+    assert [index for _, index, _ in picks] == [1, 0, 2]
+    assert [round(g, 6) for _, _, g in picks] == [1.0, 0.3, -0.1]
+    # only the windows handed over are candidates (a caller may pass the leading part)
+    assert [index for _, index, _ in report.example_indices(per_window, 3)] == [1, 0, 2]
+    assert [index for _, index, _ in report.example_indices(per_window, 2)] == [1, 0]
+    with pytest.raises(ValueError, match="per_window"):
+        report.example_indices({"result": [1.0], "spectrogram": [1.0, 2.0]}, 2)
+
+
+def test_examples_drawn_from_windows_with_the_project_transform():
+    """Given windows, the report embeds the example-burst plot, computed with search.transform
+    for the learned filterbank and the best spectrogram (a = 1, β = 0 at the recorded σ_t); a
+    sampling rate that disagrees with the filterbank is refused naming both (project rule)."""
+    fb = filterbank_json()
+    diag = diagnostics()
+    fs, n = fb["sampling_rate_hz"], fb["window_samples"]
+    t = np.arange(n) / fs
+    rng = np.random.default_rng(2)
+    windows = np.array([np.exp(-0.5 * ((t - 0.06) / 0.01) ** 2) * np.cos(2 * np.pi * (150 + 40 * k) * t)
+                        + 0.01 * rng.standard_normal(n) for k in range(6)])
+    page = Page(report.render_report(fb, diag, windows, fs))
+    (example,) = [a for t, a in page.tags if t == "img" and "Example windows" in a.get("alt", "")]
+    assert base64.b64decode(example["src"].split(",", 1)[1])[:8] == b"\x89PNG\r\n\x1a\n"
+    assert "best plain spectrogram" in example["alt"] and "4 ms" in example["alt"]
+    gains = np.array(diag["per_window"]["spectrogram"]) - np.array(diag["per_window"]["result"])
+    assert f"window {int(np.argmax(gains))}" in example["alt"].split(";")[0]
+    with pytest.raises(ValueError, match="1000 Hz.*2000 Hz"):
+        report.report_plots(fb, diag, windows, 1000.0)
+    with pytest.raises(ValueError, match="windows"):
+        report.report_plots(fb, diag, windows[0], fs)
+
+
+def test_a_cancelled_run_still_renders_with_notes_for_what_is_missing():
+    """A cancelled search records no baselines, result, intervals or per-window scores
+    (DEVELOPERS.md diagnostics_); the report still renders and says which plots are left out
+    and why instead of failing."""
+    diag = diagnostics()
+    diag.update(stop_reason="cancelled", bootstrap=None, baselines=None, result=None,
+                gain_bits=None, per_window=None)
+    windows = np.zeros((6, 256))
+    windows[:, 100] = 1.0
+    page = Page(report.render_report(filterbank_json(), diag, windows, 2000.0))
+    assert len([t for t, _ in page.tags if t == "img"]) == 3  # tiling, convergence, channels
+    visible = " ".join("".join(page.text).split())
+    assert "Example bursts are not shown" in visible and "per_window" in visible
+    assert "Baselines are not shown" in visible
+    assert "cancelled" in visible and "not recorded" in visible
+
+
+def test_malformed_filterbank_is_refused_naming_the_field():
+    """A channel without a finite time_spread_s, or no channels at all, raises a ValueError that
+    names the field (project rule: clear errors)."""
+    fb = filterbank_json()
+    broken = copy.deepcopy(fb)
+    broken["channels"][2]["time_spread_s"] = None
+    with pytest.raises(ValueError, match=r"\['channels'\]\[2\]\['time_spread_s'\]"):
+        report.render_report(broken, diagnostics(), None, None)
+    with pytest.raises(ValueError, match="channels"):
+        report.render_report({**fb, "channels": []}, diagnostics(), None, None)
