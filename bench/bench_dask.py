@@ -85,7 +85,7 @@ def main(argv: list[str] | None = None) -> int:
     with joblib.parallel_config(backend="loky"):
         rows["joblib"] = fit(corpus, options, 2)
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                      dashboard_address=None) as cluster, Client(cluster):
+                      dashboard_address="127.0.0.1:0") as cluster, Client(cluster):
         with joblib.parallel_config(backend="dask"):
             rows["dask"] = fit(corpus, options, -1)
 

@@ -79,6 +79,10 @@ def _prepared(token: str, windows, start: int, stop: int):
         if hit is not None:
             _PREPARED.move_to_end(key)
             return hit
+    if not hasattr(windows, "shape"):
+        # joblib's Dask backend runs a batch in the calling process when the cluster has one
+        # thread; the scattered array then arrives as its distributed Future
+        windows = windows.result()
     hit = prepare(np.ascontiguousarray(windows[start:stop], dtype=np.float64))
     with _PREPARED_LOCK:
         _PREPARED[key] = hit
@@ -472,7 +476,7 @@ class FilterbankSearch:
                  cell_area=(0.25, 4.0), chirp=True, refine=True,
                  evaluations=SETTINGS_DEFAULTS["evaluations"], time_limit_s=None,
                  bootstrap=8, seed=0, n_jobs=1, subset=64, batch=4, initial_points=None,
-                 stall_rounds=3, stall_tol=1e-3, refine_sweeps=1, refine_maxiter=3,
+                 stall_rounds=3, stall_tol=1e-3, refine_sweeps=1, refine_maxiter=2,
                  refine_min_share=0.1, smoothness=1.0, eps=1e-6):
         self.channels = channels
         self.band_hz = band_hz

@@ -277,16 +277,18 @@ def test_same_filterbank_for_one_or_two_loky_workers(mixed):
     assert one.diagnostics_["per_window"] == two.diagnostics_["per_window"]
 
 
-def test_same_filterbank_on_a_dask_cluster(mixed):
-    """joblib's Dask backend on a real distributed.LocalCluster (2 worker processes) gives the
-    filterbank of the local run, windows scattered once (reference library: joblib
-    parallel_config(backend="dask"), dask.distributed)."""
+@pytest.mark.parametrize("workers", [2, 1])
+def test_same_filterbank_on_a_dask_cluster(mixed, workers):
+    """joblib's Dask backend on a real distributed.LocalCluster gives the filterbank of the local
+    run, windows scattered once (reference library: joblib parallel_config(backend="dask"),
+    dask.distributed). With one worker thread joblib runs batches in the calling process and
+    hands over the scattered Future itself; that path must give the same result too."""
     distributed = pytest.importorskip("distributed")
     from joblib import parallel_config
 
     local = FilterbankSearch(**SMALL, n_jobs=1).fit(mixed)
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                  host="127.0.0.1", dashboard_address=None) as cluster, \
+    with distributed.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                                  host="127.0.0.1", dashboard_address="127.0.0.1:0") as cluster, \
             distributed.Client(cluster) as client:
         with parallel_config(backend="dask"):
             remote = FilterbankSearch(**SMALL, n_jobs=2).fit(mixed)

@@ -26,7 +26,7 @@ def cluster():
     from distributed import Client, LocalCluster
 
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                      dashboard_address=None, scheduler_port=0) as local, Client(local) as client:
+                      dashboard_address="127.0.0.1:0", scheduler_port=0) as local, Client(local) as client:
         client.wait_for_workers(2, timeout=60)
         yield local, client
 
@@ -203,7 +203,7 @@ def test_a_cluster_without_workers_fails_the_call_instead_of_waiting():
     from service.dask_backend import evaluations_on
 
     with LocalCluster(n_workers=0, processes=False, protocol="tcp://", host="127.0.0.1",
-                      dashboard_address=None, scheduler_port=0) as empty:
+                      dashboard_address="127.0.0.1:0", scheduler_port=0) as empty:
         client = connect(empty.scheduler_address)
         try:
             started = time.monotonic()
@@ -241,7 +241,7 @@ def test_a_one_thread_cluster_runs_the_search_on_the_cluster(tmp_path):
     corpus = read_corpus([path])
     options = {"channels": 4, "evaluations": 4, "bootstrap": 0, "refine": False, "seed": 1}
     with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
-                      dashboard_address=None, scheduler_port=0) as one:
+                      dashboard_address="127.0.0.1:0", scheduler_port=0) as one:
         client = connect(one.scheduler_address)
         try:
             with evaluations_on(client):
