@@ -146,7 +146,8 @@ class Channel:
         - ``window_std_ms``: σ_t, the time std of |h|², ms;
         - ``gaussian_std_ms``: √2·σ_t, the ``std`` of ``scipy.signal.windows.gaussian``, ms;
         - ``super_resolution``: 1/a (> 1 is finer than any spectrogram), ``smoothing``: a;
-        - ``chirp_hz_per_s``: β; ``text``: one line for a report.
+        - ``chirp_hz_per_s``: β; ``matched_sweep_hz_per_s``: −β, the sweep rate df/dt of the
+          arrivals this channel renders sharpest; ``text``: one line for a report.
         """
         area = self.cell_area
         if abs(area - 1.0) < SPECTROGRAM_AREA_TOLERANCE:
@@ -158,7 +159,10 @@ class Channel:
         window_ms = _FWHM_PER_STD * self.time_spread_s * 1e3
         text = f"Gaussian spectrogram window {window_ms:.3g} ms{detail}"
         if self.chirp_hz_per_s != 0.0:
-            text += f", chirp {_format_rate(self.chirp_hz_per_s)} Hz/s"
+            # DESIGN §3's kernel G(u, ν) is centred on ν = β·u with u = t − t' (a convolution), so
+            # it is sharpest on arrivals whose frequency moves at −β: say so, people read sweeps
+            text += (f", chirp {_format_rate(self.chirp_hz_per_s)} Hz/s (matches arrivals "
+                     f"sweeping {_format_rate(-self.chirp_hz_per_s)} Hz/s)")
         return {
             "kind": kind,
             "window_ms": window_ms,
@@ -167,6 +171,7 @@ class Channel:
             "super_resolution": 1.0 / area,
             "smoothing": area,
             "chirp_hz_per_s": self.chirp_hz_per_s,
+            "matched_sweep_hz_per_s": -self.chirp_hz_per_s,
             "text": text,
         }
 

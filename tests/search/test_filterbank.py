@@ -82,11 +82,13 @@ def test_equivalent_reading():
     assert e["window_ms"] == pytest.approx(4 * math.sqrt(math.log(2)) * 3.75)
     assert e["window_std_ms"] == pytest.approx(3.75)
     assert e["gaussian_std_ms"] == pytest.approx(3.75 * math.sqrt(2))
-    assert e["text"] == "Gaussian spectrogram window 12.5 ms, super-resolved ×2.0, chirp +800 Hz/s"
+    assert e["text"] == ("Gaussian spectrogram window 12.5 ms, super-resolved ×2.0, chirp +800 Hz/s "
+                         "(matches arrivals sweeping -800 Hz/s)")
+    assert e["matched_sweep_hz_per_s"] == -800.0  # DESIGN §3 convolution: see test_transform
     assert Channel(100.0, 0.01, 1.03).equivalent()["kind"] == "spectrogram"
     smoothed = Channel(100.0, 0.01, 1.5, -2.5).equivalent()
     assert smoothed["kind"] == "smoothed spectrogram"
-    assert smoothed["text"].endswith("smoothed ×1.5, chirp -2.5 Hz/s")
+    assert smoothed["text"].endswith("smoothed ×1.5, chirp -2.5 Hz/s (matches arrivals sweeping +2.5 Hz/s)")
     # the window really is the one whose |h|² has std σ_t: FWHM of h from its samples
     sigma = 0.01
     u = np.linspace(-0.05, 0.05, 200001)

@@ -1,0 +1,22 @@
+"""Seeded subset of reliability experiment 1: kill -9 a worker mid-job; corrupt its checkpoint."""
+import pytest
+
+from reliability import crash_faults
+
+pytestmark = pytest.mark.slow
+
+
+def test_killed_workers_resume_to_the_identical_filterbank():
+    """A worker SIGKILLed during a round, inside a checkpoint write and inside a heartbeat's
+    transaction leaves a job that another worker reclaims when the lease expires and finishes
+    with exactly the filterbank of an uninterrupted run; a truncated checkpoint and a well-formed
+    one of the wrong state (digest matching) are refused and the job restarts clean, never
+    resuming from garbage; a job whose every attempt is killed ends failed with its last error
+    kept (DESIGN §5 and §7: leases, checkpoints, "a resumed job must end with the same
+    filterbank as an uninterrupted one"; kill -9 semantics: POSIX signal(7), SIGKILL cannot be
+    caught)."""
+    faults, corruptions, exhausted = crash_faults.run(faults=3, corruptions=2, seed=7, lanes=2,
+                                                      time_budget_s=400)
+    assert faults.met, (faults.counts, faults.result, faults.details)
+    assert corruptions.met, (corruptions.counts, corruptions.result, faults.details)
+    assert exhausted.met, (exhausted.counts, exhausted.result, exhausted.details)
