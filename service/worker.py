@@ -15,6 +15,7 @@ checkpoint, release the lease without using up an attempt, exit 0.
 """
 from __future__ import annotations
 
+import errno
 import hashlib
 import io
 import logging
@@ -22,6 +23,7 @@ import os
 import pickle
 import signal
 import socket
+import sqlite3
 import threading
 import uuid
 from contextlib import nullcontext
@@ -33,6 +35,14 @@ from service.corpus_check import CorpusRejected, CorpusTooLarge, enforce_limits,
 from service.store import LeaseLost, NotFound, Store, write_blob
 
 log = logging.getLogger("burstlens.worker")
+
+
+def disk_full(exc: BaseException) -> bool:
+    """Whether ``exc`` means the data dir's filesystem is full (a blob write's ENOSPC, or
+    SQLite's SQLITE_FULL, which it reports as "database or disk is full")."""
+    if isinstance(exc, OSError) and exc.errno == errno.ENOSPC:
+        return True
+    return isinstance(exc, sqlite3.OperationalError) and "disk is full" in str(exc)
 
 REPORT_MAX_VALUES = 4_000_000  # windows × samples handed to the report renderer
 
@@ -108,13 +118,21 @@ class Worker:
 
     def run(self, *, max_jobs: int | None = None, exit_when_idle: bool = False) -> int:
         """Claim and run jobs until stopped; returns the process exit code (0)."""
-        done = 0
+        done, idle = 0, self.settings.poll_s
         log.info("worker %s on %s", self.owner, self.settings.data_dir)
         while not self.stopping.is_set() and (max_jobs is None or done < max_jobs):
             if not self.parent_alive():
                 log.warning("parent process gone; stopping")
                 break
-            job = self.store.claim(self.owner, self.settings.lease_s, self.settings.max_attempts)
+            try:
+                job = self.store.claim(self.owner, self.settings.lease_s, self.settings.max_attempts)
+            except (sqlite3.OperationalError, OSError) as exc:
+                # a full or locked store is an outage to wait out, not a reason to crash-loop
+                idle = min(30.0, max(self.settings.poll_s, 2.0 * idle))
+                log.warning("cannot claim a job (%s); retrying in %.1f s", exc, idle)
+                self.stopping.wait(idle)
+                continue
+            idle = self.settings.poll_s
             if job is None:
                 if exit_when_idle:
                     break
@@ -222,7 +240,9 @@ class _JobRun:
             log.warning("job %s: checkpoint %s unusable (%s); starting over", self.job["id"], path, exc)
             self.store.drop_checkpoint(self.job)
             Path(path).unlink(missing_ok=True)
-            self.checkpoint_problem = str(exc)
+            # clients see this in the job's progress: the reason, never a server path
+            reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
+            self.checkpoint_problem = f"last checkpoint unusable ({reason}); started over"
             return None
         self.resumed = True
         self.last_evaluations = int(self.job["progress"].get("evaluations") or 0)
@@ -289,6 +309,15 @@ class _JobRun:
                 return "lost"
             if self.worker.stopping.is_set():
                 return self._release()
+            if disk_full(exc):
+                # retrying would only fill the disk again: free this job's checkpoints (so the
+                # store can record the outcome) and fail it with the reason
+                log.error("job %s: the data dir is full (%s)", job["id"], exc)
+                self._cleanup_checkpoints()
+                try:
+                    return self._finish_quietly("failed", error=f"the data dir is full: {exc}")
+                except (sqlite3.OperationalError, OSError):
+                    return "lost"  # still full: the lease expires and the job is claimed again
             log.exception("job %s: attempt %d raised", job["id"], job["attempts"])
             try:
                 return self.store.retry_or_fail(job, f"{type(exc).__name__}: {exc}",
@@ -317,8 +346,11 @@ class _JobRun:
         return state
 
     def _cleanup_checkpoints(self) -> None:
-        for path in (self.store.blob_dir / "checkpoints").glob(f"{self.job['id']}-*.pkl"):
-            path.unlink(missing_ok=True)
+        folder = self.store.blob_dir / "checkpoints"
+        # also the temp files of a checkpoint write that a killed worker left behind
+        for pattern in (f"{self.job['id']}-*.pkl", f".{self.job['id']}-*.pkl.*.tmp"):
+            for path in folder.glob(pattern):
+                path.unlink(missing_ok=True)
 
     def _succeed(self, search, corpus, rename: dict[str, str]) -> str:
         job = self.job
