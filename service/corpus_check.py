@@ -119,13 +119,9 @@ def enforce_limits(corpus, settings) -> None:
                              (f" (rejected: {', '.join(reasons)})" if reasons else ""))
 
 
-def check_corpus(paths: list[Path], files: list[dict], options: dict[str, Any], settings
-                 ) -> tuple[dict[str, Any], str | None]:
-    """Read an upload as the jobs will; returns (summary for the client, source hash).
-
-    Raises HTTPException 422 (unreadable, no windows) or 413 (over a limit).
-    """
-    names = [f["name"] for f in files]
+def read_for_client(paths: list[Path], names: list[str], options: dict[str, Any], settings):
+    """The corpus of an upload within the service's limits; HTTPException 422 when it cannot be
+    read (the message names the client's file) or 413 when it is over a limit."""
     try:
         corpus = load_corpus(paths, names, options)
         enforce_limits(corpus, settings)
@@ -133,6 +129,17 @@ def check_corpus(paths: list[Path], files: list[dict], options: dict[str, Any], 
         raise HTTPException(status_code=422, detail=str(exc)) from None
     except CorpusTooLarge as exc:
         raise HTTPException(status_code=413, detail=str(exc)) from None
+    return corpus
+
+
+def check_corpus(paths: list[Path], files: list[dict], options: dict[str, Any], settings
+                 ) -> tuple[dict[str, Any], str | None]:
+    """Read an upload as the jobs will; returns (summary for the client, source hash).
+
+    Raises HTTPException 422 (unreadable, no windows) or 413 (over a limit).
+    """
+    names = [f["name"] for f in files]
+    corpus = read_for_client(paths, names, options, settings)
     summary = jsonable(corpus.to_json(), _renamer(paths, names))
     summary.pop("window_meta", None)  # one entry per window: too much for a record
     return summary, getattr(corpus, "source_hash", None)

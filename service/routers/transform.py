@@ -11,8 +11,7 @@ from fastapi import APIRouter, Depends, HTTPException, Request, Response
 from starlette.concurrency import run_in_threadpool
 
 from service.auth import require_tenant
-from service.corpus_check import (CorpusRejected, CorpusTooLarge, enforce_limits, load_corpus,
-                                  parse_read_options)
+from service.corpus_check import parse_read_options, read_for_client
 from service.routers import COMMON, errors
 from service.routers.jobs import RESULT_FILES
 from service.uploads import receive_multipart
@@ -58,13 +57,7 @@ def transform_npz(filterbank_json: dict, paths, names, options: dict, settings) 
     if isinstance(saved, dict) and saved.get("windowing") in ("bursts", "whole", "sliding"):
         read["windowing"] = saved["windowing"]
     read.update(options)
-    try:
-        corpus = load_corpus(paths, names, read)
-        enforce_limits(corpus, settings)
-    except CorpusRejected as exc:
-        raise HTTPException(status_code=422, detail=str(exc)) from None
-    except CorpusTooLarge as exc:
-        raise HTTPException(status_code=413, detail=str(exc)) from None
+    corpus = read_for_client(paths, names, read, settings)
     m, n = corpus.windows.shape
     c = len(filterbank.center_hz)
     if m * c * n > settings.max_transform_values:
