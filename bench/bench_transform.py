@@ -112,9 +112,12 @@ def speed(n_samples: int, n_windows: int, rounds: int, workers: int | None) -> d
     )
     per = {name: t / n_windows * 1e3 for name, t in times.items()}  # ms per window
     tag = f"N={n_samples} [{'1 thread' if workers == 1 else 'all cores'}]"
+    method = {"lag": "lag-major", "doppler": "Doppler rows"}[
+        engine._plan(chirped, n_samples, EPS).chirped.method]
     print(f"{tag}: per window  transform {per['transform']:.2f} ms (prepared windows "
           f"{per['prepared']:.2f} ms; cold first call {cold / n_windows * 1e3:.2f} ms), "
-          f"chirped {per['chirped']:.2f} ms (cold {cold_chirp / n_windows * 1e3:.2f} ms), "
+          f"chirped {per['chirped']:.2f} ms ({method}; cold {cold_chirp / n_windows * 1e3:.2f} "
+          f"ms), "
           f"ShortTimeFFT {per['stft']:.2f} ms (window {2 * half + 1} samples, median "
           f"σ_t {sigma * 1e3:.1f} ms), bare matmul {per['gemm']:.2f} ms "
           f"({n_samples}×{2 * (lags + 1)} @ {2 * (lags + 1)}×{CHANNELS})")

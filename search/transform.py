@@ -17,7 +17,10 @@ over k in closed form leaves, with τ_m = 2m/fs and r[n, m] = z[n+m]·z*[n−m],
 - β ≠ 0: in the ambiguity domain, S_c = Re IFFT_θ[Σ_m R(θ, m)·d_{c,m}·ĝ_c(θ + βτ_m)], R the FFT
   over time of r, ĝ_c(θ) = exp(−2π²σ_t²θ²) periodised over fs, keeping only the band
   |θ + βτ_m| ≤ √(2 ln(1/ε))/(2πσ_t); the banded sums of all chirped channels form one sparse
-  matrix applied to R.
+  matrix applied to R. R is formed lag by lag (an FFT over time per lag) or, when the bands
+  reach few θ bins, only at those bins (Doppler rows: for each bin, one FFT over the lags of
+  the spectrum of z times its shifted copy, the cross-correlation theorem); a cost model picks
+  the cheaper, both are exact.
 
 Truncation by ε (default 1e-6): lags up to L_c (:func:`search.wvd.lag_count`), time kernels to
 ±⌈√(2 ln(1/ε))·σ_t·fs⌉ samples. float64 inside; work is cut in blocks of about 64 MB whatever M
@@ -35,6 +38,7 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
+from numpy.lib.stride_tricks import as_strided
 import scipy.fft as sfft
 import scipy.sparse as sp
 from threadpoolctl import ThreadpoolController
@@ -49,6 +53,14 @@ _ROW_BLOCKS, _MIN_BLOCK_ROWS = 8, 64  # rows of a window are cut in about 8 bloc
 # r block costs about 8 output columns, a matrix-product call about 300 lag-columns.
 _GROUP_READ_COLUMNS = 8.0
 _GROUP_CALL_COST = 300.0
+# Chirped path: Doppler-row blocks of about 2 MB (in cache) for batches of up to 8 windows (one
+# sparse product serves the batch); cost model in ns per window, measured on the dev machine.
+_ROW_BLOCK_BYTES = 2 << 20
+_DOPPLER_WINDOWS = 8
+_COST_FFT = 1.0  # per point and log2(size) of a complex FFT
+_COST_LAGS = 7.0  # per sample and lag of the lag-major autocorrelation
+_COST_PRODUCT = 3.0  # per complex product of the Doppler rows
+_COST_SPARSE_ONE, _COST_SPARSE_BATCH = 3.3, 1.8  # per sparse weight, alone or batched
 _PLAN_CACHE_ENTRIES = 16
 _PLAN_CACHE_BYTES = 256 << 20
 
@@ -133,8 +145,10 @@ class _FastPlan:
 @dataclass
 class _ChirpPlan:
     channels: np.ndarray  # filterbank indices
-    fft_size: int
-    blocks: list  # (lag_start, lag_stop, csr (n_chirp·P, P·(stop−start)))
+    fft_size: int  # P
+    method: str  # "lag" (lag-major) or "doppler" (Doppler rows), see _run_chirped
+    blocks: list  # lag: (lag_start, lag_stop, CSR); doppler: (segments, first, stop, CSR)
+    rows: np.ndarray | None  # doppler: the θ bins reached, ascending
     nbytes: int = 0
 
 
@@ -263,6 +277,10 @@ def _group_by_size(sizes: np.ndarray) -> list[tuple[int, int]]:
 
 
 def _chirp_plan(filterbank, idx, n_samples, eps) -> _ChirpPlan:
+    """Plan for the chirped channels: the cheaper of the lag-major and the Doppler-row ways of
+    forming R(θ, m) (both exact, see :func:`_run_chirped`), by the cost model of
+    :func:`_chirp_method`, with the banded weights laid out for it: one CSR matrix, filled one
+    channel at a time (int32 indices, no argsort), then cut into row blocks."""
     fs = filterbank.sampling_rate_hz
     k = truncation_width(eps)
     spread = filterbank.conditional_freq_spread_hz[idx]
@@ -270,49 +288,148 @@ def _chirp_plan(filterbank, idx, n_samples, eps) -> _ChirpPlan:
     centers = filterbank.center_hz[idx]
     chirps = filterbank.chirp_hz_per_s[idx]
     lags = np.atleast_1d(lag_count(spread, fs, n_samples, eps))
+    n_chirp, n_lags = idx.size, int(lags.max()) + 1
     # The banded θ-domain kernel is the whole time Gaussian, aliased with period P: P must hold
     # its full support (no cap at N−1 here, unlike the time-domain kernels of the fast path).
-    half = np.ceil(k * sigma * fs).astype(np.int64)
-    # 5-smooth sizes (real=True): pocketfft's radix 7 and 11 cost more per point than the
-    # few extra points (measured)
-    size = sfft.next_fast_len(n_samples + int(half.max()), real=True)
-    n_lags_total = int(lags.max()) + 1
-    width = max(1, min(n_lags_total, _BLOCK_BYTES // (16 * size)))
-    blocks, nbytes = [], 0
-    for start in range(0, n_lags_total, width):
-        stop = min(start + width, n_lags_total)
-        pieces = [
-            _chirp_rows(centers[c], sigma[c], spread[c], chirps[c], int(lags[c]), start, stop,
-                        size, fs, k)
-            for c in range(idx.size)
-        ]
-        matrix = sp.vstack(pieces, format="csr")
-        blocks.append((start, stop, matrix))
-        nbytes += matrix.data.nbytes + matrix.indices.nbytes + matrix.indptr.nbytes
-    return _ChirpPlan(idx, size, blocks, nbytes)
+    # The Doppler rows also correlate z with itself over shifts 2m ≤ 2L, and need P even.
+    # 5-smooth sizes (real=True): pocketfft's radix 7 and 11 cost more per point than the few
+    # extra points (measured).
+    half = int(np.ceil(k * sigma.max() * fs))
+    sizes = {
+        "lag": sfft.next_fast_len(n_samples + half, real=True),
+        "doppler": 2 * sfft.next_fast_len(-(-(n_samples + max(half, 2 * (n_lags - 1))) // 2),
+                                          real=True),
+    }
+    reached = {size: _bins_reached(chirps, sigma, lags, size, fs, k)
+               for size in set(sizes.values())}
+    method = _chirp_method(sigma, lags, n_samples, sizes, reached, fs, k)
+    size = sizes[method]
+    band = k * size / (2.0 * np.pi * sigma * fs)  # half bands, θ bins
+    counts = (lags + 1) * _band_bins(band)  # entries per channel
+    data = np.empty(int(counts.sum()), dtype=np.complex128)
+    row = np.empty(data.size, dtype=np.int32)
+    column = np.empty(data.size, dtype=np.int32)
+    if method == "lag":  # row blocks of lags start..start+width−1 stacked: b·(C·P) + c·P + q
+        width = max(1, min(n_lags, _BLOCK_BYTES // (16 * size)))
+        cuts = [(start, min(n_lags, start + width)) for start in range(0, n_lags, width)]
+        block_rows, rows = n_chirp * size, None
+    else:  # rows (position of the θ bin)·C + c, position in plan.rows
+        rows = np.flatnonzero(reached[size])
+        position = np.cumsum(reached[size]) - 1
+        phase = 0.5 * np.exp(2j * np.pi * np.arange(size) / size)  # ½·e^{j2πqm/P}, by qm mod P
+        per_block = max(1, _ROW_BLOCK_BYTES // (16 * (size // 2) * _DOPPLER_WINDOWS))
+        cuts = [(first, min(rows.size, first + per_block))
+                for first in range(0, rows.size, per_block)]
+    end = 0
+    for c in range(n_chirp):
+        q, m, values = _chirp_entries(centers[c], sigma[c], spread[c], chirps[c], int(lags[c]),
+                                      size, fs, k)
+        part = slice(end, end + q.size)
+        end += q.size
+        if method == "lag":
+            block, lag = np.divmod(m, width)
+            row[part] = block * block_rows + c * size + q
+            column[part] = lag * size + q
+            data[part] = values
+        else:
+            at = position[q]
+            row[part] = at * n_chirp + c
+            column[part] = (at % per_block) * (size // 2) + m
+            data[part] = values * phase[(q * m) % size]
+    if method == "lag":
+        n_rows, n_columns = len(cuts) * block_rows, width * size
+        shapes = [(b * block_rows, (b + 1) * block_rows, (stop - start) * size)
+                  for b, (start, stop) in enumerate(cuts)]
+    else:
+        n_rows, n_columns = rows.size * n_chirp, per_block * (size // 2)
+        shapes = [(first * n_chirp, stop * n_chirp, (stop - first) * (size // 2))
+                  for first, stop in cuts]
+    whole = sp.csr_matrix((data, (row, column)), shape=(n_rows, n_columns))
+    del data, row, column
+    blocks = [cut + (_row_block(whole, r0, r1, n_cols),)
+              for cut, (r0, r1, n_cols) in zip(cuts, shapes)]
+    if method == "doppler":
+        blocks = [(_segments(rows[first:stop]), first, stop, matrix)
+                  for first, stop, matrix in blocks]
+    nbytes = whole.data.nbytes + whole.indices.nbytes + whole.indptr.nbytes
+    return _ChirpPlan(idx, size, method, blocks, rows, nbytes)
 
 
-def _chirp_rows(center, sigma, spread, chirp, lags, start, stop, size, fs, k):
-    """One chirped channel's banded ambiguity-domain weights for lags start..stop−1, as a CSR
-    matrix (P, (stop−start)·P) acting on R flattened as R[m − start, q] (q the θ bin)."""
-    shape = (size, size * (stop - start))
-    m = np.arange(start, min(stop, lags + 1))
-    if m.size == 0:
-        return sp.csr_matrix(shape, dtype=np.complex128)
+def _row_block(matrix, first: int, stop: int, n_columns: int):
+    """Rows first..stop−1 of a CSR matrix (scipy keeps a large share as a view, copies a
+    small one so that the whole can be freed)."""
+    a, b = matrix.indptr[first], matrix.indptr[stop]
+    pointers = matrix.indptr[first:stop + 1] - a
+    return sp.csr_matrix((matrix.data[a:b], matrix.indices[a:b], pointers),
+                         shape=(stop - first, n_columns), copy=False)
+
+
+def _segments(bins: np.ndarray) -> list[tuple[int, int, int]]:
+    """Runs of consecutive θ bins in a block: (offset in the block, count, first bin)."""
+    breaks = np.flatnonzero(np.diff(bins) != 1) + 1
+    starts, ends = np.r_[0, breaks], np.r_[breaks, bins.size]
+    return [(int(a), int(b - a), int(bins[a])) for a, b in zip(starts, ends)]
+
+
+def _chirp_entries(center, sigma, spread, chirp, lags, size, fs, k):
+    """One chirped channel's banded ambiguity-domain weights d_m·ĝ(θ_q + βτ_m) for lags
+    0..L: flat arrays (q, m, value) sorted by m, q the θ bin mod P. Bins j (unwrapped) around
+    θ = −βτ_m with |θ_j + βτ_m| ≲ band; aliases j ≡ q (mod P) are summed by the sparse layout,
+    which periodises ĝ over fs."""
+    m = np.arange(lags + 1)
     tau = 2.0 * m / fs
     d = np.where(m == 0, 1.0, 2.0) * np.exp(-2.0 * np.pi**2 * (spread * tau) ** 2)
     d = d * np.exp(-2j * np.pi * center * tau)
     band = k * size / (2.0 * np.pi * sigma * fs)  # half band, θ bins
-    # bins j (unwrapped) around θ = −βτ_m with |θ_j + βτ_m| ≲ band; aliases j ≡ q (mod P)
-    # are summed by the CSR conversion, which periodises ĝ over fs
-    j = np.ceil(-chirp * tau * size / fs - band).astype(np.int64)[:, None] + np.arange(
-        int(2.0 * band) + 2
-    )
+    j = _band_starts(chirp, tau, band, size, fs)[:, None] + np.arange(_band_bins(band))
     offset = j * (fs / size) + chirp * tau[:, None]
     values = d[:, None] * np.exp(-2.0 * np.pi**2 * (sigma * offset) ** 2)
-    q = j % size
-    columns = (m - start)[:, None] * size + q
-    return sp.csr_matrix((values.ravel(), (q.ravel(), columns.ravel())), shape=shape)
+    return (j % size).ravel(), np.repeat(m, j.shape[1]), values.ravel()
+
+
+def _band_starts(chirp, tau, band, size, fs) -> np.ndarray:
+    """First θ bin (unwrapped) of each lag's band, ⌈−βτ_m·P/fs − band⌉."""
+    return np.ceil(-chirp * tau * size / fs - band).astype(np.int64)
+
+
+def _band_bins(band):
+    """θ bins kept per lag for a half band of ``band`` bins (scalar or array): ⌊2·band⌋ + 2."""
+    return np.floor(2.0 * np.asarray(band)).astype(np.int64) + 2
+
+
+def _bins_reached(chirps, sigma, lags, size, fs, k) -> np.ndarray:
+    """(P,) bool: the θ bins mod P that some channel's band reaches at some lag."""
+    reached = np.zeros(size, dtype=bool)
+    for chirp, spread_s, n_lags in zip(chirps, sigma, lags):
+        band = k * size / (2.0 * np.pi * spread_s * fs)
+        starts = _band_starts(chirp, 2.0 * np.arange(n_lags + 1) / fs, band, size, fs)
+        # the hull of the lag bands (they overlap unless a band moves more than its width
+        # from one lag to the next; a superset costs time, never accuracy)
+        low, high = int(starts.min()), int(starts.max()) + int(_band_bins(band))
+        reached[np.arange(low, min(high, low + size)) % size] = True
+    return reached
+
+
+def _chirp_method(sigma, lags, n_samples, sizes, reached, fs, k) -> str:
+    """'lag' or 'doppler', whichever the cost model (ns per window, constants measured on the
+    2-core dev machine) finds cheaper. Lag-major: L+1 FFTs of P points over time plus the
+    autocorrelation, and a sparse product per window. Doppler rows: for each θ bin the bands
+    reach, P products and one P/2-point FFT over lags, and a sparse product shared by a batch
+    of windows."""
+    n_lags = int(lags.max()) + 1
+    costs = {}
+    for method, size in sizes.items():
+        band = k * size / (2.0 * np.pi * sigma * fs)
+        nnz = float(np.sum((lags + 1) * _band_bins(band)))
+        if method == "lag":
+            cost = n_lags * (size * math.log2(size) * _COST_FFT + n_samples * _COST_LAGS)
+            cost += nnz * _COST_SPARSE_ONE
+        else:
+            rows = int(reached[size].sum())
+            cost = rows * size / 2 * (math.log2(size / 2) * _COST_FFT + 2.0 * _COST_PRODUCT)
+            cost += nnz * _COST_SPARSE_BATCH
+        costs[method] = cost
+    return min(costs, key=costs.get)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -404,44 +521,98 @@ def _run_fast(plan: _FastPlan, z: np.ndarray, out: np.ndarray, workers: int) -> 
 
 
 def _run_chirped(plan: _ChirpPlan, z: np.ndarray, out: np.ndarray, workers: int) -> None:
-    n_windows, n_samples = z.shape
-    n_chirp = plan.channels.size
-    size = plan.fft_size
-    widest = max(stop - start for start, stop, _ in plan.blocks)
-    chunk = max(1, min(n_windows, _BLOCK_BYTES // (16 * size * max(widest, n_chirp))))
+    """S_c = Re IFFT_θ[Σ_m R(θ, m)·W_c(θ, m)] for the chirped channels, W_c the banded weights.
+
+    R(θ_q, m) = Σ_n r[n, m]·e^{−j2πqn/P} is formed one of two exact ways:
+    - lag-major: r in (lag, time) layout, one P-point FFT over time per lag;
+    - Doppler rows, only at the θ bins the bands reach: with Z the P-point DFT of z,
+      R(θ_q, m) = ½·e^{j2πqm/P}·IFFT_{P/2}[F_q](m), F_q[k] = Σ_{s=0,1} Z[k+q+sP/2]·Z*[k+sP/2]
+      (r[n, m] = z[n+m]·z*[n−m] is the product of z modulated by θ_q with z shifted by 2m:
+      a cross-correlation at even shifts 2m, exact while P ≥ N + 2L; the phase sits in W).
+    """
+    n_windows = z.shape[0]
+    n_chirp, size = plan.channels.size, plan.fft_size
+    if plan.method == "lag":
+        widest = max(stop - start for start, stop, _ in plan.blocks)
+        chunk = max(1, _BLOCK_BYTES // (16 * size * max(widest, n_chirp)))
+        run = _lag_major
+    else:
+        chunk = max(1, min(_DOPPLER_WINDOWS, _BLOCK_BYTES // (16 * size * n_chirp)))
+        run = _doppler_rows
+    chunk = min(n_windows, chunk)
     units = [(w0, min(n_windows, w0 + chunk)) for w0 in range(0, n_windows, chunk)]
     # Window chunks run in parallel, each with one FFT thread: the sparse products hold the
-    # GIL, so one thread's product overlaps the other's autocorrelation and FFTs.
+    # GIL, so one thread's product overlaps the other's products and FFTs.
     parallel = workers > 1 and len(units) > 1
     fft_workers = 1 if parallel else workers
-
     scratch = threading.local()  # per-thread buffers, reused unit after unit (no page faults)
 
-    def run(unit):
+    def one(unit):
         w0, w1 = unit
-        if getattr(scratch, "padded", None) is None:
-            scratch.padded = np.empty((chunk, widest, size), dtype=np.complex128)
-            scratch.spectra = np.empty(chunk * n_chirp * size, dtype=np.complex128)
-        spectra = scratch.spectra[: (w1 - w0) * n_chirp * size].reshape(w1 - w0, n_chirp * size)
-        spectra[...] = 0.0
-        for start, stop, matrix in plan.blocks:
-            # r in lag-major layout zero-padded to P along time, transformed in place (measured
-            # faster than a fresh output array): the FFTs run on contiguous rows
-            buffer = scratch.padded[: w1 - w0, : stop - start]
-            buffer[:, :, n_samples:] = 0.0
-            autocorrelation(z[w0:w1], stop - 1, lag_start=start, layout="lag",
-                            out=buffer[:, :, :n_samples])
-            ambiguity = sfft.fft(buffer, axis=2, overwrite_x=True, workers=fft_workers)
-            for i in range(w1 - w0):  # Σ_m R(θ, m)·d_m·ĝ(θ + βτ_m) over the bands, all channels
-                spectra[i] += matrix @ ambiguity[i].reshape(-1)
-        rows = sfft.ifft(spectra.reshape(w1 - w0, n_chirp, size), axis=2, overwrite_x=True,
-                         workers=fft_workers)
-        out[w0:w1, plan.channels, :] = rows[:, :, :n_samples].real
+        rows = run(plan, z[w0:w1], chunk, scratch, fft_workers)
+        out[w0:w1, plan.channels, :] = rows[:, :, : z.shape[1]].real
 
     if parallel:
         with ThreadPoolExecutor(workers) as pool:
-            for _ in pool.map(run, units):
+            for _ in pool.map(one, units):
                 pass
     else:
         for unit in units:
-            run(unit)
+            one(unit)
+
+
+def _lag_major(plan, z, chunk, scratch, fft_workers):
+    """Channel rows (windows, n_chirp, P) complex, R formed lag by lag (see _run_chirped)."""
+    n_windows, n_samples = z.shape
+    n_chirp, size = plan.channels.size, plan.fft_size
+    if getattr(scratch, "padded", None) is None:
+        widest = max(stop - start for start, stop, _ in plan.blocks)
+        scratch.padded = np.empty((chunk, widest, size), dtype=np.complex128)
+    spectra = np.zeros((n_windows, n_chirp * size), dtype=np.complex128)
+    for start, stop, matrix in plan.blocks:
+        # r in lag-major layout zero-padded to P along time, transformed in place (measured
+        # faster than a fresh output array): the FFTs run on contiguous rows
+        buffer = scratch.padded[:n_windows, : stop - start]
+        buffer[:, :, n_samples:] = 0.0
+        autocorrelation(z, stop - 1, lag_start=start, layout="lag", out=buffer[:, :, :n_samples])
+        ambiguity = sfft.fft(buffer, axis=2, overwrite_x=True, workers=fft_workers)
+        for i in range(n_windows):  # Σ_m R(θ, m)·d_m·ĝ(θ + βτ_m) over the bands, all channels
+            spectra[i] += matrix @ ambiguity[i].reshape(-1)
+    return sfft.ifft(spectra.reshape(n_windows, n_chirp, size), axis=2, overwrite_x=True,
+                     workers=fft_workers)
+
+
+def _doppler_rows(plan, z, chunk, scratch, fft_workers):
+    """Channel rows (windows, n_chirp, P) complex, R formed at the reached θ bins only (see
+    _run_chirped). Windows are the innermost axis, so one sparse product serves the batch."""
+    n_windows = z.shape[0]
+    n_chirp, size = plan.channels.size, plan.fft_size
+    half = size // 2
+    per_block = max(stop - first for _, first, stop, _ in plan.blocks)
+    if getattr(scratch, "rows", None) is None:
+        scratch.rows = np.empty(per_block * half * chunk, dtype=np.complex128)
+        scratch.product = np.empty(per_block * half * chunk, dtype=np.complex128)
+    doubled = np.empty((2 * size, n_windows), dtype=np.complex128)
+    doubled[:size] = sfft.fft(z, n=size, axis=1, workers=fft_workers).T
+    doubled[size:] = doubled[:size]
+    conj = np.conj(doubled[:size])
+    # shifted[q, k] = Z[(k + q) mod P]: a read-only strided view, no copy
+    step, window_step = doubled.strides
+    shifted = as_strided(doubled, (size, size, n_windows), (step, step, window_step),
+                         writeable=False)
+    reached = np.empty((plan.rows.size, n_chirp, n_windows), dtype=np.complex128)
+    for segments, first, stop, matrix in plan.blocks:
+        block = scratch.rows[: (stop - first) * half * n_windows].reshape(stop - first, half,
+                                                                          n_windows)
+        product = scratch.product[: block.size].reshape(block.shape)
+        for offset, count, q0 in segments:
+            rows = shifted[q0:q0 + count]
+            np.multiply(rows[:, :half], conj[:half], out=block[offset:offset + count])
+            np.multiply(rows[:, half:], conj[half:], out=product[:count])
+            block[offset:offset + count] += product[:count]
+        lags = sfft.ifft(block, axis=1, overwrite_x=True, workers=fft_workers)
+        reached[first:stop] = (matrix @ lags.reshape(-1, n_windows)).reshape(
+            stop - first, n_chirp, n_windows)
+    spectra = np.zeros((n_windows, n_chirp, size), dtype=np.complex128)
+    spectra[:, :, plan.rows] = reached.transpose(2, 1, 0)
+    return sfft.ifft(spectra, axis=2, overwrite_x=True, workers=fft_workers)

@@ -40,6 +40,7 @@ CHIRPED = [
     Channel(120.0, 0.020, 0.5, 800.0),
     Channel(250.0, 0.100, 1.0, 200.0),
     Channel(60.0, 0.002, 3.0, -7000.0),
+    Channel(300.0, 0.003, 0.25, 2000.0),  # lag shifts 2L beyond the kernel's half width
 ]
 
 
@@ -56,13 +57,25 @@ def naive_case():
     return x, expected
 
 
+@pytest.fixture(params=["auto", "lag", "doppler"])
+def chirp_method(request, monkeypatch):
+    """Each way of forming the chirped path's ambiguity samples: the cost model's choice, and
+    each of the two forced (both must be exact, whichever the model picks)."""
+    module = importlib.import_module("search.transform")  # the module, not the function
+    if request.param != "auto":
+        monkeypatch.setattr(module, "_chirp_method", lambda *args: request.param)
+    module._PLANS.clear()
+    yield request.param
+    module._PLANS.clear()
+
+
 @pytest.mark.parametrize("chirped", [False, True], ids=["beta=0", "beta!=0"])
-def test_fast_matches_naive_full_grid(naive_case, chirped):
-    """The fast (β = 0) and banded ambiguity-domain (β ≠ 0) paths equal the defining double sum
-    S_c[n] = Σ_n' Σ_k W[n',k] G_c((n−n')/fs, f_k−f_c) Δf/fs on a full WVD grid with an explicit
-    2-D convolution, to relative error < 1e-10, channels near 0 and fs/2 included.
-    Source: the definition in DESIGN §3 (discrete WVD after Claasen & Mecklenbräuker, Philips
-    J. Res. 35, 1980)."""
+def test_fast_matches_naive_full_grid(naive_case, chirped, chirp_method):
+    """The fast (β = 0) and banded ambiguity-domain (β ≠ 0, lag-major or Doppler rows) paths
+    equal the defining double sum S_c[n] = Σ_n' Σ_k W[n',k] G_c((n−n')/fs, f_k−f_c) Δf/fs on a
+    full WVD grid with an explicit 2-D convolution, to relative error < 1e-10, channels near 0
+    and fs/2 included. Source: the definition in DESIGN §3 (discrete WVD after Claasen &
+    Mecklenbräuker, Philips J. Res. 35, 1980)."""
     x, expected = naive_case
     channels = CHIRPED if chirped else CHANNELS
     rows = slice(len(CHANNELS), None) if chirped else slice(0, len(CHANNELS))
@@ -94,7 +107,7 @@ def _gaussian_stft(z, sigma, chirp, mfft):
 
 
 @pytest.mark.parametrize("chirp", [0.0, 2500.0, -4000.0])
-def test_spectrogram_identity(chirp):
+def test_spectrogram_identity(chirp, chirp_method):
     """a = 1, σ_t = s: 2‖h‖²·S_c[n] = |X_z(n, f_c)|² + |X_z(n, f_c + fs/2)|², X_z the two-sided
     hop-1 ShortTimeFFT of the analytic signal with window gaussian(std = s·fs·√2), exact to
     round-off (< 1e-9), including channels at 2 Hz and fs/2 − 2 Hz where the second term
@@ -221,25 +234,51 @@ def test_prepared_windows_and_blocks_agree():
     np.testing.assert_allclose(single, full, rtol=1e-5, atol=1e-6 * np.abs(full).max())
 
 
-def test_long_windows_are_processed_in_blocks(monkeypatch):
-    """With tiny block budgets (forcing row blocks, lag blocks and window chunks) the output is
-    unchanged, and bit-identical on one thread and on two (runs must not depend on how work is
-    spread, DESIGN §5): memory is bounded by blocking, not by M·N·N arrays. Common practice."""
+def test_long_windows_are_processed_in_blocks(monkeypatch, chirp_method):
+    """With tiny block budgets (forcing row blocks, lag blocks, Doppler-row blocks and window
+    chunks) the output is unchanged, and bit-identical on one thread and on two, and for one
+    window at a time (runs must not depend on how work is spread, DESIGN §5): memory is bounded
+    by blocking, not by M·N·N arrays. Common practice."""
     module = importlib.import_module("search.transform")  # the module, not the function
 
     rng = np.random.default_rng(8)
     windows = rng.standard_normal((3, 400))
     fb = Filterbank([Channel(50.0, 0.02), Channel(150.0, 0.01, 1.0, -1200.0),
-                     Channel(300.0, 0.005, 0.6)], FS)
+                     Channel(300.0, 0.005, 0.6), Channel(420.0, 0.03, 0.8, 2500.0)], FS)
     expected = transform(windows, fb, dtype=np.float64)
     monkeypatch.setattr(module, "_BLOCK_BYTES", 1 << 16)
     monkeypatch.setattr(module, "_GEMM_BLOCK_BYTES", 1 << 14)
+    monkeypatch.setattr(module, "_ROW_BLOCK_BYTES", 1 << 14)
     module._PLANS.clear()
     blocked = transform(windows, fb, dtype=np.float64, workers=2)
     serial = transform(windows, fb, dtype=np.float64, workers=1)
+    one_by_one = np.stack([transform(w, fb, dtype=np.float64, workers=2) for w in windows])
     module._PLANS.clear()
     np.testing.assert_allclose(blocked, expected, rtol=0, atol=1e-12 * np.abs(expected).max())
     np.testing.assert_array_equal(serial, blocked)  # bit-identical however threads share work
+    np.testing.assert_array_equal(one_by_one, blocked)
+
+
+def test_chirp_methods_agree_on_long_windows(monkeypatch):
+    """Lag-major and Doppler-row ambiguity samples give the same chirped rows (< 1e-12 of the
+    peak) on windows long enough that lag counts are not capped by the window, with cell areas
+    below and above 1 and both chirp signs, for the whole filterbank and for each channel alone
+    (as refinement computes them, where 2L exceeds the kernel's half width): two independent
+    derivations of the same R(θ, m). Source: DESIGN §3 (R the FFT over time of r); the
+    cross-correlation theorem (common practice)."""
+    module = importlib.import_module("search.transform")
+    windows = np.random.default_rng(9).standard_normal((2, 700))
+    fb = Filterbank([Channel(40.0, 0.012, 0.3, 900.0), Channel(230.0, 0.006, 1.0, -3000.0),
+                     Channel(470.0, 0.05, 2.5, 150.0)], FS)
+    for bank in [fb] + [Filterbank([channel], FS) for channel in fb]:
+        rows = {}
+        for method in ("lag", "doppler"):
+            monkeypatch.setattr(module, "_chirp_method", lambda *args, method=method: method)
+            module._PLANS.clear()
+            rows[method] = transform(windows, bank, dtype=np.float64, eps=1e-12)
+        np.testing.assert_allclose(rows["doppler"], rows["lag"], rtol=0,
+                                   atol=1e-12 * np.abs(rows["lag"]).max())
+    module._PLANS.clear()
 
 
 def test_bad_input_is_named():
