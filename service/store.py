@@ -206,10 +206,13 @@ class Store:
         con.execute("BEGIN IMMEDIATE")
         try:
             yield con
+            con.execute("COMMIT")
         except BaseException:
-            con.execute("ROLLBACK")
+            # COMMIT itself can fail (busy, disk full, a deferred constraint) and leave the
+            # transaction open; a later BEGIN on this connection would then fail every time
+            if con.in_transaction:
+                con.execute("ROLLBACK")
             raise
-        con.execute("COMMIT")
 
     def _query(self, sql: str, args: tuple = ()) -> list[sqlite3.Row]:
         return self._connection().execute(sql, args).fetchall()

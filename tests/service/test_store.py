@@ -137,3 +137,23 @@ def test_write_blob_keeps_the_old_file_on_failure(tmp_path):
         write_blob(path, chunks())
     assert path.read_bytes() == b"old"
     assert [p.name for p in tmp_path.iterdir()] == ["blob.bin"]
+
+
+def test_failed_commit_leaves_no_open_transaction(tmp_path):
+    """When COMMIT itself fails, the write is rolled back and the connection can take the next
+    transaction. A deferred foreign-key violation makes COMMIT fail and keeps the transaction
+    open until the caller rolls it back (SQLite documentation, "SQLite Foreign Key Support",
+    deferred foreign key constraints; the behaviour is from memory of that page)."""
+    store, _ = _store_with_jobs(tmp_path, 1)
+    con = store._connection()
+    con.execute("PRAGMA foreign_keys = ON")  # only takes effect outside a transaction
+    con.execute("CREATE TEMP TABLE parent (id INTEGER PRIMARY KEY)")
+    con.execute("CREATE TEMP TABLE child (parent_id INTEGER REFERENCES parent (id) "
+                "DEFERRABLE INITIALLY DEFERRED)")
+    with pytest.raises(sqlite3.IntegrityError):
+        with store._tx() as tx:
+            tx.execute("INSERT INTO child (parent_id) VALUES (7)")  # checked at COMMIT
+    assert not con.in_transaction
+    assert con.execute("SELECT count(*) FROM child").fetchone()[0] == 0
+    token_id = store.add_token("after", "t", "f" * 64)  # the next write transaction works
+    assert token_id
