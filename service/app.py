@@ -13,6 +13,7 @@ from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.routing import Match
 
 from service.config import ServiceSettings
 from service.limits import BodySizeLimit
@@ -59,10 +60,26 @@ def _field_errors(exc: RequestValidationError) -> tuple[str, list[dict]]:
     return "invalid request: " + "; ".join(parts), fields
 
 
+_METHODS = ("GET", "HEAD", "POST", "PUT", "PATCH", "DELETE", "OPTIONS")
+
+
+def _allowed_methods(request: Request) -> str:
+    """Every method some route serves on this path: the router's own 405 names only the first
+    route whose path matched, and a path served by several routes (GET and DELETE of a corpus)
+    must list them all (RFC 9110 §15.5.6: a 405 carries Allow with the supported methods)."""
+    allowed = [method for method in _METHODS
+               if any(route.matches({**request.scope, "method": method})[0] == Match.FULL
+                      for route in request.app.router.routes)]
+    return ", ".join(allowed)
+
+
 def install_error_handlers(app: FastAPI) -> None:
     @app.exception_handler(StarletteHTTPException)
     async def _http(request: Request, exc: StarletteHTTPException):
-        return error_response(exc.status_code, str(exc.detail), headers=getattr(exc, "headers", None))
+        headers = dict(getattr(exc, "headers", None) or {})
+        if exc.status_code == 405:
+            headers["Allow"] = _allowed_methods(request)
+        return error_response(exc.status_code, str(exc.detail), headers=headers or None)
 
     @app.exception_handler(RequestValidationError)
     async def _validation(request: Request, exc: RequestValidationError):

@@ -20,6 +20,7 @@ _UPLOAD_BODY = {"requestBody": {"required": True, "content": {"multipart/form-da
     "type": "object", "required": ["files"],
     "properties": {
         "files": {"type": "array", "items": {"type": "string", "format": "binary"},
+                  "minItems": 1,
                   "description": "Waveform files: miniSEED, SAC, WAV, .npy/.npz, CSV."},
         "windowing": {"type": "string", "enum": ["bursts", "whole", "sliding"],
                       "description": "How the upload check cuts windows (default bursts)."},

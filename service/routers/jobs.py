@@ -50,7 +50,11 @@ def create_job(body: JobRequest, request: Request, response: Response,
                idempotency_key: str | None = Header(
                    None, alias="Idempotency-Key",
                    description="Retry-safe submission: the same key and body give the same job; "
-                               "the same key with another body is a 422.")) -> JobView:
+                               "the same key with another body is a 422. An empty or blank "
+                               "key is a 400.",
+                   # documented, checked below: a bad key is a 400, not a validation 422
+                   json_schema_extra={"minLength": 1, "maxLength": MAX_KEY_LENGTH,
+                                      "pattern": r"\S"})) -> JobView:
     """Queue a tuning job on an uploaded corpus. Answered only after the job is committed."""
     if idempotency_key is not None:
         idempotency_key = idempotency_key.strip()

@@ -25,6 +25,7 @@ _BODY = {"requestBody": {"required": True, "content": {"multipart/form-data": {"
     "type": "object", "required": ["files"],
     "properties": {
         "files": {"type": "array", "items": {"type": "string", "format": "binary"},
+                  "minItems": 1,
                   "description": "Waveform files to transform."},
         "filterbank": {"type": "string", "description": "Filterbank JSON (text or file part)."},
         "job_id": {"type": "string", "description": "Or: a succeeded job whose filterbank to use."},

@@ -175,6 +175,20 @@ def test_errors_are_json_everywhere(make_client):
         assert set(response.json()["error"]) >= {"status", "message"}
 
 
+def test_wrong_method_lists_every_allowed_method(make_client):
+    """A 405 carries Allow with every method the path supports, also where several routes share
+    the path (RFC 9110 §15.5.6, 405 Method Not Allowed: the origin server MUST generate an
+    Allow header field listing the target resource's supported methods)."""
+    client = make_client()
+    corpus = _upload(client)
+    for path, expected in ((f"/v1/corpora/{corpus['id']}", {"GET", "DELETE"}),
+                           ("/v1/jobs", {"GET", "POST"}), ("/v1/corpora", {"POST"})):
+        response = client.put(path)
+        assert response.status_code == 405, path
+        assert {m.strip() for m in response.headers["allow"].split(",")} == expected, path
+        assert response.json()["error"]["status"] == 405
+
+
 def test_metrics_and_health(make_client):
     """/metrics is Prometheus text with jobs by state and evaluation counters (Prometheus
     "Exposition formats", text format 0.0.4); /healthz answers ok."""
