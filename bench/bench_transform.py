@@ -18,6 +18,9 @@ spectrogram someone would compute instead.
 It is generous to the spectrogram: it has one window where the transform has 96 different ones.
 Bare product: (N × 2(L+1)) @ (2(L+1) × C) float64 with L the filterbank's largest lag count —
 the fast path's shape without grouping.
+Chirped path: the line for each size names the way the cost model chose (lag-major or Doppler
+rows); a last section times both ways on a few filterbanks and single channels, one thread, and
+counts how often the model picked the faster.
 """
 from __future__ import annotations
 
@@ -38,7 +41,7 @@ from threadpoolctl import threadpool_limits
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from search import Filterbank, center_grid, prepare, transform  # noqa: E402
+from search import Channel, Filterbank, center_grid, prepare, transform  # noqa: E402
 from search.wvd import lag_count, truncation_width  # noqa: E402
 
 engine = importlib.import_module("search.transform")
@@ -178,6 +181,51 @@ def peak_memory(workers: int | None, n_samples: int = 4096, n_windows: int = 8) 
     print(f"process max RSS so far {rss:.0f} MB (interpreter, libraries and BLAS buffers included)")
 
 
+def chirp_method_choice(rounds: int = 3) -> None:
+    """The chirped path's cost model against the clock: for a few filterbanks (the bench's at
+    three chirp rates, and one channel alone as refinement computes it), each way of forming
+    the ambiguity samples timed, and whether the model's pick is the faster (or within 15 %)."""
+    centers = center_grid((20.0, 1800.0), CHANNELS, "log")
+    sigma = np.geomspace(0.050, 0.002, CHANNELS)
+    cases = [(f"C={CHANNELS}, β={beta:+g} Hz/s",
+              Filterbank.constant_area(centers, sigma, 1.0, FS, chirp_hz_per_s=beta))
+             for beta in (300.0, CHIRP, 6000.0)]
+    cases += [(f"one channel, σ_t={s * 1e3:g} ms, a={a:g}",
+               Filterbank([Channel(500.0, s, a, CHIRP)], FS))
+              for s, a in ((0.002, 1.0), (0.01, 0.3), (0.01, 1.0), (0.04, 1.0))]
+    chosen_right = total = 0
+    for n_samples, n_windows in ((1024, 16), (4096, 4)):
+        windows = np.random.default_rng(5).standard_normal((n_windows, n_samples))
+        for name, fb in cases:
+            engine._PLANS.clear()
+            pick = engine._plan(fb, n_samples, EPS).chirped.method
+            plans = {}
+            saved = engine._chirp_method
+            try:
+                for method in ("lag", "doppler"):
+                    engine._chirp_method = lambda *args, method=method: method
+                    engine._PLANS.clear()
+                    plans[method] = engine._plan(fb, n_samples, EPS)
+            finally:
+                engine._chirp_method = saved
+            key = (fb.key(), n_samples, EPS)  # the plan cache's key: each run uses its own plan
+
+            def run(plan):
+                engine._PLANS[key] = plan
+                transform(windows, fb, workers=1)
+
+            runs = {method: (lambda plan=plan: run(plan)) for method, plan in plans.items()}
+            times = {m: t / n_windows * 1e3 for m, t in best_times(runs, rounds).items()}
+            engine._PLANS.clear()
+            good = times[pick] <= 1.15 * min(times.values())
+            chosen_right += good
+            total += 1
+            print(f"N={n_samples}, {name}: lag-major {times['lag']:.2f} ms, Doppler rows "
+                  f"{times['doppler']:.2f} ms per window; model picks {pick} "
+                  f"({'ok' if good else 'SLOWER'})")
+    print(f"chirped cost model: the faster way (or within 15 %) in {chosen_right} of {total} cases")
+
+
 def main() -> None:
     print(f"search.transform benchmark: fs={FS:g} Hz, C={CHANNELS}, σ_t 2–50 ms, a=1, "
           f"chirp {CHIRP:+g} Hz/s for the chirped filterbank, eps={EPS:g}")
@@ -186,6 +234,7 @@ def main() -> None:
         speed(1024, 16, rounds=7, workers=1)
         speed(4096, 4, rounds=5, workers=1)
         naive_ratio()
+        chirp_method_choice()
     peak_memory(workers=None)
     speed(1024, 16, rounds=7, workers=None)
     speed(4096, 4, rounds=5, workers=None)

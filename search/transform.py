@@ -57,10 +57,10 @@ _GROUP_CALL_COST = 300.0
 # sparse product serves the batch); cost model in ns per window, measured on the dev machine.
 _ROW_BLOCK_BYTES = 2 << 20
 _DOPPLER_WINDOWS = 8
-_COST_FFT = 1.0  # per point and log2(size) of a complex FFT
-_COST_LAGS = 7.0  # per sample and lag of the lag-major autocorrelation
-_COST_PRODUCT = 3.0  # per complex product of the Doppler rows
-_COST_SPARSE_ONE, _COST_SPARSE_BATCH = 3.3, 1.8  # per sparse weight, alone or batched
+_COST_FFT = 0.8  # per point and log2(size) of a complex FFT
+_COST_LAGS = 1.0  # per sample and lag of the lag-major autocorrelation
+_COST_PRODUCT = 1.25  # per complex product of the Doppler rows
+_COST_SPARSE_ONE, _COST_SPARSE_BATCH = 5.0, 1.6  # per sparse weight, alone or batched
 _PLAN_CACHE_ENTRIES = 16
 _PLAN_CACHE_BYTES = 256 << 20
 
@@ -532,24 +532,33 @@ def _run_chirped(plan: _ChirpPlan, z: np.ndarray, out: np.ndarray, workers: int)
     """
     n_windows = z.shape[0]
     n_chirp, size = plan.channels.size, plan.fft_size
-    if plan.method == "lag":
-        widest = max(stop - start for start, stop, _ in plan.blocks)
-        chunk = max(1, _BLOCK_BYTES // (16 * size * max(widest, n_chirp)))
-        run = _lag_major
-    else:
-        chunk = max(1, min(_DOPPLER_WINDOWS, _BLOCK_BYTES // (16 * size * n_chirp)))
-        run = _doppler_rows
-    chunk = min(n_windows, chunk)
+    scratch = threading.local()  # per-thread buffers, reused unit after unit (no page faults)
+    if plan.method == "doppler":
+        # θ-row blocks run in parallel (each block's products, FFTs and sparse product are
+        # independent), window chunks in turn: this parallelises whatever M is
+        chunk = min(n_windows, max(1, min(_DOPPLER_WINDOWS,
+                                          _BLOCK_BYTES // (16 * size * n_chirp))))
+        pool = ThreadPoolExecutor(workers) if workers > 1 and len(plan.blocks) > 1 else None
+        try:
+            for w0 in range(0, n_windows, chunk):
+                w1 = min(n_windows, w0 + chunk)
+                rows = _doppler_rows(plan, z[w0:w1], chunk, scratch, workers, pool)
+                out[w0:w1, plan.channels, :] = rows[:, :, : z.shape[1]].real
+        finally:
+            if pool is not None:
+                pool.shutdown()
+        return
+    widest = max(stop - start for start, stop, _ in plan.blocks)
+    chunk = min(n_windows, max(1, _BLOCK_BYTES // (16 * size * max(widest, n_chirp))))
     units = [(w0, min(n_windows, w0 + chunk)) for w0 in range(0, n_windows, chunk)]
     # Window chunks run in parallel, each with one FFT thread: the sparse products hold the
-    # GIL, so one thread's product overlaps the other's products and FFTs.
+    # GIL, so one thread's product overlaps the other's autocorrelation and FFTs.
     parallel = workers > 1 and len(units) > 1
     fft_workers = 1 if parallel else workers
-    scratch = threading.local()  # per-thread buffers, reused unit after unit (no page faults)
 
     def one(unit):
         w0, w1 = unit
-        rows = run(plan, z[w0:w1], chunk, scratch, fft_workers)
+        rows = _lag_major(plan, z[w0:w1], chunk, scratch, fft_workers)
         out[w0:w1, plan.channels, :] = rows[:, :, : z.shape[1]].real
 
     if parallel:
@@ -582,18 +591,16 @@ def _lag_major(plan, z, chunk, scratch, fft_workers):
                      workers=fft_workers)
 
 
-def _doppler_rows(plan, z, chunk, scratch, fft_workers):
+def _doppler_rows(plan, z, chunk, scratch, workers, pool):
     """Channel rows (windows, n_chirp, P) complex, R formed at the reached θ bins only (see
-    _run_chirped). Windows are the innermost axis, so one sparse product serves the batch."""
+    _run_chirped). Windows are the innermost axis, so one sparse product serves the batch;
+    blocks of θ rows go to ``pool`` (one FFT thread each) when there is one."""
     n_windows = z.shape[0]
     n_chirp, size = plan.channels.size, plan.fft_size
     half = size // 2
     per_block = max(stop - first for _, first, stop, _ in plan.blocks)
-    if getattr(scratch, "rows", None) is None:
-        scratch.rows = np.empty(per_block * half * chunk, dtype=np.complex128)
-        scratch.product = np.empty(per_block * half * chunk, dtype=np.complex128)
     doubled = np.empty((2 * size, n_windows), dtype=np.complex128)
-    doubled[:size] = sfft.fft(z, n=size, axis=1, workers=fft_workers).T
+    doubled[:size] = sfft.fft(z, n=size, axis=1, workers=workers).T
     doubled[size:] = doubled[:size]
     conj = np.conj(doubled[:size])
     # shifted[q, k] = Z[(k + q) mod P]: a read-only strided view, no copy
@@ -601,18 +608,31 @@ def _doppler_rows(plan, z, chunk, scratch, fft_workers):
     shifted = as_strided(doubled, (size, size, n_windows), (step, step, window_step),
                          writeable=False)
     reached = np.empty((plan.rows.size, n_chirp, n_windows), dtype=np.complex128)
-    for segments, first, stop, matrix in plan.blocks:
-        block = scratch.rows[: (stop - first) * half * n_windows].reshape(stop - first, half,
-                                                                          n_windows)
-        product = scratch.product[: block.size].reshape(block.shape)
+    fft_workers = 1 if pool is not None else workers
+
+    def one(block):
+        segments, first, stop, matrix = block
+        if getattr(scratch, "rows", None) is None:
+            scratch.rows = np.empty(per_block * half * chunk, dtype=np.complex128)
+            scratch.product = np.empty(per_block * half * chunk, dtype=np.complex128)
+        folded = scratch.rows[: (stop - first) * half * n_windows].reshape(stop - first, half,
+                                                                           n_windows)
+        product = scratch.product[: folded.size].reshape(folded.shape)
         for offset, count, q0 in segments:
             rows = shifted[q0:q0 + count]
-            np.multiply(rows[:, :half], conj[:half], out=block[offset:offset + count])
+            np.multiply(rows[:, :half], conj[:half], out=folded[offset:offset + count])
             np.multiply(rows[:, half:], conj[half:], out=product[:count])
-            block[offset:offset + count] += product[:count]
-        lags = sfft.ifft(block, axis=1, overwrite_x=True, workers=fft_workers)
+            folded[offset:offset + count] += product[:count]
+        lags = sfft.ifft(folded, axis=1, overwrite_x=True, workers=fft_workers)
         reached[first:stop] = (matrix @ lags.reshape(-1, n_windows)).reshape(
             stop - first, n_chirp, n_windows)
+
+    if pool is None:
+        for block in plan.blocks:
+            one(block)
+    else:
+        for _ in pool.map(one, plan.blocks):
+            pass
     spectra = np.zeros((n_windows, n_chirp, size), dtype=np.complex128)
     spectra[:, :, plan.rows] = reached.transpose(2, 1, 0)
-    return sfft.ifft(spectra, axis=2, overwrite_x=True, workers=fft_workers)
+    return sfft.ifft(spectra, axis=2, overwrite_x=True, workers=workers)
