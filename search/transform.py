@@ -280,7 +280,7 @@ def _chirp_plan(filterbank, idx, n_samples, eps) -> _ChirpPlan:
     """Plan for the chirped channels: the cheaper of the lag-major and the Doppler-row ways of
     forming R(θ, m) (both exact, see :func:`_run_chirped`), by the cost model of
     :func:`_chirp_method`, with the banded weights laid out for it: one CSR matrix, filled one
-    channel at a time (int32 indices, no argsort), then cut into row blocks."""
+    channel at a time (int32 indices where they fit, no argsort), then cut into row blocks."""
     fs = filterbank.sampling_rate_hz
     k = truncation_width(eps)
     spread = filterbank.conditional_freq_spread_hz[idx]
@@ -300,26 +300,31 @@ def _chirp_plan(filterbank, idx, n_samples, eps) -> _ChirpPlan:
         "doppler": 2 * sfft.next_fast_len(-(-(n_samples + max(half, 2 * (n_lags - 1))) // 2),
                                           real=True),
     }
-    reached = {size: _bins_reached(chirps, sigma, lags, size, fs, k)
-               for size in set(sizes.values())}
-    method = _chirp_method(sigma, lags, n_samples, sizes, reached, fs, k)
+    reached = _bins_reached(chirps, sigma, lags, sizes["doppler"], fs, k)
+    method = _chirp_method(sigma, lags, n_samples, sizes, int(reached.sum()), fs, k)
     size = sizes[method]
-    band = k * size / (2.0 * np.pi * sigma * fs)  # half bands, θ bins
-    counts = (lags + 1) * _band_bins(band)  # entries per channel
-    data = np.empty(int(counts.sum()), dtype=np.complex128)
-    row = np.empty(data.size, dtype=np.int32)
-    column = np.empty(data.size, dtype=np.int32)
     if method == "lag":  # row blocks of lags start..start+width−1 stacked: b·(C·P) + c·P + q
         width = max(1, min(n_lags, _BLOCK_BYTES // (16 * size)))
         cuts = [(start, min(n_lags, start + width)) for start in range(0, n_lags, width)]
         block_rows, rows = n_chirp * size, None
+        n_rows, n_columns = len(cuts) * block_rows, width * size
+        shapes = [(b * block_rows, (b + 1) * block_rows, (stop - start) * size)
+                  for b, (start, stop) in enumerate(cuts)]
     else:  # rows (position of the θ bin)·C + c, position in plan.rows
-        rows = np.flatnonzero(reached[size])
-        position = np.cumsum(reached[size]) - 1
+        rows = np.flatnonzero(reached)
+        position = np.cumsum(reached) - 1
         phase = 0.5 * np.exp(2j * np.pi * np.arange(size) / size)  # ½·e^{j2πqm/P}, by qm mod P
         per_block = max(1, _ROW_BLOCK_BYTES // (16 * (size // 2) * _DOPPLER_WINDOWS))
         cuts = [(first, min(rows.size, first + per_block))
                 for first in range(0, rows.size, per_block)]
+        n_rows, n_columns = rows.size * n_chirp, per_block * (size // 2)
+        shapes = [(first * n_chirp, stop * n_chirp, (stop - first) * (size // 2))
+                  for first, stop in cuts]
+    counts = (lags + 1) * _band_bins(_half_bands(sigma, size, fs, k))  # entries per channel
+    index = np.int32 if max(n_rows, n_columns) <= np.iinfo(np.int32).max else np.int64
+    data = np.empty(int(counts.sum()), dtype=np.complex128)
+    row = np.empty(data.size, dtype=index)
+    column = np.empty(data.size, dtype=index)
     end = 0
     for c in range(n_chirp):
         q, m, values = _chirp_entries(centers[c], sigma[c], spread[c], chirps[c], int(lags[c]),
@@ -336,14 +341,6 @@ def _chirp_plan(filterbank, idx, n_samples, eps) -> _ChirpPlan:
             row[part] = at * n_chirp + c
             column[part] = (at % per_block) * (size // 2) + m
             data[part] = values * phase[(q * m) % size]
-    if method == "lag":
-        n_rows, n_columns = len(cuts) * block_rows, width * size
-        shapes = [(b * block_rows, (b + 1) * block_rows, (stop - start) * size)
-                  for b, (start, stop) in enumerate(cuts)]
-    else:
-        n_rows, n_columns = rows.size * n_chirp, per_block * (size // 2)
-        shapes = [(first * n_chirp, stop * n_chirp, (stop - first) * (size // 2))
-                  for first, stop in cuts]
     whole = sp.csr_matrix((data, (row, column)), shape=(n_rows, n_columns))
     del data, row, column
     blocks = [cut + (_row_block(whole, r0, r1, n_cols),)
@@ -380,11 +377,16 @@ def _chirp_entries(center, sigma, spread, chirp, lags, size, fs, k):
     tau = 2.0 * m / fs
     d = np.where(m == 0, 1.0, 2.0) * np.exp(-2.0 * np.pi**2 * (spread * tau) ** 2)
     d = d * np.exp(-2j * np.pi * center * tau)
-    band = k * size / (2.0 * np.pi * sigma * fs)  # half band, θ bins
+    band = _half_bands(sigma, size, fs, k)
     j = _band_starts(chirp, tau, band, size, fs)[:, None] + np.arange(_band_bins(band))
     offset = j * (fs / size) + chirp * tau[:, None]
     values = d[:, None] * np.exp(-2.0 * np.pi**2 * (sigma * offset) ** 2)
     return (j % size).ravel(), np.repeat(m, j.shape[1]), values.ravel()
+
+
+def _half_bands(sigma, size, fs, k):
+    """Half width of ĝ's band in θ bins, √(2 ln(1/ε))/(2πσ_t) in units of fs/P."""
+    return k * size / (2.0 * np.pi * np.asarray(sigma) * fs)
 
 
 def _band_starts(chirp, tau, band, size, fs) -> np.ndarray:
@@ -400,8 +402,7 @@ def _band_bins(band):
 def _bins_reached(chirps, sigma, lags, size, fs, k) -> np.ndarray:
     """(P,) bool: the θ bins mod P that some channel's band reaches at some lag."""
     reached = np.zeros(size, dtype=bool)
-    for chirp, spread_s, n_lags in zip(chirps, sigma, lags):
-        band = k * size / (2.0 * np.pi * spread_s * fs)
+    for chirp, band, n_lags in zip(chirps, _half_bands(sigma, size, fs, k), lags):
         starts = _band_starts(chirp, 2.0 * np.arange(n_lags + 1) / fs, band, size, fs)
         # the hull of the lag bands (they overlap unless a band moves more than its width
         # from one lag to the next; a superset costs time, never accuracy)
@@ -410,26 +411,23 @@ def _bins_reached(chirps, sigma, lags, size, fs, k) -> np.ndarray:
     return reached
 
 
-def _chirp_method(sigma, lags, n_samples, sizes, reached, fs, k) -> str:
+def _chirp_method(sigma, lags, n_samples, sizes, doppler_rows, fs, k) -> str:
     """'lag' or 'doppler', whichever the cost model (ns per window, constants measured on the
     2-core dev machine) finds cheaper. Lag-major: L+1 FFTs of P points over time plus the
-    autocorrelation, and a sparse product per window. Doppler rows: for each θ bin the bands
-    reach, P products and one P/2-point FFT over lags, and a sparse product shared by a batch
-    of windows."""
-    n_lags = int(lags.max()) + 1
-    costs = {}
-    for method, size in sizes.items():
-        band = k * size / (2.0 * np.pi * sigma * fs)
-        nnz = float(np.sum((lags + 1) * _band_bins(band)))
-        if method == "lag":
-            cost = n_lags * (size * math.log2(size) * _COST_FFT + n_samples * _COST_LAGS)
-            cost += nnz * _COST_SPARSE_ONE
-        else:
-            rows = int(reached[size].sum())
-            cost = rows * size / 2 * (math.log2(size / 2) * _COST_FFT + 2.0 * _COST_PRODUCT)
-            cost += nnz * _COST_SPARSE_BATCH
-        costs[method] = cost
-    return min(costs, key=costs.get)
+    autocorrelation, and a sparse product per window. Doppler rows: for each of the
+    ``doppler_rows`` θ bins the bands reach, P products and one P/2-point FFT over lags, and a
+    sparse product shared by a batch of windows."""
+    def weights(size):  # sparse entries at FFT size P
+        return float(np.sum((lags + 1) * _band_bins(_half_bands(sigma, size, fs, k))))
+
+    lag, doppler = sizes["lag"], sizes["doppler"]
+    lag_cost = (int(lags.max()) + 1) * (lag * math.log2(lag) * _COST_FFT
+                                        + n_samples * _COST_LAGS)
+    lag_cost += weights(lag) * _COST_SPARSE_ONE
+    doppler_cost = doppler_rows * doppler / 2 * (math.log2(doppler / 2) * _COST_FFT
+                                                 + 2.0 * _COST_PRODUCT)
+    doppler_cost += weights(doppler) * _COST_SPARSE_BATCH
+    return "lag" if lag_cost <= doppler_cost else "doppler"
 
 
 # ---------------------------------------------------------------------------------------------
@@ -607,7 +605,7 @@ def _doppler_rows(plan, z, chunk, scratch, workers, pool):
     step, window_step = doubled.strides
     shifted = as_strided(doubled, (size, size, n_windows), (step, step, window_step),
                          writeable=False)
-    reached = np.empty((plan.rows.size, n_chirp, n_windows), dtype=np.complex128)
+    sums = np.empty((plan.rows.size, n_chirp, n_windows), dtype=np.complex128)  # Ŝ_c(θ_q)
     fft_workers = 1 if pool is not None else workers
 
     def one(block):
@@ -624,7 +622,7 @@ def _doppler_rows(plan, z, chunk, scratch, workers, pool):
             np.multiply(rows[:, half:], conj[half:], out=product[:count])
             folded[offset:offset + count] += product[:count]
         lags = sfft.ifft(folded, axis=1, overwrite_x=True, workers=fft_workers)
-        reached[first:stop] = (matrix @ lags.reshape(-1, n_windows)).reshape(
+        sums[first:stop] = (matrix @ lags.reshape(-1, n_windows)).reshape(
             stop - first, n_chirp, n_windows)
 
     if pool is None:
@@ -634,5 +632,5 @@ def _doppler_rows(plan, z, chunk, scratch, workers, pool):
         for _ in pool.map(one, plan.blocks):
             pass
     spectra = np.zeros((n_windows, n_chirp, size), dtype=np.complex128)
-    spectra[:, :, plan.rows] = reached.transpose(2, 1, 0)
+    spectra[:, :, plan.rows] = sums.transpose(2, 1, 0)
     return sfft.ifft(spectra, axis=2, overwrite_x=True, workers=workers)
