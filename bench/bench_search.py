@@ -157,10 +157,13 @@ def main() -> int:
     spec = d["baselines"]["spectrogram"]
     print(f"  default search: {t_search:.1f} s {_note()} (stop: {d['stop_reason']}; stages "
           + ", ".join(f"{k} {v:.0f} s" for k, v in d["stage_seconds"].items()) + ")")
-    print(f"    result H3 {d['result']['objective']:.3f} bits on the filterbank grid "
-          f"[{d['result']['low']:.3f}, {d['result']['high']:.3f}]; best spectrogram on the same "
-          f"grid {spec['objective']:.3f} bits (std {spec['parameters']['time_spread_s'] * 1e3:.2f} ms);"
-          f" gain {d['gain_bits']:.3f} bits")
+    j = d["judgement"]
+    g = j["gain_bits"]
+    print(f"    gain on windows the fit never saw: {g['estimate']:.3f} [{g['low']:.3f}, {g['high']:.3f}]"
+          f" bits ({j['held_out_windows']} held-out windows, {j['fit_windows']} fitted); result H3 "
+          f"{d['result']['objective']:.3f} bits on the plane, best spectrogram "
+          f"{spec['objective']:.3f} (std {spec['parameters']['time_spread_s'] * 1e3:.2f} ms); "
+          f"negative share {j['negative_share']['overall']:.4f}; bounds hit {j['bounds_hit'] or 'none'}")
     print(f"  RATIO search / by hand: {t_search / t_hand:.2f} wall, {cpu_search / cpu_hand:.2f} cpu"
           f"  (target <= 1.5)")
 

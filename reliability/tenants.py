@@ -118,7 +118,9 @@ def run(time_budget_s: float = 240.0) -> list[Row]:
             # alice's own control requests add jobs and corpora; only these must stay as they were
             mine = (done_job, running_job, queued_job)
             jobs = [client.get(f"/v1/jobs/{j}", headers=as_alice).json() for j in mine]
-            states = sorted((j["id"], j["state"] if j["state"] in FINAL else "active",
+            # a job that ends by itself during the attacks (its search may stall early) is
+            # unchanged by them; a cancel or a failure is what an attack could cause
+            states = sorted((j["id"], j["state"] if j["state"] in ("cancelled", "failed") else "alive",
                              j["cancel_requested"]) for j in jobs)
             corpus = client.get(f"/v1/corpora/{corpus_id}", headers=as_alice)
             return json.dumps([states, corpus.status_code, corpus.json()], sort_keys=True)

@@ -6,9 +6,18 @@ and finite is not a distribution and scores ``+inf`` (an invalid candidate), as 
 whose score comes out non-finite. (The sparsity measures themselves act on magnitudes and are
 scale invariant; :class:`Criterion` applies the same validity rule to them.)
 
-Units: Rényi entropies and log-concentrations are in bits *on the grid* (each cell counts 1).
-For an image sampled at steps ``dt_s`` × ``df_hz`` the value on the continuous t–f plane is
-``H_cont = H_grid + log2(dt_s · df_hz)`` (:func:`continuous_entropy`).
+Units: an image is a density on the time–frequency plane. Cell (c, n) of a filterbank image has
+its own area ``ΔA_c = Δt·Δf_c`` (``cell_size``, s·Hz; :func:`cell_sizes` gives it for a channel
+grid, whose log spacing makes cells unequal). With ``p = S·ΔA / Σ S·ΔA`` the Rényi entropy is
+``H_α = 1/(1−α)·log2 Σ p^α ΔA^{1−α}``: bits on the continuous plane, comparable across grids as
+long as the grid samples the image (spacing ≤ the narrowest kernel's frequency spread). Without
+``cell_size`` every cell counts 1 (bits *on the grid*); for equal cells ``dt_s`` × ``df_hz`` the
+two differ by ``log2(dt_s · df_hz)`` (:func:`continuous_entropy`).
+
+Positivity: smoothing below the Heisenberg cell lets Wigner–Ville interference through as
+negative values, and signed scores then reward it (measured: two separated atoms scored below
+one). :func:`negative_share` is the share of the absolute mass that is negative; the search
+treats a share above its ceiling as an invalid candidate whatever the criterion.
 
 Shapes: the single-image functions take any shape (an image is flattened); :class:`Criterion`
 scores a stack ``(M, C, N)`` (M windows, C channels, N samples) in one vectorised pass.
@@ -43,15 +52,60 @@ _BLOCK_ELEMENTS = 1 << 18
 
 
 # --------------------------------------------------------------------------------------------
-# Row-wise kernels: x is (M, K) float64, one image per row; each returns (M,) float64.
+# Cell sizes
 
 
-def _unit_sum_rows(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """p = x / Σx per row and the mask of rows whose sum is positive and finite."""
-    total = x.sum(axis=1)
+def channel_widths_hz(centers_hz) -> np.ndarray:
+    """Frequency extent Δf_c (Hz) of each channel's cell, shape (C,), in the order given.
+
+    The cell of a centre reaches halfway to each neighbour (midpoint rule on an unequal grid);
+    an edge channel takes the full gap to its one neighbour. A single channel has no spacing
+    and gets 1 Hz (its scores are then per hertz). Centres must be distinct.
+    """
+    f = np.asarray(centers_hz, dtype=np.float64).ravel()
+    if f.size == 0 or not np.all(np.isfinite(f)):
+        raise ValueError(f"centers_hz must be a non-empty array of finite values, got {centers_hz!r}")
+    if f.size == 1:
+        return np.ones(1)
+    order = np.argsort(f, kind="stable")
+    g = f[order]
+    gaps = np.diff(g)
+    if np.any(gaps <= 0):
+        raise ValueError("centers_hz must be distinct to define channel cells")
+    widths = np.empty_like(g)
+    widths[0], widths[-1] = gaps[0], gaps[-1]
+    widths[1:-1] = 0.5 * (gaps[:-1] + gaps[1:])
+    out = np.empty_like(widths)
+    out[order] = widths
+    return out
+
+
+def cell_sizes(centers_hz, sampling_rate_hz: float) -> np.ndarray:
+    """Area ΔA_c = Δf_c / fs (s·Hz) of the cells of each channel row, shape (C, 1).
+
+    Broadcasts against a (C, N) image, so ``Criterion().score(images, cell_size=...)`` scores
+    the image as a density on the plane (:func:`channel_widths_hz` for Δf_c; Δt = 1/fs).
+    """
+    fs = float(sampling_rate_hz)
+    if not (math.isfinite(fs) and fs > 0):
+        raise ValueError(f"sampling_rate_hz must be a positive finite number, got {sampling_rate_hz!r}")
+    return (channel_widths_hz(centers_hz) / fs)[:, None]
+
+
+# --------------------------------------------------------------------------------------------
+# Row-wise kernels: x is (M, K) float64, one image per row; w is None (every cell counts 1) or
+# (K,) cell sizes; each returns (M,) float64.
+
+
+def _weighted_sum(values: np.ndarray, w) -> np.ndarray:
+    return values.sum(axis=1) if w is None else values @ w
+
+
+def _unit_sum_rows(x: np.ndarray, w=None) -> tuple[np.ndarray, np.ndarray]:
+    """T = Σ x·w per row and the mask of rows whose mass is positive and finite."""
+    total = _weighted_sum(x, w)
     valid = np.isfinite(total) & (total > 0)
-    scale = np.where(valid, 1.0 / np.where(valid, total, 1.0), 0.0)
-    return x * scale[:, None], valid
+    return np.where(valid, total, 1.0), valid
 
 
 def _signed_power(p: np.ndarray, alpha: float) -> np.ndarray:
@@ -65,26 +119,31 @@ def _signed_power(p: np.ndarray, alpha: float) -> np.ndarray:
     return np.sign(p) * np.abs(p) ** alpha
 
 
-def _renyi_rows(x: np.ndarray, alpha: float) -> np.ndarray:
-    p, valid = _unit_sum_rows(x)
+def _renyi_rows(x: np.ndarray, alpha: float, w=None) -> np.ndarray:
+    # With p = x·w/T: Σ p^α w^{1−α} = Σ w·x^α / T^α, so the image is never rescaled in place.
+    total, valid = _unit_sum_rows(x, w)
     if alpha == 1.0:
-        # Shannon limit of H_α as α → 1 under the same convention: −Σ p·log2|p| (0·log 0 = 0).
-        a = np.abs(p)
+        # Shannon limit as α → 1 under the same convention: −Σ p·log2|p/w| = −Σ w·x·log2|x|/T
+        # + log2 T (0·log 0 = 0).
+        a = np.abs(x)
         logs = np.log2(a, out=np.zeros_like(a), where=a > 0)
-        h = -(p * logs).sum(axis=1)
+        h = -_weighted_sum(x * logs, w) / total + np.log2(total)
     else:
-        s = _signed_power(p, alpha).sum(axis=1)
-        positive = s > 0
+        ratio = _weighted_sum(_signed_power(x, alpha), w) / _signed_power(total, alpha)
+        positive = ratio > 0
         valid &= positive
-        h = np.log2(np.where(positive, s, 1.0)) / (1.0 - alpha)
+        h = np.log2(np.where(positive, ratio, 1.0)) / (1.0 - alpha)
     return _invalid_to_inf(h, valid)
 
 
-def _concentration_rows(x: np.ndarray, p_exp: float) -> np.ndarray:
-    p, valid = _unit_sum_rows(x)
-    s = (np.abs(p) ** (1.0 / p_exp) if p_exp != 2.0 else np.sqrt(np.abs(p))).sum(axis=1)
+def _concentration_rows(x: np.ndarray, p_exp: float, w=None) -> np.ndarray:
+    # M_p = (Σ w·|x/T|^{1/p})^p, the plane's ∫|ρ|^{1/p} for the density ρ = x/T.
+    total, valid = _unit_sum_rows(x, w)
+    root = np.abs(x) ** (1.0 / p_exp) if p_exp != 2.0 else np.sqrt(np.abs(x))
+    s = _weighted_sum(root, w)
     positive = s > 0
-    return _invalid_to_inf(p_exp * np.log2(np.where(positive, s, 1.0)), valid & positive)
+    h = p_exp * np.log2(np.where(positive, s, 1.0)) - np.log2(total)
+    return _invalid_to_inf(h, valid & positive)
 
 
 def _gini_rows(x: np.ndarray) -> np.ndarray:
@@ -97,21 +156,23 @@ def _gini_rows(x: np.ndarray) -> np.ndarray:
     return np.where(valid, 1.0 - 2.0 * (a @ weights) / np.where(valid, l1, 1.0), np.nan)
 
 
-def _hoyer_rows(x: np.ndarray) -> np.ndarray:
+def _hoyer_rows(x: np.ndarray, w=None) -> np.ndarray:
+    # Cell sizes enter relative to their mean, so equal cells give Hoyer's measure unchanged.
     k = x.shape[1]
     if k < 2:
         raise ValueError(f"Hoyer's measure needs at least 2 values per image, got {k}")
+    rel = None if w is None else w / np.mean(w)
     a = np.abs(x)
-    l1 = a.sum(axis=1)
-    l2 = np.sqrt((a * a).sum(axis=1))
+    l1 = _weighted_sum(a, rel)
+    l2 = np.sqrt(_weighted_sum(a * a, rel))
     valid = np.isfinite(l1) & np.isfinite(l2) & (l2 > 0)
     root_k = math.sqrt(k)
     return np.where(valid, (root_k - l1 / np.where(valid, l2, 1.0)) / (root_k - 1.0), np.nan)
 
 
-def _negative_mass_rows(x: np.ndarray) -> np.ndarray:
-    l1 = np.abs(x).sum(axis=1)
-    negative = np.maximum(-x, 0.0).sum(axis=1)
+def _negative_mass_rows(x: np.ndarray, w=None) -> np.ndarray:
+    l1 = _weighted_sum(np.abs(x), w)
+    negative = _weighted_sum(np.maximum(-x, 0.0), w)
     valid = np.isfinite(l1) & (l1 > 0)
     return np.where(valid, negative / np.where(valid, l1, 1.0), np.nan)
 
@@ -134,12 +195,27 @@ def _as_rows(image, what: str = "image") -> np.ndarray:
     return x.reshape(1, -1)
 
 
+def _cell_weights(cell_size, shape: tuple):
+    """Cell sizes broadcast to an image of ``shape`` and flattened, (K,); None stays None."""
+    if cell_size is None:
+        return None
+    w = np.asarray(cell_size, dtype=np.float64)
+    try:
+        w = np.broadcast_to(w, shape)
+    except ValueError:
+        raise ValueError(f"cell_size of shape {np.shape(cell_size)} does not broadcast to the "
+                         f"image shape {shape}") from None
+    if not (np.all(np.isfinite(w)) and np.all(w > 0)):
+        raise ValueError("cell_size must hold positive finite cell areas (s·Hz)")
+    return np.ascontiguousarray(w).reshape(-1)
+
+
 # --------------------------------------------------------------------------------------------
 # Single-image functions (any shape; the image is flattened).
 
 
-def renyi_entropy(image, alpha: float = 3.0) -> float:
-    """Rényi entropy of order α of a t–f image, in bits on the grid.
+def renyi_entropy(image, alpha: float = 3.0, cell_size=None) -> float:
+    """Rényi entropy of order α of a t–f image, in bits (on the plane with ``cell_size``).
 
     ``p = image / Σ image`` and ``H_α = 1/(1−α) · log2 Σ p^α`` (Baraniuk, Flandrin, Janssen,
     Michel, IEEE Trans. Inf. Theory 47(4), 2001). Signed images are allowed: for integer α,
@@ -156,16 +232,23 @@ def renyi_entropy(image, alpha: float = 3.0) -> float:
         The distribution on its sampling grid.
     alpha : float, > 0
         The order.
+    cell_size : array_like broadcasting to the image, s·Hz, optional
+        Area of each cell (e.g. :func:`cell_sizes` for a (C, N) filterbank image). Then
+        ``p = S·ΔA / Σ S·ΔA`` and ``H_α = 1/(1−α)·log2 Σ p^α ΔA^{1−α}``: bits on the continuous
+        plane, the same for any grid that samples the image.
 
     Returns
     -------
     float
-        Bits on the grid; ``+inf`` if ``Σ image ≤ 0``, ``Σ p^α ≤ 0`` or the result is not finite.
-        Add ``log2(dt_s·df_hz)`` for the continuous-plane value (:func:`continuous_entropy`).
+        Bits on the grid (or on the plane with ``cell_size``); ``+inf`` if ``Σ image ≤ 0``,
+        ``Σ p^α ≤ 0`` or the result is not finite. For equal cells the two differ by
+        ``log2(dt_s·df_hz)`` (:func:`continuous_entropy`).
     """
     alpha = _check_alpha(alpha)
+    x = _as_rows(image)
+    w = _cell_weights(cell_size, np.shape(image))
     with _quiet():
-        return float(_renyi_rows(_as_rows(image), alpha)[0])
+        return float(_renyi_rows(x, alpha, w)[0])
 
 
 def continuous_entropy(h_grid, dt_s: float, df_hz: float):
@@ -187,16 +270,19 @@ def continuous_entropy(h_grid, dt_s: float, df_hz: float):
     return np.asarray(h_grid, dtype=np.float64) + shift
 
 
-def concentration(image, p: float = 2.0) -> float:
+def concentration(image, p: float = 2.0, cell_size=None) -> float:
     """Stanković's concentration ``log2 M_p``, ``M_p = (Σ |p_i|^{1/p})^p``, in bits on the grid.
 
     ``p_i = image / Σ image`` (L. Stanković, Signal Processing 81(3), 2001); lower is sharper.
     For a non-negative image ``log2 M_2 = H_{1/2}`` (the Rényi entropy of order ½). ``+inf`` if
-    ``Σ image ≤ 0``. Continuous-plane value: add ``log2(dt_s·df_hz)``.
+    ``Σ image ≤ 0``. With ``cell_size`` (s·Hz, as in :func:`renyi_entropy`) the cells are
+    weighted by their area, ``M_p = (Σ ΔA·|p/ΔA|^{1/p})^p``: the value on the plane.
     """
     p = _check_p(p)
+    x = _as_rows(image)
+    w = _cell_weights(cell_size, np.shape(image))
     with _quiet():
-        return float(_concentration_rows(_as_rows(image), p)[0])
+        return float(_concentration_rows(x, p, w)[0])
 
 
 def gini_index(values) -> float:
@@ -220,14 +306,39 @@ def hoyer_sparsity(values) -> float:
         return float(_hoyer_rows(_as_rows(values, "values"))[0])
 
 
-def negative_mass_fraction(image) -> float:
+def negative_mass_fraction(image, cell_size=None) -> float:
     """Share of the absolute mass that is negative, ``Σ|p⁻| / Σ|p|`` ∈ [0, 1] (NaN if all zero).
 
     Zero for any spectrogram-like (a ≥ 1) image; grows as smoothing drops below the Heisenberg
-    cell and Wigner–Ville interference shows through (common practice).
+    cell and Wigner–Ville interference shows through (common practice). ``cell_size`` (s·Hz)
+    weights each cell by its area, as in :func:`renyi_entropy`.
     """
+    x = _as_rows(image)
+    w = _cell_weights(cell_size, np.shape(image))
     with _quiet():
-        return float(_negative_mass_rows(_as_rows(image))[0])
+        return float(_negative_mass_rows(x, w)[0])
+
+
+def negative_share(images, cell_size=None) -> np.ndarray:
+    """Per-window negative share ``Σ ΔA·S⁻ / Σ ΔA·|S|`` of a stack, shape (M,) (NaN if all zero).
+
+    ``images`` (M, C, N) or (C, N); ``cell_size`` (s·Hz) broadcasting to (C, N), or None. The
+    positivity ceiling of a search (``max_negative_share``) bounds the mean of these values.
+    """
+    x = np.asarray(images)
+    if x.ndim == 2:
+        x = x[None]
+    if x.ndim != 3 or x.size == 0:
+        raise ValueError(f"images must have shape (M, C, N) or (C, N), got {np.shape(images)}")
+    w = _cell_weights(cell_size, x.shape[1:])
+    flat = x.reshape(x.shape[0], -1)
+    rows = max(1, _BLOCK_ELEMENTS // flat.shape[1])
+    out = np.empty(x.shape[0], dtype=np.float64)
+    for start in range(0, x.shape[0], rows):
+        with _quiet():
+            out[start:start + rows] = _negative_mass_rows(
+                flat[start:start + rows].astype(np.float64, copy=False), w)
+    return out
 
 
 # --------------------------------------------------------------------------------------------
@@ -273,8 +384,10 @@ class Criterion:
     negative_mass_penalty : float ≥ 0
         λ; adds ``λ · Σ|p⁻|/Σ|p|`` (:func:`negative_mass_fraction`) to every score.
 
-    The grid scores are used as they are: all candidates of one search share the sampling grid,
-    so the ``log2(dt·df)`` shift to the continuous plane is a common constant.
+    :meth:`score` takes ``cell_size`` (s·Hz per cell, e.g. :func:`cell_sizes`): Rényi and
+    concentration values are then on the continuous plane, comparable across grids; Hoyer's
+    measure weights cells relative to their mean size; the Gini index counts cells as they are
+    (a sorted-magnitude measure has no area form here), so it is comparable only on one grid.
     """
 
     name: str = "renyi"
@@ -301,13 +414,15 @@ class Criterion:
             raise ValueError(f"negative_mass_penalty must be a finite number >= 0, got {lam!r}")
         return self
 
-    def score(self, images) -> np.ndarray:
+    def score(self, images, cell_size=None) -> np.ndarray:
         """Score a stack of images.
 
         Parameters
         ----------
         images : array_like, shape (M, C, N), or (C, N) for a single image (then M = 1)
             Transform output (any real dtype; summed in float64).
+        cell_size : array_like broadcasting to (C, N), s·Hz, optional
+            Cell areas (:func:`cell_sizes`); None counts every cell as 1 (bits on the grid).
 
         Returns
         -------
@@ -320,26 +435,27 @@ class Criterion:
         if x.ndim != 3 or x.size == 0:
             raise ValueError(f"images must have shape (M, C, N) or (C, N), got {np.shape(images)}")
         m = x.shape[0]
+        w = _cell_weights(cell_size, x.shape[1:])
         flat = x.reshape(m, -1)
         rows = max(1, _BLOCK_ELEMENTS // flat.shape[1])
         out = np.empty(m, dtype=np.float64)
         for start in range(0, m, rows):  # blocks of windows, not one window at a time
             block = flat[start:start + rows].astype(np.float64, copy=False)
             with _quiet():
-                out[start:start + rows] = self._score_rows(block)
+                out[start:start + rows] = self._score_rows(block, w)
         return out
 
-    def _score_rows(self, x: np.ndarray) -> np.ndarray:
+    def _score_rows(self, x: np.ndarray, w=None) -> np.ndarray:
         if self.name == "renyi":
-            s = _renyi_rows(x, float(self.alpha))
+            s = _renyi_rows(x, float(self.alpha), w)
         elif self.name == "concentration":
-            s = _concentration_rows(x, float(self.p))
+            s = _concentration_rows(x, float(self.p), w)
         else:
             total = x.sum(axis=1)
-            sparse = _gini_rows(x) if self.measure == "gini" else _hoyer_rows(x)
+            sparse = _gini_rows(x) if self.measure == "gini" else _hoyer_rows(x, w)
             s = _invalid_to_inf(-sparse, np.isfinite(total) & (total > 0))
         if self.negative_mass_penalty:
-            s = s + float(self.negative_mass_penalty) * _negative_mass_rows(x)
+            s = s + float(self.negative_mass_penalty) * _negative_mass_rows(x, w)
             s[~np.isfinite(s)] = np.inf
         return s
 

@@ -14,7 +14,10 @@ Physics (SI units: m, s, Hz, N·m, Pa, kg/m³):
   i.e. −6.03 for N·m (≈ 9.05 here); we use 9.1.
 - Source: Brune ω² spectrum (Brune, JGR 75, 1970), moment rate Ṁ(t) = M0 ωc² t e^{−ωc t},
   |Ṁ(f)| = M0 / (1 + (f/fc)²). Corner frequency from the stress drop Δσ:
-  r = 2.34 β / (2π fc) and Δσ = 7 M0 / (16 r³) give fc = 0.4906 β (Δσ/M0)^{1/3}.
+  r = 2.34 β / (2π fc) and Δσ = 7 M0 / (16 r³) give fc = 0.4906 β (Δσ/M0)^{1/3}; that is the
+  S-wave corner. P waves use fc,P = 1.5 fc,S, the ratio of the averaged P and S corner
+  frequencies of a circular crack (Madariaga, "Dynamics of an expanding circular fault",
+  BSSA 66, 1976: k_P = 0.32, k_S = 0.21).
 - Far-field P and S of a double couple in a homogeneous whole space (Aki & Richards, Quantitative
   Seismology, 2nd ed., 2002, ch. 4): u_P = (γ·M̂γ) γ Ṁ(t − r/α) / (4πρα³r),
   u_S = (M̂γ − (γ·M̂γ)γ) Ṁ(t − r/β) / (4πρβ³r). Underground stations: no free surface.
@@ -27,7 +30,9 @@ Physics (SI units: m, s, Hz, N·m, Pa, kg/m³):
 - Guided wave: some events near the reef excite a dispersive channel wave in the low-velocity
   reef layer (Krey, "Channel waves as a tool of applied geophysics in coal mining", Geophysics
   28, 1963); modelled here as an arrival whose group velocity falls linearly with frequency, so
-  low frequencies come first: an up-chirp.
+  low frequencies come first: an up-chirp. Its energy spreads over the layer's cylinder, so its
+  amplitude falls as r^(−1/2) (geometric spreading of a 2-D wavefront; common practice), set
+  equal to the S wave's scale at GUIDED_REF_DISTANCE_M.
 - Sensor: velocity geophone, natural frequency 14 Hz, damping 0.7 (a second-order high-pass;
   common practice), and a digitiser anti-alias low-pass at 0.8 × Nyquist.
 """
@@ -71,6 +76,12 @@ STOPE_CENTRE = np.array([260.0, 120.0, -2450.0])
 STOPE_HALF_SIZE = np.array([330.0, 330.0, 280.0])
 REEF_DEPTH = -2450.0   # the reef layer that carries the guided wave
 REEF_HALF_THICKNESS = 60.0
+P_TO_S_CORNER = 1.5     # fc,P / fc,S of a circular crack (Madariaga, BSSA 66, 1976)
+GUIDED_REF_DISTANCE_M = 200.0  # where the guided wave's r^(−1/2) meets the S wave's 1/r scale
+GUIDED_SWEEP_HZ = (150.0, 900.0)        # the guided wave's group velocity falls linearly ...
+GUIDED_VELOCITY_FRACTION = (0.9, 0.6)   # ... from 0.9 β to 0.6 β across this band
+GUIDED_CENTRE_HZ = 480.0                # Gaussian spectral weight of the guided wave: centre
+GUIDED_WIDTH_HZ = 170.0                 # and standard deviation
 
 
 # --- source physics -----------------------------------------------------------------------------
@@ -124,6 +135,25 @@ def antialias(f_hz, fs_hz, order=12):
     return 1.0 / np.sqrt(1.0 + (np.asarray(f_hz) / (0.4 * fs_hz)) ** (2 * order))
 
 
+def guided_group_velocity(f_hz):
+    """Group velocity (m/s) of the reef guided wave: linear in f across GUIDED_SWEEP_HZ, from
+    0.9 β to 0.6 β, constant outside it."""
+    return np.interp(f_hz, GUIDED_SWEEP_HZ, [GUIDED_VELOCITY_FRACTION[0] * VS, GUIDED_VELOCITY_FRACTION[1] * VS])
+
+
+def guided_sweep_rate_hz_per_s(f_hz, distance_m):
+    """Sweep rate df/dt (Hz/s, > 0: an up-chirp) of the guided wave at frequency f inside
+    GUIDED_SWEEP_HZ, ``distance_m`` from its source.
+
+    Frequency f arrives at its group delay t_g(f) = r / U(f) (stationary phase; common
+    practice), so df/dt = 1 / (dt_g/df) = U(f)² / (−r·U′(f)), with U′ the constant slope of
+    :func:`guided_group_velocity`.
+    """
+    (f0, f1), (u0, u1) = GUIDED_SWEEP_HZ, GUIDED_VELOCITY_FRACTION
+    slope = (u1 - u0) * VS / (f1 - f0)
+    return guided_group_velocity(f_hz) ** 2 / (-slope * np.asarray(distance_m, dtype=float))
+
+
 def random_double_couple(rng) -> np.ndarray:
     """Unit double-couple moment tensor M̂ = n sᵀ + s nᵀ for a random fault normal n ⊥ slip s."""
     n = rng.standard_normal(3)
@@ -162,7 +192,13 @@ class Source:
 
     @property
     def corner_hz(self) -> float:
+        """S-wave (Brune) corner frequency, Hz."""
         return float(corner_frequency_hz(self.m0, self.stress_drop_pa, VS))
+
+    @property
+    def corner_p_hz(self) -> float:
+        """P-wave corner frequency, Hz: P_TO_S_CORNER × the S corner (Madariaga 1976)."""
+        return P_TO_S_CORNER * self.corner_hz
 
 
 def _event_location(rng) -> np.ndarray:
@@ -211,21 +247,23 @@ def _arrivals(src: Source, station_xyz: np.ndarray, f: np.ndarray, buf_t0: float
     r = float(np.linalg.norm(delta))
     gamma = delta / r
     up, us = radiation(src.moment_tensor, gamma)
-    source = brune_moment_rate(f, src.m0, src.corner_hz) * (2j * np.pi * f)  # velocity: × i2πf
+    velocity = 2j * np.pi * f  # moment rate to ground velocity: × i2πf
+    source = brune_moment_rate(f, src.m0, src.corner_hz) * velocity
+    source_p = brune_moment_rate(f, src.m0, src.corner_p_hz) * velocity
     out = np.zeros((3, f.size), dtype=complex)
-    for phase_name, vec, v, q in (("P", up, VP, QP), ("S", us, VS, QS)):
+    for phase_name, vec, v, q, spec_src in (("P", up, VP, QP, source_p), ("S", us, VS, QS, source)):
         t = r / v
-        direct = source * attenuation(f, t, q) / (4 * np.pi * RHO * v ** 3 * r)
+        direct = spec_src * attenuation(f, t, q) / (4 * np.pi * RHO * v ** 3 * r)
         out += np.outer(vec, direct * np.exp(-2j * np.pi * f * (t - buf_t0)))
         out += _coda(rng, f, np.abs(direct) * np.linalg.norm(vec), t, t - buf_t0, CODA_ENERGY[phase_name])
     if src.guided:
         # channel wave: group velocity 0.9 β at 150 Hz falling to 0.6 β at 900 Hz (up-chirp)
-        u = np.interp(f, [150.0, 900.0], [0.9 * VS, 0.6 * VS])
-        group_delay = r / u - buf_t0
+        group_delay = r / guided_group_velocity(f) - buf_t0
         phase = -2 * np.pi * np.cumsum(group_delay) * (f[1] - f[0])
-        band = np.exp(-0.5 * ((f - 480.0) / 170.0) ** 2)
-        strength = 0.6 * np.linalg.norm(us) * np.sqrt(200.0 / max(r, 50.0))  # 2-D spreading
-        spec = source * band * attenuation(f, r / (0.75 * VS), QS) * np.exp(1j * phase) / (4 * np.pi * RHO * VS ** 3 * r)
+        band = np.exp(-0.5 * ((f - GUIDED_CENTRE_HZ) / GUIDED_WIDTH_HZ) ** 2)
+        r0 = GUIDED_REF_DISTANCE_M
+        strength = 0.6 * np.linalg.norm(us) * np.sqrt(r0 / max(r, 50.0))  # 2-D spreading, r^(−1/2)
+        spec = source * band * attenuation(f, r / (0.75 * VS), QS) * np.exp(1j * phase) / (4 * np.pi * RHO * VS ** 3 * r0)
         pol = np.array([rng.uniform(-0.3, 0.3), rng.uniform(-1, 1), rng.uniform(-1, 1)])
         out += np.outer(strength * pol / np.linalg.norm(pol), spec)
     return out

@@ -190,3 +190,62 @@ class ConvergenceLog:
         if stage is None:
             return len(self.evaluations)
         return sum(1 for e in self.evaluations if e["stage"] == stage)
+
+
+# Resamples of the paired gain interval: cheap (no refits), enough for stable 5 % / 95 % tails
+# (Efron & Tibshirani 1993, ch. 19, recommend ≥ 1000 for percentile intervals).
+GAIN_RESAMPLES = 2000
+
+
+def reduce_rows(scores: np.ndarray, how: str) -> np.ndarray:
+    """The corpus reducer applied to each row of ``scores`` (B, M) at once, (B,)."""
+    from scipy.stats import trim_mean
+
+    from search.criteria import TRIM_FRACTION
+
+    if how == "mean":
+        return scores.mean(axis=1)
+    if how == "median":
+        return np.median(scores, axis=1)
+    return trim_mean(scores, TRIM_FRACTION, axis=1)
+
+
+def paired_gain(result, baseline, rng: np.random.Generator, how: str = "mean",
+                resamples: int = GAIN_RESAMPLES, level: float = INTERVAL_LEVEL) -> dict:
+    """Gain in bits of ``result`` over ``baseline`` (reduced baseline − reduced result; > 0 means
+    the result is sharper) with a paired percentile bootstrap interval.
+
+    ``result``, ``baseline``: per-window scores (M,) on the same windows in the same order. Each
+    resample draws M window indices with replacement and reduces both score columns over the
+    same draw, so the interval reflects the per-window differences, not the spread of windows
+    (paired bootstrap: Efron & Tibshirani, "An Introduction to the Bootstrap", 1993, ch. 13).
+    Returns ``{"estimate", "low", "high", "level", "resamples"}``; values are None where a score
+    is not finite.
+    """
+    r = np.asarray(result, dtype=np.float64)
+    b = np.asarray(baseline, dtype=np.float64)
+    if r.shape != b.shape or r.ndim != 1 or r.size == 0:
+        raise ValueError(f"result and baseline must be equal-length 1-D score arrays, got "
+                         f"{r.shape} and {b.shape}")
+    out = {"estimate": None, "low": None, "high": None, "level": level, "resamples": int(resamples)}
+    if not (np.all(np.isfinite(r)) and np.all(np.isfinite(b))):
+        return out
+    out["estimate"] = reduce_scores(b, how) - reduce_scores(r, how)
+    if resamples > 0:
+        draws = rng.integers(0, r.size, size=(int(resamples), r.size), dtype=np.int64)
+        gains = reduce_rows(b[draws], how) - reduce_rows(r[draws], how)
+        low, high = percentile_interval(gains, level)
+        out["low"], out["high"] = _json_float(low), _json_float(high)
+    return out
+
+
+def interval_on(per_window, rng: np.random.Generator, how: str = "mean",
+                resamples: int = GAIN_RESAMPLES, level: float = INTERVAL_LEVEL) -> dict:
+    """``{"objective", "low", "high"}``: the reduced scores with a percentile bootstrap interval
+    (None where a score is not finite)."""
+    s = np.asarray(per_window, dtype=np.float64)
+    if s.size == 0 or not np.all(np.isfinite(s)):
+        return {"objective": None, "low": None, "high": None}
+    draws = rng.integers(0, s.size, size=(int(resamples), s.size), dtype=np.int64)
+    low, high = percentile_interval(reduce_rows(s[draws], how), level)
+    return {"objective": reduce_scores(s, how), "low": _json_float(low), "high": _json_float(high)}

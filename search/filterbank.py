@@ -7,10 +7,12 @@ distribution (DESIGN §3). Its four parameters:
 - ``time_spread_s`` σ_t, s: the standard deviation of the kernel along time;
 - ``cell_area`` a = 4π·σ_t·σ_f·√(1−ρ²), dimensionless: 1 is the Heisenberg minimum (the kernel of
   a Gaussian-window spectrogram), > 1 smooths more, < 1 super-resolves (outputs can go negative);
-- ``chirp_hz_per_s`` β = ρ·σ_f/σ_t, Hz/s: the shear of the kernel (f follows f_c + β·u).
+- ``chirp_hz_per_s`` β = ρ·σ_f/σ_t, Hz/s: the shear of the kernel, which lies along
+  f′ = f_c + β·(t′ − t). β is the sweep rate df/dt of the arrivals the channel renders sharpest,
+  positive for upward sweeps as read off a time–frequency plot (DESIGN §3).
 
 Derived (all exact, no approximation): the conditional frequency spread σ_f√(1−ρ²) = a/(4πσ_t),
-σ_f² = (β·σ_t)² + (a/(4πσ_t))² and ρ = β·σ_t/σ_f.
+σ_f² = (β·σ_t)² + (a/(4πσ_t))² and ρ = β·σ_t/σ_f (ρ has the sign of β).
 
 The reading for people (:meth:`Channel.equivalent`) names the Gaussian spectrogram window with the
 same time spread. Window convention: the window's amplitude is h(u) = exp(−u²/4σ_t²), so |h|² has
@@ -20,6 +22,10 @@ of the amplitude h, 4·√(ln 2)·σ_t ≈ 3.33·σ_t; ``gaussian_std_ms`` = √
 
 A spectrogram with a Gaussian window is the WVD smoothed by the window's own WVD (L. Cohen,
 Time-Frequency Analysis, 1995); its cell area is exactly 1 (de Bruijn 1967; Janssen 1984).
+
+JSON ``version`` 2. Version 1 files wrote the kernel in lag coordinates u = t − t′, so their
+β and ρ had the opposite sign (a channel with β matched arrivals sweeping at −β);
+:meth:`Filterbank.from_json` still reads them, negating both and noting it in the provenance.
 """
 from __future__ import annotations
 
@@ -30,7 +36,12 @@ from dataclasses import dataclass
 import numpy as np
 
 FORMAT = "burstlens-filterbank"
-VERSION = 1
+VERSION = 2
+# Version 1 stored chirp_hz_per_s and correlation with the opposite sign (see the docstring).
+_NEGATED_CHIRP_VERSION = 1
+_CONVERSION_NOTE = ("Converted on load from filterbank file version 1, whose chirp_hz_per_s and "
+                    "correlation had the opposite sign: both were negated, so the filterbank "
+                    "sharpens the same arrivals as before.")
 
 # |a − 1| below this reads as a plain spectrogram in :meth:`Channel.equivalent`.
 SPECTROGRAM_AREA_TOLERANCE = 0.05
@@ -75,7 +86,7 @@ class Channel:
     center_hz: float
     time_spread_s: float
     cell_area: float = 1.0
-    chirp_hz_per_s: float = 0.0
+    chirp_hz_per_s: float = 0.0  # Hz/s, sweep rate of the arrivals matched, > 0 upward
 
     def __post_init__(self):
         object.__setattr__(self, "center_hz", _positive("center_hz", self.center_hz, " Hz"))
@@ -96,7 +107,7 @@ class Channel:
     ) -> "Channel":
         """The channel with time std σ_t, frequency std σ_f and t–f correlation ρ (|ρ| < 1).
 
-        a = 4π·σ_t·σ_f·√(1−ρ²), β = ρ·σ_f/σ_t.
+        a = 4π·σ_t·σ_f·√(1−ρ²), β = ρ·σ_f/σ_t: ρ > 0 matches upward sweeps.
         """
         sigma_t = _positive("time_spread_s", time_spread_s, " s")
         sigma_f = _positive("freq_spread_hz", freq_spread_hz, " Hz")
@@ -118,7 +129,8 @@ class Channel:
 
     @property
     def correlation(self) -> float:
-        """ρ = β·σ_t/σ_f, the kernel's time–frequency correlation (|ρ| < 1)."""
+        """ρ = β·σ_t/σ_f, the kernel's time–frequency correlation (|ρ| < 1; > 0 for upward
+        sweeps, like β)."""
         return self.chirp_hz_per_s * self.time_spread_s / self.freq_spread_hz
 
     def validate(self, sampling_rate_hz: float) -> "Channel":
@@ -146,8 +158,9 @@ class Channel:
         - ``window_std_ms``: σ_t, the time std of |h|², ms;
         - ``gaussian_std_ms``: √2·σ_t, the ``std`` of ``scipy.signal.windows.gaussian``, ms;
         - ``super_resolution``: 1/a (> 1 is finer than any spectrogram), ``smoothing``: a;
-        - ``chirp_hz_per_s``: β; ``matched_sweep_hz_per_s``: −β, the sweep rate df/dt of the
-          arrivals this channel renders sharpest; ``text``: one line for a report.
+        - ``chirp_hz_per_s``: β, Hz/s; ``matched_sweep_hz_per_s``: β too, the sweep rate df/dt
+          of the arrivals this channel renders sharpest (> 0 upward); ``text``: one line for a
+          report, e.g. "…, chirp +800 Hz/s (matches arrivals sweeping upward at 800 Hz/s)".
         """
         area = self.cell_area
         if abs(area - 1.0) < SPECTROGRAM_AREA_TOLERANCE:
@@ -159,10 +172,11 @@ class Channel:
         window_ms = _FWHM_PER_STD * self.time_spread_s * 1e3
         text = f"Gaussian spectrogram window {window_ms:.3g} ms{detail}"
         if self.chirp_hz_per_s != 0.0:
-            # DESIGN §3's kernel G(u, ν) is centred on ν = β·u with u = t − t' (a convolution), so
-            # it is sharpest on arrivals whose frequency moves at −β: say so, people read sweeps
+            # people read sweeps off a plot, so name the direction rather than rely on a sign
+            direction = "upward" if self.chirp_hz_per_s > 0.0 else "downward"
             text += (f", chirp {_format_rate(self.chirp_hz_per_s)} Hz/s (matches arrivals "
-                     f"sweeping {_format_rate(-self.chirp_hz_per_s)} Hz/s)")
+                     f"sweeping {direction} at {_format_rate(self.chirp_hz_per_s, signed=False)}"
+                     f" Hz/s)")
         return {
             "kind": kind,
             "window_ms": window_ms,
@@ -171,7 +185,7 @@ class Channel:
             "super_resolution": 1.0 / area,
             "smoothing": area,
             "chirp_hz_per_s": self.chirp_hz_per_s,
-            "matched_sweep_hz_per_s": -self.chirp_hz_per_s,
+            "matched_sweep_hz_per_s": self.chirp_hz_per_s,
             "text": text,
         }
 
@@ -192,8 +206,9 @@ class Channel:
         return (self.center_hz, self.time_spread_s, self.cell_area, self.chirp_hz_per_s)
 
 
-def _format_rate(rate: float) -> str:
-    return f"{rate:+,.0f}" if abs(rate) >= 10.0 else f"{rate:+.2g}"
+def _format_rate(rate: float, signed: bool = True) -> str:
+    spec = ("+" if signed else "") + (",.0f" if abs(rate) >= 10.0 else ".2g")
+    return format(rate if signed else abs(rate), spec)
 
 
 class Filterbank:
@@ -282,7 +297,7 @@ class Filterbank:
 
     @property
     def chirp_hz_per_s(self) -> np.ndarray:
-        """β per channel, Hz/s, (C,) read-only."""
+        """β per channel, Hz/s, (C,) read-only: the sweep rate matched, > 0 upward."""
         return self._arrays[:, 3]
 
     @property
@@ -353,7 +368,7 @@ class Filterbank:
 
     # -- JSON ------------------------------------------------------------------------------
     def to_json(self, **provenance) -> dict:
-        """JSON-ready dict: ``format`` "burstlens-filterbank", ``version`` 1,
+        """JSON-ready dict: ``format`` "burstlens-filterbank", ``version`` 2,
         ``sampling_rate_hz``, the provenance (stored facts updated by the keywords, e.g.
         ``window_samples``, ``criterion``, ``objective``), and ``channels`` (see
         :meth:`Channel.to_json`)."""
@@ -376,15 +391,22 @@ class Filterbank:
         Each channel needs ``center_hz`` and ``time_spread_s``, and either ``cell_area`` /
         ``chirp_hz_per_s`` (defaults 1 and 0) or ``freq_spread_hz`` / ``correlation``; when both
         are present they must agree. Errors name the field, e.g. ``channels[3].correlation``.
+
+        ``version`` 2, or 1: a version-1 file's ``chirp_hz_per_s`` and ``correlation`` are
+        negated on load (its sign convention was the opposite, see the module docstring), and the
+        provenance gets ``converted_from_version`` = 1 and ``conversion_note`` saying so.
         """
         if not isinstance(obj, Mapping):
             raise ValueError(f"filterbank JSON must be an object, got {type(obj).__name__}")
         if obj.get("format") != FORMAT:
             raise ValueError(f"format={obj.get('format')!r} is not {FORMAT!r}")
-        if obj.get("version") != VERSION:
+        version = obj.get("version")
+        if isinstance(version, bool) or version not in (VERSION, _NEGATED_CHIRP_VERSION):
             raise ValueError(
-                f"version={obj.get('version')!r} is not supported (expected {VERSION})"
+                f"version={version!r} is not supported (expected {VERSION}, or "
+                f"{_NEGATED_CHIRP_VERSION}, read with chirp signs negated)"
             )
+        negate = version == _NEGATED_CHIRP_VERSION
         if "sampling_rate_hz" not in obj:
             raise ValueError("sampling_rate_hz is missing")
         fs = _check_sampling_rate(obj["sampling_rate_hz"])
@@ -394,6 +416,8 @@ class Filterbank:
         channels = []
         for index, item in enumerate(items):
             where = f"channels[{index}]"
+            if negate and isinstance(item, Mapping):
+                item = _negate_chirp(item, where)
             channel = _channel_from_json(item, where)
             try:
                 channels.append(channel.validate(fs))
@@ -403,7 +427,19 @@ class Filterbank:
             k: v for k, v in obj.items()
             if k not in {"format", "version", "sampling_rate_hz", "channels"}
         }
+        if negate:
+            provenance["converted_from_version"] = _NEGATED_CHIRP_VERSION
+            provenance["conversion_note"] = _CONVERSION_NOTE
         return cls(channels, fs, provenance=provenance)
+
+
+def _negate_chirp(item: Mapping, where: str) -> dict:
+    """A version-1 channel with ``chirp_hz_per_s`` and ``correlation`` (where present) negated."""
+    item = dict(item)
+    for name in ("chirp_hz_per_s", "correlation"):
+        if name in item:
+            item[name] = -_finite(f"{where}.{name}", item[name])
+    return item
 
 
 def _channel_from_json(item, where: str) -> Channel:

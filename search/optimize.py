@@ -53,7 +53,7 @@ from search import diagnostics as dg
 from search.settings import SETTINGS_DEFAULTS, resolve_search_options
 
 STATE_FORMAT = "burstlens-search-state"
-STATE_VERSION = 1
+STATE_VERSION = 2
 Q_BOUNDS = (-1.0, 0.5)
 CHUNK = 16                      # windows per task; fixed so results never depend on n_jobs
 # 1-D baseline searches: (grid points over log σ_t, then bounded Brent steps between the best
@@ -120,14 +120,16 @@ def separable(spec: dict) -> bool:
     return not (spec["name"] == "sparsity" and spec["measure"] == "gini")
 
 
-def row_stats(images: np.ndarray, spec: dict) -> np.ndarray:
-    """``(M, C, 4)`` float64 sums over time of each (window, channel) row S of the images.
+def row_stats(images: np.ndarray, spec: dict, cell: np.ndarray) -> np.ndarray:
+    """``(M, C, 4)`` float64 area-weighted sums over time of each (window, channel) row S.
 
-    Columns: [q, Σ S, Σ|S|, Σ max(−S, 0)] with q the criterion's own sum — Σ S^α (Rényi, odd
+    Columns: ΔA_c·[q, Σ S, Σ|S|, Σ max(−S, 0)] with ``cell`` (C,) the channels' cell areas ΔA_c
+    (s·Hz, ``search.criteria.cell_sizes``) and q the criterion's own sum — Σ S^α (Rényi, odd
     powers keep the sign; Σ S·log2|S| at α = 1), Σ |S|^{1/p} (Stanković's concentration) or
-    Σ S² (Hoyer). With p = S/Σ S over the whole image every separable criterion of
-    ``search.criteria`` is a function of the per-window totals of these columns (see
-    :func:`scores_from_stats`). Non-separable criteria (Gini) keep the rows, ``(M, C, N)``.
+    Σ S² (Hoyer). Every separable criterion of ``search.criteria`` scored with those cell sizes is
+    a function of the per-window totals of these columns (:func:`scores_from_totals`), and so is
+    the negative share (:func:`shares_from_totals`). Non-separable criteria (Gini) keep the rows,
+    ``(M, C, N)``.
     """
     if not separable(spec):
         return np.asarray(images, dtype=np.float32)
@@ -142,7 +144,8 @@ def row_stats(images: np.ndarray, spec: dict) -> np.ndarray:
         q = (np.abs(s) ** (1.0 / spec["p"])).sum(-1)
     else:  # Hoyer
         q = (s * s).sum(-1)
-    return np.stack([q, s.sum(-1), np.abs(s).sum(-1), np.maximum(-s, 0.0).sum(-1)], axis=-1)
+    stats = np.stack([q, s.sum(-1), np.abs(s).sum(-1), np.maximum(-s, 0.0).sum(-1)], axis=-1)
+    return stats * np.asarray(cell, dtype=np.float64)[:, None]
 
 
 def _signed_power(s: np.ndarray, alpha: float) -> np.ndarray:
@@ -153,15 +156,16 @@ def _signed_power(s: np.ndarray, alpha: float) -> np.ndarray:
     return np.sign(s) * np.abs(s) ** alpha
 
 
-def scores_from_totals(total: np.ndarray, spec: dict, n_cells: int) -> np.ndarray:
+def scores_from_totals(total: np.ndarray, spec: dict, n_cells: int, mean_cell: float) -> np.ndarray:
     """Criterion values from the per-window totals over channels of :func:`row_stats` columns.
 
-    ``total`` (..., 4); ``n_cells`` C·N, the image size (Hoyer needs it). With T = Σ S:
-    Rényi H_α = log2(Σ S^α / T^α)/(1−α) (Baraniuk et al., IEEE Trans. IT 47(4), 2001), at α = 1
-    −Σ S log2|S|/T + log2 T; concentration p·log2 Σ|S|^{1/p} − log2 T (Stanković, Signal
-    Processing 81(3), 2001); Hoyer −(√K − Σ|S|/√ΣS²)/(√K − 1) (Hoyer, JMLR 5, 2004); plus
-    λ·Σ S⁻/Σ|S|. Invalid (+inf) unless T > 0 and the inner sum is positive, as in
-    ``search.criteria``.
+    ``total`` (..., 4); ``n_cells`` C·N, the image size, and ``mean_cell`` the mean cell area
+    (Hoyer's measure weights cells relative to it, as ``search.criteria`` does). With
+    T = Σ ΔA·S: Rényi H_α = log2(Σ ΔA·S^α / T^α)/(1−α) (Baraniuk et al., IEEE Trans. IT 47(4),
+    2001), at α = 1 −Σ ΔA·S log2|S|/T + log2 T; concentration p·log2 Σ ΔA|S|^{1/p} − log2 T
+    (Stanković, Signal Processing 81(3), 2001); Hoyer −(√K − l1/l2)/(√K − 1) on relative cell
+    weights (Hoyer, JMLR 5, 2004); plus λ·Σ ΔA·S⁻/Σ ΔA|S|. Invalid (+inf) unless T > 0 and the
+    inner sum is positive, as in ``search.criteria``.
     """
     q, t, l1, neg = (total[..., i] for i in range(4))
     name = spec["name"]
@@ -182,7 +186,8 @@ def scores_from_totals(total: np.ndarray, spec: dict, n_cells: int) -> np.ndarra
             root_k = math.sqrt(n_cells)
             l2 = np.sqrt(q)
             valid &= l2 > 0
-            h = -(root_k - l1 / np.where(l2 > 0, l2, 1.0)) / (root_k - 1.0)
+            ratio = l1 / np.where(l2 > 0, l2, 1.0) / math.sqrt(mean_cell)
+            h = -(root_k - ratio) / (root_k - 1.0)
         lam = spec["negative_mass_penalty"]
         if lam:
             h = h + lam * neg / np.where(l1 > 0, l1, 1.0)
@@ -190,38 +195,66 @@ def scores_from_totals(total: np.ndarray, spec: dict, n_cells: int) -> np.ndarra
     return h
 
 
-def scores_from_stats(stats: np.ndarray, spec: dict, n_samples: int) -> np.ndarray:
-    """``(M,)`` per-window criterion values from :func:`row_stats` output ``(M, C, k)`` (summed
-    over channels in channel order; non-separable criteria are scored by ``search.criteria``)."""
+def shares_from_totals(total: np.ndarray) -> np.ndarray:
+    """Negative share Σ ΔA·S⁻ / Σ ΔA·|S| from :func:`row_stats` totals (..., 4); 0 for an
+    all-zero image (it has no negative mass; its score is already invalid)."""
+    l1, neg = total[..., 2], total[..., 3]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(l1 > 0, neg / np.where(l1 > 0, l1, 1.0), 0.0)
+
+
+def scores_from_stats(stats: np.ndarray, spec: dict, n_samples: int, cell: np.ndarray):
+    """``(M,)`` per-window criterion values and ``(M,)`` negative shares from :func:`row_stats`
+    output ``(M, C, k)`` (summed over channels in channel order; non-separable criteria are
+    scored by ``search.criteria``)."""
+    cell = np.asarray(cell, dtype=np.float64)
     if not separable(spec):
-        return np.asarray(make_criterion(spec).score(stats), dtype=np.float64)
-    return scores_from_totals(stats.sum(axis=1), spec, stats.shape[1] * n_samples)
+        from search.criteria import negative_share
+
+        shares = np.nan_to_num(negative_share(stats, cell[:, None]), nan=0.0)
+        return np.asarray(make_criterion(spec).score(stats, cell[:, None]), dtype=np.float64), shares
+    total = stats.sum(axis=1)
+    return (scores_from_totals(total, spec, stats.shape[1] * n_samples, float(np.mean(cell))),
+            shares_from_totals(total))
 
 
-def _score_task(token, windows, start, stop, fs, centers, sigma, area, beta, spec, eps, want_stats):
-    """Per-window criterion (and optionally row stats) of one filterbank on windows[start:stop]."""
+def _score_task(token, windows, start, stop, fs, centers, sigma, area, beta, cell, spec, eps,
+                want_stats):
+    """Per-window criterion and negative share (and optionally row stats) of one filterbank on
+    windows[start:stop]."""
     from search.transform import transform
 
     t0 = time.perf_counter()
     images = transform(_prepared(token, windows, start, stop),
                        make_filterbank(centers, sigma, area, beta, fs), eps=eps)
-    scores = np.asarray(make_criterion(spec).score(images), dtype=np.float64)
-    stats = row_stats(images, spec) if want_stats else None
-    return scores, stats, time.perf_counter() - t0
+    stats = row_stats(images, spec, cell)
+    scores, shares = scores_from_stats(stats, spec, images.shape[-1], cell)
+    return scores, shares, (stats if want_stats else None), time.perf_counter() - t0
 
 
-def _stats_task(token, windows, start, stop, fs, centers, sigma, area, beta, spec, eps):
+def _stats_task(token, windows, start, stop, fs, centers, sigma, area, beta, cell, spec, eps):
     """Row stats of a (usually one-channel) filterbank on windows[start:stop]."""
     from search.transform import transform
 
     images = transform(_prepared(token, windows, start, stop),
                        make_filterbank(centers, sigma, area, beta, fs), eps=eps)
-    return row_stats(images, spec)
+    return row_stats(images, spec, cell)
 
 
 # ---------------------------------------------------------------------------------------------
 # Sharing the windows with workers once, and mapping tasks in a fixed order
 # ---------------------------------------------------------------------------------------------
+
+@dataclass
+class Scored:
+    """One filterbank scored on an evaluator's windows: per-window ``scores`` (n,), negative
+    ``shares`` (n,), row ``stats`` (n, C, k) when asked for, and the work's ``seconds``."""
+
+    scores: np.ndarray
+    shares: np.ndarray
+    stats: np.ndarray | None
+    seconds: float
+
 
 class _Evaluator:
     """Scores filterbanks on fixed chunks of one window array, serially or through joblib.
@@ -232,11 +265,12 @@ class _Evaluator:
     """
 
     def __init__(self, windows: np.ndarray, fs: float, spec: dict, eps: float, n_jobs: int,
-                 chunk: int = CHUNK):
+                 cell: np.ndarray, chunk: int = CHUNK):
         from joblib import Parallel
         from joblib.parallel import get_active_backend
 
         self.fs, self.spec, self.eps = float(fs), spec, eps
+        self.cell = np.asarray(cell, dtype=np.float64)    # (C,) cell areas of the channel grid
         self.n = len(windows)
         self.chunks = [(s, min(s + chunk, self.n)) for s in range(0, self.n, chunk)]
         self.token = uuid.uuid4().hex
@@ -271,25 +305,28 @@ class _Evaluator:
 
         return self.parallel(delayed(fn)(*args) for fn, args in calls)
 
-    def score(self, params: list[tuple], want_stats: bool = False):
-        """Per-window scores of each filterbank in ``params`` (tuples of per-channel arrays
-        centers, sigma, area, beta). Returns a list of (scores (n,), stats or None, seconds)."""
-        calls = [(_score_task, (self.token, self.shared, s, e, self.fs, *p, self.spec, self.eps,
-                                want_stats)) for p in params for s, e in self.chunks]
+    def score(self, params: list[tuple], want_stats: bool = False) -> list["Scored"]:
+        """Per-window scores of each whole-grid filterbank in ``params`` (tuples of per-channel
+        arrays centers, sigma, area, beta), in window order."""
+        calls = [(_score_task, (self.token, self.shared, s, e, self.fs, *p, self.cell, self.spec,
+                                self.eps, want_stats)) for p in params for s, e in self.chunks]
         out = self._run(calls)
         k = len(self.chunks)
         results = []
         for i in range(len(params)):
             part = out[i * k:(i + 1) * k]
-            scores = np.concatenate([r[0] for r in part])
-            stats = np.concatenate([r[1] for r in part]) if want_stats else None
-            results.append((scores, stats, float(sum(r[2] for r in part))))
+            results.append(Scored(np.concatenate([r[0] for r in part]),
+                                  np.concatenate([r[1] for r in part]),
+                                  np.concatenate([r[2] for r in part]) if want_stats else None,
+                                  float(sum(r[3] for r in part))))
         return results
 
-    def stats(self, p: tuple) -> np.ndarray:
-        """Row stats ``(n, c, k)`` of one filterbank (per-channel arrays) on all windows."""
-        calls = [(_stats_task, (self.token, self.shared, s, e, self.fs, *p, self.spec, self.eps))
-                 for s, e in self.chunks]
+    def stats(self, p: tuple, channels=None) -> np.ndarray:
+        """Row stats ``(n, c, k)`` on all windows of the filterbank ``p`` (per-channel arrays)
+        whose rows are the grid's ``channels`` (default: the whole grid)."""
+        cell = self.cell if channels is None else self.cell[np.asarray(channels)]
+        calls = [(_stats_task, (self.token, self.shared, s, e, self.fs, *p, cell, self.spec,
+                                self.eps)) for s, e in self.chunks]
         return np.concatenate(self._run(calls))
 
     def close(self):
@@ -388,7 +425,13 @@ class SearchSpace:
 
     ``centers_hz`` (C,); ``sigma_bounds_s`` [4/fs, window/6]; ``area_bounds`` cell-area bounds;
     ``beta_bound`` |β| limit (0 when chirps are off); ``f_ref_hz`` the reference frequency of the
-    family (geometric mean of the band for log spacing, arithmetic for linear).
+    family (geometric mean of the band for log spacing, arithmetic for linear); ``widths_hz``
+    (C,) each channel's frequency cell Δf_c (``search.criteria.channel_widths_hz``).
+
+    The grid must sample every kernel the search visits: a channel's image is never narrower
+    in frequency than its kernel's conditional spread a/(4π σ_t), so σ_t is capped per channel
+    at a/(4π Δf_c) (:meth:`grid_cap_s`). A longer kernel would fall between channel centres,
+    lose off-channel energy and be rewarded for it; the cap is where more channels would help.
     """
 
     fs: float
@@ -397,6 +440,22 @@ class SearchSpace:
     sigma_bounds_s: tuple
     area_bounds: tuple
     beta_bound: float
+    widths_hz: np.ndarray
+
+    @property
+    def cell(self) -> np.ndarray:
+        """(C,) cell areas Δf_c/fs (s·Hz) of the channel rows."""
+        return self.widths_hz / self.fs
+
+    def grid_cap_s(self, area) -> np.ndarray:
+        """(C,) longest time spread (s) each channel's grid spacing samples at cell area ``area``."""
+        return np.asarray(area, dtype=np.float64) / (4.0 * math.pi * self.widths_hz)
+
+    def clip_sigma(self, sigma, area) -> np.ndarray:
+        """σ_t clipped into its bounds, then to the grid cap (the cap wins: an unsampled kernel
+        would make the score wrong, a short one only makes it worse)."""
+        sigma = np.clip(np.asarray(sigma, dtype=np.float64), *self.sigma_bounds_s)
+        return np.minimum(sigma, self.grid_cap_s(area))
 
     @property
     def dims(self) -> tuple:
@@ -428,9 +487,8 @@ class SearchSpace:
         """Per-channel (centers, sigma, area, beta) arrays of the family point ``x``."""
         v = dict(zip(self.dims, (float(t) for t in x)))
         f = self.centers_hz
-        sigma = np.exp(v["log_sigma_ref"]) * (f / self.f_ref_hz) ** v["q"]
-        sigma = np.clip(sigma, *self.sigma_bounds_s)
         area = np.full(f.shape, math.exp(v["log_cell_area"]) if "log_cell_area" in v else self.area_bounds[0])
+        sigma = self.clip_sigma(np.exp(v["log_sigma_ref"]) * (f / self.f_ref_hz) ** v["q"], area)
         beta = np.full(f.shape, v.get("chirp_hz_per_s", 0.0))
         return (f, sigma, area, beta)
 
@@ -442,8 +500,11 @@ class SearchSpace:
         return out
 
     def constant(self, sigma: float, area: float = 1.0, beta: float = 0.0) -> tuple:
+        """One time spread for every channel (clipped to the grid cap where it binds)."""
         f = self.centers_hz
-        return (f, np.full(f.shape, sigma), np.full(f.shape, area), np.full(f.shape, beta))
+        area = np.full(f.shape, area)
+        return (f, np.minimum(np.full(f.shape, sigma), self.grid_cap_s(area)), area,
+                np.full(f.shape, beta))
 
     def spectrogram_in_space(self) -> bool:
         return self.area_bounds[0] <= 1.0 <= self.area_bounds[1]
@@ -477,7 +538,9 @@ class FilterbankSearch:
                  evaluations=SETTINGS_DEFAULTS["evaluations"], time_limit_s=None,
                  bootstrap=8, seed=0, n_jobs=1, subset=64, batch=4, initial_points=None,
                  stall_rounds=3, stall_tol=1e-3, refine_sweeps=1, refine_maxiter=2,
-                 refine_min_share=0.1, smoothness=1.0, eps=1e-6):
+                 refine_min_share=0.1, smoothness=1.0, eps=1e-6,
+                 max_negative_share=SETTINGS_DEFAULTS["max_negative_share"],
+                 held_out=SETTINGS_DEFAULTS["held_out"]):
         self.channels = channels
         self.band_hz = band_hz
         self.spacing = spacing
@@ -500,6 +563,8 @@ class FilterbankSearch:
         self.refine_min_share = refine_min_share
         self.smoothness = smoothness
         self.eps = eps
+        self.max_negative_share = max_negative_share
+        self.held_out = held_out
 
     # -- settings ---------------------------------------------------------------------------
 
@@ -509,13 +574,20 @@ class FilterbankSearch:
                 "cell_area": self.cell_area, "chirp": self.chirp, "refine": self.refine,
                 "evaluations": self.evaluations, "time_limit_s": self.time_limit_s,
                 "bootstrap": self.bootstrap, "seed": self.seed, "n_jobs": self.n_jobs,
-                "subset": self.subset}
+                "subset": self.subset, "max_negative_share": self.max_negative_share,
+                "held_out": self.held_out}
         windows = np.asarray(corpus.windows)
         if windows.ndim != 2 or windows.shape[0] < 1:
             raise ValueError(f"corpus.windows must be a non-empty (M, N) array, got shape {windows.shape}")
         if not np.all(np.isfinite(windows)):
             raise ValueError("corpus.windows holds NaN or Inf samples")
         s = resolve_search_options(opts, corpus.sampling_rate_hz, windows.shape[1])
+        if s["chirp"]:
+            from search.sweeps import sweep_rate_bound
+
+            found = sweep_rate_bound(windows, s["sampling_rate_hz"], s["band_hz"])
+            s["chirp_bound_hz_per_s"] = float(found["chirp_bound_hz_per_s"])
+            s["chirp_bound_source"] = found["source"]
         for name, value, ok in (("batch", self.batch, isinstance(self.batch, int) and self.batch >= 1),
                                 ("initial_points", self.initial_points,
                                  self.initial_points is None or (isinstance(self.initial_points, int)
@@ -548,9 +620,12 @@ class FilterbankSearch:
         lo, hi = s["band_hz"]
         centers = np.asarray(center_grid(s["band_hz"], s["channels"], s["spacing"]), dtype=np.float64)
         f_ref = math.sqrt(lo * hi) if s["spacing"] == "log" else 0.5 * (lo + hi)
+        from search.criteria import channel_widths_hz
+
         return SearchSpace(fs=s["sampling_rate_hz"], centers_hz=centers, f_ref_hz=f_ref,
                            sigma_bounds_s=tuple(s["time_spread_bounds_s"]),
-                           area_bounds=tuple(s["cell_area"]), beta_bound=s["chirp_bound_hz_per_s"])
+                           area_bounds=tuple(s["cell_area"]), beta_bound=s["chirp_bound_hz_per_s"],
+                           widths_hz=channel_widths_hz(centers))
 
     # -- public API -------------------------------------------------------------------------
 
@@ -605,22 +680,30 @@ class _Run:
                   "judge": (0.9, 1.0)}
 
     def __init__(self, est, corpus, settings, space, progress, checkpoint, should_stop):
+        from search.split import held_out_split
+
         self.est, self.corpus, self.s, self.space = est, corpus, settings, space
         self.progress_cb, self.checkpoint_cb, self.should_stop = progress, checkpoint, should_stop
-        self.windows = np.ascontiguousarray(np.asarray(corpus.windows, dtype=np.float64))
+        self.all_windows = np.ascontiguousarray(np.asarray(corpus.windows, dtype=np.float64))
+        self.split = held_out_split(getattr(corpus, "window_meta", None), len(self.all_windows),
+                                    settings["window_s"], settings["held_out"], settings["seed"])
+        # stages 0–2 see only the fit windows; the judgement sees only the held-out ones
+        self.windows = self.all_windows[self.split.fit]
         self.spec = settings["criterion"]
         self.how = self.spec["reduce"]
         self.t_start = time.perf_counter()
         self.full = None
         self.sub = None
+        self.held = None
 
     # -- plumbing ---------------------------------------------------------------------------
 
     def fingerprint(self) -> dict:
         s = {k: v for k, v in self.s.items() if k not in ("time_limit_s", "jobs")}
         return {"source_hash": getattr(self.corpus, "source_hash", None),
-                "windows": list(self.windows.shape), "settings": s,
-                "checksum": float(np.sum(self.windows[:, ::7]))}
+                "windows": list(self.all_windows.shape), "settings": s,
+                "checksum": float(np.sum(self.all_windows[:, ::7])),
+                "held_out": self.split.held_out.tolist()}
 
     def elapsed(self) -> float:
         return self.state["elapsed_s"] + (time.perf_counter() - self.t_start)
@@ -632,7 +715,7 @@ class _Run:
     def cancelled(self) -> bool:
         return bool(self.should_stop and self.should_stop())
 
-    def report(self, stage: str, fraction_in_stage: float, **extra):
+    def report(self, stage: str, fraction_in_stage: float, save: bool = True, **extra):
         lo, hi = self.STAGE_SPAN[stage]
         st = self.state
         msg = {"stage": stage, "round": st["round"], "evaluations": st["log"].count("family"),
@@ -642,25 +725,38 @@ class _Run:
         msg.update(extra)
         if self.progress_cb:
             self.progress_cb(msg)
-        if self.checkpoint_cb:
+        if self.checkpoint_cb and save:
             snap = copy.deepcopy(self.state)
             snap["elapsed_s"] = self.elapsed()
             self.checkpoint_cb(snap)
 
     def evaluator(self, which: str) -> _Evaluator:
+        """``full``: all fit windows; ``subset``: the stage-1 subset of them; ``held``: the
+        held-out windows."""
+        def make(windows):
+            return _Evaluator(windows, self.space.fs, self.spec, self.s["eps"], self.s["jobs"],
+                              self.space.cell)
         if which == "full":
             if self.full is None:
-                self.full = _Evaluator(self.windows, self.space.fs, self.spec, self.s["eps"],
-                                       self.s["jobs"])
+                self.full = make(self.windows)
             return self.full
+        if which == "held":
+            if self.held is None:
+                self.held = make(self.all_windows[self.split.held_out])
+            return self.held
         if self.sub is None:
-            idx = np.asarray(self.state["subset"], dtype=np.int64)
-            self.sub = _Evaluator(self.windows[idx], self.space.fs, self.spec, self.s["eps"],
-                                  self.s["jobs"])
+            self.sub = make(self.windows[np.asarray(self.state["subset"], dtype=np.int64)])
         return self.sub
 
+    def ceiling(self, scores, shares) -> float:
+        """Corpus objective: the reduced scores, or +inf when the mean negative share of the
+        windows exceeds ``max_negative_share`` (the positivity ceiling, whatever the criterion)."""
+        if float(np.mean(shares)) > self.s["max_negative_share"]:
+            return math.inf
+        return dg.reduce_scores(scores, self.how)
+
     def close(self):
-        for ev in (self.full, self.sub):
+        for ev in (self.full, self.sub, self.held):
             if ev is not None:
                 ev.close()
 
@@ -714,7 +810,8 @@ class _Run:
     # stage 0 ------------------------------------------------------------------------------
 
     def baselines(self):
-        """Best spectrogram and scalogram by a 1-D search over all windows; the pseudo-WVD."""
+        """Best spectrogram and scalogram by a 1-D search over the fit windows (the pseudo-WVD
+        has nothing to fit: the judgement scores it on the held-out windows)."""
         space, full, base = self.space, self.evaluator("full"), self.state["baselines"]
         lo, hi = space.bounds("log_sigma_ref")
         log = self.state["log"]
@@ -722,49 +819,45 @@ class _Run:
         def search(kind, make):
             def objective(x):
                 self.check_cancel()
-                t0 = time.perf_counter()
-                scores, _, secs = full.score([make(math.exp(x))])[0]
-                y = dg.reduce_scores(scores, self.how)
-                log.add(f"baseline:{kind}", 0, {"time_spread_s": math.exp(x)}, y, secs)
-                cache[x] = scores
+                r = full.score([make(math.exp(x))])[0]
+                y = self.ceiling(r.scores, r.shares)
+                log.add(f"baseline:{kind}", 0, {"time_spread_s": math.exp(x)}, y, r.seconds)
                 return y
-            cache = {}
             grid, maxiter = BASELINE_SEARCH[kind]
             x, y, tried = dg.search_1d(objective, lo, hi, grid=grid, maxiter=maxiter, xatol=0.01)
-            return math.exp(x), y, cache[x], len(tried)
+            return math.exp(x), y, len(tried)
 
         if "spectrogram" not in base:
-            sigma, y, scores, n = search("spectrogram", lambda s: space.constant(s))
-            base["spectrogram"] = {"objective": y, "per_window": scores, "evaluations": n,
+            sigma, y, n = search("spectrogram", lambda s: space.constant(s))
+            base["spectrogram"] = {"objective": y, "evaluations": n,
                                    "parameters": {"time_spread_s": sigma, "cell_area": 1.0,
                                                   "chirp_hz_per_s": 0.0}}
-            self.report("baselines", 0.4)
+            self.report("baselines", 0.5)
         if "scalogram" not in base:
-            f = space.centers_hz
-            sigma, y, scores, n = search(
-                "scalogram", lambda s: (f, s * space.f_ref_hz / f, np.ones_like(f), np.zeros_like(f)))
-            base["scalogram"] = {"objective": y, "per_window": scores, "evaluations": n,
+            sigma, y, n = search("scalogram", self.scalogram)
+            base["scalogram"] = {"objective": y, "evaluations": n,
                                  "parameters": {"cycles": sigma * space.f_ref_hz,
                                                 "time_spread_at_reference_s": sigma,
                                                 "reference_hz": space.f_ref_hz, "cell_area": 1.0}}
-            self.report("baselines", 0.8)
-        if "pseudo_wvd" not in base:
-            base["pseudo_wvd"] = self.pseudo_wvd()
         self.state["phase"] = "family"
         self.report("baselines", 1.0)
 
-    def pseudo_wvd(self) -> dict:
+    def scalogram(self, sigma_ref: float) -> tuple:
+        """Constant-Q Gaussian scalogram: σ_t = σ_ref·f_ref/f_c (a = 1), clipped to the grid cap."""
+        f, ones = self.space.centers_hz, np.ones_like(self.space.centers_hz)
+        return (f, np.minimum(sigma_ref * self.space.f_ref_hz / f, self.space.grid_cap_s(ones)),
+                ones, np.zeros_like(f))
+
+    def pseudo_wvd(self) -> tuple:
         """The pseudo-WVD as the limit of the kernel: time spread of a quarter sample and a lag
-        window far wider than the window (cell area chosen so σ_f√(1−ρ²)·window ≪ 1)."""
+        window far wider than the window (cell area chosen so σ_f√(1−ρ²)·window ≪ 1). Far
+        narrower than any channel spacing, so its score shows what interference and an
+        unsampled grid do, not a sharpness to beat."""
         space, n = self.space, self.windows.shape[1]
         sigma = 0.25 / space.fs
         area = 4 * math.pi * sigma * 1e-3 / (n / space.fs)   # σ_f√(1−ρ²) = 1e-3 / window
-        scores, _, secs = self.evaluator("full").score([space.constant(sigma, area)])[0]
-        y = dg.reduce_scores(scores, self.how)
-        self.state["log"].add("baseline:pseudo_wvd", 0, {"time_spread_s": sigma, "cell_area": area}, y, secs)
-        return {"objective": y, "per_window": scores, "evaluations": 1,
-                "parameters": {"time_spread_s": sigma, "cell_area": area,
-                               "note": "kernel limit: quarter-sample time spread, lag window 1000x the window"}}
+        f = space.centers_hz
+        return (f, np.full(f.shape, sigma), np.full(f.shape, area), np.zeros_like(f))
 
     # stage 1 ------------------------------------------------------------------------------
 
@@ -821,9 +914,9 @@ class _Run:
                     xs = opt.ask(n_points=n) if n > 1 else [opt.ask()]
             xs = [[float(v) for v in x] for x in xs]
             results = sub.score([space.family(x) for x in xs])
-            ys = [dg.reduce_scores(r[0], self.how) for r in results]
+            ys = [self.ceiling(r.scores, r.shares) for r in results]
             for x, y, r in zip(xs, ys, results):
-                log.add("family", fam["round"], space.describe(x), y, r[2])
+                log.add("family", fam["round"], space.describe(x), y, r.seconds)
             worst = max([y for y in (e["objective"] for e in log.evaluations if e["stage"] == "family")
                          if y is not None] or [0.0])
             with threadpool_limits(1):
@@ -857,8 +950,8 @@ class _Run:
         want = separable(self.spec)
         if fam["best_x"] is not None:
             p = self.space.family(fam["best_x"])
-            scores, stats, _ = self.evaluator("full").score([p], want_stats=want)[0]
-            candidates.append(("family", dg.reduce_scores(scores, self.how), p, stats))
+            r = self.evaluator("full").score([p], want_stats=want)[0]
+            candidates.append(("family", self.ceiling(r.scores, r.shares), p, r.stats))
         if self.space.spectrogram_in_space() or not candidates:
             candidates.append(("spectrogram", base["objective"], self.space.family(
                 self.space.point(base["parameters"]["time_spread_s"])), None))
@@ -883,6 +976,18 @@ class _Run:
         if coord == "log_area":
             return (*sp.bounds("log_cell_area"), math.log(2.0), 0.005)
         return (-sp.beta_bound, sp.beta_bound, 0.25 * sp.beta_bound, 0.002 * sp.beta_bound)
+
+    def channel_limits(self, coord: str, params) -> tuple:
+        """(C,) low and high limits of a coordinate per channel: the global bounds, narrowed so
+        that the grid keeps sampling each kernel (σ_t ≤ a/(4π Δf_c), SearchSpace.grid_cap_s)."""
+        glo, ghi = self.coord_setup(coord)[:2]
+        sigma, area, _ = params
+        lo, hi = np.full(sigma.shape, glo), np.full(sigma.shape, ghi)
+        if coord == "log_sigma":
+            hi = np.minimum(hi, np.log(self.space.grid_cap_s(area)))
+        elif coord == "log_area":
+            lo = np.maximum(lo, np.log(4.0 * math.pi * sigma * self.space.widths_hz))
+        return lo, hi
 
     @staticmethod
     def coord_values(coord: str, params) -> np.ndarray:
@@ -909,21 +1014,27 @@ class _Run:
         return float(self.s["smoothness"] * total / (c - 2))
 
     def objective(self, stats, params) -> float:
-        """Refinement objective: reduced criterion over all windows plus the penalty."""
-        scores = scores_from_stats(stats, self.spec, self.windows.shape[1])
-        return dg.reduce_scores(scores, self.how) + self.penalty(*params)
+        """Refinement objective: reduced criterion over the fit windows (+inf above the
+        positivity ceiling) plus the penalty."""
+        scores, shares = scores_from_stats(stats, self.spec, self.windows.shape[1], self.space.cell)
+        return self.ceiling(scores, shares) + self.penalty(*params)
 
-    def one_changed_scores(self, stats, channels, trial_stats) -> np.ndarray:
-        """``(M, n)`` per-window criterion with only channel ``channels[i]``'s row replaced by
-        ``trial_stats[:, i]`` (the other rows as in ``stats``)."""
+    def one_changed_scores(self, stats, channels, trial_stats) -> tuple:
+        """``(M, n)`` per-window criterion and negative shares with only channel
+        ``channels[i]``'s row replaced by ``trial_stats[:, i]`` (the other rows as in ``stats``)."""
         total = stats.sum(axis=1)
         totals = total[:, None, :] - stats[:, channels, :] + trial_stats
-        return scores_from_totals(totals, self.spec, stats.shape[1] * self.windows.shape[1])
+        scores = scores_from_totals(totals, self.spec, stats.shape[1] * self.windows.shape[1],
+                                    float(np.mean(self.space.cell)))
+        return scores, shares_from_totals(totals)
 
-    def reduce_columns(self, scores) -> np.ndarray:
+    def reduce_columns(self, scores, shares) -> np.ndarray:
+        """Objective of each column (one trial each), with the positivity ceiling."""
         if self.how == "mean" and np.all(np.isfinite(scores)):
-            return scores.mean(axis=0)
-        return np.array([dg.reduce_scores(scores[:, i], self.how) for i in range(scores.shape[1])])
+            out = scores.mean(axis=0)
+        else:
+            out = np.array([dg.reduce_scores(scores[:, i], self.how) for i in range(scores.shape[1])])
+        return np.where(shares.mean(axis=0) > self.s["max_negative_share"], np.inf, out)
 
     def refinement(self):
         """Stage 2: coordinate sweeps, one coordinate of every channel at a time.
@@ -995,11 +1106,12 @@ class _Run:
         """One coordinate for every active channel; returns the number of channels changed."""
         ref, log = self.state["refine"], self.state["log"]
         params, stats, current = ref["params"], ref["stats"], ref["objective"]
-        glo, ghi, half, tol = self.coord_setup(coord)
+        half, tol = self.coord_setup(coord)[2:]
+        glo, ghi = self.channel_limits(coord, params)
         x0 = self.coord_values(coord, params)
         gens, pending, best = {}, {}, {}
         for c in ref["active"]:
-            lo, hi = max(glo, x0[c] - half), min(ghi, x0[c] + half)
+            lo, hi = max(glo[c], x0[c] - half), min(ghi[c], x0[c] + half)
             if hi - lo <= tol:
                 continue
             gen = bounded_brent(lo, hi, float(x0[c]), current, tol, self.s["refine_maxiter"])
@@ -1018,9 +1130,8 @@ class _Run:
             trial = self.with_coord(coord, params, chans, values)
             t0 = time.perf_counter()
             rows = full.stats((self.space.centers_hz[chans], trial[0][chans], trial[1][chans],
-                               trial[2][chans]))
-            scores = self.one_changed_scores(stats, chans, rows)
-            objs = self.reduce_columns(scores)
+                               trial[2][chans]), chans)
+            objs = self.reduce_columns(*self.one_changed_scores(stats, chans, rows))
             for i, c in enumerate(chans):   # the penalty with channel c changed alone
                 one = self.with_coord(coord, params, [c], [values[i]])
                 objs[i] += self.penalty(*one)
@@ -1099,8 +1210,10 @@ class _Run:
     # stage 3 ------------------------------------------------------------------------------
 
     def judge(self):
-        """Stage 3: score the result on all windows, fall back to the spectrogram if it is
-        better, bootstrap intervals, baselines, gain, and the diagnostics record."""
+        """Stage 3, on the held-out windows only: score the result and the baselines there,
+        the gain over the best spectrogram with a paired bootstrap interval, the fallback
+        decision, negative shares, bounds hit and onset timing; parameter stability intervals
+        from refits on resamples of the fit windows; the diagnostics record."""
         st, s, space = self.state, self.s, self.space
         fam, ref, base = st["family"], st["refine"], st["baselines"]
         if ref is not None:
@@ -1114,57 +1227,23 @@ class _Run:
             p = space.family(space.point(sigma or math.exp(np.mean(space.bounds("log_sigma_ref")))))
             origin = "spectrogram"
         cancelled = st["stop_reason"] == "cancelled"
-        fallback = None
-        per_window = stats = None
-        result = None
-        if not cancelled:
-            full = self.evaluator("full")
-            want = separable(self.spec) and s["bootstrap"] > 0
-            per_window, stats, _ = full.score([p], want_stats=want)[0]
-            result = dg.reduce_scores(per_window, self.how)
-            spec = base["spectrogram"]
-            if space.spectrogram_in_space() and not result <= spec["objective"]:
-                fallback = {"to": "spectrogram", "from": origin,
-                            "objective_before": _finite_or_none(result),
-                            "reason": "the searched filterbank scored worse than the best "
-                                      "spectrogram on all windows"}
-                p = space.constant(spec["parameters"]["time_spread_s"])
-                per_window, stats, _ = full.score([p], want_stats=want)[0]
-                result = dg.reduce_scores(per_window, self.how)
-                origin = "spectrogram"
-        boot_rng = np.random.default_rng(np.random.SeedSequence([s["seed"], 2]))
-        indices = dg.bootstrap_indices(len(self.windows), s["bootstrap"], boot_rng)
+        self.report("judge", 0.0, save=False)
         d = {"stop_reason": st["stop_reason"] or "budget",
              "evaluations": st["log"].evaluations, "best_so_far": st["log"].best_so_far,
              "refinement": self._refinement_records()}
+        fallback = judgement = None
+        result = None
         if cancelled:
             d.update(bootstrap=None, baselines=None, result=None, gain_bits=None, per_window=None)
         else:
-            res = dg.objective_interval(per_window, indices, self.how)
-            d["result"] = {"objective": _finite_or_none(res["estimate"]), "low": res["low"],
-                           "high": res["high"]}
-            d["baselines"] = {}
-            for name in ("spectrogram", "scalogram", "pseudo_wvd"):
-                b = base[name]
-                iv = dg.objective_interval(b["per_window"], indices, self.how)
-                d["baselines"][name] = {"objective": _finite_or_none(b["objective"]),
-                                        "low": iv["low"], "high": iv["high"],
-                                        "parameters": b["parameters"],
-                                        "evaluations": b["evaluations"]}
-            d["gain_bits"] = _finite_or_none(base["spectrogram"]["objective"] - result)
-            d["per_window"] = {"result": [_finite_or_none(v) for v in per_window],
-                               "spectrogram": [_finite_or_none(v) for v in
-                                               base["spectrogram"]["per_window"]]}
-            d["bootstrap"] = {
-                "resamples": int(s["bootstrap"]),
-                "objective": {"estimate": _finite_or_none(res["estimate"]), "low": res["low"],
-                              "high": res["high"]},
-                "level": dg.INTERVAL_LEVEL,
-                "method": "percentile intervals over window resamples; channel intervals by a "
-                          "one-step parabolic refit of each parameter on each resample, the "
-                          "other channels held at their fitted values, hulled with the estimate "
-                          "(at_optimum false: all refits on one side of it)",
-                "channels": self._channel_intervals(p, stats, indices) if len(indices) else None}
+            p, origin, fallback, judgement, parts = self.held_out_judgement(p, origin)
+            result = judgement["result"]["objective"]
+            d["result"] = judgement["result"]
+            d["baselines"] = parts["baselines"]
+            d["gain_bits"] = judgement["gain_bits"]["estimate"]
+            d["per_window"] = parts["per_window"]
+            d["bootstrap"] = self.stability(p, origin)
+        d["judgement"] = judgement
         d["fallback"] = fallback
         d["origin"] = origin
         d["spectrogram_in_search_space"] = space.spectrogram_in_space()
@@ -1180,9 +1259,10 @@ class _Run:
             "channels_refined": len(ref["active"] or []),
             "changed_channels": sorted(int(k) for k, r in ref["records"].items()
                                        if r["status"] == "improved")}
-        d["subset"] = [int(i) for i in st["subset"]]
+        d["subset"] = [int(i) for i in self.split.fit[np.asarray(st["subset"], dtype=np.int64)]]
+        d["split"] = self.split.to_json()
         rejections = list(getattr(self.corpus, "rejections", []) or [])
-        d["windows"] = {"used": int(len(self.windows)), "rejected": len(rejections),
+        d["windows"] = {"used": int(len(self.all_windows)), "rejected": len(rejections),
                         "rejected_by_reason": dg.rejected_by_reason(rejections)}
         d["corpus"] = self.corpus.to_json() if hasattr(self.corpus, "to_json") else None
         settings = dict(s)
@@ -1198,6 +1278,9 @@ class _Run:
                 "window_samples": int(self.windows.shape[1]),
                 "criterion": {k: v for k, v in self.spec.items()},
                 "objective": _finite_or_none(result), "gain_bits": d["gain_bits"],
+                "judged_on": None if judgement is None else (
+                    "the fitted windows (held_out = 0)" if judgement["in_sample"]
+                    else f"{judgement['held_out_windows']} held-out windows"),
                 "corpus_hash": getattr(self.corpus, "source_hash", None),
                 "settings": settings, "burstlens_version": __version__})
         self.est.diagnostics_ = d
@@ -1208,6 +1291,157 @@ class _Run:
                               "best_objective": _finite_or_none(result if result is not None
                                                                 else st["best"]),
                               "fraction": 1.0})
+
+    def held_out_judgement(self, p, origin):
+        """Score the result and the baselines on the held-out windows (the fit windows when
+        ``held_out`` is 0) and decide the fallback there. Returns (parameters, origin, fallback,
+        the ``judgement`` record, {"baselines", "per_window"})."""
+        s, space, base = self.s, self.space, self.state["baselines"]
+        in_sample = self.split.held_out.size == 0
+        judged = self.split.fit if in_sample else self.split.held_out
+        ev = self.evaluator("full" if in_sample else "held")
+        spectrogram = space.constant(base["spectrogram"]["parameters"]["time_spread_s"])
+        reference = {"spectrogram": spectrogram,
+                     "scalogram": self.scalogram(base["scalogram"]["parameters"]
+                                                 ["time_spread_at_reference_s"]),
+                     "pseudo_wvd": self.pseudo_wvd()}
+        scored = ev.score([p, *reference.values()], want_stats=True)
+        r, refs = scored[0], dict(zip(reference, scored[1:]))
+        self.report("judge", 0.5, save=False)
+
+        def draws():   # the same draws for every quantity, so intervals are paired
+            return np.random.default_rng(np.random.SeedSequence([s["seed"], 5]))
+
+        gain = dg.paired_gain(r.scores, refs["spectrogram"].scores, draws(), self.how)
+        fallback = None
+        if space.spectrogram_in_space() and not (gain["estimate"] is not None
+                                                 and gain["estimate"] >= 0):
+            where = "the fitted windows" if in_sample else "the held-out windows"
+            fallback = {"to": "spectrogram", "from": origin,
+                        "objective_before": _finite_or_none(self.ceiling(r.scores, r.shares)),
+                        "gain_before": gain,
+                        "reason": f"the searched filterbank scored worse than the best "
+                                  f"spectrogram on {where}"}
+            p, r, origin = spectrogram, refs["spectrogram"], "spectrogram"
+            gain = dg.paired_gain(r.scores, r.scores, draws(), self.how)
+        baselines = {}
+        for name, scored_ref in refs.items():
+            entry = dg.interval_on(scored_ref.scores, draws(), self.how)
+            entry.update(parameters=dict(base[name]["parameters"]) if name in base else
+                         {"time_spread_s": float(reference[name][1][0]),
+                          "cell_area": float(reference[name][2][0]),
+                          "note": "kernel limit: quarter-sample time spread, lag window 1000x "
+                                  "the window; far narrower than the channel spacing"},
+                         evaluations=base[name]["evaluations"] if name in base else 1,
+                         objective_fit=_finite_or_none(base[name]["objective"]) if name in base
+                         else None,
+                         negative_share=_finite_or_none(np.mean(scored_ref.shares)))
+            baselines[name] = entry
+        result = dg.interval_on(r.scores, draws(), self.how)
+        judgement = {
+            "in_sample": in_sample, "held_out_share": s["held_out"],
+            "held_out_windows": int(self.split.held_out.size),
+            "fit_windows": int(self.split.fit.size), "guard_windows": int(self.split.guard.size),
+            "grouping": self.split.grouping,
+            "gain_bits": gain, "result": result,
+            "spectrogram": {k: baselines["spectrogram"][k] for k in ("objective", "low", "high")},
+            "negative_share": self.negative_shares(r),
+            **self.bounds_hit(p, float(np.mean(r.shares))),
+            "onset": self.onset_timing(judged, p, spectrogram)}
+        per_window = {"result": [_finite_or_none(v) for v in r.scores],
+                      "spectrogram": [_finite_or_none(v) for v in refs["spectrogram"].scores],
+                      "windows": [int(i) for i in judged]}
+        return p, origin, fallback, judgement, {"baselines": baselines, "per_window": per_window}
+
+    def negative_shares(self, r: Scored) -> dict:
+        """Negative share of the judged images: the mean over windows (what the ceiling bounds)
+        and per channel (pooled over windows)."""
+        x = np.asarray(r.stats, dtype=np.float64)
+        if separable(self.spec):
+            neg, l1 = x[:, :, 3].sum(axis=0), x[:, :, 2].sum(axis=0)
+        else:
+            neg, l1 = np.maximum(-x, 0.0).sum(axis=(0, 2)), np.abs(x).sum(axis=(0, 2))
+        per_channel = np.where(l1 > 0, neg / np.where(l1 > 0, l1, 1.0), 0.0)
+        return {"overall": _finite_or_none(np.mean(r.shares)),
+                "per_channel": [float(v) for v in per_channel],
+                "max_allowed": self.s["max_negative_share"]}
+
+    def bounds_hit(self, p, negative_share: float) -> dict:
+        """Which settings' bounds the result's parameters sit on (relative tolerance 1e-6):
+        ``bounds_hit`` the setting names, ``bounds_detail`` the bound, value and channels. The
+        positivity ceiling counts as hit when the judged negative share is within 10 % of it
+        (the search then stopped there, not at an optimum of the criterion)."""
+        space = self.space
+        _, sigma, area, beta = (np.asarray(a, dtype=np.float64) for a in p)
+        cap = space.grid_cap_s(area)
+        checks = [("time_spread_s", "lower", space.sigma_bounds_s[0], sigma, sigma < cap),
+                  ("time_spread_s", "upper", space.sigma_bounds_s[1], sigma, sigma < cap),
+                  ("channels", "grid spacing caps time_spread_s", None, sigma, None)]
+        if space.area_bounds[1] > space.area_bounds[0]:
+            checks += [("cell_area", "lower", space.area_bounds[0], area, None),
+                       ("cell_area", "upper", space.area_bounds[1], area, None)]
+        if space.beta_bound > 0:
+            checks += [("chirp_hz_per_s", "lower", -space.beta_bound, beta, None),
+                       ("chirp_hz_per_s", "upper", space.beta_bound, beta, None)]
+        detail = []
+        for setting, bound, value, values, where in checks:
+            target = cap if value is None else np.full(values.shape, value)
+            on = np.isclose(values, target, rtol=1e-6, atol=0.0)
+            if where is not None:    # a kernel held by the grid cap is reported as such
+                on &= where
+            if np.any(on):
+                detail.append({"setting": setting, "bound": bound,
+                               "value": None if value is None else float(value),
+                               "channels": [int(c) for c in np.flatnonzero(on)]})
+        ceiling = self.s["max_negative_share"]
+        if ceiling < 1 and negative_share >= 0.9 * ceiling:
+            detail.append({"setting": "max_negative_share", "bound": "upper", "value": ceiling,
+                           "channels": []})
+        return {"bounds_hit": sorted({e["setting"] for e in detail}), "bounds_detail": detail}
+
+    def onset_timing(self, judged, p, spectrogram) -> dict | None:
+        """AIC onsets of the channel-summed image energy against the trigger onsets of the
+        judged burst windows (search.onset), for the result and the best spectrogram."""
+        from search.onset import image_onsets
+        from search.transform import transform
+
+        meta = getattr(self.corpus, "window_meta", None) or []
+        offsets = [meta[i].get("trigger_offset_s") if i < len(meta) and isinstance(meta[i], dict)
+                   else None for i in judged]
+        keep = np.array([i for i, o in zip(judged, offsets) if o is not None], dtype=np.int64)
+        if keep.size == 0:
+            return None
+        trigger = np.array([o for o in offsets if o is not None], dtype=np.float64)
+        out = {}
+        for name, params in (("result", p), ("spectrogram", spectrogram)):
+            fb = make_filterbank(*params, self.space.fs)
+            onsets = np.concatenate([image_onsets(transform(self.all_windows[keep[k:k + CHUNK]],
+                                                            fb, eps=self.s["eps"]), self.space.fs)
+                                     for k in range(0, keep.size, CHUNK)])
+            errors = 1e3 * np.abs(onsets - trigger)
+            out[name] = {"median_ms": float(np.median(errors)),
+                         "p90_ms": float(np.percentile(errors, 90)), "windows": int(keep.size)}
+        return out
+
+    def stability(self, p, origin) -> dict:
+        """Parameter stability intervals: one-step refits of each channel's parameters on
+        resamples of the fit windows (``bootstrap`` resamples; no refit of the whole search)."""
+        s = self.s
+        boot_rng = np.random.default_rng(np.random.SeedSequence([s["seed"], 2]))
+        indices = dg.bootstrap_indices(len(self.windows), s["bootstrap"], boot_rng)
+        channels = None
+        if len(indices) and separable(self.spec):
+            ref = self.state["refine"]
+            stats = ref["stats"] if origin == "refinement" and ref and ref["stats"] is not None \
+                else self.evaluator("full").stats(p)
+            channels = self._channel_intervals(p, stats, indices)
+        return {"resamples": int(s["bootstrap"]),
+                "purpose": "parameter stability intervals (refits on resamples of the fit windows)",
+                "level": dg.INTERVAL_LEVEL,
+                "method": "channel intervals by a one-step parabolic refit of each parameter on "
+                          "each resample, the other channels held at their fitted values, hulled "
+                          "with the estimate (at_optimum false: all refits on one side of it)",
+                "channels": channels}
 
     def _refinement_records(self) -> list:
         ref = self.state["refine"]
@@ -1241,7 +1475,7 @@ class _Run:
         space, full = self.space, self.evaluator("full")
         params = [np.asarray(a, dtype=np.float64) for a in p[1:]]
         n_ch = len(space.centers_hz)
-        zero = scores_from_stats(stats, self.spec, self.windows.shape[1])
+        zero = scores_from_stats(stats, self.spec, self.windows.shape[1], space.cell)[0]
         shares = self._shares(stats)
         active = np.flatnonzero(shares >= self.s["refine_min_share"] / n_ch)
         keys = {"log_sigma": "time_spread_s", "log_area": "cell_area", "beta": "chirp_hz_per_s"}
@@ -1266,13 +1500,13 @@ class _Run:
             for d in (-h, h):
                 trial = self.with_coord(coord, params, active, x0 + d)
                 rows = full.stats((space.centers_hz[active], trial[0][active], trial[1][active],
-                                   trial[2][active]))
-                sides.append(self.one_changed_scores(stats, active, rows))
-            glo, ghi = self.coord_setup(coord)[:2]
+                                   trial[2][active]), active)
+                sides.append(self.one_changed_scores(stats, active, rows)[0])
+            glo, ghi = (v[active] for v in self.channel_limits(coord, params))
             for i, c in enumerate(active):
                 steps = dg.one_step_refits(sides[0][:, i], zero, sides[1][:, i], h, 2 * h,
                                            indices, self.how)
-                lo, hi = dg.percentile_interval(np.clip(x0[i] + steps, glo, ghi))
+                lo, hi = dg.percentile_interval(np.clip(x0[i] + steps, glo[i], max(glo[i], ghi[i])))
                 # every resample moving the parameter the same way means the estimate is not a
                 # local optimum of the data (pressed against a bound, or not converged)
                 out[c].setdefault("at_optimum", True)

@@ -33,11 +33,15 @@ SETTINGS_DEFAULTS: dict = {
     "max_windows": None,      # corpus option: reader default
     "jobs": 1,
     "subset": 64,             # windows scoring the stage-1 family search
+    "max_negative_share": 0.01,  # positivity ceiling: share of the image's absolute mass
+    "held_out": 0.25,         # share of windows kept out of the fit and used to judge it
 }
 
 CORPUS_KEYS = ("window_s", "windowing", "max_windows", "seed")
 SEARCH_KEYS = ("channels", "band_hz", "spacing", "criterion", "cell_area", "chirp", "refine",
-               "evaluations", "time_limit_s", "bootstrap", "seed", "jobs", "subset")
+               "evaluations", "time_limit_s", "bootstrap", "seed", "jobs", "subset",
+               "max_negative_share", "held_out")
+MAX_HELD_OUT = 0.9
 
 CRITERIA = ("renyi", "concentration", "sparsity")
 CRITERION_DEFAULTS = {"name": "renyi", "alpha": 3.0, "p": 2.0, "measure": "gini",
@@ -169,6 +173,15 @@ def validate_settings(settings: dict) -> dict:
         out["max_windows"] = _int("max_windows", out["max_windows"], minimum=1)
     out["jobs"] = _int("jobs", out["jobs"], minimum=1, allow=(-1,))
     out["subset"] = _int("subset", out["subset"], minimum=1)
+    out["max_negative_share"] = _real("max_negative_share", out["max_negative_share"],
+                                      nonnegative=True)
+    if out["max_negative_share"] > 1:
+        _fail("max_negative_share", out["max_negative_share"],
+              "is a share of the image's absolute mass, at most 1")
+    out["held_out"] = _real("held_out", out["held_out"], nonnegative=True)
+    if out["held_out"] > MAX_HELD_OUT:
+        _fail("held_out", out["held_out"], f"at most {MAX_HELD_OUT:g} of the windows can be held out "
+                                           f"(0 judges on the fitted windows)")
     return out
 
 

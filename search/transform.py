@@ -2,21 +2,23 @@
 
 For a window x (N samples at fs) with analytic signal z and channel c = (f_c, σ_t, a, β):
 
-    S_c[n] = Σ_{n'} Σ_k W[n', k] · G_c((n − n')/fs, f_k − f_c) · Δf / fs,
+    S_c[n] = Σ_{n'} Σ_k W[n', k] · G_c((n' − n)/fs, f_k − f_c) · Δf / fs,
 
 W the discrete pseudo-WVD (:mod:`search.wvd`), G_c(u, ν) = g_t(u)·N(ν; βu, σ_f²(1−ρ²)) of unit
-mass, g_t the N(0, σ_t²) density; linear (zero-padded) in time, circular in frequency. Summing
-over k in closed form leaves, with τ_m = 2m/fs and r[n, m] = z[n+m]·z*[n−m],
+mass with u = t′ − t = (n′ − n)/fs, g_t the N(0, σ_t²) density; linear (zero-padded) in time,
+circular in frequency. The kernel lies along f′ = f_c + β·(t′ − t), so a channel with β > 0
+sharpens arrivals sweeping upward at β Hz/s. Summing over k in closed form leaves, with
+τ_m = 2m/fs and r[n, m] = z[n+m]·z*[n−m],
 
-    S_c[n] = Re Σ_{n'} g_t((n−n')/fs)/fs · Σ_{m=0}^{L_c} d_{c,m} · r[n', m] · e^{−j2πβτ_m(n−n')/fs},
+    S_c[n] = Re Σ_{n'} g_t((n−n')/fs)/fs · Σ_{m=0}^{L_c} d_{c,m} · r[n', m] · e^{+j2πβτ_m(n−n')/fs},
     d_{c,m} = (2 − δ_{m0}) · w_c(τ_m) · e^{−j2π f_c τ_m},   w_c(τ) = exp(−2π² σ_f²(1−ρ²) τ²).
 
 - β = 0 (fast path): the lag sum comes first, for all channels at once, as real matrix products
   (rows × 2(L+1)) @ (2(L+1) × C) on [Re r, Im r] interleaved, channels grouped by lag count;
   then one Gaussian time convolution per channel, batched through one real FFT.
-- β ≠ 0: in the ambiguity domain, S_c = Re IFFT_θ[Σ_m R(θ, m)·d_{c,m}·ĝ_c(θ + βτ_m)], R the FFT
+- β ≠ 0: in the ambiguity domain, S_c = Re IFFT_θ[Σ_m R(θ, m)·d_{c,m}·ĝ_c(θ − βτ_m)], R the FFT
   over time of r, ĝ_c(θ) = exp(−2π²σ_t²θ²) periodised over fs, keeping only the band
-  |θ + βτ_m| ≤ √(2 ln(1/ε))/(2πσ_t); the banded sums of all chirped channels form one sparse
+  |θ − βτ_m| ≤ √(2 ln(1/ε))/(2πσ_t); the banded sums of all chirped channels form one sparse
   matrix applied to R. R is formed lag by lag (an FFT over time per lag) or, when the bands
   reach few θ bins, only at those bins (Doppler rows: for each bin, one FFT over the lags of
   the spectrum of z times its shifted copy, the cross-correlation theorem); a cost model picks
@@ -286,7 +288,10 @@ def _chirp_plan(filterbank, idx, n_samples, eps) -> _ChirpPlan:
     spread = filterbank.conditional_freq_spread_hz[idx]
     sigma = filterbank.time_spread_s[idx]
     centers = filterbank.center_hz[idx]
-    chirps = filterbank.chirp_hz_per_s[idx]
+    # The helpers below take the kernel's shear s in the convolution variable t − t′, where
+    # the kernel G (centred on ν = β·u, u = t′ − t, DESIGN §3) is sheared by −β: a channel
+    # with +β then sharpens arrivals sweeping upward at β Hz/s. The only place the sign is set.
+    shears = -filterbank.chirp_hz_per_s[idx]
     lags = np.atleast_1d(lag_count(spread, fs, n_samples, eps))
     n_chirp, n_lags = idx.size, int(lags.max()) + 1
     # The banded θ-domain kernel is the whole time Gaussian, aliased with period P: P must hold
@@ -300,7 +305,7 @@ def _chirp_plan(filterbank, idx, n_samples, eps) -> _ChirpPlan:
         "doppler": 2 * sfft.next_fast_len(-(-(n_samples + max(half, 2 * (n_lags - 1))) // 2),
                                           real=True),
     }
-    reached = _bins_reached(chirps, sigma, lags, sizes["doppler"], fs, k)
+    reached = _bins_reached(shears, sigma, lags, sizes["doppler"], fs, k)
     method = _chirp_method(sigma, lags, n_samples, sizes, int(reached.sum()), fs, k)
     size = sizes[method]
     if method == "lag":  # row blocks of lags start..start+width−1 stacked: b·(C·P) + c·P + q
@@ -327,7 +332,7 @@ def _chirp_plan(filterbank, idx, n_samples, eps) -> _ChirpPlan:
     column = np.empty(data.size, dtype=index)
     end = 0
     for c in range(n_chirp):
-        q, m, values = _chirp_entries(centers[c], sigma[c], spread[c], chirps[c], int(lags[c]),
+        q, m, values = _chirp_entries(centers[c], sigma[c], spread[c], shears[c], int(lags[c]),
                                       size, fs, k)
         part = slice(end, end + q.size)
         end += q.size
@@ -368,18 +373,18 @@ def _segments(bins: np.ndarray) -> list[tuple[int, int, int]]:
     return [(int(a), int(b - a), int(bins[a])) for a, b in zip(starts, ends)]
 
 
-def _chirp_entries(center, sigma, spread, chirp, lags, size, fs, k):
-    """One chirped channel's banded ambiguity-domain weights d_m·ĝ(θ_q + βτ_m) for lags
-    0..L: flat arrays (q, m, value) sorted by m, q the θ bin mod P. Bins j (unwrapped) around
-    θ = −βτ_m with |θ_j + βτ_m| ≲ band; aliases j ≡ q (mod P) are summed by the sparse layout,
-    which periodises ĝ over fs."""
+def _chirp_entries(center, sigma, spread, shear, lags, size, fs, k):
+    """One chirped channel's banded ambiguity-domain weights d_m·ĝ(θ_q + sτ_m) for lags
+    0..L, s = −β the shear in t − t′ (see _chirp_plan): flat arrays (q, m, value) sorted by m,
+    q the θ bin mod P. Bins j (unwrapped) around θ = −sτ_m with |θ_j + sτ_m| ≲ band; aliases
+    j ≡ q (mod P) are summed by the sparse layout, which periodises ĝ over fs."""
     m = np.arange(lags + 1)
     tau = 2.0 * m / fs
     d = np.where(m == 0, 1.0, 2.0) * np.exp(-2.0 * np.pi**2 * (spread * tau) ** 2)
     d = d * np.exp(-2j * np.pi * center * tau)
     band = _half_bands(sigma, size, fs, k)
-    j = _band_starts(chirp, tau, band, size, fs)[:, None] + np.arange(_band_bins(band))
-    offset = j * (fs / size) + chirp * tau[:, None]
+    j = _band_starts(shear, tau, band, size, fs)[:, None] + np.arange(_band_bins(band))
+    offset = j * (fs / size) + shear * tau[:, None]
     values = d[:, None] * np.exp(-2.0 * np.pi**2 * (sigma * offset) ** 2)
     return (j % size).ravel(), np.repeat(m, j.shape[1]), values.ravel()
 
@@ -389,9 +394,9 @@ def _half_bands(sigma, size, fs, k):
     return k * size / (2.0 * np.pi * np.asarray(sigma) * fs)
 
 
-def _band_starts(chirp, tau, band, size, fs) -> np.ndarray:
-    """First θ bin (unwrapped) of each lag's band, ⌈−βτ_m·P/fs − band⌉."""
-    return np.ceil(-chirp * tau * size / fs - band).astype(np.int64)
+def _band_starts(shear, tau, band, size, fs) -> np.ndarray:
+    """First θ bin (unwrapped) of each lag's band, ⌈−sτ_m·P/fs − band⌉ (s = −β)."""
+    return np.ceil(-shear * tau * size / fs - band).astype(np.int64)
 
 
 def _band_bins(band):
@@ -399,11 +404,11 @@ def _band_bins(band):
     return np.floor(2.0 * np.asarray(band)).astype(np.int64) + 2
 
 
-def _bins_reached(chirps, sigma, lags, size, fs, k) -> np.ndarray:
-    """(P,) bool: the θ bins mod P that some channel's band reaches at some lag."""
+def _bins_reached(shears, sigma, lags, size, fs, k) -> np.ndarray:
+    """(P,) bool: the θ bins mod P that some channel's band reaches at some lag (s = −β)."""
     reached = np.zeros(size, dtype=bool)
-    for chirp, band, n_lags in zip(chirps, _half_bands(sigma, size, fs, k), lags):
-        starts = _band_starts(chirp, 2.0 * np.arange(n_lags + 1) / fs, band, size, fs)
+    for shear, band, n_lags in zip(shears, _half_bands(sigma, size, fs, k), lags):
+        starts = _band_starts(shear, 2.0 * np.arange(n_lags + 1) / fs, band, size, fs)
         # the hull of the lag bands (they overlap unless a band moves more than its width
         # from one lag to the next; a superset costs time, never accuracy)
         low, high = int(starts.min()), int(starts.max()) + int(_band_bins(band))
@@ -583,7 +588,7 @@ def _lag_major(plan, z, chunk, scratch, fft_workers):
         buffer[:, :, n_samples:] = 0.0
         autocorrelation(z, stop - 1, lag_start=start, layout="lag", out=buffer[:, :, :n_samples])
         ambiguity = sfft.fft(buffer, axis=2, overwrite_x=True, workers=fft_workers)
-        for i in range(n_windows):  # Σ_m R(θ, m)·d_m·ĝ(θ + βτ_m) over the bands, all channels
+        for i in range(n_windows):  # Σ_m R(θ, m)·d_m·ĝ(θ − βτ_m) over the bands, all channels
             spectra[i] += matrix @ ambiguity[i].reshape(-1)
     return sfft.ifft(spectra.reshape(n_windows, n_chirp, size), axis=2, overwrite_x=True,
                      workers=fft_workers)

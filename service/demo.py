@@ -3,8 +3,8 @@
 Starts ``burstlens serve`` on a free loopback port with a temporary data dir, uploads
 ``demo_corpus/`` through :mod:`service.client`, queues a tuning job, follows it with a progress
 bar, saves filterbank.json, diagnostics.json and report.html under ``demo_out/``, prints a short
-summary (gain in bits over the best spectrogram, stop reason, the sharpest channels in familiar
-terms) and stops the server.
+summary (first the gain in bits over the best spectrogram on held-out windows and any warnings,
+then the stop reason and the sharpest channels in familiar terms) and stops the server.
 """
 from __future__ import annotations
 
@@ -54,9 +54,13 @@ def sharpest_channels(filterbank: dict, count: int = 3) -> list[dict]:
 
 
 def summary_lines(filterbank: dict, diagnostics: dict, elapsed_s: float) -> list[str]:
+    """The held-out gain and any warnings first (``service.verdict``), then the run."""
+    from service import verdict
+
     result = diagnostics.get("result") or {}
     spectrogram = (diagnostics.get("baselines") or {}).get("spectrogram") or {}
-    lines = [f"stop reason: {diagnostics.get('stop_reason')}"]
+    lines = verdict.lines(diagnostics)
+    lines.append(f"stop reason: {diagnostics.get('stop_reason')}")
     gain = diagnostics.get("gain_bits")
     if isinstance(gain, (int, float)):
         lines.append(f"gain over the best spectrogram: {gain:.3f} bits "
@@ -107,9 +111,9 @@ def run(corpus_dir: Path, out_dir: Path, settings: dict) -> int:
                 return 1
             saved = client.download_results(job["id"], out_dir)
             filterbank, diagnostics = client.filterbank(job["id"]), client.diagnostics(job["id"])
+        print("\n".join(summary_lines(filterbank, diagnostics, time.monotonic() - start)))
         for path in saved.values():
             print(f"saved {path}")
-        print("\n".join(summary_lines(filterbank, diagnostics, time.monotonic() - start)))
         return 0
     finally:
         if proc.poll() is None:

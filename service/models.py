@@ -72,6 +72,12 @@ class JobSettings(_Strict):
     seed: int | None = Field(None, ge=0, le=2**32 - 1, description="Random seed.")
     windowing: Literal["bursts", "whole", "sliding"] | None = Field(None, description="Windowing.")
     max_windows: int | None = Field(None, ge=1, le=1_000_000, description="Cap on windows used.")
+    held_out: float | None = Field(
+        None, ge=0, le=0.9, description="Share of windows kept out of the fit to judge the result "
+                                        "on (default 0.25; 0 judges in-sample).")
+    max_negative_share: float | None = Field(
+        None, ge=0, le=1, description="Largest share of the image's absolute mass that may be "
+                                      "negative (default 0.01).")
     jobs: int | None = Field(None, ge=1, le=256, description="Parallel evaluations (the worker "
                                                              "caps it at its cores).")
 

@@ -10,6 +10,9 @@ Inputs: ``filterbank_json`` is the filterbank JSON of DESIGN §8 (``Filterbank.t
 ``diagnostics`` the ``FilterbankSearch.diagnostics_`` dict (DEVELOPERS.md lists its keys),
 ``windows`` the corpus windows ``(M, N)`` float in window order (or None: the example-burst plot
 is then omitted with a note), ``sampling_rate_hz`` their rate in Hz (None: the filterbank's).
+
+The page leads with the gain on held-out windows and, when any applies, a box of warnings; both
+come from ``service.verdict`` so the page and the command line never disagree.
 """
 from __future__ import annotations
 
@@ -22,7 +25,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from service import plots
+from service import plots, verdict
 
 PLOT_NAMES = ("tiling", "examples", "convergence", "channels", "baselines")
 CHANNEL_FIELDS = ("center_hz", "time_spread_s", "cell_area", "chirp_hz_per_s")
@@ -142,17 +145,22 @@ def example_indices(per_window: Mapping, available: int) -> list[tuple[str, int,
     """(label, window index, gain in bits) for the sharpest gain, the median and the worst window.
 
     Gain per window = spectrogram score − result score (both lower-is-sharper), from
-    ``diagnostics['per_window']`` in window order. Only the first ``available`` windows are
-    candidates (a caller may hand over the leading part of a large corpus); windows whose scores
-    are not finite are left out; duplicates are dropped.
+    ``diagnostics['per_window']``: scores of the judged (held-out) windows, whose corpus indices
+    are ``per_window['windows']`` (absent in older files: the scores are in corpus order). Only
+    corpus windows below ``available`` are candidates (a caller may hand over the leading part
+    of a large corpus); windows whose scores are not finite are left out; duplicates are dropped.
     """
     result = np.asarray(per_window.get("result") or [], dtype=float)
     spectrogram = np.asarray(per_window.get("spectrogram") or [], dtype=float)
     if result.size != spectrogram.size:
         raise ValueError(f"diagnostics['per_window']: result has {result.size} scores but "
                          f"spectrogram {spectrogram.size}")
-    count = min(result.size, available)
-    gain = (spectrogram - result)[:count]
+    where = per_window.get("windows")
+    where = np.arange(result.size) if where is None else np.asarray(where, dtype=np.int64)
+    if where.size != result.size:
+        raise ValueError(f"diagnostics['per_window']: {where.size} window indices for "
+                         f"{result.size} scores")
+    gain = np.where(where < available, spectrogram - result, np.nan)
     valid = np.flatnonzero(np.isfinite(gain))
     if valid.size == 0:
         raise ValueError("diagnostics['per_window']: no window has finite scores")
@@ -163,7 +171,7 @@ def example_indices(per_window: Mapping, available: int) -> list[tuple[str, int,
     for label, index in picks:
         if index not in seen:
             seen.add(index)
-            chosen.append((label, index, float(gain[index])))
+            chosen.append((label, int(where[index]), float(gain[index])))
     return chosen[:EXAMPLE_ROWS]
 
 
@@ -277,7 +285,8 @@ def _channels(channels: list[dict], diagnostics: Mapping) -> Plot:
     alt = (f"Per-channel parameters against centre frequency ({fc.min():.4g} to {fc.max():.4g} Hz)"
            f" in three panels: time spread in ms, cell area (dashed line at 1), chirp rate in Hz/s;"
            f" {band_text}.")
-    caption = "Fitted value per channel (line) and its bootstrap interval over windows (band and bars)."
+    caption = ("Fitted value per channel (line) and its stability interval from refits on "
+               "resampled windows (band and bars).")
     skipped = [i for i, e in enumerate((diagnostics.get("bootstrap") or {}).get("channels") or [])
                if isinstance(e, Mapping) and str(e.get("method", "")).startswith("skipped")]
     if skipped:
@@ -333,7 +342,10 @@ def _baselines(diagnostics: Mapping, label: str) -> Plot:
     alt = ("Baselines and result, objective with interval: "
            + "; ".join(f"{e['label']} {e['objective']:.4g}{interval(e)}" for e in entries)
            + (f". Gain over the best spectrogram {gain:+.3f} bits." if gain is not None else "."))
-    caption = "Points: objective over the same windows; bars: bootstrap intervals where recorded."
+    judged = verdict.judgement(diagnostics)
+    held_out = judged is not None and judged.get("in_sample") is not True
+    where = "the held-out windows the fit never saw" if held_out else "the same windows"
+    caption = f"Points: objective over {where}; bars: intervals where recorded."
     missing = [BASELINE_NAMES.get(k, k) for k, v in (diagnostics.get("baselines") or {}).items()
                if not (isinstance(v, Mapping) and _finite(v.get("objective")) is not None)]
     if missing:
@@ -471,6 +483,27 @@ def _rejections(windows_info: Mapping, corpus: Mapping) -> str:
     return out
 
 
+def _percent(value) -> str:
+    number = _finite(value)
+    return "not recorded" if number is None else f"{100 * number:.3g} %"
+
+
+def _onset_text(onset) -> str:
+    """'result m / p ms · spectrogram m / p ms (n windows)' from ``judgement['onset']``."""
+    if not isinstance(onset, Mapping):
+        return "not measured (no trigger offsets)"
+    parts, counts = [], set()
+    for name in ("result", "spectrogram"):
+        entry = onset.get(name) if isinstance(onset.get(name), Mapping) else {}
+        median, p90 = _finite(entry.get("median_ms")), _finite(entry.get("p90_ms"))
+        shown = [f"{v:.3g}" if v is not None else "?" for v in (median, p90)]
+        parts.append(f"{name} {shown[0]} / {shown[1]} ms")
+        if _count(entry.get("windows")) is not None:
+            counts.add(entry["windows"])
+    windows = f" ({', '.join(map(str, sorted(counts)))} windows)" if counts else ""
+    return " · ".join(parts) + windows
+
+
 def _headline(filterbank_json: Mapping, diagnostics: Mapping, channels: list[dict]) -> str:
     gain = _finite(diagnostics.get("gain_bits"))
     result = diagnostics.get("result") or {}
@@ -478,10 +511,21 @@ def _headline(filterbank_json: Mapping, diagnostics: Mapping, channels: list[dic
     low, high = _finite(result.get("low")), _finite(result.get("high"))
     windows_info = diagnostics.get("windows") or {}
     used, rejected = _count(windows_info.get("used")), _count(windows_info.get("rejected"))
+    judged = verdict.judgement(diagnostics)
+    held_out = judged is not None and judged.get("in_sample") is not True
+    negative = (judged or {}).get("negative_share")
+    negative = negative if isinstance(negative, Mapping) else {}
+    ceiling = _finite(negative.get("max_allowed"))
     cards = [
-        ("gain over the best spectrogram", f"{gain:+.3f} bits" if gain is not None else "not recorded"),
-        ("objective of the result", (f"{objective:.4g}" if objective is not None else "not recorded")
+        ("gain over the best spectrogram" + (", held-out" if held_out else ""),
+         f"{gain:+.3f} bits" if gain is not None else "not recorded"),
+        (("held-out objective" if held_out else "objective") + " of the result",
+         (f"{objective:.4g}" if objective is not None else "not recorded")
          + (f" [{low:.4g}, {high:.4g}]" if low is not None and high is not None else "")),
+        ("negative share of the image", _percent(negative.get("overall"))
+         + (f" (ceiling {100 * ceiling:.2g} %)" if ceiling is not None else "")),
+        ("onset timing, median / p90", _onset_text((judged or {}).get("onset"))
+         if judged is not None else "not recorded"),
         ("stop reason", str(diagnostics.get("stop_reason", "not recorded"))),
         ("windows used / rejected", f"{'?' if used is None else used} / "
                                      f"{'?' if rejected is None else rejected}"),
@@ -492,6 +536,71 @@ def _headline(filterbank_json: Mapping, diagnostics: Mapping, channels: list[dic
     return '<div class="cards">' + "".join(
         f'<div class="card"><div class="label">{_e(k)}</div><div class="value">{_e(v)}</div></div>'
         for k, v in cards) + "</div>"
+
+
+def _verdict(diagnostics: Mapping) -> str:
+    """The lead under the title: the held-out gain sentence, how it was measured, and a warnings
+    box only when some warning applies."""
+    judged = verdict.judgement(diagnostics)
+    kind = "lead note" if judged is None else "lead"
+    lead = f'<p class="{kind}" id="gain">{_e(verdict.gain_sentence(diagnostics))}</p>'
+    if judged is not None:
+        gain = judged.get("gain_bits")
+        gain = gain if isinstance(gain, Mapping) else {}
+        level, resamples = _finite(gain.get("level")), _count(gain.get("resamples"))
+        judged_on = "fitted" if judged.get("in_sample") is True else "held-out"
+        interval = f"{100 * level:.0f} % interval" if level is not None else "interval"
+        if resamples:
+            interval += f" from {resamples} resamples of the {judged_on} windows"
+        how = [interval,
+               f"{judged['fit_windows']} windows fitted" if _count(judged.get("fit_windows"))
+               is not None else None,
+               f"{judged['guard_windows']} left out of the fit because they overlap held-out ones"
+               if _count(judged.get("guard_windows")) else None]
+        lead += f'<p class="muted">{_e("; ".join(h for h in how if h))}.</p>'
+    found = verdict.warnings(diagnostics)
+    if found:
+        items = "".join(f"<li>{_e(w)}</li>" for w in found)
+        lead += (f'<div class="warnings" id="warnings" role="note"><h2>Warnings</h2>'
+                 f"<ul>{items}</ul></div>")
+    return f'<section id="verdict">{lead}</section>'
+
+
+def _judgement_table(diagnostics: Mapping) -> str:
+    """The held-out judgement in numbers, or a note when the diagnostics carry none."""
+    judged = verdict.judgement(diagnostics)
+    if judged is None:
+        return ('<p class="muted">no judgement on held-out windows recorded (an older run or a '
+                "cancelled one): objectives and gain here were measured on the windows the fit "
+                "used</p>")
+
+    def objective(entry) -> str:
+        entry = entry if isinstance(entry, Mapping) else {}
+        value, low, high = (_finite(entry.get(k)) for k in ("objective", "low", "high"))
+        if value is None:
+            return "not recorded"
+        return f"{value:.4g}" + (f" [{low:.4g}, {high:.4g}]" if low is not None and high is not None
+                                 else "")
+
+    negative = judged.get("negative_share")
+    negative = negative if isinstance(negative, Mapping) else {}
+    per_channel = [_finite(v) for v in negative.get("per_channel") or []]
+    worst = max((v for v in per_channel if v is not None), default=None)
+    rows = {
+        "judged in-sample": judged.get("in_sample"),
+        "held-out share": judged.get("held_out_share"),
+        "windows held out / fitted / guard": " / ".join(
+            "?" if _count(judged.get(k)) is None else str(judged[k])
+            for k in ("held_out_windows", "fit_windows", "guard_windows")),
+        "result objective, judged windows": objective(judged.get("result")),
+        "best spectrogram objective, judged windows": objective(judged.get("spectrogram")),
+        "negative share, largest channel": _percent(worst),
+        "negative share allowed": _percent(negative.get("max_allowed")),
+        "settings on a search bound": ", ".join(map(str, judged.get("bounds_hit") or [])) or "none",
+    }
+    if judged.get("grouping"):  # how windows were kept apart, as the search words it
+        rows["held-out grouping"] = judged["grouping"]
+    return _kv_table(rows)
 
 
 def _corpus_summary(corpus: Mapping) -> str:
@@ -542,7 +651,7 @@ def _flatten(mapping: Mapping) -> dict:
 # default it chose, shown apart with the corpus reader's choices.
 JOB_SETTINGS = ("channels", "band_hz", "spacing", "window_s", "criterion", "cell_area", "chirp",
                 "refine", "evaluations", "time_limit_s", "bootstrap", "seed", "windowing",
-                "max_windows", "subset", "n_jobs")
+                "max_windows", "held_out", "max_negative_share", "subset", "n_jobs")
 
 
 # resolved name -> the job settings' name for it
@@ -641,6 +750,13 @@ figure.plot img { max-width: 100%; height: auto; border: 1px solid var(--line); 
 figcaption { color: var(--muted); font-size: .88rem; margin-top: 4px; }
 .note, .muted { color: var(--muted); }
 .note { border-left: 3px solid var(--line); padding: 6px 12px; background: var(--band); }
+section#verdict { padding: 14px 32px 4px; }
+p.lead { margin: 0 0 2px; font-size: 1.2rem; font-weight: 600; }
+p.lead.note { font-weight: 500; }
+.warnings { border: 1px solid #c0392b; background: #fdecea; border-radius: 6px;
+            padding: 2px 18px 6px; margin: 10px 0 4px; }
+.warnings h2 { border: none; margin: 8px 0 2px; font-size: 1.05rem; }
+.warnings ul { margin: 4px 0; padding-left: 20px; }
 section#cautions { border: 1px solid #d9a300; background: #fff8e1; padding: 4px 18px 10px; margin-top: 30px; border-radius: 6px; }
 section#cautions h2 { border: none; }
 footer { color: var(--muted); font-size: .82rem; padding: 0 32px 24px; }
@@ -675,12 +791,14 @@ def render_report(filterbank_json: Mapping, diagnostics: Mapping, windows=None,
     file_info = _flatten({k: v for k, v in filterbank_json.items() if k != "channels"})
     body = f"""
 <header><h1>burstlens report: tuned time–frequency filterbank</h1><p>{_e(subtitle)}</p></header>
+{_verdict(diagnostics)}
 <nav><a href="#summary">Summary</a><a href="#plots">Plots</a><a href="#channels">Channels</a><a href="#cautions">Cautions</a><a href="#provenance">Provenance</a></nav>
 <main>
 <section id="summary"><h2>Summary</h2>
 {_headline(filterbank_json, diagnostics, channels)}
 <div class="columns">
-<div><h3>Site corpus</h3>{_corpus_summary(corpus)}</div>
+<div><h3>Judgement on held-out windows</h3>{_judgement_table(diagnostics)}
+<h3>Site corpus</h3>{_corpus_summary(corpus)}</div>
 <div><h3>Windows</h3>{_kv_table(_window_counts(windows_info))}
 <h4>Rejected windows by reason</h4>{_rejections(windows_info, corpus)}
 <h3>Run</h3>{_kv_table(run)}</div>

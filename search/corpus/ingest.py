@@ -94,7 +94,9 @@ def read_corpus(
     Returns
     -------
     Corpus
-        ``windows`` (M, N) float64 and everything the reader chose in ``defaults``.
+        ``windows`` (M, N) float64 and everything the reader chose in ``defaults``. Each
+        ``window_meta`` entry carries ``trigger_offset_s``: seconds from the window's first sample
+        to the first trigger onset inside it (None for 'whole' and 'sliding' windows).
     """
     opts = _validate_options(
         windowing=windowing, window_s=window_s, max_windows=max_windows, seed=seed,
@@ -296,8 +298,12 @@ def _rejection(file, trace_id, offset_s, reason, detail) -> dict:
 
 # --- window placement ---------------------------------------------------------------------------
 
-def _whole_windows(segments: list[Segment], opts: dict, defaults: dict) -> list[tuple[Segment, int, int, int]]:
-    """Each segment is one window; longer ones are cut around their energy peak."""
+def _whole_windows(segments: list[Segment], opts: dict, defaults: dict) -> list[tuple]:
+    """Each segment is one window; longer ones are cut around their energy peak.
+
+    Placed windows here and in :func:`_scan_windows` are tuples (segment, start sample or −1 for
+    too short, length, triggers merged, first trigger onset from the start in samples or None).
+    """
     fs = defaults["sampling_rate_hz"]
     lengths = [s.data.size for s in segments]
     if opts["window_s"] is not None:
@@ -310,14 +316,14 @@ def _whole_windows(segments: list[Segment], opts: dict, defaults: dict) -> list[
     placed = []
     for seg in segments:
         if seg.data.size < n:
-            placed.append((seg, -1, n, 0))
+            placed.append((seg, -1, n, 0, None))
             continue
         start = 0
         if seg.data.size > n:
             smooth = windowing.moving_sum(np.square(seg.data), max(1, n // 16))
             peak = int(np.argmax(smooth)) - n // 32
             start = int(min(max(peak - opts["pre_trigger"] * n, 0), seg.data.size - n))
-        placed.append((seg, start, n, 1))
+        placed.append((seg, start, n, 1, None))
     return placed
 
 
@@ -345,8 +351,8 @@ def _scan_windows(segments, files, opts, defaults, rejections):
         for seg in segments:
             starts = windowing.sliding_starts(seg.data.size, n, hop, seg.taper_samples)
             if not starts:
-                placed.append((seg, -1, n, 0))
-            placed.extend((seg, s, n, 0) for s in starts)
+                placed.append((seg, -1, n, 0, None))
+            placed.extend((seg, s, n, 0, None) for s in starts)
         return placed
 
     sta = opts["sta_s"] if opts["sta_s"] is not None else STA_PERIODS / f_dom
@@ -402,8 +408,11 @@ def _scan_windows(segments, files, opts, defaults, rejections):
     for seg, o in zip(segments, onsets):
         starts, counts, short = windowing.place_burst_windows(o[:, 0], seg.data.size, n, int(round(pre * n)), seg.taper_samples)
         if short:
-            placed.append((seg, -1, n, len(short)))
-        placed.extend((seg, s, n, c) for s, c in zip(starts, counts))
+            placed.append((seg, -1, n, len(short), None))
+        # the first onset at or after the start: a window clipped at a segment end does not hold
+        # its trigger at pre·n, and an earlier trigger merged into the previous window may fall in it
+        first = o[np.searchsorted(o[:, 0], starts), 0] if starts else []
+        placed.extend((seg, s, n, c, int(f) - s) for s, c, f in zip(starts, counts, first))
     return placed
 
 
@@ -425,7 +434,7 @@ def _iso(ts: float | None) -> str | None:
 def _assemble(placed, segments, files, skipped, source_hash, fs, opts, defaults, rejections) -> Corpus:
     kept_rows, meta, owners, seen = [], [], [], set()
     per_segment = {id(s): 0 for s in segments}
-    for seg, start, length, count in placed:
+    for seg, start, length, count, trigger in placed:
         if start < 0:
             rejections.append(_rejection(
                 seg.file, seg.trace_id, seg.offset_s, "too short",
@@ -452,6 +461,7 @@ def _assemble(placed, segments, files, skipped, source_hash, fs, opts, defaults,
                  "offset_s": round(offset, 6)}
         if defaults["windowing"] == "bursts":
             entry["triggers"] = count
+        entry["trigger_offset_s"] = None if trigger is None else trigger / fs
         meta.append(entry)
         owners.append(id(seg))
     if not kept_rows:

@@ -59,8 +59,10 @@ class Corpus:
         The common sampling rate of every window, Hz.
     window_meta : list of dict, length M
         Per window: ``file``, ``trace_id`` (SEED id), ``start`` (ISO 8601 UTC of the first sample,
-        or None when the format has no time), ``offset_s`` (from the start of the trace), and for
-        burst windows ``triggers`` (how many STA/LTA triggers were merged into it).
+        or None when the format has no time), ``offset_s`` (from the start of the trace), for
+        burst windows ``triggers`` (how many STA/LTA triggers were merged into it), and
+        ``trigger_offset_s`` (s from the window's first sample to its first trigger onset; None
+        for ``whole`` and ``sliding`` windows).
     traces : list of dict
         Per contiguous segment read: ``file``, ``trace_id``, ``sampling_rate_hz`` (native),
         ``start``, ``duration_s``, ``windows`` (how many windows it gave).

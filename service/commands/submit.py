@@ -1,4 +1,9 @@
-"""``burstlens submit PATH... --server URL``: upload a corpus, queue a job, follow it, fetch results."""
+"""``burstlens submit PATH... --server URL``: upload a corpus, queue a job, follow it, fetch
+results.
+
+Once a followed job succeeds, the held-out gain and any warnings (``service.verdict``) are printed
+first, on stderr, before the saved paths or the summary JSON on stdout.
+"""
 from __future__ import annotations
 
 import argparse
@@ -23,7 +28,26 @@ def add_settings_flags(p: argparse.ArgumentParser) -> None:
     g.add_argument("--seed", type=int)
     g.add_argument("--windowing", choices=["bursts", "whole", "sliding"])
     g.add_argument("--max-windows", type=int)
+    g.add_argument("--held-out", type=_share(0.9), metavar="SHARE",
+                   help="share of windows kept out of the fit to judge it (0 to 0.9, default "
+                        "0.25; 0 judges in-sample)")
+    g.add_argument("--max-negative-share", type=_share(1.0), metavar="SHARE",
+                   help="largest share of the image's absolute mass that may be negative "
+                        "(0 to 1, default 0.01)")
     g.add_argument("--jobs", type=int, help="parallel evaluations on the worker (capped there)")
+
+
+def _share(high: float):
+    """argparse type: a float in [0, high], so a bad share fails before any upload or fit."""
+    def parse(text: str) -> float:
+        try:
+            value = float(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+        if not 0.0 <= value <= high:
+            raise argparse.ArgumentTypeError(f"expected a share from 0 to {high:g}, got {text}")
+        return value
+    return parse
 
 
 def settings_from_args(args: argparse.Namespace) -> dict:
@@ -32,7 +56,8 @@ def settings_from_args(args: argparse.Namespace) -> dict:
     for flag, key in (("channels", "channels"), ("spacing", "spacing"), ("window_s", "window_s"),
                       ("evaluations", "evaluations"), ("time_limit", "time_limit_s"),
                       ("bootstrap", "bootstrap"), ("seed", "seed"), ("windowing", "windowing"),
-                      ("max_windows", "max_windows"), ("jobs", "jobs")):
+                      ("max_windows", "max_windows"), ("jobs", "jobs"),
+                      ("held_out", "held_out"), ("max_negative_share", "max_negative_share")):
         if getattr(args, flag) is not None:
             settings[key] = getattr(args, flag)
     if args.band is not None:
@@ -122,6 +147,7 @@ def run(args: argparse.Namespace) -> int:
     import os
     import sys
 
+    from service import verdict
     from service.client import Client, ServiceError
 
     token = args.token or os.environ.get("BURSTLENS_TOKEN")
@@ -148,6 +174,9 @@ def run(args: argparse.Namespace) -> int:
                 print(f"job {job['id']} {job['state']}: {job.get('error') or job.get('stop_reason')}",
                       file=sys.stderr)
                 return 1
+            # the verdict goes to stderr with the other messages for people, so stdout stays
+            # the machine-readable part (saved paths or the summary JSON)
+            print("\n".join(verdict.lines(client.diagnostics(job["id"]))), file=sys.stderr)
             if args.out:
                 saved = client.download_results(job["id"], args.out)
                 for path in saved.values():

@@ -38,24 +38,27 @@ def _write_json(path, obj) -> None:
 
 
 def summary_lines(diagnostics: dict) -> list[str]:
-    """The few lines a person reads after a tune (also used by tests)."""
+    """The few lines a person reads after a tune (also used by tests): the held-out gain and the
+    warnings first (``service.verdict``), then the run in numbers."""
     from search.diagnostics import wide_channels
+    from service import verdict
 
     d = diagnostics
-    lines = [f"windows used: {d['windows']['used']} (rejected {d['windows']['rejected']})",
-             f"stop reason: {d['stop_reason']}"]
+    lines = verdict.lines(d)
+    lines += [f"windows used: {d['windows']['used']} (rejected {d['windows']['rejected']})",
+              f"stop reason: {d['stop_reason']}"]
     result = d.get("result")
     if result:
         iv = ""
         if result.get("low") is not None:
             iv = f" [{result['low']:.4f}, {result['high']:.4f}]"
-        lines.append(f"objective: {result['objective']:.4f} bits{iv}")
+        label = "held-out objective" if (verdict.judgement(d) or {}).get("in_sample") is False \
+            else "objective"
+        lines.append(f"{label}: {result['objective']:.4f} bits{iv}")
         spec = d["baselines"]["spectrogram"]
         window_ms = 1e3 * spec["parameters"]["time_spread_s"]
         lines.append(f"best spectrogram: {spec['objective']:.4f} bits (window std {window_ms:.3g} ms); "
                      f"gain {d['gain_bits']:.4f} bits")
-        if d.get("fallback"):
-            lines.append(f"note: {d['fallback']['reason']}; the spectrogram is returned")
     boot = d.get("bootstrap") or {}
     if boot.get("channels"):
         wide = wide_channels(boot, chirp_bound_hz_per_s=d["settings"].get("chirp_bound_hz_per_s", 0.0))

@@ -2,7 +2,8 @@
 
 The WVD is the explicit double sum of DESIGN §3 over every lag the window holds, and the channel
 output is the explicit 2-D convolution of that full grid with the sampled kernel
-G_c(u, ν) = g_t(u)·N(ν; βu, σ_f²(1−ρ²)) — nothing here shares code with search.transform.
+G_c(u, ν) = g_t(u)·N(ν; βu, σ_f²(1−ρ²)), u = t′ − t (the kernel lies along an arrival sweeping
+at β Hz/s) — nothing here shares code with search.transform.
 """
 from __future__ import annotations
 
@@ -42,7 +43,7 @@ def reference_frequency_count(n_samples: int, channels, sampling_rate_hz: float,
 
 def reference_channel(z: np.ndarray, channel, sampling_rate_hz: float, n_freqs: int,
                       wvd: np.ndarray | None = None) -> np.ndarray:
-    """S_c[n] = Σ_{n'} Σ_k W[n', k] · G_c((n − n')/fs, f_k − f_c) · Δf/fs, explicitly (N,).
+    """S_c[n] = Σ_{n'} Σ_k W[n', k] · G_c((n' − n)/fs, f_k − f_c) · Δf/fs, explicitly (N,).
 
     Time: every n' of the window (no truncation). Frequency: circular with period fs/2, the
     conditional Gaussian summed over enough periods to be exact in double precision.
@@ -54,7 +55,7 @@ def reference_channel(z: np.ndarray, channel, sampling_rate_hz: float, n_freqs: 
     f = np.arange(n_freqs) * df
     sigma = channel.time_spread_s
     spread = channel.conditional_freq_spread_hz
-    u = (np.arange(n_samples)[:, None] - np.arange(n_samples)[None, :]) / fs  # (n, n')
+    u = (np.arange(n_samples)[None, :] - np.arange(n_samples)[:, None]) / fs  # t′ − t, (n, n')
     g = np.exp(-0.5 * (u / sigma) ** 2) / (math.sqrt(2.0 * math.pi) * sigma)
     period = fs / 2.0
     nu = f[None, None, :] - channel.center_hz - channel.chirp_hz_per_s * u[:, :, None]

@@ -110,10 +110,10 @@ def test_matched_spectrogram_is_one_bit_above_wvd(atom_wvds, name, kw, band):
     """The spectrogram with the matched Gaussian window (a = 1, σ_t = σ0, and for the chirped
     atom the matched chirp) has H_3 = 0.7925 bits, exactly 1 bit above the atom's WVD: smoothing
     by the window's own WVD doubles the covariance, det Σ × 4 (Baraniuk et al. 2001; spectrogram
-    as smoothed WVD: Cohen, Time-Frequency Analysis, 1995). DESIGN §3: a channel of chirp β is
-    the spectrogram with window exp(−u²/4σ_t²)·exp(−jπβu²), whose WVD lies on ν = −βu; the
-    window matched to an atom sweeping at +β is therefore the channel with chirp −β."""
-    spec = matched_spectrogram(atom(**kw), band, -kw.get("chirp_hz_per_s", 0.0))[0]
+    as smoothed WVD: Cohen, Time-Frequency Analysis, 1995). DESIGN §3: a channel's chirp β is
+    the sweep rate of the arrivals it matches, so the window matched to an atom sweeping at +β
+    is the channel with chirp +β."""
+    spec = matched_spectrogram(atom(**kw), band, kw.get("chirp_hz_per_s", 0.0))[0]
     h_spec = h_cont(spec)
     assert h_spec == pytest.approx(H3_WVD_ATOM + 1, abs=TOL)
     assert h_spec - h_cont(atom_wvds[name]) == pytest.approx(1.0, abs=TOL)

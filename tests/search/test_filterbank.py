@@ -75,7 +75,9 @@ def test_nyquist_message_and_channel_index():
 def test_equivalent_reading():
     """The reading for people: kind by cell area (|a−1| < 0.05 spectrogram, > 1 smoothed, < 1
     super-resolved by 1/a), window length = FWHM of h(u) = exp(−u²/4σ_t²) = 4√(ln 2)·σ_t, and a
-    one-line text. Source: Gaussian window conventions (common practice)."""
+    one-line text; a channel of chirp +β matches arrivals sweeping upward at β Hz/s (DESIGN §3;
+    test_transform checks it on a chirp). Source: Gaussian window conventions (common
+    practice)."""
     e = Channel(100.0, 0.00375, 0.5, 800.0).equivalent()
     assert e["kind"] == "super-resolved"
     assert e["super_resolution"] == pytest.approx(2.0)
@@ -83,12 +85,14 @@ def test_equivalent_reading():
     assert e["window_std_ms"] == pytest.approx(3.75)
     assert e["gaussian_std_ms"] == pytest.approx(3.75 * math.sqrt(2))
     assert e["text"] == ("Gaussian spectrogram window 12.5 ms, super-resolved ×2.0, chirp +800 Hz/s "
-                         "(matches arrivals sweeping -800 Hz/s)")
-    assert e["matched_sweep_hz_per_s"] == -800.0  # DESIGN §3 convolution: see test_transform
+                         "(matches arrivals sweeping upward at 800 Hz/s)")
+    assert e["matched_sweep_hz_per_s"] == 800.0
     assert Channel(100.0, 0.01, 1.03).equivalent()["kind"] == "spectrogram"
     smoothed = Channel(100.0, 0.01, 1.5, -2.5).equivalent()
     assert smoothed["kind"] == "smoothed spectrogram"
-    assert smoothed["text"].endswith("smoothed ×1.5, chirp -2.5 Hz/s (matches arrivals sweeping +2.5 Hz/s)")
+    assert smoothed["text"].endswith(
+        "smoothed ×1.5, chirp -2.5 Hz/s (matches arrivals sweeping downward at 2.5 Hz/s)")
+    assert smoothed["matched_sweep_hz_per_s"] == -2.5
     # the window really is the one whose |h|² has std σ_t: FWHM of h from its samples
     sigma = 0.01
     u = np.linspace(-0.05, 0.05, 200001)
@@ -109,7 +113,8 @@ def test_json_round_trip():
     assert back == fb and hash(back) == hash(fb)
     assert back.provenance == {"window_samples": 1024,
                                "criterion": {"name": "renyi", "alpha": 3.0}, "objective": 7.25}
-    assert doc["format"] == "burstlens-filterbank" and doc["version"] == 1
+    assert doc["format"] == "burstlens-filterbank" and doc["version"] == 2
+    assert "converted_from_version" not in back.provenance
     assert doc["sampling_rate_hz"] == FS
     assert doc["channels"][1]["correlation"] == pytest.approx(fb[1].correlation)
     assert doc["channels"][1]["equivalent"]["kind"] == "super-resolved"
@@ -121,11 +126,78 @@ def test_json_round_trip():
     assert one[0].cell_area == pytest.approx(0.4) and one[0].chirp_hz_per_s == pytest.approx(1234.5)
 
 
+def _version_1(doc):
+    """A version-1 document with the same channels as ``doc`` (version 2): version 1 stored
+    chirp_hz_per_s and correlation with the opposite sign."""
+    old = json.loads(json.dumps(doc))
+    old["version"] = 1
+    for channel in old["channels"]:
+        channel["chirp_hz_per_s"] = -channel["chirp_hz_per_s"]
+        channel["correlation"] = -channel["correlation"]
+        channel["equivalent"]["matched_sweep_hz_per_s"] = -channel["chirp_hz_per_s"]
+    return old
+
+
+def test_version_1_loads_with_chirp_signs_negated():
+    """A version-1 file (kernel written in lag coordinates u = t − t′, so its β and ρ carried
+    the opposite sign) loads with chirp_hz_per_s and correlation negated, into the filterbank
+    that sharpens the same arrivals; its provenance keeps the file's facts and adds
+    converted_from_version = 1 and a note saying what was done; saving it again writes
+    version 2, which reads back unchanged (no second negation). Channels given only by their
+    spreads (freq_spread_hz, correlation) are converted too. Source: DESIGN §3 and §8 (file
+    versions); common practice for format migration."""
+    fb = Filterbank([Channel(30.0, 0.02, 1.0), Channel(300.0, 0.004, 0.4, 1234.5),
+                     Channel(1900.0, 0.002, 3.0, -50.0)], FS)
+    old = _version_1(fb.to_json(window_samples=1024, objective=7.25))
+    assert old["channels"][1]["chirp_hz_per_s"] == -1234.5
+    assert old["channels"][1]["correlation"] < 0.0
+    back = Filterbank.from_json(old)
+    assert back == fb
+    np.testing.assert_array_equal(back.chirp_hz_per_s, [0.0, 1234.5, -50.0])
+    np.testing.assert_allclose(back.correlation, -np.array([c["correlation"]
+                                                            for c in old["channels"]]))
+    assert back.provenance["window_samples"] == 1024 and back.provenance["objective"] == 7.25
+    assert back.provenance["converted_from_version"] == 1
+    note = back.provenance["conversion_note"]
+    assert "version 1" in note and "negated" in note and "chirp_hz_per_s" in note
+    again = back.to_json()
+    assert again["version"] == 2 and again["converted_from_version"] == 1
+    assert again["channels"][1]["equivalent"]["matched_sweep_hz_per_s"] == 1234.5
+    assert Filterbank.from_json(json.loads(json.dumps(again))) == fb
+    spreads_only = {**old, "channels": [{k: old["channels"][1][k] for k in
+                                         ("center_hz", "time_spread_s", "freq_spread_hz",
+                                          "correlation")}]}
+    one = Filterbank.from_json(spreads_only)[0]
+    assert one.chirp_hz_per_s == pytest.approx(1234.5) and one.cell_area == pytest.approx(0.4)
+    bad = _version_1(fb.to_json())
+    bad["channels"][2]["chirp_hz_per_s"] = "fast"
+    with pytest.raises(ValueError, match=r"channels\[2\].chirp_hz_per_s='fast'"):
+        Filterbank.from_json(bad)
+
+
+def test_version_2_round_trips_chirp_signs():
+    """Version 2 is what to_json writes, and from_json reads it back with the same signs:
+    chirp_hz_per_s, correlation and matched_sweep_hz_per_s all positive for an upward-matching
+    channel, nothing converted. Source: DESIGN §3 and §8; common practice."""
+    fb = Filterbank([Channel(300.0, 0.004, 0.4, 1234.5), Channel(700.0, 0.01, 1.0, -300.0)], FS)
+    doc = json.loads(json.dumps(fb.to_json()))
+    assert doc["version"] == 2
+    up, down = doc["channels"]
+    assert up["chirp_hz_per_s"] == 1234.5 and up["correlation"] > 0.0
+    assert up["equivalent"]["matched_sweep_hz_per_s"] == 1234.5
+    assert down["correlation"] < 0.0 and "downward at 300 Hz/s" in down["equivalent"]["text"]
+    back = Filterbank.from_json(doc)
+    assert back == fb and back.provenance == {}
+    np.testing.assert_array_equal(back.correlation, fb.correlation)
+
+
 @pytest.mark.parametrize(
     "change, message",
     [
         (lambda d: d.update(format="other"), "format='other'"),
-        (lambda d: d.update(version=2), "version=2"),
+        (lambda d: d.update(version=3), "version=3"),
+        (lambda d: d.update(version=True), "version=True"),
+        (lambda d: d.pop("version"), "version=None"),
         (lambda d: d.pop("sampling_rate_hz"), "sampling_rate_hz is missing"),
         (lambda d: d.update(channels=[]), "channels must be a non-empty list"),
         (lambda d: d["channels"][0].pop("time_spread_s"),

@@ -47,14 +47,14 @@ def tuned(wav_dir, tmp_path_factory):
 
 
 def test_tune_writes_the_results(tuned, capsys):
-    """tune exits 0 and writes filterbank.json (format burstlens-filterbank, version 1, DESIGN
+    """tune exits 0 and writes filterbank.json (format burstlens-filterbank, version 2, DESIGN
     §8) and diagnostics.json (strict JSON with the stop reason); the filterbank reads back."""
     from search import Filterbank
 
     code, out = tuned
     assert code == 0
     fb_json = json.loads((out / "filterbank.json").read_text())
-    assert fb_json["format"] == "burstlens-filterbank" and fb_json["version"] == 1
+    assert fb_json["format"] == "burstlens-filterbank" and fb_json["version"] == 2
     fb = Filterbank.from_json(fb_json)
     assert len(fb) == 8 and fb.sampling_rate_hz == 1000.0
     diag = json.loads((out / "diagnostics.json").read_text())
@@ -69,10 +69,11 @@ def test_tune_writes_the_results(tuned, capsys):
 
 
 def test_tune_prints_a_summary(wav_dir, tmp_path, capsys):
-    """The summary names windows used, stop reason, objective, gain over the best spectrogram
-    and the channels with wide bootstrap intervals (issue 4, deliverable 5)."""
+    """The summary opens with the gain on held-out windows, then names windows used, stop reason,
+    objective, gain over the best spectrogram and the channels with wide bootstrap intervals."""
     assert main(["tune", str(wav_dir), "--out", str(tmp_path), "--quiet", *FAST, "--no-refine"]) == 0
     text = capsys.readouterr().out
+    assert text.startswith("gain on windows the fit never saw: ")
     for phrase in ("windows used: 6", "stop reason:", "objective:", "gain", "wide bootstrap"):
         assert phrase in text, phrase
 
@@ -127,3 +128,36 @@ def test_transform_bad_filterbank_exits_2(wav_dir, tmp_path, capsys):
     assert main(["transform", "--filterbank", str(bad), str(wav_dir), "--out",
                  str(tmp_path / "o.npz")]) == 2
     assert "fb.json" in capsys.readouterr().err
+
+
+def test_judgement_flags_map_to_the_settings_the_api_accepts():
+    """--held-out and --max-negative-share become held_out and max_negative_share, which
+    JobSettings accepts; unset, they are left to the engine's defaults."""
+    from service.cli import build_parser
+    from service.commands.submit import settings_from_args
+    from service.models import JobSettings
+
+    args = build_parser().parse_args(["tune", "x.wav", "--out", "o", "--held-out", "0.3",
+                                      "--max-negative-share", "0.02"])
+    settings = settings_from_args(args)
+    assert settings == {"held_out": 0.3, "max_negative_share": 0.02}
+    assert JobSettings(**settings).to_options() == settings
+    plain = build_parser().parse_args(["submit", "x.wav", "--server", "http://127.0.0.1:1"])
+    assert settings_from_args(plain) == {}
+
+
+@pytest.mark.parametrize("flag, value", [("--held-out", "0.95"), ("--held-out", "-0.1"),
+                                         ("--max-negative-share", "1.5"),
+                                         ("--held-out", "nan")])
+def test_judgement_flags_out_of_range_exit_2_naming_the_flag(flag, value, tmp_path, capsys):
+    """A share outside its range stops before any file is read, naming the flag; the API
+    refuses the same values (JobSettings)."""
+    from pydantic import ValidationError
+
+    from service.models import JobSettings
+
+    with pytest.raises(SystemExit) as stop:
+        main(["tune", str(tmp_path), "--out", str(tmp_path / "o"), flag, value])
+    assert stop.value.code == 2 and flag in capsys.readouterr().err
+    with pytest.raises(ValidationError):
+        JobSettings(**{flag.lstrip("-").replace("-", "_"): float(value)})

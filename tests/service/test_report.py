@@ -252,3 +252,102 @@ def test_malformed_filterbank_is_refused_naming_the_field():
         report.render_report(broken, diagnostics(), None, None)
     with pytest.raises(ValueError, match="channels"):
         report.render_report({**fb, "channels": []}, diagnostics(), None, None)
+
+
+def judged_diagnostics(**judgement):
+    """diagnostics() with the held-out judgement the search records (DEVELOPERS.md), clean: no
+    warning applies; keywords replace judgement fields."""
+    diag = diagnostics()
+    diag["judgement"] = {
+        "in_sample": False, "held_out_share": 0.25,
+        "held_out_windows": 53, "fit_windows": 158, "guard_windows": 2,
+        "gain_bits": {"estimate": 0.42, "low": 0.31, "high": 0.52, "level": 0.9, "resamples": 2000},
+        "result": {"objective": 9.1, "low": 9.0, "high": 9.3},
+        "spectrogram": {"objective": 9.6, "low": 9.5, "high": 9.8},
+        "negative_share": {"overall": 0.004, "per_channel": [0.001, 0.004, 0.002, 0.0, 0.003],
+                           "max_allowed": 0.01},
+        "bounds_hit": [], "bounds_detail": [],
+        "onset": {"result": {"median_ms": 3.1, "p90_ms": 9.0, "windows": 40},
+                  "spectrogram": {"median_ms": 3.4, "p90_ms": 10.2, "windows": 40}},
+        **judgement}
+    return diag
+
+
+LEAD = "gain on windows the fit never saw: 0.42 [0.31, 0.52] bits (53 held-out windows)"
+
+
+def visible_text(text):
+    return " ".join(" ".join(Page(text).text).split())
+
+
+def test_the_page_leads_with_the_held_out_gain():
+    """Right under the title (before the navigation and every section) the page states the gain
+    on held-out windows with its 90 % interval and how many windows were held out."""
+    text = report.render_report(filterbank_json(), judged_diagnostics(), None, None)
+    after_header = text[text.index("</header>") + len("</header>"):]
+    assert after_header.lstrip().startswith('<section id="verdict"><p class="lead" id="gain">'
+                                            + LEAD + "</p>")
+    assert text.index(LEAD) < text.index("<nav")
+    visible = visible_text(text)
+    assert "90 % interval from 2000 resamples" in visible and "158 windows fitted" in visible
+    assert "2 left out of the fit because they overlap held-out ones" in visible
+    assert 'id="warnings"' not in text  # nothing to warn about
+
+
+@pytest.mark.parametrize("change", [
+    {"judgement": {"bounds_hit": ["cell_area"], "bounds_detail": [
+        {"setting": "cell_area", "bound": "lower", "value": 0.25, "channels": [0, 1, 2]}]}},
+    {"judgement": {"negative_share": {"overall": 0.02, "per_channel": [0.02] * 5,
+                                      "max_allowed": 0.05}}},
+    {"fallback": {"to": "spectrogram", "reason": "no held-out gain"}},
+    {"judgement": {"held_out_windows": 12}},
+    {"judgement": {"in_sample": True, "held_out_share": 0.0, "held_out_windows": 0}},
+    {"stop_reason": "time_limit"},
+], ids=["bound", "negative", "fallback", "few-held-out", "in-sample", "time-limit"])
+def test_the_warnings_box_shows_each_warning_that_applies(change):
+    """One box under the lead, holding exactly the warnings service.verdict finds."""
+    from service import verdict
+
+    diag = judged_diagnostics(**change.get("judgement", {}))
+    diag.update({k: v for k, v in change.items() if k != "judgement"})
+    text = report.render_report(filterbank_json(), diag, None, None)
+    expected = verdict.warnings(diag)
+    assert len(expected) == 1
+    box = text[text.index('<div class="warnings"'):text.index("<nav")]
+    assert visible_text(box) == visible_text('<div id="warnings">' + "Warnings "
+                                             + " ".join(f"<li>{w}</li>" for w in expected))
+    assert text.index(verdict.gain_sentence(diag)) < text.index('id="warnings"')
+
+
+def test_summary_shows_negative_share_and_onset_timing():
+    text = report.render_report(filterbank_json(), judged_diagnostics(), None, None)
+    visible = visible_text(text)
+    assert "negative share of the image 0.4 % (ceiling 1 %)" in visible
+    assert "result 3.1 / 9 ms · spectrogram 3.4 / 10.2 ms (40 windows)" in visible
+    assert "held-out objective of the result 9.1 [9, 9.3]" in visible
+    assert "windows held out / fitted / guard 53 / 158 / 2" in visible
+    without_onset = judged_diagnostics(onset=None)
+    assert "not measured (no trigger offsets)" in visible_text(
+        report.render_report(filterbank_json(), without_onset, None, None))
+
+
+def test_old_diagnostics_without_judgement_render_with_a_note():
+    """Diagnostics from before the held-out judgement (no key, or null) still render; the lead
+    is a note saying the gain was not judged, and the summary says so instead of numbers."""
+    for diag in (diagnostics(), {**diagnostics(), "judgement": None}):
+        text = report.render_report(filterbank_json(), diag, None, None)
+        after_header = text[text.index("</header>") + len("</header>"):].lstrip()
+        assert after_header.startswith('<section id="verdict"><p class="lead note" id="gain">'
+                                       "gain on windows the fit never saw: not judged")
+        assert 'id="warnings"' not in text
+        assert "no judgement on held-out windows recorded" in visible_text(text)
+
+
+def test_warning_text_from_data_is_escaped():
+    """A setting name in bounds_detail is data: it shows as text and injects nothing."""
+    diag = judged_diagnostics(bounds_hit=[HOSTILE], bounds_detail=[
+        {"setting": HOSTILE, "bound": "upper", "value": 2.0, "channels": [1]}])
+    text = report.render_report(filterbank_json(), diag, None, None)
+    page = Page(text)
+    assert not [t for t, _ in page.tags if t == "script"]
+    assert HOSTILE in visible_text(text)

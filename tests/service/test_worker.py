@@ -57,7 +57,7 @@ def test_job_full_life(shared):
     assert (done["state"], done["attempts"], done["error"]) == ("succeeded", 1, None)
     assert done["progress"]["fraction"] == 1.0 and done["progress"]["stage"] == "judge"
     filterbank = client.get(f"/v1/jobs/{job['id']}/filterbank").json()
-    assert (filterbank["format"], filterbank["version"]) == ("burstlens-filterbank", 1)
+    assert (filterbank["format"], filterbank["version"]) == ("burstlens-filterbank", 2)
     assert len(filterbank["channels"]) == TINY["channels"]
     assert filterbank["window_samples"] == 256
     assert filterbank["job"] == {"id": job["id"], "settings": TINY}

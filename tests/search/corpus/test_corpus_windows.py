@@ -86,6 +86,36 @@ def test_overlapping_triggers_merge_into_one_window(tmp_path):
     assert [m["triggers"] for m in corpus.window_meta] == [2, 1]
 
 
+def test_trigger_offset_points_at_the_trigger_onset(tmp_path):
+    """Each burst window's ``trigger_offset_s`` is the time from its first sample to the first
+    STA/LTA trigger onset inside it, the same sample as an independent pick: ObsPy's
+    ``classic_sta_lta`` and ``trigger_onset`` (the reference library) on the record band-passed
+    like the trigger's input (Butterworth order 4, zero phase, scipy.signal). Windows clipped at
+    the trace's tapered ends hold the onset before or after pre_trigger·N, and a merged window
+    points at its first trigger (DESIGN §6)."""
+    from obspy.signal.trigger import classic_sta_lta, trigger_onset
+    from scipy import signal
+
+    fs = 4000.0
+    x = _burst_record(fs, 28.0, (1.02, 5.3, 9.1, 9.16, 14.0, 26.95), seed=4)
+    path = _write_mseed(tmp_path / "r.mseed", x, fs)
+    corpus = read_corpus(path, window_s=0.128, sta_s=0.008, lta_s=0.16)
+    d = corpus.defaults
+    sos = signal.butter(4, d["trigger_band_hz"], btype="bandpass", fs=fs, output="sos")
+    raw = np.rint(x) - np.mean(np.rint(x))
+    cf = classic_sta_lta(signal.sosfiltfilt(sos, raw), d["sta_samples"], d["lta_samples"])
+    reference = trigger_onset(cf, d["trigger_on"], d["trigger_off"])[:, 0]
+    n, pre = corpus.window_samples, int(round(d["pre_trigger"] * corpus.window_samples))
+    starts = np.rint(np.array([m["offset_s"] for m in corpus.window_meta]) * fs).astype(int)
+    found = np.rint(np.array([m["trigger_offset_s"] for m in corpus.window_meta]) * fs).astype(int)
+    expected = reference[np.searchsorted(reference, starts)] - starts
+    assert corpus.n_windows == 5 and [m["triggers"] for m in corpus.window_meta] == [1, 1, 2, 1, 1]
+    np.testing.assert_allclose(found, expected, atol=1)
+    assert found[0] < pre and found[-1] > pre and list(found[1:-1]) == [pre] * 3
+    assert np.all((found >= 0) & (found < n))
+    assert all(set(m) >= {"file", "trace_id", "start", "offset_s", "triggers"} for m in corpus.window_meta)
+
+
 def test_whole_windowing_one_window_per_event_file(tmp_path):
     """'whole': each trace is one window; traces of different lengths are cut to the median length
     around their energy peak, a shorter one is rejected as 'too short' (DESIGN §6)."""
@@ -104,6 +134,7 @@ def test_whole_windowing_one_window_per_event_file(tmp_path):
     assert corpus.n_windows == 5
     # the cut keeps the burst: the energy peak lies in every window
     assert all(np.max(np.abs(w)) > 10 for w in corpus.windows)
+    assert all(m["trigger_offset_s"] is None for m in corpus.window_meta)
 
 
 def test_sliding_windows_every_hop(tmp_path):
@@ -117,6 +148,7 @@ def test_sliding_windows_every_hop(tmp_path):
     assert corpus.n_windows == expected
     np.testing.assert_allclose(np.diff([m["offset_s"] for m in corpus.window_meta]), 0.25)
     assert corpus.defaults["hop_s"] == 0.25
+    assert all(m["trigger_offset_s"] is None for m in corpus.window_meta)
 
 
 def test_rejections_carry_named_reasons(tmp_path):

@@ -1,0 +1,166 @@
+"""What a person must read first about a tuned filterbank: the held-out gain and the warnings.
+
+The search judges its result on windows the fit never saw (``diagnostics['judgement']``, DESIGN
+§8). ``gain_sentence`` states that gain in one line and ``warnings`` lists, as plain sentences,
+every reason to distrust it. The report page, ``burstlens tune``, ``burstlens submit`` and
+``make demo`` all call these two functions, so the rules live in one place. Both accept
+diagnostics without a judgement (older files, cancelled runs) and never raise on missing or null
+fields.
+"""
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+
+# Above this share of negative absolute mass the image is no longer read as an energy density
+# without care, even when the search's own ceiling (max_negative_share) allowed it.
+NEGATIVE_SHARE_WARN = 0.005
+# Fewer held-out windows than this make the interval rest on too few bursts to trust it.
+MIN_HELD_OUT_WINDOWS = 30
+# Channels named in a sentence before the rest are counted instead.
+CHANNELS_NAMED = 12
+
+GAIN_LEAD = "gain on windows the fit never saw"
+
+
+def _number(value) -> float | None:
+    if isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value):
+        return float(value)
+    return None
+
+
+def _mapping(value) -> Mapping:
+    return value if isinstance(value, Mapping) else {}
+
+
+def _count(value) -> int | None:
+    return int(value) if isinstance(value, int) and not isinstance(value, bool) else None
+
+
+def judgement(diagnostics) -> Mapping | None:
+    """``diagnostics['judgement']`` when it is a dict, else None (older or cancelled runs)."""
+    if not isinstance(diagnostics, Mapping):
+        return None
+    found = diagnostics.get("judgement")
+    return found if isinstance(found, Mapping) else None
+
+
+def _interval(low, high) -> str:
+    low, high = _number(low), _number(high)
+    return f" [{low:.2f}, {high:.2f}]" if low is not None and high is not None else " [no interval]"
+
+
+def gain_sentence(diagnostics) -> str:
+    """One line: the gain in bits over the best spectrogram on held-out windows, its interval
+    and how many windows it rests on; or why there is no such gain to state."""
+    judged = judgement(diagnostics)
+    if judged is None:
+        cancelled = _mapping(diagnostics).get("stop_reason") == "cancelled"
+        why = ("the search was cancelled before its result was judged" if cancelled else
+               "these diagnostics carry no judgement on held-out windows (made by an older "
+               "version); any gain they record was measured on the windows the fit used")
+        return f"{GAIN_LEAD}: not judged; {why}"
+    gain = _mapping(judged.get("gain_bits"))
+    estimate = _number(gain.get("estimate"))
+    value = (f"{estimate:.2f}{_interval(gain.get('low'), gain.get('high'))} bits"
+             if estimate is not None else "not determined")
+    if judged.get("in_sample") is True:
+        windows = _count(judged.get("fit_windows"))
+        where = f" ({windows} windows)" if windows is not None else ""
+        return f"gain on the windows the fit used, none held out: {value}{where}"
+    windows = _count(judged.get("held_out_windows"))
+    return f"{GAIN_LEAD}: {value} ({'?' if windows is None else windows} held-out windows)"
+
+
+def _channels_text(channels) -> str:
+    if not isinstance(channels, list) or not channels:
+        return ""
+    named = ", ".join(str(c) for c in channels[:CHANNELS_NAMED])
+    more = f" and {len(channels) - CHANNELS_NAMED} more" if len(channels) > CHANNELS_NAMED else ""
+    return f" in channel{'s' if len(channels) > 1 else ''} {named}{more}"
+
+
+# What lifts a bound, where a job setting does; other bounds are derived by the engine.
+REMEDY = {"cell_area": "widen cell_area and tune again",
+          "channels": "more channels (a denser grid) would lift the cap",
+          "band_hz": "widen band_hz and tune again"}
+
+
+def _bound_sentence(setting: str, where: str, channels) -> str:
+    remedy = REMEDY.get(setting)
+    return (f"The result's {setting} sits on {where}{_channels_text(channels)}: the sharpest value "
+            "may lie beyond what was searched" + (f"; {remedy}." if remedy else "."))
+
+
+def _bound_sentences(judged: Mapping) -> list[str]:
+    details = [d for d in judged.get("bounds_detail") or [] if isinstance(d, Mapping)]
+    sentences = []
+    for detail in details:
+        setting, bound = str(detail.get("setting") or "a parameter"), detail.get("bound")
+        value = _number(detail.get("value"))
+        if bound in ("lower", "upper"):
+            where = f"its {bound} search bound" + (f" ({value:g})" if value is not None else "")
+        else:  # a bound the engine describes in words, e.g. a cap set by the channel grid
+            where = "a search bound" + (f" ({bound})" if bound else "")
+        sentences.append(_bound_sentence(setting, where, detail.get("channels")))
+    described = {str(d.get("setting")) for d in details}
+    sentences += [_bound_sentence(str(setting), "a search bound", None)
+                  for setting in judged.get("bounds_hit") or [] if str(setting) not in described]
+    return sentences
+
+
+def _negative_sentence(judged: Mapping) -> list[str]:
+    share = _mapping(judged.get("negative_share"))
+    overall = _number(share.get("overall"))
+    if overall is None or overall <= NEGATIVE_SHARE_WARN:
+        return []
+    per_channel = [_number(v) for v in share.get("per_channel") or []]
+    worst = max((i for i, v in enumerate(per_channel) if v is not None),
+                key=lambda i: per_channel[i], default=None)
+    worst_text = (f" (most in channel {worst}: {100 * per_channel[worst]:.1f} %)"
+                  if worst is not None else "")
+    return [f"{100 * overall:.1f} % of the image's absolute mass is negative{worst_text}, above "
+            f"{100 * NEGATIVE_SHARE_WARN:.1f} %: read the output as a sharpness map, not as energy "
+            "per cell, and lower max_negative_share if energies matter."]
+
+
+def warnings(diagnostics) -> list[str]:
+    """Every reason to doubt the result, one plain sentence each in a fixed order; empty when
+    there is none. Conditions: a parameter on a search bound, a negative share above 0.5 %, the
+    spectrogram fallback, fewer than 30 held-out windows, a judgement made in-sample, a stop by
+    the time limit or a cancel."""
+    if not isinstance(diagnostics, Mapping):
+        return []
+    out = []
+    stop = diagnostics.get("stop_reason")
+    if stop == "cancelled":
+        out.append("The search was cancelled: the filterbank is the best found so far and was "
+                   "not judged on held-out windows.")
+    elif stop == "time_limit":
+        out.append("The search stopped at its time limit before its budget was spent: a longer "
+                   "run may find a sharper filterbank.")
+    fallback = diagnostics.get("fallback")
+    if isinstance(fallback, Mapping):
+        reason = fallback.get("reason")
+        out.append("The search returned the best spectrogram instead of a learned filterbank"
+                   + (f": {reason}." if reason else "."))
+    judged = judgement(diagnostics)
+    if judged is None:
+        return out
+    if judged.get("in_sample") is True:
+        out.append("Judged in-sample (held_out = 0): the gain was measured on the windows the fit "
+                   "used and overstates what new bursts will show; keep windows out to judge it.")
+    else:
+        held = _count(judged.get("held_out_windows"))
+        if held is not None and held < MIN_HELD_OUT_WINDOWS:
+            out.append(f"Only {held} windows were held out (fewer than {MIN_HELD_OUT_WINDOWS}): "
+                       "the gain and its interval rest on too few bursts to be trusted; use a "
+                       "larger corpus or a larger held_out share.")
+    out += _bound_sentences(judged)
+    out += _negative_sentence(judged)
+    return out
+
+
+def lines(diagnostics) -> list[str]:
+    """The gain sentence, then each warning prefixed ``warning: `` (the CLI's first lines)."""
+    return [gain_sentence(diagnostics)] + [f"warning: {w}" for w in warnings(diagnostics)]

@@ -1,0 +1,179 @@
+"""The held-out verdict (service/verdict.py): the gain sentence and exactly the warnings that apply.
+
+Every test builds the diagnostics by hand after the ``judgement`` schema the search records
+(DEVELOPERS.md, diagnostics_), starting from a clean run that earns no warning and changing one
+field.
+"""
+import copy
+
+import pytest
+
+from service import verdict
+
+
+def clean(channels=3):
+    """A judged run with nothing to warn about."""
+    return {
+        "stop_reason": "budget", "fallback": None, "gain_bits": 0.42,
+        "result": {"objective": 11.2, "low": 11.1, "high": 11.3},
+        "judgement": {
+            "in_sample": False, "held_out_share": 0.25,
+            "held_out_windows": 53, "fit_windows": 158, "guard_windows": 0,
+            "gain_bits": {"estimate": 0.42, "low": 0.31, "high": 0.52, "level": 0.9,
+                          "resamples": 2000},
+            "result": {"objective": 11.2, "low": 11.1, "high": 11.3},
+            "spectrogram": {"objective": 11.6, "low": 11.5, "high": 11.7},
+            "negative_share": {"overall": 0.004, "per_channel": [0.001, 0.004, 0.002][:channels],
+                               "max_allowed": 0.01},
+            "bounds_hit": [], "bounds_detail": [],
+            "onset": {"result": {"median_ms": 3.1, "p90_ms": 9.0, "windows": 40},
+                      "spectrogram": {"median_ms": 3.4, "p90_ms": 10.2, "windows": 40}},
+        },
+    }
+
+
+def test_gain_sentence_states_the_held_out_gain_interval_and_windows():
+    """x.xx [low, high] bits and the number of held-out windows, in the wording the CLI prints."""
+    assert verdict.gain_sentence(clean()) == \
+        "gain on windows the fit never saw: 0.42 [0.31, 0.52] bits (53 held-out windows)"
+    diag = clean()
+    diag["judgement"]["gain_bits"].update(low=None, high=None)
+    assert verdict.gain_sentence(diag) == \
+        "gain on windows the fit never saw: 0.42 [no interval] bits (53 held-out windows)"
+    diag["judgement"]["gain_bits"]["estimate"] = None
+    assert "not determined" in verdict.gain_sentence(diag)
+
+
+def test_gain_sentence_without_judgement_is_a_note_not_an_error():
+    """Older diagnostics, a null judgement and a cancelled run each give a note saying why."""
+    old = clean()
+    del old["judgement"]
+    assert verdict.gain_sentence(old).startswith("gain on windows the fit never saw: not judged")
+    assert "older version" in verdict.gain_sentence(old)
+    cancelled = {**clean(), "judgement": None, "stop_reason": "cancelled"}
+    assert "cancelled" in verdict.gain_sentence(cancelled)
+    assert verdict.gain_sentence(None).startswith("gain on windows the fit never saw: not judged")
+    assert verdict.warnings(None) == [] and verdict.warnings({}) == []
+
+
+def test_a_clean_run_has_no_warning():
+    assert verdict.warnings(clean()) == []
+    assert verdict.lines(clean()) == [verdict.gain_sentence(clean())]
+
+
+def test_warns_when_a_parameter_sits_on_a_search_bound():
+    """bounds_detail read in words: the setting, which bound, its value and the channels."""
+    diag = clean()
+    diag["judgement"]["bounds_hit"] = ["cell_area"]
+    diag["judgement"]["bounds_detail"] = [{"setting": "cell_area", "bound": "lower", "value": 0.25,
+                                           "channels": [0, 1, 2]}]
+    (warning,) = verdict.warnings(diag)
+    assert "cell_area sits on its lower search bound (0.25) in channels 0, 1, 2" in warning
+    assert "widen cell_area" in warning
+
+
+def test_a_bound_described_in_words_is_quoted():
+    """The engine may describe a bound instead of lower/upper (a cap set by the channel grid)."""
+    diag = clean()
+    diag["judgement"]["bounds_hit"] = ["channels"]
+    diag["judgement"]["bounds_detail"] = [{"setting": "channels", "value": None, "channels": [4],
+                                           "bound": "grid spacing caps time_spread_s"}]
+    (warning,) = verdict.warnings(diag)
+    assert ("channels sits on a search bound (grid spacing caps time_spread_s) in channel 4"
+            in warning)
+    assert "more channels" in warning
+
+
+def test_a_bound_named_without_detail_still_warns():
+    diag = clean()
+    diag["judgement"]["bounds_hit"] = ["chirp_hz_per_s"]
+    (warning,) = verdict.warnings(diag)
+    assert warning.startswith("The result's chirp_hz_per_s sits on a search bound:")
+
+
+@pytest.mark.parametrize("overall, warned", [(0.004, False), (0.005, False), (0.0051, True),
+                                             (0.03, True), (None, False)])
+def test_warns_when_the_negative_share_is_above_half_a_percent(overall, warned):
+    """Strictly above 0.5 % of the absolute mass; the worst channel is named."""
+    diag = clean()
+    diag["judgement"]["negative_share"].update(overall=overall, per_channel=[0.001, 0.04, 0.002])
+    found = verdict.warnings(diag)
+    assert bool(found) is warned
+    if warned:
+        assert "negative" in found[0] and "channel 1: 4.0 %" in found[0]
+
+
+def test_warns_on_the_spectrogram_fallback():
+    diag = clean()
+    diag["fallback"] = {"to": "spectrogram", "reason": "no held-out gain"}
+    (warning,) = verdict.warnings(diag)
+    assert "returned the best spectrogram instead of a learned filterbank: no held-out gain." \
+        in warning
+
+
+@pytest.mark.parametrize("windows, warned", [(29, True), (30, False), (5, True)])
+def test_warns_when_fewer_than_30_windows_were_held_out(windows, warned):
+    diag = clean()
+    diag["judgement"]["held_out_windows"] = windows
+    found = verdict.warnings(diag)
+    assert bool(found) is warned
+    if warned:
+        assert f"Only {windows} windows were held out" in found[0]
+
+
+def test_warns_when_judged_in_sample():
+    """held_out = 0: one in-sample warning (not also a held-out count one), and the sentence no
+    longer claims unseen windows."""
+    diag = clean()
+    diag["judgement"].update(in_sample=True, held_out_share=0.0, held_out_windows=0,
+                             fit_windows=211)
+    (warning,) = verdict.warnings(diag)
+    assert warning.startswith("Judged in-sample")
+    sentence = verdict.gain_sentence(diag)
+    assert "never saw" not in sentence and "0.42 [0.31, 0.52] bits (211 windows)" in sentence
+
+
+@pytest.mark.parametrize("stop, needle", [("time_limit", "time limit"), ("cancelled", "cancelled"),
+                                          ("stall", None), ("budget", None)])
+def test_warns_on_a_stop_by_time_limit_or_cancel(stop, needle):
+    diag = clean()
+    diag["stop_reason"] = stop
+    found = verdict.warnings(diag)
+    if needle is None:
+        assert found == []
+    else:
+        (warning,) = found
+        assert needle in warning
+
+
+def test_a_cancelled_run_without_judgement_still_warns():
+    """Warnings that rest on top-level fields hold without a judgement."""
+    diag = {"stop_reason": "cancelled", "judgement": None, "fallback": None}
+    assert len(verdict.warnings(diag)) == 1
+    assert verdict.lines(diag)[1].startswith("warning: The search was cancelled")
+
+
+def test_long_channel_lists_are_shortened():
+    diag = clean()
+    diag["judgement"]["bounds_detail"] = [{"setting": "chirp_hz_per_s", "bound": "upper",
+                                           "value": None, "channels": list(range(20))}]
+    (warning,) = verdict.warnings(diag)
+    assert "channels 0, 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11 and 8 more" in warning
+
+
+def test_every_cli_printout_starts_with_the_verdict():
+    """tune and the demo print the gain sentence first, then the warnings, from the same
+    function the report uses."""
+    from service import demo
+    from service.commands import tune
+
+    diag = clean()
+    diag.update(stop_reason="time_limit", windows={"used": 211, "rejected": 0}, bootstrap=None,
+                baselines={"spectrogram": {"objective": 11.6,
+                                           "parameters": {"time_spread_s": 0.004}}},
+                settings={})
+    expected = verdict.lines(diag)
+    assert len(expected) == 2
+    assert tune.summary_lines(copy.deepcopy(diag))[:2] == expected
+    filterbank = {"channels": [], "sampling_rate_hz": 1000.0}
+    assert demo.summary_lines(filterbank, copy.deepcopy(diag), 1.0)[:2] == expected
