@@ -98,7 +98,9 @@ def cell_sizes(centers_hz, sampling_rate_hz: float) -> np.ndarray:
 
 
 def _weighted_sum(values: np.ndarray, w) -> np.ndarray:
-    return values.sum(axis=1) if w is None else values @ w
+    # product then numpy's pairwise sum, not BLAS or einsum: the same bits whatever the thread
+    # count or the arrays' alignment in memory (a fit must not depend on where it ran)
+    return values.sum(axis=1) if w is None else (values * w).sum(axis=1)
 
 
 def _unit_sum_rows(x: np.ndarray, w=None) -> tuple[np.ndarray, np.ndarray]:

@@ -232,6 +232,17 @@ def _score_task(token, windows, start, stop, fs, centers, sigma, area, beta, cel
     return scores, shares, (stats if want_stats else None), time.perf_counter() - t0
 
 
+def _spectrogram_task(token, windows, start, stop, fs, sigma, band, spec, eps):
+    """Per-window scores of the plain Gaussian spectrogram of time spread ``sigma`` (s) on its
+    own FFT grid over ``band`` (search.spectrogram) on windows[start:stop]."""
+    from search.spectrogram import spectrogram_scores
+
+    t0 = time.perf_counter()
+    prepared = _prepared(token, windows, start, stop)
+    scores = spectrogram_scores(prepared.analytic, fs, sigma, band, make_criterion(spec), eps)
+    return scores, time.perf_counter() - t0
+
+
 def _stats_task(token, windows, start, stop, fs, centers, sigma, area, beta, cell, spec, eps):
     """Row stats of a (usually one-channel) filterbank on windows[start:stop]."""
     from search.transform import transform
@@ -320,6 +331,16 @@ class _Evaluator:
                                   np.concatenate([r[2] for r in part]) if want_stats else None,
                                   float(sum(r[3] for r in part))))
         return results
+
+    def spectrogram(self, sigma: float, band) -> Scored:
+        """The plain Gaussian spectrogram (time spread ``sigma`` s) scored on its own FFT grid
+        over ``band`` (Hz), in window order; it has no negative values."""
+        calls = [(_spectrogram_task, (self.token, self.shared, s, e, self.fs, float(sigma),
+                                      [float(b) for b in band], self.spec, self.eps))
+                 for s, e in self.chunks]
+        out = self._run(calls)
+        scores = np.concatenate([r[0] for r in out])
+        return Scored(scores, np.zeros_like(scores), None, float(sum(r[1] for r in out)))
 
     def stats(self, p: tuple, channels=None) -> np.ndarray:
         """Row stats ``(n, c, k)`` on all windows of the filterbank ``p`` (per-channel arrays)
@@ -810,16 +831,17 @@ class _Run:
     # stage 0 ------------------------------------------------------------------------------
 
     def baselines(self):
-        """Best spectrogram and scalogram by a 1-D search over the fit windows (the pseudo-WVD
-        has nothing to fit: the judgement scores it on the held-out windows)."""
+        """Best plain spectrogram (on its own FFT grid, over the stage-1 subset of the fit
+        windows) and best scalogram (on the channel grid, over the fit windows) by 1-D searches;
+        the pseudo-WVD has nothing to fit: the judgement scores it on the held-out windows."""
         space, full, base = self.space, self.evaluator("full"), self.state["baselines"]
         lo, hi = space.bounds("log_sigma_ref")
         log = self.state["log"]
 
-        def search(kind, make):
+        def search(kind, score):
             def objective(x):
                 self.check_cancel()
-                r = full.score([make(math.exp(x))])[0]
+                r = score(math.exp(x))
                 y = self.ceiling(r.scores, r.shares)
                 log.add(f"baseline:{kind}", 0, {"time_spread_s": math.exp(x)}, y, r.seconds)
                 return y
@@ -828,13 +850,19 @@ class _Run:
             return math.exp(x), y, len(tried)
 
         if "spectrogram" not in base:
-            sigma, y, n = search("spectrogram", lambda s: space.constant(s))
+            sub, band = self.evaluator("subset"), self.s["band_hz"]
+            sigma, y, n = search("spectrogram", lambda s: sub.spectrogram(s, band))
+            from search.spectrogram import grid_description
+
             base["spectrogram"] = {"objective": y, "evaluations": n,
                                    "parameters": {"time_spread_s": sigma, "cell_area": 1.0,
-                                                  "chirp_hz_per_s": 0.0}}
+                                                  "chirp_hz_per_s": 0.0,
+                                                  **grid_description(sigma, space.fs,
+                                                                     self.windows.shape[1],
+                                                                     self.s["eps"])}}
             self.report("baselines", 0.5)
         if "scalogram" not in base:
-            sigma, y, n = search("scalogram", self.scalogram)
+            sigma, y, n = search("scalogram", lambda s: full.score([self.scalogram(s)])[0])
             base["scalogram"] = {"objective": y, "evaluations": n,
                                  "parameters": {"cycles": sigma * space.f_ref_hz,
                                                 "time_spread_at_reference_s": sigma,
@@ -953,8 +981,9 @@ class _Run:
             r = self.evaluator("full").score([p], want_stats=want)[0]
             candidates.append(("family", self.ceiling(r.scores, r.shares), p, r.stats))
         if self.space.spectrogram_in_space() or not candidates:
-            candidates.append(("spectrogram", base["objective"], self.space.family(
-                self.space.point(base["parameters"]["time_spread_s"])), None))
+            p = self.space.constant(base["parameters"]["time_spread_s"])
+            r = self.evaluator("full").score([p], want_stats=want)[0]
+            candidates.append(("spectrogram", self.ceiling(r.scores, r.shares), p, r.stats))
         name, _, p, stats = min(candidates, key=lambda c: c[1])
         if stats is None and want:
             stats = self.evaluator("full").stats(p)
@@ -1300,41 +1329,54 @@ class _Run:
         in_sample = self.split.held_out.size == 0
         judged = self.split.fit if in_sample else self.split.held_out
         ev = self.evaluator("full" if in_sample else "held")
-        spectrogram = space.constant(base["spectrogram"]["parameters"]["time_spread_s"])
-        reference = {"spectrogram": spectrogram,
+        sigma = base["spectrogram"]["parameters"]["time_spread_s"]
+        on_grid = space.constant(sigma)
+        reference = {"spectrogram_on_grid": on_grid,
                      "scalogram": self.scalogram(base["scalogram"]["parameters"]
                                                  ["time_spread_at_reference_s"]),
                      "pseudo_wvd": self.pseudo_wvd()}
         scored = ev.score([p, *reference.values()], want_stats=True)
         r, refs = scored[0], dict(zip(reference, scored[1:]))
+        refs["spectrogram"] = ev.spectrogram(sigma, s["band_hz"])
         self.report("judge", 0.5, save=False)
 
         def draws():   # the same draws for every quantity, so intervals are paired
             return np.random.default_rng(np.random.SeedSequence([s["seed"], 5]))
 
-        gain = dg.paired_gain(r.scores, refs["spectrogram"].scores, draws(), self.how)
         fallback = None
-        if space.spectrogram_in_space() and not (gain["estimate"] is not None
-                                                 and gain["estimate"] >= 0):
+        mine, grid_spec = (self.ceiling(x.scores, x.shares) for x in (r, refs["spectrogram_on_grid"]))
+        if space.spectrogram_in_space() and not mine <= grid_spec:
             where = "the fitted windows" if in_sample else "the held-out windows"
             fallback = {"to": "spectrogram", "from": origin,
-                        "objective_before": _finite_or_none(self.ceiling(r.scores, r.shares)),
-                        "gain_before": gain,
+                        "objective_before": _finite_or_none(mine),
+                        "gain_before": dg.paired_gain(r.scores, refs["spectrogram"].scores,
+                                                      draws(), self.how),
                         "reason": f"the searched filterbank scored worse than the best "
-                                  f"spectrogram on {where}"}
-            p, r, origin = spectrogram, refs["spectrogram"], "spectrogram"
-            gain = dg.paired_gain(r.scores, r.scores, draws(), self.how)
+                                  f"spectrogram window on the channel grid on {where}"}
+            p, r, origin = on_grid, refs["spectrogram_on_grid"], "spectrogram"
+        gain = dg.paired_gain(r.scores, refs["spectrogram"].scores, draws(), self.how)
+        capped = int(np.sum(on_grid[1] < sigma))
         baselines = {}
-        for name, scored_ref in refs.items():
+        for name in ("spectrogram", "spectrogram_on_grid", "scalogram", "pseudo_wvd"):
+            scored_ref = refs[name]
             entry = dg.interval_on(scored_ref.scores, draws(), self.how)
-            entry.update(parameters=dict(base[name]["parameters"]) if name in base else
-                         {"time_spread_s": float(reference[name][1][0]),
-                          "cell_area": float(reference[name][2][0]),
-                          "note": "kernel limit: quarter-sample time spread, lag window 1000x "
-                                  "the window; far narrower than the channel spacing"},
-                         evaluations=base[name]["evaluations"] if name in base else 1,
-                         objective_fit=_finite_or_none(base[name]["objective"]) if name in base
-                         else None,
+            fitted = base.get(name.replace("_on_grid", ""))
+            if name == "pseudo_wvd":
+                parameters = {"time_spread_s": float(reference[name][1][0]),
+                              "cell_area": float(reference[name][2][0]),
+                              "note": "kernel limit: quarter-sample time spread, lag window "
+                                      "1000x the window; far narrower than the channel spacing"}
+            elif name == "spectrogram_on_grid":
+                parameters = {"time_spread_s": sigma, "cell_area": 1.0, "chirp_hz_per_s": 0.0,
+                              "capped_channels": capped,
+                              "note": "the best spectrogram window on the channel grid, shortened "
+                                      "where the grid cannot sample it; the fallback"}
+            else:
+                parameters = dict(fitted["parameters"])
+            entry.update(parameters=parameters,
+                         evaluations=fitted["evaluations"] if fitted and name != "spectrogram_on_grid" else 1,
+                         objective_fit=_finite_or_none(fitted["objective"])
+                         if fitted and name != "spectrogram_on_grid" else None,
                          negative_share=_finite_or_none(np.mean(scored_ref.shares)))
             baselines[name] = entry
         result = dg.interval_on(r.scores, draws(), self.how)
@@ -1347,7 +1389,7 @@ class _Run:
             "spectrogram": {k: baselines["spectrogram"][k] for k in ("objective", "low", "high")},
             "negative_share": self.negative_shares(r),
             **self.bounds_hit(p, float(np.mean(r.shares))),
-            "onset": self.onset_timing(judged, p, spectrogram)}
+            "onset": self.onset_timing(judged, p, space.centers_hz, sigma)}
         per_window = {"result": [_finite_or_none(v) for v in r.scores],
                       "spectrogram": [_finite_or_none(v) for v in refs["spectrogram"].scores],
                       "windows": [int(i) for i in judged]}
@@ -1399,9 +1441,11 @@ class _Run:
                            "channels": []})
         return {"bounds_hit": sorted({e["setting"] for e in detail}), "bounds_detail": detail}
 
-    def onset_timing(self, judged, p, spectrogram) -> dict | None:
+    def onset_timing(self, judged, p, centers, sigma) -> dict | None:
         """AIC onsets of the channel-summed image energy against the trigger onsets of the
-        judged burst windows (search.onset), for the result and the best spectrogram."""
+        judged burst windows (search.onset), for the result and the best plain spectrogram
+        (window std ``sigma`` on the channel ``centers``; the channel sum is its band energy
+        envelope, whatever the grid samples)."""
         from search.onset import image_onsets
         from search.transform import transform
 
@@ -1413,7 +1457,9 @@ class _Run:
             return None
         trigger = np.array([o for o in offsets if o is not None], dtype=np.float64)
         out = {}
-        for name, params in (("result", p), ("spectrogram", spectrogram)):
+        plain = (centers, np.full(centers.shape, sigma), np.ones(centers.shape),
+                 np.zeros(centers.shape))
+        for name, params in (("result", p), ("spectrogram", plain)):
             fb = make_filterbank(*params, self.space.fs)
             onsets = np.concatenate([image_onsets(transform(self.all_windows[keep[k:k + CHUNK]],
                                                             fb, eps=self.s["eps"]), self.space.fs)

@@ -41,7 +41,8 @@ CAUTIONS = (
 )
 
 BASELINE_NAMES = {
-    "spectrogram": "best spectrogram",
+    "spectrogram": "best plain spectrogram (own FFT grid)",
+    "spectrogram_on_grid": "best spectrogram window on the channel grid",
     "scalogram": "best constant-Q scalogram",
     "pseudo_wvd": "pseudo-Wigner–Ville",
 }

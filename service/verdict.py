@@ -82,6 +82,8 @@ def _channels_text(channels) -> str:
 
 # What lifts a bound, where a job setting does; other bounds are derived by the engine.
 REMEDY = {"cell_area": "widen cell_area and tune again",
+          "max_negative_share": "raising max_negative_share allows more super-resolution, "
+                                "and more Wigner–Ville interference with it",
           "channels": "more channels (a denser grid) would lift the cap",
           "band_hz": "widen band_hz and tune again"}
 
@@ -98,6 +100,12 @@ def _bound_sentences(judged: Mapping) -> list[str]:
     for detail in details:
         setting, bound = str(detail.get("setting") or "a parameter"), detail.get("bound")
         value = _number(detail.get("value"))
+        if setting == "max_negative_share":
+            ceiling = f" of {100 * value:g} %" if value is not None else ""
+            sentences.append(f"The result stopped at the positivity ceiling{ceiling} (negative "
+                             f"share of the image), not at an optimum of the criterion; "
+                             f"{REMEDY[setting]}.")
+            continue
         if bound in ("lower", "upper"):
             where = f"its {bound} search bound" + (f" ({value:g})" if value is not None else "")
         else:  # a bound the engine describes in words, e.g. a cap set by the channel grid
@@ -126,9 +134,9 @@ def _negative_sentence(judged: Mapping) -> list[str]:
 
 def warnings(diagnostics) -> list[str]:
     """Every reason to doubt the result, one plain sentence each in a fixed order; empty when
-    there is none. Conditions: a parameter on a search bound, a negative share above 0.5 %, the
-    spectrogram fallback, fewer than 30 held-out windows, a judgement made in-sample, a stop by
-    the time limit or a cancel."""
+    there is none. Conditions: a parameter on a search bound (the positivity ceiling included),
+    a negative share above 0.5 %, the spectrogram fallback, fewer than 30 held-out windows, a
+    judgement made in-sample, a negative held-out gain, a stop by the time limit or a cancel."""
     if not isinstance(diagnostics, Mapping):
         return []
     out = []
@@ -156,6 +164,15 @@ def warnings(diagnostics) -> list[str]:
             out.append(f"Only {held} windows were held out (fewer than {MIN_HELD_OUT_WINDOWS}): "
                        "the gain and its interval rest on too few bursts to be trusted; use a "
                        "larger corpus or a larger held_out share.")
+    gain = _mapping(judged.get("gain_bits"))
+    estimate, high = _number(gain.get("estimate")), _number(gain.get("high"))
+    if estimate is not None and estimate < 0:
+        surely = high is not None and high < 0
+        out.append("The tuned filterbank is less sharp than the best plain spectrogram on windows "
+                   "the fit never saw" + (" (the whole interval is below 0)" if surely else "")
+                   + ": the channel grid shortens windows where its spacing is wider than their "
+                   "frequency spread; more channels or a narrower band may help, or use the "
+                   "plain spectrogram.")
     out += _bound_sentences(judged)
     out += _negative_sentence(judged)
     return out

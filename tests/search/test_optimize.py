@@ -178,9 +178,11 @@ def test_chirped_search_recovers_the_chirp_rate():
 def test_judgement_uses_only_windows_the_fit_never_saw(mixed, options):
     """Stages 1–2 see only the fit windows; the result, the baselines, the gain and the fallback
     are judged on the held-out 25 % (hold-out evaluation: Hastie, Tibshirani & Friedman, The
-    Elements of Statistical Learning, 2009, §7.2). The fallback keeps the held-out gain ≥ 0,
-    and the paired bootstrap interval (≥ 2000 resamples) holds its estimate (percentile
-    bootstrap: Efron & Tibshirani 1993)."""
+    Elements of Statistical Learning, 2009, §7.2). The fallback keeps the result no worse than
+    the best spectrogram window the channel grid holds; the gain is measured against the plain
+    spectrogram on its own FFT grid (8 channels cannot hold its window, so here it is negative,
+    which is the honest answer), and its paired bootstrap interval (≥ 2000 resamples) holds the
+    estimate (percentile bootstrap: Efron & Tibshirani 1993)."""
     est = FilterbankSearch(**{**SMALL, **options}).fit(mixed)
     d = est.diagnostics_
     j = d["judgement"]
@@ -190,7 +192,8 @@ def test_judgement_uses_only_windows_the_fit_never_saw(mixed, options):
     assert d["per_window"]["windows"] == sorted(held)
     gain = j["gain_bits"]
     assert gain["resamples"] >= 2000 and gain["low"] <= gain["estimate"] <= gain["high"]
-    assert d["gain_bits"] == gain["estimate"] >= 0.0
+    assert d["gain_bits"] == gain["estimate"]
+    assert d["result"]["objective"] <= d["baselines"]["spectrogram_on_grid"]["objective"]
     per = np.array(d["per_window"]["result"])
     assert d["result"]["objective"] == pytest.approx(per.mean())
     spec = np.array(d["per_window"]["spectrogram"])
@@ -211,7 +214,7 @@ def test_diagnostics_follow_the_contract(mixed):
         assert key in d, key
     json.dumps(d, allow_nan=False)
     assert d["stop_reason"] in ("budget", "stall", "time_limit", "cancelled")
-    assert set(d["baselines"]) == {"spectrogram", "scalogram", "pseudo_wvd"}
+    assert set(d["baselines"]) == {"spectrogram", "spectrogram_on_grid", "scalogram", "pseudo_wvd"}
     assert {"stage", "round", "params", "objective", "seconds"} <= set(d["evaluations"][0])
     assert len(d["refinement"]) == 8 and len(d["bootstrap"]["channels"]) == 8
     assert d["windows"] == {"used": 12, "rejected": 1, "rejected_by_reason": {"flat": 1}}

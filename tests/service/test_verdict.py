@@ -177,3 +177,25 @@ def test_every_cli_printout_starts_with_the_verdict():
     assert tune.summary_lines(copy.deepcopy(diag))[:2] == expected
     filterbank = {"channels": [], "sampling_rate_hz": 1000.0}
     assert demo.summary_lines(filterbank, copy.deepcopy(diag), 1.0)[:2] == expected
+
+
+def test_warns_when_the_result_stopped_at_the_positivity_ceiling():
+    """The ceiling named as what stopped the search, with how to move it."""
+    diag = clean()
+    diag["judgement"]["bounds_hit"] = ["max_negative_share"]
+    diag["judgement"]["bounds_detail"] = [{"setting": "max_negative_share", "bound": "upper",
+                                           "value": 0.01, "channels": []}]
+    (warning,) = verdict.warnings(diag)
+    assert "positivity ceiling of 1 %" in warning and "raising max_negative_share" in warning
+
+
+@pytest.mark.parametrize("estimate, high, warned, surely", [
+    (0.42, 0.52, False, False), (-0.1, 0.05, True, False), (-0.3, -0.1, True, True)])
+def test_warns_when_the_plain_spectrogram_is_sharper_on_held_out_windows(estimate, high, warned,
+                                                                          surely):
+    """A negative held-out gain is said in words, and whether the whole interval is below 0."""
+    diag = clean()
+    diag["judgement"]["gain_bits"].update(estimate=estimate, low=estimate - 0.1, high=high)
+    found = [w for w in verdict.warnings(diag) if "less sharp than the best plain" in w]
+    assert bool(found) == warned
+    assert bool(found and "whole interval is below 0" in found[0]) == surely
