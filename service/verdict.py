@@ -100,6 +100,12 @@ def _bound_sentences(judged: Mapping) -> list[str]:
     for detail in details:
         setting, bound = str(detail.get("setting") or "a parameter"), detail.get("bound")
         value = _number(detail.get("value"))
+        if setting == "channels":
+            where = _channels_text(detail.get("channels"))
+            sentences.append(f"The channel spacing caps the time spread{where}: a longer kernel "
+                             "would fall between channel centres, so the grid cannot hold it; "
+                             f"{REMEDY[setting]}.")
+            continue
         if setting == "max_negative_share":
             ceiling = f" of {100 * value:g} %" if value is not None else ""
             sentences.append(f"The result stopped at the positivity ceiling{ceiling} (negative "

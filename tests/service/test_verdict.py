@@ -72,15 +72,14 @@ def test_warns_when_a_parameter_sits_on_a_search_bound():
     assert "widen cell_area" in warning
 
 
-def test_a_bound_described_in_words_is_quoted():
-    """The engine may describe a bound instead of lower/upper (a cap set by the channel grid)."""
+def test_the_grid_cap_is_said_in_words():
+    """The cap the channel grid sets on time spreads is named as such, with its remedy."""
     diag = clean()
     diag["judgement"]["bounds_hit"] = ["channels"]
     diag["judgement"]["bounds_detail"] = [{"setting": "channels", "value": None, "channels": [4],
                                            "bound": "grid spacing caps time_spread_s"}]
     (warning,) = verdict.warnings(diag)
-    assert ("channels sits on a search bound (grid spacing caps time_spread_s) in channel 4"
-            in warning)
+    assert "The channel spacing caps the time spread in channel 4" in warning
     assert "more channels" in warning
 
 
