@@ -281,8 +281,9 @@ def _channels(channels: list[dict], diagnostics: Mapping) -> Plot:
                                              _column(channels, "cell_area"),
                                              _column(channels, "chirp_hz_per_s"), bands)
     resamples = (diagnostics.get("bootstrap") or {}).get("resamples")
-    band_text = (f"shaded bootstrap intervals ({resamples} resamples) for "
-                 f"{', '.join(sorted(bands))}" if bands else "no bootstrap intervals recorded")
+    band_text = (f"shaded stability intervals (refits on {resamples} resamples of the fit "
+                 f"windows) for {', '.join(sorted(bands))}" if bands
+                 else "no stability intervals recorded")
     alt = (f"Per-channel parameters against centre frequency ({fc.min():.4g} to {fc.max():.4g} Hz)"
            f" in three panels: time spread in ms, cell area (dashed line at 1), chirp rate in Hz/s;"
            f" {band_text}.")

@@ -134,6 +134,13 @@ def check_rates(segments: list[Segment], target_hz: float, how: str) -> None:
             )
 
 
+def _dot(a: np.ndarray, b: np.ndarray, block: int = 1 << 16) -> float:
+    """Σ a·b by numpy's pairwise sums over fixed blocks, not BLAS dot: the same bits whatever
+    the thread count (a corpus read by a worker with other thread settings gives the same
+    windows), and no temporary longer than one block."""
+    return float(sum((a[i:i + block] * b[i:i + block]).sum() for i in range(0, a.size, block)))
+
+
 def demean_detrend(x: np.ndarray) -> np.ndarray:
     """Remove the least-squares line a + b·n from ``x`` (float64, in place, returned)."""
     n = x.size
@@ -142,9 +149,7 @@ def demean_detrend(x: np.ndarray) -> np.ndarray:
     if n > 1:
         t = np.arange(n, dtype=np.float64)
         t -= (n - 1) / 2.0
-        # numpy's pairwise sums, not BLAS dot: the same bits whatever the thread count, so a
-        # corpus read by a worker with other thread settings gives the same windows
-        slope = (t * x).sum() / (t * t).sum()
+        slope = _dot(t, x) / _dot(t, t)
         t *= slope
         x -= t
     return x

@@ -62,7 +62,8 @@ def summary_lines(diagnostics: dict) -> list[str]:
     boot = d.get("bootstrap") or {}
     if boot.get("channels"):
         wide = wide_channels(boot, chirp_bound_hz_per_s=d["settings"].get("chirp_bound_hz_per_s", 0.0))
-        lines.append(f"channels with wide bootstrap intervals: {len(wide)} of {len(boot['channels'])}"
+        lines.append(f"channels with wide stability intervals (refits on resamples of the fit "
+                     f"windows): {len(wide)} of {len(boot['channels'])}"
                      + (f" ({', '.join(map(str, wide[:12]))}{' …' if len(wide) > 12 else ''})"
                         if wide else ""))
         off = [i for i, ch in enumerate(boot["channels"]) if ch.get("at_optimum") is False]

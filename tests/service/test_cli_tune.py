@@ -70,7 +70,7 @@ def test_tune_writes_the_results(tuned, capsys):
 
 def test_tune_prints_a_summary(wav_dir, tmp_path, capsys):
     """The summary opens with the gain on held-out windows, then names windows used, stop reason,
-    objective, gain over the best spectrogram and the channels with wide bootstrap intervals."""
+    objective, gain over the best spectrogram and the channels with wide stability intervals."""
     assert main(["tune", str(wav_dir), "--out", str(tmp_path), "--quiet", *FAST, "--no-refine"]) == 0
     text = capsys.readouterr().out
     assert text.startswith("gain on windows the fit never saw: ")

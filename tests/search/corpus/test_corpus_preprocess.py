@@ -139,3 +139,29 @@ def test_component_selection_by_orientation_code(tmp_path):
     assert {m["trace_id"] for m in corpus.window_meta} == {"XM.Q1.00.GPZ"}
     with pytest.raises(CorpusError, match=r"components='1'.*codes found: E, N, Z"):
         read_corpus(tmp_path, components="1")
+
+
+def test_a_corpus_reads_to_the_same_bits_whatever_the_thread_count(tmp_path):
+    """A job worker reads the corpus with other BLAS thread settings than the API or a Dask
+    worker; the windows must come out bit for bit the same, so the fit is the same wherever it
+    runs (DESIGN §5 determinism; common practice). The detrend still removes the least-squares
+    line: the residual is orthogonal to 1 and n (normal equations)."""
+    from threadpoolctl import threadpool_limits
+
+    from search.corpus.preprocess import demean_detrend
+
+    rng = np.random.default_rng(0)
+    fs, n = 1000.0, 12000
+    t = np.arange(n) / fs
+    x = 0.05 * rng.standard_normal(n)
+    for k in range(6):
+        t0 = (k + 0.5) * 2.0 + rng.uniform(-0.1, 0.1)
+        x += np.exp(-0.5 * ((t - t0) / 0.02) ** 2) * np.cos(2 * np.pi * rng.uniform(80, 250) * (t - t0))
+    np.savez(tmp_path / "trace.npz", data=x, sampling_rate_hz=np.float64(fs))
+    a = read_corpus([tmp_path], window_s=0.256).windows
+    with threadpool_limits(1):
+        b = read_corpus([tmp_path], window_s=0.256).windows
+    assert np.array_equal(a, b)
+    y = demean_detrend(x.copy())
+    m = np.arange(n) - (n - 1) / 2
+    assert abs(y.sum()) < 1e-9 * np.abs(y).sum() and abs((y * m).sum()) < 1e-9 * np.abs(y * m).sum()
