@@ -74,7 +74,7 @@ def test_tune_prints_a_summary(wav_dir, tmp_path, capsys):
     assert main(["tune", str(wav_dir), "--out", str(tmp_path), "--quiet", *FAST, "--no-refine"]) == 0
     text = capsys.readouterr().out
     assert text.startswith("gain on windows the fit never saw: ")
-    for phrase in ("windows used: 6", "stop reason:", "objective:", "gain", "wide bootstrap"):
+    for phrase in ("windows used: 6", "stop reason:", "objective:", "gain", "wide stability intervals"):
         assert phrase in text, phrase
 
 
