@@ -2,16 +2,18 @@
 
 *Quillmoor Deep* (invented) mines a tabular reef between 2100 and 2800 m below collar. Five
 three-component 14 Hz geophones on three levels (2150, 2450, 2750 m) record at 4 kHz into
-network ``XM`` (a temporary-network code). The record holds microseismic events (Mw −2.5 … 0)
-around the active stope, two production blasts, and the site's noise: ventilation fans, 50 Hz
-power-line hum with harmonics and a coloured background. Everything here is synthetic, built from
-textbook physics, seeded and reproducible bit for bit.
+network ``XX``, the code kept for test data and examples (FDSN, "FDSN Source Identifiers",
+specification version 1.0), so the demo never passes for a real deployment. The record holds
+microseismic events (Mw −2.5 … 0) around the active stope, two production blasts, and the
+site's noise: ventilation fans, 50 Hz power-line hum with harmonics and a coloured background.
+Everything here is synthetic, built from textbook physics, seeded and reproducible bit for bit.
 
 Physics (SI units: m, s, Hz, N·m, Pa, kg/m³):
 
-- Moment magnitude: IASPEI standard form Mw = (2/3)(log10 M0 − 9.1), M0 in N·m (IASPEI 2013
-  magnitude standards). Hanks & Kanamori (JGR 84, 1979) write (2/3)log10 M0 − 10.7 in dyne·cm,
-  i.e. −6.03 for N·m (≈ 9.05 here); we use 9.1.
+- Moment magnitude: IASPEI standard form Mw = (2/3)(log10 M0 − 9.1), M0 in N·m (IASPEI Magnitude
+  Working Group, "Summary of Magnitude Working Group Recommendations on Standard Procedures for
+  Determining Earthquake Magnitudes from Digital Data", 2013). Hanks & Kanamori (JGR 84, 1979)
+  write (2/3)log10 M0 − 10.7 in dyne·cm, i.e. −6.03 for N·m (≈ 9.05 here); we use 9.1.
 - Source: Brune ω² spectrum (Brune, JGR 75, 1970), moment rate Ṁ(t) = M0 ωc² t e^{−ωc t},
   |Ṁ(f)| = M0 / (1 + (f/fc)²). Corner frequency from the stress drop Δσ:
   r = 2.34 β / (2π fc) and Δσ = 7 M0 / (16 r³) give fc = 0.4906 β (Δσ/M0)^{1/3}; that is the
@@ -49,7 +51,7 @@ DEFAULT_SEED = 20260317
 SAMPLING_RATE_HZ = 4000.0
 DURATION_S = 60.0
 START = "2026-03-17T02:00:00"
-NETWORK = "XM"
+NETWORK = "XX"
 LOCATION = "00"
 CHANNELS = ("GPZ", "GPN", "GPE")  # G: 1–5 kHz short period; P: geophone; Z up, N, E (SEED)
 
@@ -87,7 +89,8 @@ GUIDED_WIDTH_HZ = 170.0                 # and standard deviation
 # --- source physics -----------------------------------------------------------------------------
 
 def moment_from_mw(mw):
-    """Seismic moment M0 in N·m from moment magnitude: IASPEI Mw = (2/3)(log10 M0 − 9.1)."""
+    """Seismic moment M0 in N·m from moment magnitude: IASPEI standard Mw = (2/3)(log10 M0 − 9.1)
+    (IASPEI Magnitude Working Group 2013, see the module docstring)."""
     return 10.0 ** (1.5 * np.asarray(mw, dtype=float) + 9.1)
 
 

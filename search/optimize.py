@@ -1256,7 +1256,7 @@ class _Run:
             p = space.family(space.point(sigma or math.exp(np.mean(space.bounds("log_sigma_ref")))))
             origin = "spectrogram"
         cancelled = st["stop_reason"] == "cancelled"
-        self.report("judge", 0.0, save=False)
+        self.report("judge", 0.0)     # a checkpoint: a worker told to stop leaves here, not mid-judge
         d = {"stop_reason": st["stop_reason"] or "budget",
              "evaluations": st["log"].evaluations, "best_so_far": st["log"].best_so_far,
              "refinement": self._refinement_records()}

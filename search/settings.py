@@ -1,10 +1,11 @@
 """Job settings: names, defaults, validation, and the split into corpus and search options.
 
 A job's settings (DESIGN §7, the CLI flags of §9 in snake_case) mix options for reading the
-corpus (``window_s``, ``windowing``, ``max_windows``) with options for the search. The service and
-the CLI hand the whole dict to :func:`split_settings`, pass the first half to ``read_corpus`` and
-the second to ``FilterbankSearch``. Every check here raises ``ValueError`` naming the setting, the
-value and the cause, so an HTTP 422 or a CLI exit 2 can show the message as it is.
+corpus (every ``read_corpus`` keyword, defined once in :data:`CORPUS_OPTIONS`) with options for
+the search. The service and the CLI hand the whole dict to :func:`split_settings`, pass the first
+half to ``read_corpus`` and the second to ``FilterbankSearch``. Every check here raises
+``ValueError`` naming the setting, the value and the cause, so an HTTP 422 or a CLI exit 2 can
+show the message as it is.
 
 Checks that need the corpus (the band against the Nyquist frequency, time spreads against the
 window length) live in :func:`resolve_search_options`, which ``FilterbankSearch.fit`` calls; it
@@ -14,13 +15,165 @@ from __future__ import annotations
 
 import math
 import numbers
+import re
+from dataclasses import dataclass
+from importlib import import_module
+
+
+def _reader(name: str):
+    """A constant of the corpus reader, looked up on use: importing ``search.corpus`` loads
+    scipy.signal (over a second), which the CLI's start and corpus-free checks should not pay."""
+    return getattr(import_module("search.corpus.ingest"), name)
+
+
+@dataclass(frozen=True)
+class CorpusOption:
+    """One ``read_corpus`` option, defined once for the job settings, the CLI flags and the
+    upload form fields: the same name, default, help and check everywhere.
+
+    ``kind``: ``positive`` (finite number > 0), ``share`` (number in [0, 1)), ``integer``
+    (``minimum``..``maximum``), ``choice`` (one of the reader's constant ``choices_from``),
+    ``band`` ([low, high] Hz, 0 ≤ low < high) or ``codes`` (SEED orientation letters).
+    ``reader_default`` names the reader's constant holding the default; without one the default
+    is ``default_words`` (the reader chooses it, usually from the data). ``flag`` is the CLI flag
+    when it is not ``--name-with-dashes``.
+    """
+
+    name: str
+    kind: str
+    help: str
+    reader_default: str | None = None
+    default_words: str = "chosen from the data"
+    choices_from: str | None = None
+    minimum: int | None = None
+    maximum: float | None = None
+    flag: str | None = None
+
+    @property
+    def cli_flag(self) -> str:
+        return self.flag or "--" + self.name.replace("_", "-")
+
+    @property
+    def default(self):
+        """The reader's default value, or None when the reader chooses it (from the data)."""
+        return None if self.reader_default is None else _reader(self.reader_default)
+
+    @property
+    def choices(self) -> tuple:
+        return tuple(_reader(self.choices_from)) if self.kind == "choice" else ()
+
+    def default_text(self) -> str:
+        if self.reader_default is None:
+            return self.default_words
+        value = self.default
+        return f"{value:g}" if isinstance(value, float) else str(value)
+
+    def sentence(self) -> str:
+        """The help as a sentence with the default, for the API's documents."""
+        return f"{self.help[:1].upper()}{self.help[1:]} (default {self.default_text()})."
+
+    def bounds(self) -> dict:
+        """Numeric bounds as pydantic / annotated-types keywords (``gt``, ``ge``, ``lt``, ``le``)."""
+        if self.kind == "positive":
+            out = {"gt": 0}
+        elif self.kind == "share":
+            out = {"ge": 0, "lt": 1}
+        elif self.kind == "integer":
+            out = {"ge": self.minimum}
+        else:
+            return {}
+        if self.maximum is not None:
+            out["le"] = self.maximum
+        return out
+
+    def check(self, value):
+        """The checked value (normalised: floats, upper-case codes, a [low, high] list), or
+        ``ValueError`` naming the setting."""
+        name = self.name
+        if self.kind == "positive":
+            value = _real(name, value, positive=True)
+        elif self.kind == "share":
+            value = _real(name, value, nonnegative=True)
+            if value >= 1:
+                _fail(name, value, "is a share of the window, below 1")
+        elif self.kind == "integer":
+            value = _int(name, value, minimum=self.minimum)
+        elif self.kind == "choice":
+            if value not in self.choices:
+                _fail(name, value, f"choose one of {', '.join(self.choices)}")
+        elif self.kind == "band":
+            lo, hi = _pair(name, value)
+            if lo < 0 or hi <= lo:
+                _fail(name, value, "need 0 ≤ low < high (low 0 is a low-pass)")
+            value = [lo, hi]
+        elif self.kind == "codes":
+            letters = list(value) if isinstance(value, (str, list, tuple)) else None
+            if not letters or not all(isinstance(c, str) and len(c) == 1 and c.isalnum()
+                                      for c in letters):
+                _fail(name, value, "expected SEED orientation codes, e.g. 'Z' or 'ZNE'")
+            value = "".join(letters).upper()
+        if self.maximum is not None and value > self.maximum:
+            _fail(name, value, f"must be at most {self.maximum:g}")
+        return value
+
+    def parse(self, text: str):
+        """The value of an upload form field (text) before :meth:`check`; a band is ``LO,HI``
+        (``[LO, HI]`` and spaces are accepted too)."""
+        text = text.strip()
+        try:
+            if self.kind in ("positive", "share"):
+                return float(text)
+            if self.kind == "integer":
+                return int(text)
+            if self.kind == "band":
+                return [float(v) for v in re.split(r"[\s,;]+", text.strip("[]() ").strip()) if v]
+        except ValueError:
+            _fail(self.name, text, "expected a number" if self.kind != "band" else
+                  "expected two numbers LO,HI in Hz")
+        return text
+
+
+_OPTIONS = (
+    CorpusOption("windowing", "choice", "how windows are cut: STA/LTA bursts, whole traces "
+                 "(event files) or sliding windows", default_words="bursts",
+                 choices_from="WINDOWINGS"),
+    CorpusOption("window_s", "positive", "window length, s", maximum=60.0,
+                 default_words="from the burst durations the trigger finds"),
+    CorpusOption("max_windows", "integer", "cap on windows; a seeded subsample is kept",
+                 reader_default="DEFAULT_MAX_WINDOWS", minimum=1, maximum=1_000_000),
+    CorpusOption("seed", "integer", "seed of the window subsample, the held-out split and the "
+                 "search", reader_default="DEFAULT_SEED", minimum=0, maximum=2**32 - 1),
+    CorpusOption("sampling_rate_hz", "positive", "common sampling rate, Hz; other rates are "
+                 "resampled", default_words="the most common native rate",
+                 flag="--sampling-rate"),
+    CorpusOption("components", "codes", "SEED orientation codes to keep, e.g. Z or ZNE",
+                 default_words="all"),
+    CorpusOption("bandpass_hz", "band", "zero-phase band-pass [low, high], Hz (low 0: "
+                 "low-pass)", default_words="none", flag="--bandpass"),
+    CorpusOption("csv_sampling_rate_hz", "positive", "declared sampling rate of files that "
+                 "carry none (CSV, .npy, .npz), Hz", default_words="none",
+                 flag="--csv-sampling-rate"),
+    CorpusOption("sta_s", "positive", "STA length, s",
+                 default_words="a few dominant periods of the data"),
+    CorpusOption("lta_s", "positive", "LTA length, s", default_words="a multiple of the STA"),
+    CorpusOption("trigger_on", "positive", "STA/LTA threshold that starts a trigger",
+                 reader_default="DEFAULT_TRIGGER_ON"),
+    CorpusOption("trigger_off", "positive", "STA/LTA threshold that ends a trigger, at most "
+                 "trigger_on", reader_default="DEFAULT_TRIGGER_OFF"),
+    CorpusOption("pre_trigger", "share", "share of a burst window before its trigger, in [0, 1)",
+                 reader_default="DEFAULT_PRE_TRIGGER"),
+    CorpusOption("trigger", "choice", "STA/LTA kind", reader_default="DEFAULT_TRIGGER",
+                 choices_from="TRIGGERS"),
+    CorpusOption("hop_s", "positive", "hop of sliding windows, s", default_words="half a window"),
+)
+# name -> definition, in the order of read_corpus's keywords
+CORPUS_OPTIONS: dict[str, CorpusOption] = {o.name: o for o in _OPTIONS}
 
 # Job-setting name -> default. None means "chosen from the data when the corpus is known".
 SETTINGS_DEFAULTS: dict = {
     "channels": 96,
     "band_hz": None,          # default [fs/100, 0.45*fs]: above DC drift, below the anti-alias roll-off
     "spacing": "log",
-    "window_s": None,         # corpus option: the reader derives it from the trigger durations
     "criterion": {"name": "renyi", "alpha": 3.0},
     "cell_area": [0.25, 4.0],
     "chirp": True,
@@ -28,16 +181,16 @@ SETTINGS_DEFAULTS: dict = {
     "evaluations": 24,        # stage-1 family evaluations; meets the time targets in bench/
     "time_limit_s": None,     # no time limit
     "bootstrap": 8,
-    "seed": 0,
-    "windowing": None,        # corpus option: reader default
-    "max_windows": None,      # corpus option: reader default
+    "seed": 0,                # also a corpus option: the seed of the reader's subsample
     "jobs": 1,
     "subset": 64,             # windows scoring the stage-1 family search
     "max_negative_share": 0.01,  # positivity ceiling: share of the image's absolute mass
     "held_out": 0.25,         # share of windows kept out of the fit and used to judge it
+    # corpus options: None leaves the choice to the reader (recorded in Corpus.defaults)
+    **{name: None for name in CORPUS_OPTIONS if name != "seed"},
 }
 
-CORPUS_KEYS = ("window_s", "windowing", "max_windows", "seed")
+CORPUS_KEYS = tuple(CORPUS_OPTIONS)
 SEARCH_KEYS = ("channels", "band_hz", "spacing", "criterion", "cell_area", "chirp", "refine",
                "evaluations", "time_limit_s", "bootstrap", "seed", "jobs", "subset",
                "max_negative_share", "held_out")
@@ -49,7 +202,6 @@ CRITERION_DEFAULTS = {"name": "renyi", "alpha": 3.0, "p": 2.0, "measure": "gini"
 SPARSITY_MEASURES = ("gini", "hoyer")
 REDUCERS = ("mean", "median", "trimmed")
 SPACINGS = ("log", "linear")
-WINDOWINGS = ("bursts", "whole", "sliding")
 
 
 def _fail(name: str, value, cause: str):
@@ -149,8 +301,6 @@ def validate_settings(settings: dict) -> dict:
         out["band_hz"] = [lo, hi]
     if out["spacing"] not in SPACINGS:
         _fail("spacing", out["spacing"], f"choose one of {', '.join(SPACINGS)}")
-    if out["window_s"] is not None:
-        out["window_s"] = _real("window_s", out["window_s"], positive=True)
     out["criterion"] = normalize_criterion(out["criterion"])
     lo, hi = _pair("cell_area", out["cell_area"])
     if lo <= 0:
@@ -166,11 +316,7 @@ def validate_settings(settings: dict) -> dict:
     out["bootstrap"] = _int("bootstrap", out["bootstrap"], minimum=0)
     if out["bootstrap"] == 1:
         _fail("bootstrap", 1, "use 0 (no intervals) or at least 2 resamples")
-    out["seed"] = _int("seed", out["seed"], minimum=0)
-    if out["windowing"] is not None and out["windowing"] not in WINDOWINGS:
-        _fail("windowing", out["windowing"], f"choose one of {', '.join(WINDOWINGS)}")
-    if out["max_windows"] is not None:
-        out["max_windows"] = _int("max_windows", out["max_windows"], minimum=1)
+    out.update(check_corpus_options({k: out[k] for k in CORPUS_KEYS}))
     out["jobs"] = _int("jobs", out["jobs"], minimum=1, allow=(-1,))
     out["subset"] = _int("subset", out["subset"], minimum=1)
     out["max_negative_share"] = _real("max_negative_share", out["max_negative_share"],
@@ -185,18 +331,48 @@ def validate_settings(settings: dict) -> dict:
     return out
 
 
+def check_corpus_options(options: dict) -> dict:
+    """Check corpus options (any subset of :data:`CORPUS_OPTIONS`; None means unset); return the
+    set ones checked. The pairs are checked together, the unset one at the reader's default:
+    ``trigger_off`` ≤ ``trigger_on``, ``sta_s`` < ``lta_s``."""
+    unknown = sorted(set(options) - set(CORPUS_OPTIONS))
+    if unknown:
+        raise ValueError(f"unknown corpus option(s): {', '.join(map(repr, unknown))}; "
+                         f"known: {', '.join(CORPUS_OPTIONS)}")
+    out = {k: CORPUS_OPTIONS[k].check(v) for k, v in options.items() if v is not None}
+    if "trigger_on" in out or "trigger_off" in out:
+        on = out.get("trigger_on", CORPUS_OPTIONS["trigger_on"].default)
+        off = out.get("trigger_off", CORPUS_OPTIONS["trigger_off"].default)
+        if off > on:
+            _fail("trigger_off", off, f"must not exceed trigger_on {on:g}")
+    if "sta_s" in out and "lta_s" in out and out["sta_s"] >= out["lta_s"]:
+        _fail("sta_s", out["sta_s"], f"must be shorter than lta_s {out['lta_s']:g}")
+    return out
+
+
 def split_settings(settings: dict) -> tuple[dict, dict]:
     """Job settings -> ``(corpus_options, search_options)``.
 
-    ``corpus_options`` are keywords for ``read_corpus`` (only those set: ``window_s``,
-    ``windowing``, ``max_windows``, plus ``seed`` for its seeded subsample); ``search_options``
-    are keywords for ``FilterbankSearch`` (``jobs`` becomes ``n_jobs``). Unknown keys and bad
-    values raise ``ValueError`` naming them.
+    ``corpus_options`` are keywords for ``read_corpus``: only the corpus options the settings
+    set, so the reader's own choices (and a corpus upload's recorded options) stay in force for
+    the rest; ``search_options`` are keywords for ``FilterbankSearch`` (``jobs`` becomes
+    ``n_jobs``). Unknown keys and bad values raise ``ValueError`` naming them.
     """
     checked = validate_settings(settings)
-    corpus = {k: checked[k] for k in CORPUS_KEYS if checked[k] is not None}
+    corpus = {k: checked[k] for k in CORPUS_KEYS if settings.get(k) is not None}
     search = {("n_jobs" if k == "jobs" else k): checked[k] for k in SEARCH_KEYS}
     return corpus, search
+
+
+def read_corpus_as_given(paths, options: dict):
+    """``read_corpus(paths, **options)``, with ``options`` (checked corpus options) recorded as
+    ``Corpus.defaults["given"]``: the reader's record holds the value of every option, this
+    says which of them a person set rather than the reader chose (the result's provenance)."""
+    from search.corpus import read_corpus
+
+    corpus = read_corpus(paths, **options)
+    corpus.defaults["given"] = dict(options)
+    return corpus
 
 
 def resolve_search_options(options: dict, sampling_rate_hz: float, window_samples: int) -> dict:

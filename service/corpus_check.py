@@ -14,9 +14,6 @@ from fastapi import HTTPException
 
 log = logging.getLogger("burstlens.corpus")
 
-WINDOWINGS = ("bursts", "whole", "sliding")
-
-
 class CorpusRejected(ValueError):
     """The files cannot be read as a corpus (message names the client's file and the cause)."""
 
@@ -26,24 +23,15 @@ class CorpusTooLarge(ValueError):
 
 
 def parse_read_options(fields: dict[str, str]) -> dict[str, Any]:
-    """Form fields of an upload → corpus reader options (422 naming a bad field)."""
-    options: dict[str, Any] = {}
-    if "windowing" in fields:
-        if fields["windowing"] not in WINDOWINGS:
-            raise HTTPException(status_code=422, detail=f"windowing: expected one of {list(WINDOWINGS)}, "
-                                                        f"got {fields['windowing']!r}")
-        options["windowing"] = fields["windowing"]
-    for name in ("window_s", "csv_sampling_rate_hz"):
-        if name in fields:
-            try:
-                value = float(fields[name])
-            except ValueError:
-                value = float("nan")
-            if not math.isfinite(value) or value <= 0:
-                raise HTTPException(status_code=422, detail=f"{name}: expected a positive number, "
-                                                            f"got {fields[name]!r}")
-            options[name] = value
-    return options
+    """Form fields of an upload (named as the corpus options, ``search.settings.CORPUS_OPTIONS``,
+    values as text) → checked corpus reader options; a bad one is a 422 naming it."""
+    from search.settings import CORPUS_OPTIONS, check_corpus_options
+
+    try:
+        return check_corpus_options({name: CORPUS_OPTIONS[name].parse(text)
+                                     for name, text in fields.items()})
+    except ValueError as exc:
+        raise HTTPException(status_code=422, detail=str(exc)) from None
 
 
 def _renamer(paths: list[Path], names: list[str]):
@@ -85,11 +73,12 @@ def jsonable(obj: Any, rename=lambda s: s) -> Any:
 
 def load_corpus(paths: list[Path], names: list[str], options: dict[str, Any]):
     """``search.read_corpus`` over stored files; errors become :class:`CorpusRejected`."""
-    from search.corpus import CorpusError, read_corpus
+    from search.corpus import CorpusError
+    from search.settings import read_corpus_as_given
 
     rename = _renamer(paths, names)
     try:
-        return read_corpus([str(p) for p in paths], **options)
+        return read_corpus_as_given([str(p) for p in paths], options)
     except CorpusError as exc:
         raise CorpusRejected(rename(str(exc))) from None
     except (ValueError, TypeError) as exc:

@@ -4,7 +4,8 @@ Starts ``burstlens serve`` on a free loopback port with a temporary data dir, up
 ``demo_corpus/`` through :mod:`service.client`, queues a tuning job, follows it with a progress
 bar, saves filterbank.json, diagnostics.json and report.html under ``demo_out/``, prints a short
 summary (first the gain in bits over the best spectrogram on held-out windows and any warnings,
-then the stop reason and the sharpest channels in familiar terms) and stops the server.
+then the stop reason and the channels carrying most of the bursts' energy in familiar terms) and
+stops the server.
 """
 from __future__ import annotations
 
@@ -47,15 +48,12 @@ def wait_healthy(client, proc: subprocess.Popen, timeout_s: float = 90.0) -> Non
     raise RuntimeError(f"the server did not answer /healthz within {timeout_s:.0f} s")
 
 
-def sharpest_channels(filterbank: dict, count: int = 3) -> list[dict]:
-    """The channels with the smallest cell area (the most super-resolved), sharpest first."""
-    channels = filterbank.get("channels") or []
-    return sorted(channels, key=lambda c: c.get("cell_area", 1.0))[:count]
-
-
-def summary_lines(filterbank: dict, diagnostics: dict, elapsed_s: float) -> list[str]:
-    """The held-out gain and any warnings first (``service.verdict``), then the run."""
+def summary_lines(filterbank: dict, diagnostics: dict, elapsed_s: float,
+                  bursts=None) -> list[str]:
+    """The held-out gain and any warnings first (``service.verdict``), then the run and the
+    channels carrying the energy of the burst corpus ``bursts`` (``service.energy_channels``)."""
     from service import verdict
+    from service.energy_channels import lines_or_note
 
     result = diagnostics.get("result") or {}
     spectrogram = (diagnostics.get("baselines") or {}).get("spectrogram") or {}
@@ -70,11 +68,7 @@ def summary_lines(filterbank: dict, diagnostics: dict, elapsed_s: float) -> list
     lines.append(f"windows used: {windows.get('used')}, rejected: {windows.get('rejected')}")
     lines.append(f"channels: {len(filterbank.get('channels') or [])} at "
                  f"{filterbank.get('sampling_rate_hz')} Hz")
-    lines.append("sharpest channels:")
-    for channel in sharpest_channels(filterbank):
-        reading = (channel.get("equivalent") or {}).get("text", "")
-        lines.append(f"  {channel.get('center_hz', 0):8.1f} Hz  a={channel.get('cell_area', 1):.3f}  "
-                     f"{reading}")
+    lines += lines_or_note(filterbank, bursts)
     lines.append(f"elapsed: {elapsed_s:.1f} s")
     return lines
 
@@ -111,7 +105,11 @@ def run(corpus_dir: Path, out_dir: Path, settings: dict) -> int:
                 return 1
             saved = client.download_results(job["id"], out_dir)
             filterbank, diagnostics = client.filterbank(job["id"]), client.diagnostics(job["id"])
-        print("\n".join(summary_lines(filterbank, diagnostics, time.monotonic() - start)))
+        from service.energy_channels import sample_windows
+
+        elapsed_s = time.monotonic() - start
+        bursts = sample_windows(files, filterbank)
+        print("\n".join(summary_lines(filterbank, diagnostics, elapsed_s, bursts)))
         for path in saved.values():
             print(f"saved {path}")
         return 0

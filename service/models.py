@@ -2,13 +2,17 @@
 
 ``JobSettings`` mirrors the CLI settings flags in snake_case (DESIGN §7). Every field is optional:
 a missing one takes the engine's default, which the result records. Unknown keys are rejected
-(``extra="forbid"``) so a typo never silently runs a different job.
+(``extra="forbid"``) so a typo never silently runs a different job. Its corpus fields are made
+from the one definition of the corpus options (``search.settings.CORPUS_OPTIONS``): same names,
+bounds, help and check as the CLI flags and the upload's form fields.
 """
 from __future__ import annotations
 
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator
+from pydantic import BaseModel, ConfigDict, Field, create_model, field_validator
+
+from search.settings import CORPUS_OPTIONS
 
 JobState = Literal["queued", "running", "succeeded", "failed", "cancelled"]
 
@@ -47,8 +51,8 @@ def _pair(name: str, value, *, positive: bool) -> list[float] | None:
     return [float(lo), float(hi)]
 
 
-class JobSettings(_Strict):
-    """Settings of one tuning job; keys as the CLI flags in snake_case."""
+class _SearchSettings(_Strict):
+    """The search settings of a job; ``JobSettings`` adds the corpus options."""
 
     model_config = ConfigDict(extra="forbid", allow_inf_nan=False, json_schema_extra={"examples": [
         {"channels": 48, "band_hz": [20.0, 1500.0], "spacing": "log", "criterion": {"name": "renyi",
@@ -58,7 +62,6 @@ class JobSettings(_Strict):
     band_hz: list[float] | None = Field(None, min_length=2, max_length=2,
                                         description="[low, high] channel band, Hz.")
     spacing: Literal["log", "linear"] | None = Field(None, description="Channel centre spacing.")
-    window_s: float | None = Field(None, gt=0, le=60, description="Window length, s.")
     criterion: CriterionSettings | None = None
     cell_area: list[float] | None = Field(
         None, min_length=2, max_length=2,
@@ -69,9 +72,6 @@ class JobSettings(_Strict):
     time_limit_s: float | None = Field(None, gt=0, le=7 * 86400, description="Time budget, s.")
     bootstrap: int | None = Field(None, ge=0, le=1000, description="Bootstrap resamples "
                                                                    "(0 = none, else at least 2).")
-    seed: int | None = Field(None, ge=0, le=2**32 - 1, description="Random seed.")
-    windowing: Literal["bursts", "whole", "sliding"] | None = Field(None, description="Windowing.")
-    max_windows: int | None = Field(None, ge=1, le=1_000_000, description="Cap on windows used.")
     held_out: float | None = Field(
         None, ge=0, le=0.9, description="Share of windows kept out of the fit to judge the result "
                                         "on (default 0.25; 0 judges in-sample).")
@@ -97,6 +97,27 @@ class JobSettings(_Strict):
     def to_options(self) -> dict[str, Any]:
         """The settings dict handed to ``search.settings.split_settings`` (unset keys left out)."""
         return self.model_dump(exclude_none=True, mode="json")
+
+
+_KIND_TYPES = {"positive": float, "share": float, "integer": int, "codes": str,
+               "band": list[float]}
+
+
+def _corpus_field(option) -> tuple:
+    kind = Literal[option.choices] if option.kind == "choice" else _KIND_TYPES[option.kind]
+    size = {"min_length": 2, "max_length": 2} if option.kind == "band" else {}
+    return (kind | None, Field(None, description=option.sentence(), **option.bounds(), **size))
+
+
+def _check_corpus_option(cls, value, info):
+    return None if value is None else CORPUS_OPTIONS[info.field_name].check(value)
+
+
+JobSettings = create_model(
+    "JobSettings", __base__=_SearchSettings, __module__=__name__,
+    __doc__="Settings of one tuning job; keys as the CLI flags in snake_case.",
+    __validators__={"_corpus_options": field_validator(*CORPUS_OPTIONS)(_check_corpus_option)},
+    **{name: _corpus_field(option) for name, option in CORPUS_OPTIONS.items()})
 
 
 class JobRequest(_Strict):

@@ -25,7 +25,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from service import plots, verdict
+from service import palette, plots, verdict
 
 PLOT_NAMES = ("tiling", "examples", "convergence", "channels", "baselines")
 CHANNEL_FIELDS = ("center_hz", "time_spread_s", "cell_area", "chirp_hz_per_s")
@@ -435,22 +435,63 @@ def equivalent_text(equivalent) -> str:
     return "" if equivalent is None else _fmt(equivalent)
 
 
-def _channel_table(channels: list[dict]) -> str:
-    head = "".join(f'<th scope="col" data-field="{f}">{f}</th>'
-                   for f in ("channel", *CHANNEL_FIELDS, "equivalent"))
+def _resolution_text(area: float) -> str:
+    """Cell area a as a geophysicist reads it: ×1/a finer (super-resolution) or ×a coarser."""
+    if math.isclose(area, 1.0, rel_tol=5e-3):
+        return "as a spectrogram (a = 1)"
+    if area < 1:
+        return f"super-resolution ×{1 / area:.2f}"
+    return f"smoothing ×{area:.2f}"
+
+
+def _stability_text(entry) -> str:
+    """The bootstrap interval of one channel's window σ_t (ms) and cell area, or why none."""
+    if not isinstance(entry, Mapping):
+        return "not recorded"
+    method = str(entry.get("method") or "")
+    if method.startswith(("skipped", "not determined")):
+        return method.replace("_", " ")
+    parts = []
+    spread, area = entry.get("time_spread_s"), entry.get("cell_area")
+    if isinstance(spread, (list, tuple)) and len(spread) == 2 and None not in spread:
+        parts.append(f"σ_t {1e3 * spread[0]:.3g}–{1e3 * spread[1]:.3g} ms")
+    if isinstance(area, (list, tuple)) and len(area) == 2 and None not in area:
+        parts.append(f"a {area[0]:.2f}–{area[1]:.2f}")
+    return ", ".join(parts) or "not recorded"
+
+
+# (header, unit, data-field of the exact JSON value or None, text of one channel)
+CHANNEL_COLUMNS = (
+    ("centre", "Hz", "center_hz", lambda c: f"{c['center_hz']:.5g}"),
+    ("Gaussian window σ_t", "ms", "time_spread_s", lambda c: f"{1e3 * c['time_spread_s']:.3g}"),
+    ("window FWHM", "ms", None, lambda c: f"{FWHM_PER_STD * 1e3 * c['time_spread_s']:.3g}"),
+    ("resolution against a spectrogram", "cell area a", "cell_area",
+     lambda c: _resolution_text(float(c["cell_area"]))),
+    ("matched sweep", "Hz/s", "chirp_hz_per_s", lambda c: f"{c['chirp_hz_per_s']:,.0f}"),
+)
+FWHM_PER_STD = 4 * math.sqrt(math.log(2))  # FWHM of the window amplitude exp(−u²/4σ_t²)
+
+
+def _channel_table(channels: list[dict], diagnostics: Mapping) -> str:
+    boot = (diagnostics.get("bootstrap") or {}).get("channels")
+    boot = boot if isinstance(boot, list) and len(boot) == len(channels) else [None] * len(channels)
+    head = '<th scope="col">#</th>' + "".join(
+        '<th scope="col"' + (f' data-field="{field}"' if field else "") + f">{_e(title)}</th>"
+        for title, _, field, _ in CHANNEL_COLUMNS) + \
+        '<th scope="col">stability interval</th><th scope="col" data-field="equivalent">reading</th>'
+    units = ("", *(u for _, u, _, _ in CHANNEL_COLUMNS), "refits on resampled windows", "")
     body = []
-    for index, channel in enumerate(channels):
+    for index, (channel, entry) in enumerate(zip(channels, boot)):
         cells = [f"<td>{index}</td>"]
-        for field in CHANNEL_FIELDS:
-            value = float(channel[field])
-            cells.append(f'<td class="num" data-field="{field}" data-value="{value!r}">'
-                         f"{_e(_fmt(value))}</td>")
+        for _, _, field, text in CHANNEL_COLUMNS:
+            exact = f' data-field="{field}" data-value="{float(channel[field])!r}"' if field else ""
+            cells.append(f'<td class="num"{exact}>{_e(text(channel))}</td>')
+        cells.append(f"<td>{_e(_stability_text(entry))}</td>")
         cells.append(f'<td data-field="equivalent">{_e(equivalent_text(channel.get("equivalent")))}</td>')
         body.append(f'<tr data-channel="{index}">{"".join(cells)}</tr>')
-    units = ("", "Hz", "s", "1 = Heisenberg minimum", "Hz/s", "")
-    unit_row = "".join(f'<td class="unit">{_e(u)}</td>' for u in units)
-    return (f'<table id="channel-table" class="grid"><thead><tr>{head}</tr>'
-            f'<tr class="units">{unit_row}</tr></thead><tbody>{"".join(body)}</tbody></table>')
+    unit_row = "".join(f"<td>{_e(u)}</td>" for u in units)
+    return (f'<div class="scroll tall"><table id="channel-table" class="grid"><thead><tr>{head}</tr>'
+            f'<tr class="units">{unit_row}</tr></thead><tbody>{"".join(body)}</tbody></table></div>')
 
 
 REJECTION_LIST_LIMIT = 200
@@ -545,7 +586,7 @@ def _verdict(diagnostics: Mapping) -> str:
     box only when some warning applies."""
     judged = verdict.judgement(diagnostics)
     kind = "lead note" if judged is None else "lead"
-    lead = f'<p class="{kind}" id="gain">{_e(verdict.gain_sentence(diagnostics))}</p>'
+    lead = f'<p class="{kind}" id="gain">{_e(verdict.gain_words(diagnostics))}</p>'
     if judged is not None:
         gain = judged.get("gain_bits")
         gain = gain if isinstance(gain, Mapping) else {}
@@ -638,17 +679,6 @@ def _trace_table(corpus: Mapping) -> str:
             f"<thead><tr>{head}</tr></thead><tbody>{rows}</tbody></table></div>{more}")
 
 
-def _flatten(mapping: Mapping) -> dict:
-    """One level of nesting spelled out as ``outer.inner`` keys; deeper values stay JSON."""
-    flat = {}
-    for key, value in mapping.items():
-        if isinstance(value, Mapping) and value:
-            flat.update({f"{key}.{inner}": v for inner, v in value.items()})
-        else:
-            flat[key] = value
-    return flat
-
-
 # The job settings of DESIGN §7 (what a person sets); everything else the engine resolved is a
 # default it chose, shown apart with the corpus reader's choices.
 JOB_SETTINGS = ("channels", "band_hz", "spacing", "window_s", "criterion", "cell_area", "chirp",
@@ -661,12 +691,76 @@ SETTING_ALIASES = {"n_jobs": "jobs"}
 _UNSET = object()
 
 
+# Words for setting names whose spelling out is not enough; the rest are spelled out from the key.
+LABELS = {"sta": "STA length", "lta": "LTA length", "window": "window length",
+          "n_jobs": "parallel jobs", "max_windows": "most windows kept", "band": "channel band",
+          "bandpass": "band-pass", "chirp": "chirped channels", "refine": "per-channel refinement",
+          "held_out": "share of windows held out", "max_negative_share": "negative share allowed",
+          "subset": "windows in the family search", "cell_area": "cell area range",
+          "trigger_on": "trigger-on STA/LTA ratio", "trigger_off": "trigger-off STA/LTA ratio",
+          "pre_trigger": "share of the window before the trigger", "eps": "kernel truncation"}
+# unit suffix of a key -> (unit shown, factor); seconds shorter than one are shown in ms
+UNITS = (("_hz_per_s", "Hz/s", 1.0), ("_hz", "Hz", 1.0), ("_samples", "samples", 1.0),
+         ("_s", "s", 1.0))
+
+
+def _number_text(value, unit: str) -> str:
+    if unit == "s" and abs(value) < 1:
+        return f"{1e3 * value:.4g} ms"
+    return f"{value:.5g}" + (f" {unit}" if unit else "") if isinstance(value, float) \
+        else f"{value}" + (f" {unit}" if unit else "")
+
+
+def _value_text(value, unit: str = "") -> str:
+    """A setting's value in words and units: ranges as 'low–high', parts as 'name value'."""
+    if isinstance(value, bool) or value is None:
+        return {True: "yes", False: "no", None: "not set"}[value]
+    if isinstance(value, (int, float)):
+        return _number_text(value, unit)
+    if isinstance(value, (list, tuple)) and len(value) == 2 and \
+            all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value):
+        return f"{_number_text(value[0], unit)}–{_number_text(value[1], unit)}"
+    if isinstance(value, (list, tuple)):
+        return ", ".join(_value_text(v, unit) for v in value)
+    if isinstance(value, Mapping):
+        return "; ".join(f"{str(k).replace('_', ' ')} {_value_text(v, unit)}" for k, v in value.items())
+    return str(value)
+
+
+def _stem(key: str) -> tuple[str, str]:
+    for suffix, unit, _ in UNITS:
+        if key.endswith(suffix) and len(key) > len(suffix):
+            return key[:-len(suffix)], unit
+    return key, ""
+
+
+def people_items(mapping) -> list[tuple[str, str]]:
+    """(label, value text) for a dict of settings or defaults: units from the key's suffix, and
+    each ``<name>_source`` folded into its value in brackets ("STA length 6.25 ms (4 dominant
+    periods)") instead of a row of its own."""
+    if not isinstance(mapping, Mapping):
+        return []
+    sources = {k[:-len("_source")]: v for k, v in mapping.items() if k.endswith("_source")}
+    items = []
+    for key, value in mapping.items():
+        if key.endswith("_source"):
+            continue
+        stem, unit = _stem(str(key))
+        label = LABELS.get(stem) or LABELS.get(str(key)) or stem.replace("_", " ")
+        text = _value_text(value, unit)
+        if stem in sources:
+            text += f" ({_value_text(sources[stem])})"
+        items.append((label[0].upper() + label[1:], text))
+    return items
+
+
 def _setting_cells(items) -> str:
+    """Cells of (label, text, tag); the tag says whether the job gave the setting."""
     cells = []
-    for key, value, tag in items:
+    for label, text, tag in items:
         badge = f' <span class="tag">{_e(tag)}</span>' if tag else ""
-        cells.append(f'<div class="setting"><div class="key">{_e(key)}{badge}</div>'
-                     f'<div class="value">{_e(_fmt(value))}</div></div>')
+        cells.append(f'<div class="setting"><span class="key">{_e(label)}{badge}</span> '
+                     f'<span class="value">{_e(text)}</span></div>')
     return f'<div class="settings">{"".join(cells)}</div>'
 
 
@@ -686,17 +780,25 @@ def _settings_section(resolved, given, reader_defaults) -> str:
             value = asked
         if value is None and isinstance(reader_defaults, Mapping):  # the reader's choice
             value = reader_defaults.get(key)
-        if isinstance(value, Mapping):
-            chosen.extend((f"{key}.{k}", v, tag) for k, v in value.items())
-        else:
-            chosen.append((key, value, tag))
-    derived = [(k, v, None) for k, v in resolved.items() if k not in JOB_SETTINGS]
-    derived += [(f"corpus.{k}", v, None) for k, v in (reader_defaults or {}).items()]
-    parts = ["<h3>Settings of the run</h3>",
-             _setting_cells(chosen) if chosen else '<p class="muted">none recorded</p>',
-             "<h3>Defaults chosen from the data</h3>",
-             _setting_cells(derived) if derived else '<p class="muted">none recorded</p>']
-    return "".join(parts)
+        chosen.extend((label, text, tag) for label, text in people_items({key: value}))
+    engine = people_items({k: v for k, v in resolved.items() if k not in JOB_SETTINGS})
+    record = dict(reader_defaults) if isinstance(reader_defaults, Mapping) else {}
+    asked = record.pop("given", None)
+    asked = asked if isinstance(asked, Mapping) else {}
+    # the reader records every option's value; those the caller set are tagged "given"
+    reader = []
+    for key, value in record.items():
+        if str(key).endswith("_source"):
+            continue
+        source = f"{_stem(str(key))[0]}_source"
+        one = {key: value, **({source: record[source]} if source in record else {})}
+        reader += [(*item, "given" if key in asked else None) for item in people_items(one)]
+    none = '<p class="muted">none recorded</p>'
+    return ("<h3>Settings of the run</h3>" + (_setting_cells(chosen) if chosen else none)
+            + "<h3>Corpus reading: options given, and defaults chosen from the data</h3>"
+            + (_setting_cells(reader) if reader else none)
+            + "<h3>Defaults the search derived</h3>"
+            + (_setting_cells((*i, None) for i in engine) if engine else none))
 
 
 def _figure_html(plot: Plot) -> str:
@@ -708,58 +810,91 @@ def _figure_html(plot: Plot) -> str:
             f'alt="{_e(plot.alt)}"><figcaption>{_e(plot.caption)}</figcaption></figure>')
 
 
-STYLE = """
-:root { --ink: #1f2328; --muted: #5b6470; --line: #d5d9de; --band: #f3f5f7; --accent: #0b5cad; }
+def _what_was_tuned(filterbank_json: Mapping, diagnostics: Mapping, channels: list[dict]) -> str:
+    """One line: the site (stations), the files, the channels and band, the windows."""
+    corpus = diagnostics.get("corpus") if isinstance(diagnostics.get("corpus"), Mapping) else {}
+    traces = [t for t in corpus.get("traces") or [] if isinstance(t, Mapping)]
+    stations = list(dict.fromkeys(".".join(str(t["trace_id"]).split(".")[:2]) for t in traces
+                                  if t.get("trace_id")))
+    site = (", ".join(stations[:SITES_NAMED]) + (f" and {len(stations) - SITES_NAMED} more"
+                                                  if len(stations) > SITES_NAMED else "")
+            if stations else "corpus " + str(corpus.get("source_hash") or
+                                             filterbank_json.get("corpus_hash") or "?")[:12])
+    files = corpus.get("files")
+    site += f" ({len(files)} files, {len(traces)} traces)" if isinstance(files, list) else ""
+    fc = _column(channels, "center_hz")
+    settings = diagnostics.get("settings") if isinstance(diagnostics.get("settings"), Mapping) else {}
+    spacing = f", {settings['spacing']} spacing" if settings.get("spacing") else ""
+    parts = [site, f"{len(channels)} channels at {fc.min():.4g}–{fc.max():.4g} Hz{spacing}"]
+    used = _count((diagnostics.get("windows") or {}).get("used"))
+    fs = _sampling_rate(filterbank_json)
+    samples = filterbank_json.get("window_samples")
+    if used is not None and fs and isinstance(samples, int):
+        windowing = (corpus.get("defaults") or {}).get("windowing") if isinstance(
+            corpus.get("defaults"), Mapping) else None
+        kind = "burst windows" if windowing == "bursts" else "windows"
+        parts.append(f"{used} {kind} of {1e3 * samples / fs:.4g} ms at {fs:g} Hz")
+    return " · ".join(parts)
+
+
+SITES_NAMED = 4
+
+STYLE = palette.css_variables() + """
 * { box-sizing: border-box; }
-body { margin: 0; color: var(--ink); background: #fff;
+body { margin: 0; color: var(--ink); background: var(--paper);
        font: 15px/1.5 system-ui, -apple-system, "Segoe UI", Roboto, "DejaVu Sans", sans-serif; }
-header { padding: 20px 32px 14px; border-bottom: 3px solid var(--accent); }
-header h1 { margin: 0; font-size: 1.55rem; }
-header p { margin: 4px 0 0; color: var(--muted); }
-nav { padding: 8px 32px; background: var(--band); border-bottom: 1px solid var(--line); }
-nav a { margin-right: 18px; color: var(--accent); text-decoration: none; }
-main { max-width: 1180px; padding: 8px 32px 40px; }
-h2 { margin: 30px 0 10px; font-size: 1.25rem; border-bottom: 1px solid var(--line); padding-bottom: 4px; }
+header { padding: 14px 32px 10px; border-bottom: 3px solid var(--accent); }
+header h1 { margin: 0; font-size: 1.2rem; }
+header p { margin: 2px 0 0; }
+header p.tuned { font-size: 1rem; }
+header p.aid { color: var(--muted); font-size: .85rem; }
+nav { padding: 6px 32px; background: var(--band); border-bottom: 1px solid var(--line); }
+nav a { margin-right: 18px; color: var(--accent); }
+main { max-width: 1240px; padding: 0 32px 40px; }
+h2 { margin: 28px 0 10px; font-size: 1.25rem; border-bottom: 1px solid var(--line); padding-bottom: 4px; }
 h3 { margin: 20px 0 6px; font-size: 1.05rem; }
 h4 { margin: 14px 0 4px; font-size: .95rem; }
 .cards { display: grid; grid-template-columns: repeat(auto-fit, minmax(160px, 1fr)); gap: 10px; }
-.card { border: 1px solid var(--line); border-radius: 6px; padding: 10px 12px; background: #fff; }
+.card { border: 1px solid var(--line); border-radius: 6px; padding: 10px 12px; background: var(--paper); }
 .card .label { color: var(--muted); font-size: .82rem; }
-.card .value { font-size: 1.15rem; font-weight: 600; overflow-wrap: anywhere; }
-.settings { display: grid; grid-template-columns: repeat(auto-fill, minmax(230px, 1fr)); gap: 6px 18px; }
-.setting { border-bottom: 1px solid var(--band); padding: 2px 0; }
-.setting .key { color: var(--muted); font-size: .8rem; }
-.setting .value { font-family: ui-monospace, "DejaVu Sans Mono", monospace; font-size: .82rem; overflow-wrap: anywhere; }
-.tag { font-size: .7rem; padding: 0 5px; border-radius: 8px; background: var(--band); border: 1px solid var(--line); }
+.card .value { font-size: 1.1rem; font-weight: 600; overflow-wrap: anywhere; }
+.settings { display: grid; grid-template-columns: repeat(auto-fill, minmax(340px, 1fr)); gap: 4px 24px; }
+.setting { border-bottom: 1px solid var(--band); padding: 2px 0; font-size: .88rem; }
+.setting .key { color: var(--muted); }
+.setting .value { overflow-wrap: anywhere; }
+.tag { font-size: .72rem; padding: 0 5px; border-radius: 8px; background: var(--band); border: 1px solid var(--line); }
 .columns { display: grid; grid-template-columns: repeat(auto-fit, minmax(420px, 1fr)); gap: 0 28px; }
 table { border-collapse: collapse; font-size: .88rem; }
 table.kv th { text-align: left; font-weight: 500; color: var(--muted); padding: 2px 14px 2px 0;
               vertical-align: top; white-space: nowrap; }
-table.kv td { padding: 2px 0; overflow-wrap: anywhere; font-family: ui-monospace, "DejaVu Sans Mono", monospace; font-size: .82rem; }
+table.kv td { padding: 2px 0; overflow-wrap: anywhere; }
 table.grid { width: 100%; }
 table.grid th, table.grid td { border-bottom: 1px solid var(--line); padding: 4px 8px; text-align: left; }
 table.grid thead th { background: var(--band); position: sticky; top: 0; }
-table.grid tbody tr:nth-child(even) { background: #fafbfc; }
-table.grid td.num { text-align: right; font-variant-numeric: tabular-nums; }
-tr.units td { color: var(--muted); font-size: .78rem; background: var(--band); }
+table.grid tbody tr:nth-child(even) { background: var(--stripe); }
+table.grid td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+tr.units td { color: var(--muted); font-size: .78rem; background: var(--band); position: sticky; top: 31px; }
 table.small { width: auto; }
 .scroll { max-height: 360px; overflow: auto; border: 1px solid var(--line); }
+.scroll.tall { max-height: 560px; }
 .scroll table.small { width: 100%; }
 table.traces td { white-space: nowrap; }
 details summary { cursor: pointer; color: var(--accent); margin: 6px 0; }
-figure.plot { margin: 18px 0 26px; }
+details#details > summary { font-size: 1.15rem; font-weight: 600; }
+figure.plot { margin: 14px 0 22px; }
 figure.plot img { max-width: 100%; height: auto; border: 1px solid var(--line); }
 figcaption { color: var(--muted); font-size: .88rem; margin-top: 4px; }
 .note, .muted { color: var(--muted); }
 .note { border-left: 3px solid var(--line); padding: 6px 12px; background: var(--band); }
-section#verdict { padding: 14px 32px 4px; }
-p.lead { margin: 0 0 2px; font-size: 1.2rem; font-weight: 600; }
-p.lead.note { font-weight: 500; }
-.warnings { border: 1px solid #c0392b; background: #fdecea; border-radius: 6px;
-            padding: 2px 18px 6px; margin: 10px 0 4px; }
-.warnings h2 { border: none; margin: 8px 0 2px; font-size: 1.05rem; }
-.warnings ul { margin: 4px 0; padding-left: 20px; }
-section#cautions { border: 1px solid #d9a300; background: #fff8e1; padding: 4px 18px 10px; margin-top: 30px; border-radius: 6px; }
+section#verdict { padding: 12px 32px 6px; }
+p.lead { margin: 0 0 2px; font-size: 1.45rem; font-weight: 650; line-height: 1.3; }
+p.lead.note { font-size: 1.15rem; font-weight: 500; }
+.warnings { border: 1px solid var(--warn-line); border-left-width: 5px; background: var(--warn-bg);
+            border-radius: 6px; padding: 2px 18px 6px; margin: 8px 0 4px; }
+.warnings h2 { border: none; margin: 6px 0 2px; font-size: 1.05rem; color: var(--bad); }
+.warnings ul { margin: 2px 0; padding-left: 20px; font-size: .92rem; }
+section#cautions { border: 1px solid var(--caution-line); background: var(--caution-bg);
+                   padding: 4px 18px 10px; margin-top: 30px; border-radius: 6px; }
 section#cautions h2 { border: none; }
 footer { color: var(--muted); font-size: .82rem; padding: 0 32px 24px; }
 """
@@ -769,16 +904,12 @@ def render_report(filterbank_json: Mapping, diagnostics: Mapping, windows=None,
                   sampling_rate_hz: float | None = None) -> str:
     """The complete, self-contained HTML report of one tuned filterbank (see module docstring)."""
     channels = channel_rows(filterbank_json)
-    figures = build_plots(filterbank_json, diagnostics, windows, sampling_rate_hz)
+    figures = {p.name: p for p in build_plots(filterbank_json, diagnostics, windows,
+                                              sampling_rate_hz)}
     corpus = diagnostics.get("corpus") or {}
     windows_info = diagnostics.get("windows") or {}
     nested = filterbank_json.get("provenance")
     nested = nested if isinstance(nested, Mapping) else {}
-    source = (nested.get("corpus_hash") or filterbank_json.get("corpus_hash")
-              or corpus.get("source_hash") or "unknown corpus")
-    fs = _sampling_rate(filterbank_json)
-    subtitle = (f"{len(channels)} channels" + (f" at {fs:g} Hz" if fs else "")
-                + f", corpus sha256 {str(source)[:16]}…")
     defaults = corpus.get("defaults") if isinstance(corpus, Mapping) else None
     # the job's own settings, as the service records them beside the resolved ones
     job = filterbank_json.get("job")
@@ -790,35 +921,46 @@ def render_report(filterbank_json: Mapping, diagnostics: Mapping, windows=None,
     fallback = diagnostics.get("fallback")
     if isinstance(fallback, Mapping) and fallback.get("reason"):
         run["fallback"] = f"{fallback.get('to', '')}: {fallback['reason']}"
-    file_info = _flatten({k: v for k, v in filterbank_json.items() if k != "channels"})
+    recorded = people_items({k: v for k, v in filterbank_json.items()
+                             if k not in ("channels", "settings", "job")})
+    tuned = _what_was_tuned(filterbank_json, diagnostics, channels)
     body = f"""
-<header><h1>burstlens report: tuned time–frequency filterbank</h1><p>{_e(subtitle)}</p></header>
+<header><h1>burstlens report: tuned time–frequency filterbank</h1>
+<p class="tuned" id="tuned">{_e(tuned)}</p>
+<p class="aid">An analysis aid, not a safety or warning system: see the cautions below.</p></header>
 {_verdict(diagnostics)}
-<nav><a href="#summary">Summary</a><a href="#plots">Plots</a><a href="#channels">Channels</a><a href="#cautions">Cautions</a><a href="#provenance">Provenance</a></nav>
+<nav><a href="#examples">Example bursts</a><a href="#channels">Channels</a><a href="#tiling">Tiling and convergence</a><a href="#judgement">Judgement in numbers</a><a href="#cautions">Cautions</a><a href="#details">Settings and files</a></nav>
 <main>
-<section id="summary"><h2>Summary</h2>
+<section id="examples"><h2>Example bursts: best plain spectrogram against the tuned filterbank</h2>
+{_figure_html(figures["examples"])}</section>
+<section id="channels"><h2>Channels</h2>
+<p class="muted">One row per channel: the Gaussian window each channel amounts to, how much finer
+(super-resolution) or coarser (smoothing) than a spectrogram its time–frequency cell is, the
+sweep rate it is matched to, and how stable its window and cell area were when refitted on
+resampled windows.</p>
+{_channel_table(channels, diagnostics)}
+{_figure_html(figures["channels"])}</section>
+<section id="tiling"><h2>Tiling and convergence</h2>
+{_figure_html(figures["tiling"])}{_figure_html(figures["convergence"])}</section>
+<section id="judgement"><h2>Judgement in numbers</h2>
 {_headline(filterbank_json, diagnostics, channels)}
 <div class="columns">
-<div><h3>Judgement on held-out windows</h3>{_judgement_table(diagnostics)}
-<h3>Site corpus</h3>{_corpus_summary(corpus)}</div>
-<div><h3>Windows</h3>{_kv_table(_window_counts(windows_info))}
-<h4>Rejected windows by reason</h4>{_rejections(windows_info, corpus)}
-<h3>Run</h3>{_kv_table(run)}</div>
-</div>
-{_trace_table(corpus)}
-{_settings_section(diagnostics.get("settings"), given, defaults)}
-</section>
-<section id="plots"><h2>Plots</h2>
-{"".join(_figure_html(p) for p in figures)}
-</section>
-<section id="channels"><h2>Channels and their equivalent readings</h2>
-<p class="muted">One row per channel, fields as in the filterbank JSON; the equivalent reading
-says what the channel corresponds to in familiar terms.</p>
-{_channel_table(channels)}</section>
+<div><h3>On held-out windows</h3>{_judgement_table(diagnostics)}</div>
+<div>{_figure_html(figures["baselines"])}</div>
+</div></section>
 <section id="cautions"><h2>Cautions</h2>{"".join(f"<p>{_e(c)}</p>" for c in CAUTIONS)}</section>
-<section id="provenance"><h2>Provenance</h2>
-<p class="muted">Everything the filterbank file records besides its channels.</p>
-{_setting_cells([(k, v, None) for k, v in file_info.items()])}</section>
+<details id="details"><summary>Settings, defaults chosen from the data, and files</summary>
+<div class="columns">
+<div><h3>Site corpus</h3>{_corpus_summary(corpus)}
+<h3>Run</h3>{_kv_table(run)}</div>
+<div><h3>Windows</h3>{_kv_table(_window_counts(windows_info))}
+<h4>Rejected windows by reason</h4>{_rejections(windows_info, corpus)}</div>
+</div>
+{_settings_section(diagnostics.get("settings"), given, defaults)}
+{_trace_table(corpus)}
+<h3>Recorded in the filterbank file</h3>
+{_setting_cells((*i, None) for i in recorded)}
+</details>
 </main>
 <footer>Generated by burstlens {_e(diagnostics.get("version", ""))}. This page is self-contained: it loads nothing from the network.</footer>"""
     return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
@@ -826,5 +968,5 @@ says what the channel corresponds to in familiar terms.</p>
             "<meta http-equiv=\"Content-Security-Policy\" content=\"default-src 'none'; "
             "img-src data:; style-src 'unsafe-inline'\">"
             "<link rel=\"icon\" href=\"data:,\">"  # no favicon request when served over HTTP
-            f"<title>burstlens report: {_e(subtitle)}</title><style>{STYLE}</style></head>"
+            f"<title>burstlens report: {_e(tuned)}</title><style>{STYLE}</style></head>"
             f"<body>{body}\n</body></html>\n")

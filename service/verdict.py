@@ -1,9 +1,10 @@
 """What a person must read first about a tuned filterbank: the held-out gain and the warnings.
 
 The search judges its result on windows the fit never saw (``diagnostics['judgement']``, DESIGN
-§8). ``gain_sentence`` states that gain in one line and ``warnings`` lists, as plain sentences,
-every reason to distrust it. The report page, ``burstlens tune``, ``burstlens submit`` and
-``make demo`` all call these two functions, so the rules live in one place. Both accept
+§8). ``gain_sentence`` states that gain in one line, ``gain_words`` says it in words for the
+report's headline, and ``warnings`` lists, as plain sentences, every reason to distrust it. The
+report page, ``burstlens tune``, ``burstlens submit`` and ``make demo`` all call these, so the
+rules live in one place. All accept
 diagnostics without a judgement (older files, cancelled runs) and never raise on missing or null
 fields.
 """
@@ -70,6 +71,46 @@ def gain_sentence(diagnostics) -> str:
         return f"gain on the windows the fit used, none held out: {value}{where}"
     windows = _count(judged.get("held_out_windows"))
     return f"{GAIN_LEAD}: {value} ({'?' if windows is None else windows} held-out windows)"
+
+
+def _bits(value: float) -> str:
+    return f"{value:.2f} bit" + ("s" if round(value, 2) > 1 else "")
+
+
+def _span(low: float, high: float) -> str:
+    # an en dash between two negative numbers reads as a third minus sign
+    return f"{low:.2f}–{high:.2f}" if low >= 0 else f"{low:.2f} to {high:.2f}"
+
+
+def gain_words(diagnostics) -> str:
+    """The held-out gain as a person says it, e.g. "0.35 bit sharper than the best plain
+    spectrogram on 32 windows the fit never saw, 90 % interval 0.15–0.54"; a negative gain is
+    said as "less sharp". Without a judgement, the reason there is none (as ``gain_sentence``)."""
+    judged = judgement(diagnostics)
+    if judged is None:
+        return gain_sentence(diagnostics)
+    gain = _mapping(judged.get("gain_bits"))
+    estimate = _number(gain.get("estimate"))
+    if judged.get("in_sample") is True:
+        windows = _count(judged.get("fit_windows"))
+        where = (f"on the {windows} windows the fit used" if windows is not None
+                 else "on the windows the fit used") + " (none held out)"
+    else:
+        windows = _count(judged.get("held_out_windows"))
+        where = f"on {'?' if windows is None else windows} windows the fit never saw"
+    if estimate is None:
+        return f"The gain over the best plain spectrogram {where} could not be determined"
+    if round(estimate, 2) == 0:
+        words = f"As sharp as the best plain spectrogram {where}"
+    else:
+        words = (f"{_bits(abs(estimate))} {'sharper' if estimate > 0 else 'less sharp'} than the "
+                 f"best plain spectrogram {where}")
+    low, high = _number(gain.get("low")), _number(gain.get("high"))
+    if low is not None and high is not None:
+        level = _number(gain.get("level"))
+        words += (f", {100 * level:g} % interval " if level is not None else ", interval ") \
+            + _span(low, high)
+    return words
 
 
 def _channels_text(channels) -> str:

@@ -1,9 +1,11 @@
 """Corpus reading: waveform files → preprocessed burst windows at one sampling rate.
 
 ``read_corpus(paths, **options) -> Corpus``; every failure is a ``CorpusError`` naming the file
-(or option) and the cause.
+(or option) and the cause. ``TRIGGERS`` are the accepted STA/LTA kinds (``trigger=``),
+``TRIGGER_KINDS`` says what each averages, ``DEFAULT_TRIGGER`` is the one used when none is given.
 """
-from .ingest import read_corpus
+from .ingest import DEFAULT_TRIGGER, TRIGGER_KINDS, TRIGGERS, read_corpus
 from .model import REJECTION_REASONS, Corpus, CorpusError
 
-__all__ = ["read_corpus", "Corpus", "CorpusError", "REJECTION_REASONS"]
+__all__ = ["read_corpus", "Corpus", "CorpusError", "REJECTION_REASONS", "TRIGGERS", "TRIGGER_KINDS",
+           "DEFAULT_TRIGGER"]

@@ -17,16 +17,23 @@ from .preprocess import Segment
 from .readers import detect_format, read_head, read_waveform_file
 
 WINDOWINGS = ("bursts", "whole", "sliding")
-TRIGGERS = ("classic", "recursive")
+# STA/LTA kinds and the averages each takes; the error for an unknown kind lists both
+TRIGGER_KINDS = {
+    "boxcar": "equal-weight moving averages",
+    "exponential": "recursive exponentially weighted averages",
+}
+TRIGGERS = tuple(TRIGGER_KINDS)
 
-DEFAULT_TRIGGER = "classic"
-DEFAULT_TRIGGER_ON = 3.5   # common practice for local events (Trnkoczy, NMSOP 2012: 3–4)
-DEFAULT_TRIGGER_OFF = 1.5  # common practice (Trnkoczy, NMSOP 2012: 1–1.5)
+DEFAULT_TRIGGER = "boxcar"
+# Thresholds and STA/LTA lengths after Trnkoczy, "Understanding and parameter setting of STA/LTA
+# trigger algorithm", New Manual of Seismological Observatory Practice 2 (NMSOP-2), IS 8.1, 2012.
+DEFAULT_TRIGGER_ON = 3.5   # common practice for local events (Trnkoczy 2012: 3–4)
+DEFAULT_TRIGGER_OFF = 1.5  # common practice (Trnkoczy 2012: 1–1.5)
 DEFAULT_PRE_TRIGGER = 0.25
 DEFAULT_MAX_WINDOWS = 1000
 DEFAULT_SEED = 0
-STA_PERIODS = 4.0          # STA ≈ a few dominant periods (Trnkoczy, NMSOP 2012)
-LTA_PER_STA = 20.0         # LTA ≈ 10–20 × STA (Trnkoczy, NMSOP 2012)
+STA_PERIODS = 4.0          # STA ≈ a few dominant periods (Trnkoczy 2012)
+LTA_PER_STA = 20.0         # LTA ≈ 10–20 × STA (Trnkoczy 2012)
 FALLBACK_FRACTION_OF_FS = 1.0 / 8.0   # dominant frequency when no transient stands out
 SLIDING_PERIODS = 128.0    # default sliding window: this many dominant periods
 DURATION_QUANTILE = 0.9    # window length covers this quantile of the burst durations
@@ -87,7 +94,8 @@ def read_corpus(
         Thresholds on STA/LTA (default 3.5 and 1.5).
     pre_trigger : float in [0, 1)
         Share of the window before the trigger (default 0.25).
-    trigger : 'classic' (default) | 'recursive'
+    trigger : 'boxcar' (default) | 'exponential'
+        STA/LTA from equal-weight moving averages, or from recursive exponentially weighted ones.
     hop_s : float, s
         Hop of 'sliding' windows (default half a window).
 
@@ -154,7 +162,8 @@ def _validate_options(**o) -> dict:
         raise CorpusError(f"windowing={o['windowing']!r}: expected one of {', '.join(WINDOWINGS)}")
     o["trigger"] = o["trigger"] or DEFAULT_TRIGGER
     if o["trigger"] not in TRIGGERS:
-        raise CorpusError(f"trigger={o['trigger']!r}: expected one of {', '.join(TRIGGERS)}")
+        kinds = ", ".join(f"{k} ({what})" for k, what in TRIGGER_KINDS.items())
+        raise CorpusError(f"trigger={o['trigger']!r}: expected one of {kinds}")
     for name in ("window_s", "sampling_rate_hz", "csv_sampling_rate_hz", "sta_s", "lta_s",
                  "trigger_on", "trigger_off", "hop_s"):
         value = o[name]
@@ -372,14 +381,14 @@ def _scan_windows(segments, files, opts, defaults, rejections):
         trigger_band = [round(f_dom / TRIGGER_BAND_FACTOR, 3), round(min(f_dom * TRIGGER_BAND_FACTOR, 0.4 * fs), 3)]
     defaults["trigger_band_hz"] = trigger_band
     trigger_sos = preprocess.bandpass_sos(trigger_band, fs) if trigger_band else None
-    sta_lta = windowing.classic_sta_lta if opts["trigger"] == "classic" else windowing.recursive_sta_lta
+    sta_lta = windowing.boxcar_sta_lta if opts["trigger"] == "boxcar" else windowing.exponential_sta_lta
     onsets = []
     for seg in segments:
         if seg.data.size <= nlta:
             onsets.append(np.empty((0, 2), dtype=np.int64))
             continue
         x = seg.data if trigger_sos is None else preprocess.zero_phase(trigger_sos, seg.data)
-        o = windowing.trigger_onsets(sta_lta(x, nsta, nlta), opts["trigger_on"], opts["trigger_off"])
+        o = windowing.trigger_intervals(sta_lta(x, nsta, nlta), opts["trigger_on"], opts["trigger_off"])
         # a trigger inside the taper is the ramp itself, not a burst
         g = seg.taper_samples
         onsets.append(o[(o[:, 0] >= g) & (o[:, 0] < seg.data.size - g)])

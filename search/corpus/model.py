@@ -70,8 +70,9 @@ class Corpus:
         Per rejected window or span: ``file``, ``trace_id``, ``offset_s``, ``reason`` (one of
         ``REJECTION_REASONS``) and ``detail``.
     defaults : dict
-        Every choice the reader made (given or derived): rates, STA/LTA lengths and thresholds,
-        window length, taper, band-pass, cap and seed.
+        Every choice the reader made (given or derived): rates, STA/LTA kind (``trigger``:
+        'boxcar' or 'exponential'), lengths and thresholds, window length, taper, band-pass, cap
+        and seed.
     source_hash : str
         sha256 (hex) of the bytes of every file read, concatenated in sorted path order.
     files : list of str

@@ -1,9 +1,11 @@
 """STA/LTA triggers and window placement: pure numpy functions on 1-D float64 arrays.
 
 STA/LTA (Allen, "Automatic earthquake recognition and timing from single traces", BSSA 68(5),
-1978; Trnkoczy, "Understanding and parameter setting of STA/LTA trigger algorithm", NMSOP, 2012):
-the characteristic function is the ratio of a short-term to a long-term average of x². The
-conventions (trailing windows, zeros during the LTA warm-up, the recursive form's initial state)
+1978; Trnkoczy, "Understanding and parameter setting of STA/LTA trigger algorithm", New Manual of
+Seismological Observatory Practice 2 (NMSOP-2), information sheet IS 8.1, 2012): the
+characteristic function is the ratio of a short-term to a long-term average of x², either
+equal-weight moving averages ('boxcar') or exponentially weighted ones ('exponential'). The
+conventions (trailing windows, zeros during the LTA warm-up, the exponential form's initial state)
 are those of ``obspy.signal.trigger``, which the tests use as the reference.
 """
 from __future__ import annotations
@@ -38,8 +40,9 @@ def moving_sum(x: np.ndarray, n: int) -> np.ndarray:
     return out
 
 
-def classic_sta_lta(x: np.ndarray, nsta: int, nlta: int) -> np.ndarray:
-    """Classic STA/LTA of ``x`` (shape (n,)), STA and LTA lengths in samples; shape (n,).
+def boxcar_sta_lta(x: np.ndarray, nsta: int, nlta: int) -> np.ndarray:
+    """STA/LTA of ``x`` (shape (n,)) with equal-weight trailing averages, STA and LTA lengths in
+    samples; shape (n,).
 
     ``sta[i] = mean(x²[i−nsta+1..i])``, ``lta[i] = mean(x²[i−nlta+1..i])``, the first nlta−1
     values are 0 (warm-up), and an LTA below the smallest normal float is replaced by it.
@@ -56,10 +59,10 @@ def classic_sta_lta(x: np.ndarray, nsta: int, nlta: int) -> np.ndarray:
     return sta
 
 
-def recursive_sta_lta(x: np.ndarray, nsta: int, nlta: int) -> np.ndarray:
-    """Recursive STA/LTA: one-pole averages ``s[i] = c·x²[i] + (1−c)·s[i−1]`` with c = 1/nsta
-    (and 1/nlta), started from 0 (LTA from the smallest normal float) at i = 0; the first nlta
-    values are 0. Shape (n,)."""
+def exponential_sta_lta(x: np.ndarray, nsta: int, nlta: int) -> np.ndarray:
+    """STA/LTA of ``x`` (shape (n,)) with exponentially weighted averages, the one-pole recursions
+    ``s[i] = c·x²[i] + (1−c)·s[i−1]`` with c = 1/nsta (and 1/nlta), started from 0 (LTA from the
+    smallest normal float) at i = 0; the first nlta values are 0. Shape (n,)."""
     x2 = np.square(x, dtype=np.float64)
     x2[0] = 0.0  # the recursion starts at i = 1
     csta, clta = 1.0 / nsta, 1.0 / nlta
@@ -71,7 +74,7 @@ def recursive_sta_lta(x: np.ndarray, nsta: int, nlta: int) -> np.ndarray:
     return cf
 
 
-def trigger_onsets(cf: np.ndarray, on: float, off: float) -> np.ndarray:
+def trigger_intervals(cf: np.ndarray, on: float, off: float) -> np.ndarray:
     """Trigger (on, off) sample pairs, shape (K, 2) int64, for ``off ≤ on``.
 
     A trigger switches on at the first sample with cf ≥ ``on`` and off at the last sample of the

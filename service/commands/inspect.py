@@ -7,51 +7,26 @@ import sys
 
 
 def register(subparsers) -> None:
+    from service.commands.options import add_corpus_options
+
     p = subparsers.add_parser(
         "inspect", help="show what the corpus holds: traces, rates, windows found, rejections",
         description="Read waveform files or folders as the tuner would, and show the traces, the "
                     "windows found per trace, every default chosen, and the rejected windows with reasons.")
     p.add_argument("paths", nargs="+", metavar="PATH", help="waveform files or folders")
-    add_corpus_arguments(p)
+    add_corpus_options(p)
     p.add_argument("--json", action="store_true", help="print the corpus summary as JSON")
     p.add_argument("--all", action="store_true", help="list every window and rejection, not the first 20")
     p.set_defaults(func=run)
 
 
-def add_corpus_arguments(p) -> None:
-    """The read_corpus options as flags (shared by commands that read a corpus)."""
-    p.add_argument("--windowing", choices=("bursts", "whole", "sliding"), help="how windows are cut (default bursts)")
-    p.add_argument("--window-s", type=float, help="window length, s (default: from the data)")
-    p.add_argument("--max-windows", type=int, help="cap on windows, seeded subsample (default 1000)")
-    p.add_argument("--seed", type=int, help="seed of the subsample (default 0)")
-    p.add_argument("--sampling-rate", type=float, dest="sampling_rate_hz", help="common rate, Hz (default: most common)")
-    p.add_argument("--components", help="SEED orientation codes to keep, e.g. Z or ZNE")
-    p.add_argument("--bandpass", type=float, nargs=2, metavar=("LO", "HI"), dest="bandpass_hz", help="zero-phase band-pass, Hz")
-    p.add_argument("--csv-sampling-rate", type=float, dest="csv_sampling_rate_hz", help="declared rate of CSV/NPY files, Hz")
-    p.add_argument("--sta-s", type=float, help="STA length, s")
-    p.add_argument("--lta-s", type=float, help="LTA length, s")
-    p.add_argument("--trigger-on", type=float, help="STA/LTA on threshold (default 3.5)")
-    p.add_argument("--trigger-off", type=float, help="STA/LTA off threshold (default 1.5)")
-    p.add_argument("--pre-trigger", type=float, help="share of the window before the trigger (default 0.25)")
-    p.add_argument("--trigger", choices=("classic", "recursive"), help="STA/LTA kind (default classic)")
-    p.add_argument("--hop-s", type=float, help="hop of sliding windows, s")
-
-
-CORPUS_OPTIONS = ("windowing", "window_s", "max_windows", "seed", "sampling_rate_hz", "components",
-                  "bandpass_hz", "csv_sampling_rate_hz", "sta_s", "lta_s", "trigger_on", "trigger_off",
-                  "pre_trigger", "trigger", "hop_s")
-
-
-def corpus_options(args) -> dict:
-    return {k: getattr(args, k) for k in CORPUS_OPTIONS if getattr(args, k, None) is not None}
-
-
 def run(args) -> int:
-    from search.corpus import CorpusError, read_corpus
+    from search.settings import check_corpus_options, read_corpus_as_given
+    from service.commands.options import settings_from_args
 
     try:
-        corpus = read_corpus(args.paths, **corpus_options(args))
-    except CorpusError as exc:
+        corpus = read_corpus_as_given(args.paths, check_corpus_options(settings_from_args(args)))
+    except ValueError as exc:  # a bad option, or a CorpusError (a ValueError) naming the file
         print(f"burstlens inspect: {exc}", file=sys.stderr)
         return 2
     text = json.dumps(corpus.to_json(), indent=1, ensure_ascii=False) if args.json else render(

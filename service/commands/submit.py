@@ -9,72 +9,9 @@ from __future__ import annotations
 import argparse
 
 
-def add_settings_flags(p: argparse.ArgumentParser) -> None:
-    """The job settings flags (DESIGN §9); unset flags leave the engine's defaults."""
-    g = p.add_argument_group("job settings (unset: the engine's default, recorded in the result)")
-    g.add_argument("--channels", type=int, help="number of channels")
-    g.add_argument("--band", nargs=2, type=float, metavar=("LO", "HI"), help="channel band, Hz")
-    g.add_argument("--spacing", choices=["log", "linear"], help="channel centre spacing")
-    g.add_argument("--window-s", type=float, help="window length, s")
-    g.add_argument("--criterion", choices=["renyi", "concentration", "sparsity"])
-    g.add_argument("--alpha", type=float, help="Rényi order (default 3)")
-    g.add_argument("--cell-area", nargs=2, type=float, metavar=("MIN", "MAX"),
-                   help="cell area bounds (1 = Heisenberg minimum)")
-    g.add_argument("--no-chirp", action="store_true", help="chirp rate fixed at 0")
-    g.add_argument("--no-refine", action="store_true", help="skip per-channel refinement")
-    g.add_argument("--evaluations", type=int, help="evaluation budget")
-    g.add_argument("--time-limit", type=float, metavar="S", help="time budget, s")
-    g.add_argument("--bootstrap", type=int, help="bootstrap resamples")
-    g.add_argument("--seed", type=int)
-    g.add_argument("--windowing", choices=["bursts", "whole", "sliding"])
-    g.add_argument("--max-windows", type=int)
-    g.add_argument("--held-out", type=_share(0.9), metavar="SHARE",
-                   help="share of windows kept out of the fit to judge it (0 to 0.9, default "
-                        "0.25; 0 judges in-sample)")
-    g.add_argument("--max-negative-share", type=_share(1.0), metavar="SHARE",
-                   help="largest share of the image's absolute mass that may be negative "
-                        "(0 to 1, default 0.01)")
-    g.add_argument("--jobs", type=int, help="parallel evaluations on the worker (capped there)")
-
-
-def _share(high: float):
-    """argparse type: a float in [0, high], so a bad share fails before any upload or fit."""
-    def parse(text: str) -> float:
-        try:
-            value = float(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-        if not 0.0 <= value <= high:
-            raise argparse.ArgumentTypeError(f"expected a share from 0 to {high:g}, got {text}")
-        return value
-    return parse
-
-
-def settings_from_args(args: argparse.Namespace) -> dict:
-    """Flags → the JSON settings of POST /v1/jobs (only the flags given)."""
-    settings: dict = {}
-    for flag, key in (("channels", "channels"), ("spacing", "spacing"), ("window_s", "window_s"),
-                      ("evaluations", "evaluations"), ("time_limit", "time_limit_s"),
-                      ("bootstrap", "bootstrap"), ("seed", "seed"), ("windowing", "windowing"),
-                      ("max_windows", "max_windows"), ("jobs", "jobs"),
-                      ("held_out", "held_out"), ("max_negative_share", "max_negative_share")):
-        if getattr(args, flag) is not None:
-            settings[key] = getattr(args, flag)
-    if args.band is not None:
-        settings["band_hz"] = list(args.band)
-    if args.cell_area is not None:
-        settings["cell_area"] = list(args.cell_area)
-    if args.criterion is not None or args.alpha is not None:
-        settings["criterion"] = {k: v for k, v in (("name", args.criterion), ("alpha", args.alpha))
-                                 if v is not None}
-    if args.no_chirp:
-        settings["chirp"] = False
-    if args.no_refine:
-        settings["refine"] = False
-    return settings
-
-
 def register(subparsers) -> None:
+    from service.commands.options import add_corpus_options, add_job_settings
+
     p = subparsers.add_parser(
         "submit", help="tune on a server: upload, queue, follow, download",
         description="Upload waveform files as a corpus, queue a tuning job on a burstlens server, "
@@ -85,7 +22,8 @@ def register(subparsers) -> None:
     p.add_argument("--token", help="bearer token (default: $BURSTLENS_TOKEN)")
     p.add_argument("--wait", action="store_true", help="follow the job until it ends")
     p.add_argument("--out", metavar="DIR", help="download the results here (implies --wait)")
-    add_settings_flags(p)
+    add_corpus_options(p)
+    add_job_settings(p)
     p.set_defaults(func=run)
 
 
@@ -147,10 +85,19 @@ def run(args: argparse.Namespace) -> int:
     import os
     import sys
 
+    from search.settings import split_settings
     from service import verdict
     from service.client import Client, ServiceError
+    from service.commands.options import settings_from_args
+    from service.energy_channels import lines_or_note, sample_windows
 
     token = args.token or os.environ.get("BURSTLENS_TOKEN")
+    settings = settings_from_args(args)
+    try:
+        corpus_options, _ = split_settings(settings)
+    except ValueError as exc:  # the server's own checks, before any upload
+        print(f"burstlens submit: {exc}", file=sys.stderr)
+        return 2
     try:
         files = expand(args.paths)
     except FileNotFoundError as exc:
@@ -161,10 +108,11 @@ def run(args: argparse.Namespace) -> int:
         return 2
     with Client(args.server, token) as client:
         try:
-            corpus = client.upload_corpus(files)
+            # the upload check reads the corpus as the job will
+            corpus = client.upload_corpus(files, **corpus_options)
             print(f"corpus {corpus['id']}: {len(files)} file(s), "
                   f"{corpus['summary'].get('n_windows', '?')} window(s)", file=sys.stderr)
-            job = client.submit_job(corpus["id"], settings_from_args(args))
+            job = client.submit_job(corpus["id"], settings)
             print(f"job {job['id']} {job['state']}", file=sys.stderr)
             if not (args.wait or args.out):
                 print(job["id"])
@@ -177,6 +125,9 @@ def run(args: argparse.Namespace) -> int:
             # the verdict goes to stderr with the other messages for people, so stdout stays
             # the machine-readable part (saved paths or the summary JSON)
             print("\n".join(verdict.lines(client.diagnostics(job["id"]))), file=sys.stderr)
+            filterbank = client.filterbank(job["id"])
+            print("\n".join(lines_or_note(filterbank, sample_windows(files, filterbank))),
+                  file=sys.stderr)
             if args.out:
                 saved = client.download_results(job["id"], args.out)
                 for path in saved.values():

@@ -10,7 +10,7 @@ import argparse
 
 
 def register(subparsers) -> None:
-    from service.commands.submit import add_settings_flags
+    from service.commands.options import add_corpus_options, add_job_settings
 
     p = subparsers.add_parser(
         "tune", help="fit a filterbank to a corpus on this machine",
@@ -20,7 +20,8 @@ def register(subparsers) -> None:
     p.add_argument("paths", nargs="+", metavar="PATH", help="waveform files or folders")
     p.add_argument("--out", required=True, metavar="DIR", help="folder for the results")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
-    add_settings_flags(p)
+    add_corpus_options(p)
+    add_job_settings(p)
     p.set_defaults(func=run)
 
 
@@ -78,7 +79,7 @@ def run(args: argparse.Namespace) -> int:
     import sys
     from pathlib import Path
 
-    from service.commands.submit import settings_from_args
+    from service.commands.options import settings_from_args
 
     def fail(message: str) -> int:
         print(f"burstlens tune: {message}", file=sys.stderr)
@@ -94,14 +95,15 @@ def run(args: argparse.Namespace) -> int:
     if out.exists() and not out.is_dir():
         return fail(f"--out {out}: exists and is not a folder")
 
-    from search.corpus import CorpusError, read_corpus
+    from search.corpus import CorpusError
     from search.optimize import FilterbankSearch
+    from search.settings import read_corpus_as_given
 
     missing = [p for p in args.paths if not os.path.exists(p)]
     if missing:
         return fail(f"{missing[0]}: no such file or folder")
     try:
-        corpus = read_corpus(args.paths, **corpus_options)
+        corpus = read_corpus_as_given(args.paths, corpus_options)
     except (CorpusError, ValueError, OSError) as exc:
         return fail(str(exc))
 
@@ -157,7 +159,9 @@ def run(args: argparse.Namespace) -> int:
         tmp.write_text(report, encoding="utf-8")
         os.replace(tmp, out / "report.html")
         wrote.append("report.html")
-    for line in summary_lines(search.diagnostics_):
+    from service.energy_channels import lines_or_note
+
+    for line in summary_lines(search.diagnostics_) + lines_or_note(fb_json, corpus):
         print(line)
     print(f"wrote {', '.join(wrote)} to {out}")
     return 0

@@ -6,6 +6,7 @@ import shutil
 from fastapi import APIRouter, Depends, HTTPException, Request, Response
 from starlette.concurrency import run_in_threadpool
 
+from search.settings import CORPUS_OPTIONS
 from service.auth import require_tenant
 from service.corpus_check import check_corpus, parse_read_options
 from service.models import CorpusView
@@ -14,7 +15,24 @@ from service.uploads import receive_multipart
 
 router = APIRouter(prefix="/v1/corpora", tags=["corpora"])
 
-READ_FIELDS = {"windowing", "window_s", "csv_sampling_rate_hz"}
+_SCHEMA_BOUNDS = {"gt": "exclusiveMinimum", "ge": "minimum", "lt": "exclusiveMaximum",
+                  "le": "maximum"}
+
+
+def _form_field(option) -> dict:
+    """OpenAPI schema of a corpus option sent as a form field (text), from its one definition."""
+    if option.kind == "choice":
+        schema = {"type": "string", "enum": list(option.choices)}
+    elif option.kind == "band":
+        schema = {"type": "string", "description": "LO,HI in Hz. ", "examples": ["20,1500"]}
+    elif option.kind == "codes":
+        schema = {"type": "string", "pattern": "^[A-Za-z0-9]+$", "examples": ["ZNE"]}
+    else:
+        schema = {"type": "integer" if option.kind == "integer" else "number",
+                  **{_SCHEMA_BOUNDS[k]: v for k, v in option.bounds().items()}}
+    schema["description"] = schema.get("description", "") + option.sentence()
+    return schema
+
 
 _UPLOAD_BODY = {"requestBody": {"required": True, "content": {"multipart/form-data": {"schema": {
     "type": "object", "required": ["files"],
@@ -22,11 +40,7 @@ _UPLOAD_BODY = {"requestBody": {"required": True, "content": {"multipart/form-da
         "files": {"type": "array", "items": {"type": "string", "format": "binary"},
                   "minItems": 1,
                   "description": "Waveform files: miniSEED, SAC, WAV, .npy/.npz, CSV."},
-        "windowing": {"type": "string", "enum": ["bursts", "whole", "sliding"],
-                      "description": "How the upload check cuts windows (default bursts)."},
-        "window_s": {"type": "number", "exclusiveMinimum": 0, "description": "Window length, s."},
-        "csv_sampling_rate_hz": {"type": "number", "exclusiveMinimum": 0,
-                                 "description": "Sampling rate of CSV files, Hz."}}}}}}}
+        **{name: _form_field(option) for name, option in CORPUS_OPTIONS.items()}}}}}}}
 
 
 @router.post("", status_code=201, response_model=CorpusView, openapi_extra=_UPLOAD_BODY,
@@ -34,14 +48,17 @@ _UPLOAD_BODY = {"requestBody": {"required": True, "content": {"multipart/form-da
 async def create_corpus(request: Request, tenant: str = Depends(require_tenant)) -> CorpusView:
     """Upload a corpus (multipart field `files`, one part per file).
 
-    The files stream to disk, the corpus reader checks them, and only then is the corpus recorded
-    and its `id` returned. A rejected upload leaves nothing behind.
+    Corpus options (the job settings `sta_s`, `trigger_on`, `bandpass_hz`, ...) may come as form
+    fields, values as text (`bandpass_hz` as `LO,HI`). The files stream to disk, the corpus reader
+    checks them with those options, and only then is the corpus recorded (with the options as
+    `summary.read_options`: jobs on it read it so unless their settings override one) and its
+    `id` returned. A rejected upload leaves nothing behind.
     """
     store, settings = request.app.state.store, request.app.state.settings
     folder = await run_in_threadpool(store.new_upload_dir)
     try:
         upload = await receive_multipart(request, folder, file_fields={"files"},
-                                         text_fields=READ_FIELDS, max_files=settings.max_files)
+                                         text_fields=set(CORPUS_OPTIONS), max_files=settings.max_files)
         files = upload.files.get("files", [])
         if not files:
             raise HTTPException(status_code=422, detail="no files: send the waveforms as the "

@@ -15,7 +15,9 @@ DEMO = os.path.join(ROOT, "demo_corpus")
 
 def test_brune_worked_example():
     """Mw −1, Δσ = 1 MPa, β = 3500 m/s gives fc ≈ 503 Hz: M0 = 10^(1.5·(−1) + 9.1) N·m (IASPEI
-    standard Mw) and fc = 0.4906·β·(Δσ/M0)^(1/3) (Brune, JGR 75, 1970)."""
+    standard Mw: IASPEI Magnitude Working Group, "Summary of Magnitude Working Group
+    Recommendations on Standard Procedures for Determining Earthquake Magnitudes from Digital
+    Data", 2013) and fc = 0.4906·β·(Δσ/M0)^(1/3) (Brune, JGR 75, 1970)."""
     m0 = ds.moment_from_mw(-1.0)
     assert m0 == pytest.approx(10 ** 7.6)
     assert ds.corner_frequency_hz(m0, 1e6, 3500.0) == pytest.approx(503.0, abs=0.5)
@@ -134,7 +136,7 @@ def test_committed_demo_reads_as_a_burst_corpus():
     assert corpus.window_samples == 1024
     assert 150 <= corpus.n_windows <= 300
     ids = {t["trace_id"] for t in corpus.traces}
-    assert ids == {f"XM.{s}.00.{c}" for s in ds.STATIONS for c in ds.CHANNELS}
+    assert ids == {f"XX.{s}.00.{c}" for s in ds.STATIONS for c in ds.CHANNELS}
     assert all(t["windows"] > 0 for t in corpus.traces)
     assert {os.path.basename(s["file"]) for s in corpus.skipped} == {"README.md", "catalogue.json"}
     total = sum(os.path.getsize(os.path.join(DEMO, n)) for n in os.listdir(DEMO))

@@ -7,7 +7,7 @@ diag(s², (4πs)⁻²). Every Rényi entropy of a Gaussian density grows with de
 Flandrin, Janssen, Michel, IEEE Trans. Inf. Theory 47(4), 2001), and the determinant is least at
 s*⁴ = σ0⁴ / (1 + 16π²β²σ0⁴) (DESIGN §3): s* = σ0 without chirp, s* → 1/√(4π|β|) for a long
 chirp. The scan is scipy.optimize.minimize_scalar (bounded) on log s over [s/2.5, 3.5 s];
-the tolerance is the 3 % the issue sets, against a discretisation error far below it (channels at
+the scan must land within 3 % of s*, against a discretisation error far below it (channels at
 1 Hz over ≥ 6 frequency stds of the widest image, 1 ms samples).
 """
 import math

@@ -6,9 +6,9 @@ from search.settings import (SETTINGS_DEFAULTS, resolve_search_options, split_se
 
 
 def test_split_routes_every_key_and_fills_defaults():
-    """split_settings sends window_s/windowing/max_windows (and seed) to the corpus reader and
-    the rest to the search, with jobs renamed n_jobs (DESIGN §7 settings; DEVELOPERS.md
-    contract). Common practice: unset values take the documented defaults."""
+    """split_settings sends the corpus options given (here window_s/windowing/max_windows/seed)
+    to the corpus reader and the rest to the search, with jobs renamed n_jobs (DESIGN §7
+    settings; DEVELOPERS.md contract). Common practice: unset values take the documented defaults."""
     corpus, search = split_settings({"window_s": 0.5, "windowing": "whole", "max_windows": 10,
                                      "seed": 7, "jobs": 2, "channels": 12})
     assert corpus == {"window_s": 0.5, "windowing": "whole", "max_windows": 10, "seed": 7}
@@ -79,3 +79,89 @@ def test_too_short_windows_are_refused():
     """Windows under 25 samples leave no room between 4/fs and window/6 (DESIGN §5 bounds)."""
     with pytest.raises(ValueError, match="too short"):
         resolve_search_options({}, 1000.0, 20)
+
+
+def test_every_corpus_option_is_a_setting_for_read_corpus():
+    """The corpus options are exactly read_corpus's keywords (DESIGN §6, §9: the settings mirror
+    the reader), each a job setting that split_settings hands to the reader, and only when set:
+    the reader's own defaults stay in force otherwise."""
+    import inspect
+
+    from search.corpus import read_corpus
+    from search.settings import CORPUS_KEYS, CORPUS_OPTIONS
+
+    keywords = [p.name for p in inspect.signature(read_corpus).parameters.values()
+                if p.kind is inspect.Parameter.KEYWORD_ONLY]
+    assert list(CORPUS_OPTIONS) == list(CORPUS_KEYS) == keywords
+    assert set(CORPUS_KEYS) <= set(SETTINGS_DEFAULTS)
+    given = {"sta_s": 0.02, "lta_s": 0.4, "trigger_on": 4, "trigger_off": 1.2, "pre_trigger": 0.1,
+             "components": "zn", "bandpass_hz": [0, 200], "sampling_rate_hz": 1000,
+             "csv_sampling_rate_hz": 500, "hop_s": 0.1, "windowing": "sliding", "window_s": 0.5,
+             "max_windows": 20, "seed": 3}
+    corpus, search = split_settings({**given, "channels": 8})
+    assert corpus == {**given, "trigger_on": 4.0, "components": "ZN", "bandpass_hz": [0.0, 200.0],
+                      "sampling_rate_hz": 1000.0, "csv_sampling_rate_hz": 500.0}
+    assert "sta_s" not in search and search["seed"] == 3
+    assert split_settings({"channels": 8})[0] == {}
+
+
+def test_trigger_kinds_are_the_readers():
+    """The STA/LTA kinds accepted are the reader's TRIGGERS, whatever their names, and the
+    default shown is the reader's DEFAULT_TRIGGER."""
+    from search.corpus.ingest import DEFAULT_TRIGGER, TRIGGERS
+    from search.settings import CORPUS_OPTIONS
+
+    option = CORPUS_OPTIONS["trigger"]
+    assert option.choices == tuple(TRIGGERS) and option.default_text() == DEFAULT_TRIGGER
+    for kind in TRIGGERS:
+        assert split_settings({"trigger": kind})[0] == {"trigger": kind}
+
+
+@pytest.mark.parametrize("settings, name", [
+    ({"windowing": "events"}, "windowing"),
+    ({"window_s": 0}, "window_s"),
+    ({"window_s": 61}, "window_s"),
+    ({"max_windows": 0}, "max_windows"),
+    ({"max_windows": 2.5}, "max_windows"),
+    ({"seed": -1}, "seed"),
+    ({"sampling_rate_hz": -100}, "sampling_rate_hz"),
+    ({"components": "Z?"}, "components"),
+    ({"components": ""}, "components"),
+    ({"bandpass_hz": [10]}, "bandpass_hz"),
+    ({"bandpass_hz": [200, 100]}, "bandpass_hz"),
+    ({"bandpass_hz": [-1, 100]}, "bandpass_hz"),
+    ({"csv_sampling_rate_hz": float("inf")}, "csv_sampling_rate_hz"),
+    ({"sta_s": float("nan")}, "sta_s"),
+    ({"lta_s": "long"}, "lta_s"),
+    ({"trigger_on": 0}, "trigger_on"),
+    ({"trigger_off": -1}, "trigger_off"),
+    ({"trigger_on": 1.2}, "trigger_off"),            # below the reader's default off threshold
+    ({"trigger_on": 2, "trigger_off": 3}, "trigger_off"),
+    ({"sta_s": 0.5, "lta_s": 0.5}, "sta_s"),
+    ({"pre_trigger": 1}, "pre_trigger"),
+    ({"pre_trigger": -0.1}, "pre_trigger"),
+    ({"trigger": "fastest"}, "trigger"),
+    ({"hop_s": 0}, "hop_s"),
+])
+def test_bad_corpus_options_name_the_setting(settings, name):
+    """Each corpus option is checked once, in search.settings, with a ValueError naming it; the
+    reader's own limits (Trnkoczy, NMSOP-2 IS 8.1, 2012: the off threshold below the on one;
+    common practice: STA shorter than LTA, a pre-trigger share below 1)."""
+    with pytest.raises(ValueError) as err:
+        split_settings(settings)
+    assert f"setting {name!r}" in str(err.value)
+
+
+def test_upload_text_parses_to_the_same_values():
+    """Form-field text (the upload's corpus options) parses to the values the JSON settings
+    give; a band is LO,HI or [LO, HI] (common practice)."""
+    from search.settings import CORPUS_OPTIONS, check_corpus_options
+
+    text = {"sta_s": "0.02", "max_windows": "20", "bandpass_hz": "[1, 40]", "trigger_on": " 4 ",
+            "components": "z"}
+    parsed = check_corpus_options({k: CORPUS_OPTIONS[k].parse(v) for k, v in text.items()})
+    assert parsed == {"sta_s": 0.02, "max_windows": 20, "bandpass_hz": [1.0, 40.0],
+                      "trigger_on": 4.0, "components": "Z"}
+    assert CORPUS_OPTIONS["bandpass_hz"].parse("1,40") == [1.0, 40.0]
+    with pytest.raises(ValueError, match="'max_windows'"):
+        CORPUS_OPTIONS["max_windows"].parse("many")

@@ -120,6 +120,54 @@ def test_invalid_setting_values(make_client):
         assert field in response.json()["error"]["message"]
 
 
+def test_job_takes_the_corpus_options(make_client):
+    """A job's settings take every corpus option by its CLI name in snake_case (DESIGN §7): a job
+    with sta_s is accepted and records it; an out-of-range trigger_on, or one that leaves the
+    default off threshold above it, is a 422 naming the setting."""
+    client = make_client()
+    corpus = _upload(client)
+    settings = {**TINY, "sta_s": 0.02, "lta_s": 0.5, "bandpass_hz": [10, 400], "components": "z"}
+    response = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": settings})
+    assert response.status_code == 201, response.text
+    assert response.json()["settings"] == {**settings, "sta_s": 0.02, "bandpass_hz": [10.0, 400.0],
+                                           "components": "Z"}
+    for bad, field in (({"trigger_on": -2}, "trigger_on"), ({"trigger_on": 1.2}, "trigger_off"),
+                       ({"trigger": "fastest"}, "trigger"), ({"pre_trigger": 1}, "pre_trigger")):
+        response = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": bad})
+        assert response.status_code == 422, bad
+        assert field in response.json()["error"]["message"]
+
+
+def test_upload_takes_the_corpus_options_and_records_them(make_client, tmp_path):
+    """POST /v1/corpora takes the corpus options as form fields (text; a band as LO,HI): the
+    upload check reads the corpus with them, the corpus records them as read_options (what jobs
+    on it use unless their settings override) and its defaults say they were given. A bad one
+    is a 422 naming it, and leaves nothing behind."""
+    from search.corpus.ingest import DEFAULT_TRIGGER, TRIGGERS
+
+    kind = next(k for k in TRIGGERS if k != DEFAULT_TRIGGER)
+    client = make_client()
+    fields = {"sta_s": "0.02", "lta_s": "0.5", "trigger_on": "3", "trigger": kind,
+              "bandpass_hz": "10,400", "max_windows": "40"}
+    response = client.post("/v1/corpora", files=corpus_files(2), data=fields)
+    assert response.status_code == 201, response.text
+    summary = response.json()["summary"]
+    recorded = {"sta_s": 0.02, "lta_s": 0.5, "trigger_on": 3.0, "trigger": kind,
+                "bandpass_hz": [10.0, 400.0], "max_windows": 40}
+    assert summary["read_options"] == summary["defaults"]["given"] == recorded
+    assert summary["defaults"]["sta_s"] == 0.02 and summary["defaults"]["trigger"] == kind
+    assert summary["defaults"]["sta_source"] == "given"
+    data = tmp_path / "data"
+    before = sorted(os.listdir(data / "blobs" / "corpora"))
+    for bad, field in (({"trigger_on": "high"}, "trigger_on"), ({"bandpass_hz": "400,10"},
+                                                                "bandpass_hz"),
+                       ({"sta_s": "0.5", "lta_s": "0.1"}, "sta_s")):
+        response = client.post("/v1/corpora", files=corpus_files(1), data=bad)
+        assert response.status_code == 422, bad
+        assert field in response.json()["error"]["message"]
+    assert sorted(os.listdir(data / "blobs" / "corpora")) == before and os.listdir(data / "tmp") == []
+
+
 def test_unknown_ids_are_404(make_client):
     """Unknown corpus and job ids answer 404 with a JSON error (DESIGN §7)."""
     client = make_client()

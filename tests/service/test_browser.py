@@ -37,6 +37,38 @@ TABLE_JS = """() => Array.from(document.querySelectorAll('#channel-table tbody t
     return row;
 })"""
 
+# Every visible element with text of its own, as [text, contrast ratio] (WCAG 2.1 §1.4.3
+# relative luminance) of its computed colour on its effective background: the first ancestor
+# background that is not transparent, translucent ones blended over what lies beneath.
+CONTRAST_JS = """() => {
+  const rgba = s => { const m = s.match(/[\\d.]+/g).map(Number); return [m[0], m[1], m[2], m.length > 3 ? m[3] : 1]; };
+  const lin = c => { c /= 255; return c <= 0.04045 ? c / 12.92 : Math.pow((c + 0.055) / 1.055, 2.4); };
+  const lum = c => 0.2126 * lin(c[0]) + 0.7152 * lin(c[1]) + 0.0722 * lin(c[2]);
+  const over = (top, under) => top.slice(0, 3).map((v, i) => v * top[3] + under[i] * (1 - top[3]));
+  const background = el => {
+    const layers = [];
+    for (let e = el; e; e = e.parentElement) {
+      const c = rgba(getComputedStyle(e).backgroundColor);
+      if (c[3] > 0) { layers.push(c); if (c[3] >= 1) break; }
+    }
+    return layers.reverse().reduce((under, top) => over(top, under), [255, 255, 255]);
+  };
+  const out = [];
+  for (const el of document.querySelectorAll('body *')) {
+    const own = Array.from(el.childNodes).some(n => n.nodeType === 3 && n.textContent.trim());
+    if (!own || !el.getClientRects().length || getComputedStyle(el).visibility === 'hidden') continue;
+    const fg = over(rgba(getComputedStyle(el).color), background(el));
+    const [a, b] = [lum(fg), lum(background(el))].sort((x, y) => y - x);
+    out.push([el.textContent.trim().slice(0, 60), (a + 0.05) / (b + 0.05)]);
+  }
+  return out;
+}"""
+
+
+def low_contrast(page) -> list:
+    """Texts on the page under 4.5:1 (WCAG 2.1 §1.4.3, level AA), with their ratios."""
+    return [(text, round(ratio, 2)) for text, ratio in page.evaluate(CONTRAST_JS) if ratio < 4.5]
+
 
 @pytest.fixture(scope="module")
 def browser():
@@ -98,10 +130,22 @@ def test_report_from_disk_renders_every_image_and_the_channel_table(browser, tmp
     path = tmp_path / "report.html"
     path.write_text(render_report(filterbank, search.diagnostics_, corpus.windows,
                                   corpus.sampling_rate_hz), encoding="utf-8")
-    page = browser.new_page(viewport={"width": 1280, "height": 900})
+    page = browser.new_page(viewport={"width": 1280, "height": 800})
     console = Console(page)
     page.goto(path.as_uri())
     page.wait_for_load_state("load")
+    page.screenshot(path=str(tmp_path / "report-fold.png"))
+    # the answer is above the fold: what was tuned, the gain in words, the warnings box
+    for selector in ("#tuned", "#gain", "#warnings"):
+        box = page.locator(selector).bounding_box()
+        assert box is not None and box["y"] + box["height"] <= 800, (selector, box)
+    assert "windows the fit never saw" in page.inner_text("#gain")
+    assert page.locator("#warnings").is_visible()  # 8 windows: fewer than 30 held out
+    assert page.evaluate("() => document.querySelector('details#details').open") is False
+    assert page.locator("details#details h3").first.is_hidden()
+    assert low_contrast(page) == []
+    page.click("details#details > summary")  # the folded settings are readable too
+    assert low_contrast(page) == []
     images = page.evaluate(IMAGES_JS)
     assert len(images) == 5  # tiling, examples, convergence, channels, baselines
     for image in images:
@@ -112,7 +156,9 @@ def test_report_from_disk_renders_every_image_and_the_channel_table(browser, tmp
     for row, channel in zip(rows, filterbank["channels"]):
         for field in ("center_hz", "time_spread_s", "cell_area", "chirp_hz_per_s"):
             assert float(row[field]["value"]) == channel[field]
-            assert float(row[field]["text"]) == pytest.approx(channel[field], rel=1e-4, abs=1e-12)
+        assert float(row["center_hz"]["text"]) == pytest.approx(channel["center_hz"], rel=1e-4)
+        assert float(row["time_spread_s"]["text"]) == \
+            pytest.approx(1e3 * channel["time_spread_s"], rel=1e-2)  # shown in ms
         assert row["equivalent"]["text"] == channel["equivalent"]["text"]
     assert "not a certified safety" in page.inner_text("#cautions")
     page.screenshot(path=str(tmp_path / "report.png"), full_page=True)
@@ -155,6 +201,7 @@ def test_jobs_page_with_a_token_follows_a_job_to_succeeded_and_opens_its_report(
     page.goto(server.url + "/")
     page.wait_for_selector("#token-panel:not([hidden])")
     page.screenshot(path=str(tmp_path / "jobs-token.png"))
+    assert low_contrast(page) == []
     page.fill("#token-input", "bl_wrong")
     page.click("#token-panel button[type=submit]")
     page.wait_for_selector("#token-error:not([hidden])")  # rejected: asked again, with a reason
@@ -190,6 +237,7 @@ def test_jobs_page_with_a_token_follows_a_job_to_succeeded_and_opens_its_report(
     assert re.search(r"[+-]\d\.\d{3} bits", row.inner_text())  # gain over the spectrogram
     assert row.locator("button.cancel").count() == 0
     page.screenshot(path=str(tmp_path / "jobs.png"), full_page=True)
+    assert low_contrast(page) == []  # succeeded and cancelled rows, links, buttons
     link = row.locator("a.report-link")
     assert link.get_attribute("href") == f"/v1/jobs/{job_id}/report"
     with page.expect_popup() as popup:
@@ -207,6 +255,7 @@ def test_jobs_page_with_a_token_follows_a_job_to_succeeded_and_opens_its_report(
         [c["center_hz"] for c in filterbank["channels"]]
     report_page.screenshot(path=str(tmp_path / "job-report.png"), full_page=True)
     assert report_console.errors == []
+    assert report_console.foreign(server.url + "/") == []  # the report loads nothing else
     # the 401 answers before the token was given are the protocol at work, not page errors
     assert [e for e in console.errors if "401" not in e] == []
     report_page.close()
@@ -227,6 +276,7 @@ def test_jobs_page_without_tokens_lists_and_cancels_a_queued_job(browser, live_s
     assert page.locator("#token-panel").is_hidden()
     assert page.locator(f"{row} a.report-link").count() == 0
     assert "waiting for a worker" in page.inner_text(row)
+    assert low_contrast(page) == []
     page.click(f"{row} button.cancel")
     page.wait_for_selector(f'{row}[data-state="cancelled"]', timeout=15000)
     with httpx.Client(base_url=server.url) as client:

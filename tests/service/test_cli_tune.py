@@ -134,7 +134,7 @@ def test_judgement_flags_map_to_the_settings_the_api_accepts():
     """--held-out and --max-negative-share become held_out and max_negative_share, which
     JobSettings accepts; unset, they are left to the engine's defaults."""
     from service.cli import build_parser
-    from service.commands.submit import settings_from_args
+    from service.commands.options import settings_from_args
     from service.models import JobSettings
 
     args = build_parser().parse_args(["tune", "x.wav", "--out", "o", "--held-out", "0.3",
@@ -161,3 +161,119 @@ def test_judgement_flags_out_of_range_exit_2_naming_the_flag(flag, value, tmp_pa
     assert stop.value.code == 2 and flag in capsys.readouterr().err
     with pytest.raises(ValidationError):
         JobSettings(**{flag.lstrip("-").replace("-", "_"): float(value)})
+
+
+def _trigger_kind():
+    """A non-default STA/LTA kind, from the reader's own list."""
+    from search.corpus.ingest import DEFAULT_TRIGGER, TRIGGERS
+
+    return next(kind for kind in TRIGGERS if kind != DEFAULT_TRIGGER)
+
+
+@pytest.fixture(scope="module")
+def burst_dir(tmp_path_factory):
+    """Two 12-s traces (.npz, 1 kHz) of tone bursts in noise, for burst windowing."""
+    from service_helpers import burst_npz
+
+    folder = tmp_path_factory.mktemp("bursts")
+    for i in range(2):
+        (folder / f"trace{i}.npz").write_bytes(burst_npz(seed=i))
+    return folder
+
+
+def test_tune_takes_every_corpus_option_and_the_corpus_reflects_them(burst_dir, tmp_path):
+    """tune passes the corpus flags (the same as inspect's) to the corpus reader: the corpus in
+    diagnostics.json records the values used, and under defaults.given which ones were given
+    rather than chosen from the data (DESIGN §6: every default the run chose is written)."""
+    kind = _trigger_kind()
+    out = tmp_path / "out"
+    assert main(["tune", str(burst_dir), "--out", str(out), "--quiet", "--channels", "6",
+                 "--evaluations", "4", "--bootstrap", "0", "--no-refine",
+                 "--sta-s", "0.02", "--lta-s", "0.5", "--trigger-on", "3", "--trigger-off", "1.2",
+                 "--trigger", kind, "--pre-trigger", "0.2", "--window-s", "0.256",
+                 "--bandpass", "20", "400", "--max-windows", "50", "--seed", "4"]) == 0
+    defaults = json.loads((out / "diagnostics.json").read_text())["corpus"]["defaults"]
+    given = {"sta_s": 0.02, "lta_s": 0.5, "trigger_on": 3.0, "trigger_off": 1.2, "trigger": kind,
+             "pre_trigger": 0.2, "window_s": 0.256, "bandpass_hz": [20.0, 400.0],
+             "max_windows": 50, "seed": 4}
+    assert defaults["given"] == given
+    for key, value in given.items():
+        assert defaults[key] == value, key
+    assert defaults["sta_source"] == defaults["lta_source"] == defaults["window_source"] == "given"
+
+
+@pytest.mark.parametrize("extra, needle", [
+    (["--trigger-on", "1.2"], "trigger_off"),          # below the default off threshold 1.5
+    (["--pre-trigger", "1"], "pre_trigger"),
+    (["--sta-s", "0.5", "--lta-s", "0.2"], "sta_s"),
+    (["--components", "Z?"], "components"),
+    (["--bandpass", "300", "100"], "bandpass_hz"),
+    (["--hop-s", "0"], "hop_s"),
+])
+def test_bad_corpus_options_exit_2_naming_the_setting(wav_dir, tmp_path, capsys, extra, needle):
+    """tune and inspect refuse a bad corpus option with exit 2 and the setting's name, before any
+    file is read (project rule: clear errors naming the field and value)."""
+    for argv in (["tune", str(wav_dir), "--out", str(tmp_path / "x"), "--quiet"], ["inspect",
+                                                                                   str(wav_dir)]):
+        assert main([*argv, *extra]) == 2
+        err = capsys.readouterr().err
+        assert needle in err and "Traceback" not in err
+    assert not (tmp_path / "x").exists()
+
+
+def test_inspect_tune_and_submit_share_the_corpus_flags():
+    """The three entry points take the same corpus flags and give the same settings, named as
+    the job settings of POST /v1/jobs, which JobSettings accepts unchanged."""
+    from search.settings import CORPUS_OPTIONS
+    from service.cli import build_parser
+    from service.commands.options import settings_from_args
+    from service.models import JobSettings
+
+    kind = _trigger_kind()
+    flags = ["--sta-s", "0.02", "--lta-s", "0.5", "--trigger-on", "3", "--trigger-off", "1.2",
+             "--pre-trigger", "0.2", "--trigger", kind, "--components", "Z", "--bandpass", "1",
+             "40", "--sampling-rate", "100", "--csv-sampling-rate", "200", "--hop-s", "1",
+             "--windowing", "sliding", "--window-s", "2", "--max-windows", "9", "--seed", "5"]
+    heads = (["inspect", "x.wav"], ["tune", "x.wav", "--out", "o"],
+             ["submit", "x.wav", "--server", "http://127.0.0.1:1"])
+    found = [settings_from_args(build_parser().parse_args([*head, *flags])) for head in heads]
+    assert found[0] == found[1] == found[2]
+    assert set(found[0]) == set(CORPUS_OPTIONS)
+    assert found[0]["bandpass_hz"] == [1.0, 40.0] and found[0]["trigger"] == kind
+    assert JobSettings(**found[0]).to_options() == found[0]
+
+
+def test_submit_sends_the_corpus_options_with_the_upload_and_the_job(wav_dir, monkeypatch,
+                                                                     capsys):
+    """submit reads nothing itself: the upload check reads the corpus with the corpus options
+    (so it finds the windows the job will), and the job's settings carry them too."""
+    import service.client
+
+    calls = {}
+
+    class FakeClient:
+        def __init__(self, server, token):
+            pass
+
+        def __enter__(self):
+            return self
+
+        def __exit__(self, *exc):
+            return False
+
+        def upload_corpus(self, files, **read_options):
+            calls["upload"] = read_options
+            return {"id": "c1", "summary": {"n_windows": 6}}
+
+        def submit_job(self, corpus_id, settings):
+            calls["job"] = settings
+            return {"id": "j1", "state": "queued"}
+
+    monkeypatch.setattr(service.client, "Client", FakeClient)
+    assert main(["submit", str(wav_dir), "--server", "http://127.0.0.1:1", "--windowing", "whole",
+                 "--components", "z", "--channels", "8"]) == 0
+    assert calls["upload"] == {"windowing": "whole", "components": "Z"}
+    assert calls["job"] == {"windowing": "whole", "components": "z", "channels": 8}
+    assert main(["submit", str(wav_dir), "--server", "http://127.0.0.1:1",
+                 "--trigger-on", "-1"]) == 2
+    assert "trigger_on" in capsys.readouterr().err

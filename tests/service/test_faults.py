@@ -104,7 +104,7 @@ def test_kill_9_worker_is_reclaimed_and_resumes(live_server, corpus_paths, refer
     with Client(server.url) as client:
         corpus = client.upload_corpus(corpus_paths)
         job = client.submit_job(corpus["id"], FAULT)
-        wait_for(lambda: _round(client, job["id"]) >= 4, interval=0.05)
+        wait_for(lambda: _round(client, job["id"]) >= 2, interval=0.05)
         (pid,) = server.worker_pids()
         os.kill(pid, signal.SIGKILL)
         done = client.wait(job["id"], poll_s=0.2, timeout_s=120)
@@ -122,7 +122,7 @@ def test_sigterm_worker_exits_0_and_resume_is_identical(live_server, corpus_path
         job = client.submit_job(corpus["id"], FAULT)
         first = _start_worker(server.data_dir)
         try:
-            wait_for(lambda: _round(client, job["id"]) >= 4, interval=0.05)
+            wait_for(lambda: _round(client, job["id"]) >= 2, interval=0.05)
             first.send_signal(signal.SIGTERM)
             assert first.wait(timeout=60) == 0
         finally:

@@ -17,7 +17,7 @@ def test_inspect_demo_shows_traces_windows_defaults(capsys):
     assert "windows of 1024 samples (256 ms) at 4000 Hz" in out
     for station in ("Q215A", "Q215B", "Q245A", "Q245B", "Q275A"):
         for channel in ("GPZ", "GPN", "GPE"):
-            assert f"XM.{station}.00.{channel}" in out
+            assert f"XX.{station}.00.{channel}" in out
     assert "defaults chosen:" in out and "sta_s:" in out and "trigger_on: 3.5" in out
     assert "rejections:" in out
     assert "60.000 s" in out

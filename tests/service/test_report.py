@@ -6,6 +6,7 @@ own transform on generated windows.
 """
 import base64
 import copy
+import re
 from html.parser import HTMLParser
 
 import numpy as np
@@ -145,16 +146,24 @@ def test_report_escapes_hostile_strings():
 
 def test_channel_table_matches_filterbank_json(page_text):
     """One row per channel with the filterbank JSON's center_hz, time_spread_s, cell_area and
-    chirp_hz_per_s (exact value in data-value, 5 significant digits shown) and the equivalent
+    chirp_hz_per_s (exact value in data-value) shown in the trade's terms: centre in Hz, window
+    σ_t in ms, super-resolution or smoothing factor, matched sweep in Hz/s; and the equivalent
     reading text (DESIGN §8 channel fields)."""
     fb = filterbank_json(channels=7)
     page = Page(page_text)
     assert [r["channel"] for r in page.rows] == list(range(7))
     for row, channel in zip(page.rows, fb["channels"]):
         for field in report.CHANNEL_FIELDS:
-            cell = row["cells"][field]
-            assert float(cell["value"]) == channel[field]
-            assert float(cell["text"]) == pytest.approx(channel[field], rel=1e-4, abs=1e-12)
+            assert float(row["cells"][field]["value"]) == channel[field]
+        text = {f: row["cells"][f]["text"] for f in report.CHANNEL_FIELDS}
+        assert float(text["center_hz"]) == pytest.approx(channel["center_hz"], rel=1e-4)
+        assert float(text["time_spread_s"]) == pytest.approx(1e3 * channel["time_spread_s"], rel=1e-2)
+        assert float(text["chirp_hz_per_s"].replace(",", "")) == \
+            pytest.approx(channel["chirp_hz_per_s"], abs=0.5)
+        area = channel["cell_area"]
+        assert text["cell_area"] == ("as a spectrogram (a = 1)" if area == 1 else
+                                     f"super-resolution ×{1 / area:.2f}" if area < 1 else
+                                     f"smoothing ×{area:.2f}")
         assert row["cells"]["equivalent"]["text"] == channel["equivalent"]["text"]
 
 
@@ -170,8 +179,9 @@ def test_summary_shows_the_run_and_the_cautions(page_text):
     assert "given" in visible and "default" in visible  # settings tagged against the job's own
     for reason in diag["windows"]["rejected_by_reason"]:
         assert reason in visible
-    assert "sta_s" in visible and "lta_s" in visible
-    assert "evaluations" in visible and "seed" in visible
+    assert "STA length 10 ms" in visible and "LTA length 200 ms" in visible
+    assert "sta_s" not in visible and "lta_s" not in visible  # labels for people, not keys
+    assert "Evaluations" in visible and "Seed" in visible
     assert "site-A.mseed" in visible and "XX.S01..HHZ" in visible
     assert "not a certified safety" in visible
     assert "licensed professionals" in visible
@@ -273,7 +283,8 @@ def judged_diagnostics(**judgement):
     return diag
 
 
-LEAD = "gain on windows the fit never saw: 0.42 [0.31, 0.52] bits (53 held-out windows)"
+LEAD = ("0.42 bit sharper than the best plain spectrogram on 53 windows the fit never saw, "
+        "90 % interval 0.31–0.52")
 
 
 def visible_text(text):
@@ -316,7 +327,7 @@ def test_the_warnings_box_shows_each_warning_that_applies(change):
     box = text[text.index('<div class="warnings"'):text.index("<nav")]
     assert visible_text(box) == visible_text('<div id="warnings">' + "Warnings "
                                              + " ".join(f"<li>{w}</li>" for w in expected))
-    assert text.index(verdict.gain_sentence(diag)) < text.index('id="warnings"')
+    assert text.index(verdict.gain_words(diag)) < text.index('id="warnings"')
 
 
 def test_summary_shows_negative_share_and_onset_timing():
@@ -351,3 +362,86 @@ def test_warning_text_from_data_is_escaped():
     page = Page(text)
     assert not [t for t, _ in page.tags if t == "script"]
     assert HOSTILE in visible_text(text)
+
+
+def test_the_page_answers_first_and_folds_settings_away():
+    """Order of the page: what was tuned, the gain, then example bursts, channel table, tiling
+    and convergence; settings, defaults and files sit in one closed <details> at the end."""
+    text = report.render_report(filterbank_json(), judged_diagnostics(), None, None)
+    tuned = visible_text(text[text.index('id="tuned"'):text.index("</header>")])
+    assert "XX.S01" in tuned  # the site, from the trace ids
+    assert "5 channels at 60–900 Hz" in tuned and "6 windows of 128 ms at 2000 Hz" in tuned
+    order = [text.index(m) for m in ('id="tuned"', 'id="gain"', 'id="plot-examples"',
+                                     'id="channel-table"', 'id="plot-tiling"',
+                                     'id="plot-convergence"', 'id="cautions"', '<details id="details">')]
+    assert order == sorted(order)
+    assert '<details id="details">' in text and "<details id=\"details\" open" not in text
+    details = text[text.index('<details id="details">'):text.index("</main>")]
+    assert "Settings of the run" in details and "Traces read" in details
+
+
+def test_negative_gain_is_said_as_less_sharp():
+    diag = judged_diagnostics(gain_bits={"estimate": -0.2, "low": -0.4, "high": -0.05,
+                                         "level": 0.9, "resamples": 2000})
+    text = report.render_report(filterbank_json(), diag, None, None)
+    assert ("0.20 bit less sharp than the best plain spectrogram on 53 windows the fit never "
+            "saw, 90 % interval -0.40 to -0.05") in visible_text(text)
+
+
+def test_report_colours_are_the_palette():
+    """The page's CSS variables are service.palette's, in one :root rule."""
+    from service import palette
+
+    text = report.render_report(filterbank_json(), diagnostics(), None, None)
+    assert palette.css_variables() in text
+
+
+@pytest.mark.parametrize("first, second, ratio", [
+    ("#000000", "#ffffff", 21.0), ("#767676", "#ffffff", 4.54), ("#ffffff", "#ffffff", 1.0)])
+def test_contrast_ratio_matches_the_wcag_worked_values(first, second, ratio):
+    """WCAG 2.1 §1.4.3: black on white 21:1, #767676 on white just above 4.5:1, in either order."""
+    from service import palette
+
+    assert palette.contrast_ratio(first, second) == pytest.approx(ratio, abs=0.005)
+    assert palette.contrast_ratio(second, first) == palette.contrast_ratio(first, second)
+
+
+def test_palette_text_is_darkened_okabe_ito_and_readable_on_every_background():
+    """Every text colour is an Okabe–Ito hue of the plots scaled towards black (same channel
+    ratios) and reaches 4.5:1 on every background; one step lighter would not (darkened no more
+    than needed); white on the accent (a primary button) passes too."""
+    from service import palette, plots
+
+    assert {c.lower() for c in palette.OKABE_ITO.values()} == {c.lower() for c in plots.PALETTE}
+    for name, colour in palette.TEXT.items():
+        for background in palette.BACKGROUNDS.values():
+            assert palette.contrast_ratio(colour, background) >= palette.AA_NORMAL_TEXT, name
+    assert palette.contrast_ratio(palette.PAPER, palette.TEXT["accent"]) >= palette.AA_NORMAL_TEXT
+    assert palette.TEXT["accent"] == palette.darken(palette.OKABE_ITO["blue"],
+                                                    palette.BACKGROUNDS.values())
+    assert palette.darken("#767676", ["#ffffff"]) == "#767676"  # already readable: unchanged
+    darker = palette.darken("#999999", ["#ffffff"])
+    assert palette.contrast_ratio(darker, "#ffffff") >= 4.5 and darker != "#999999"
+
+
+def test_jobs_page_uses_the_same_palette():
+    """service/static/index.html cannot import the palette: its :root rule must equal it."""
+    from pathlib import Path
+
+    from service import palette
+
+    page = (Path(report.__file__).parent / "static" / "index.html").read_text(encoding="utf-8")
+    assert palette.css_variables() in page
+
+
+def test_the_report_says_which_corpus_options_were_given():
+    """Corpus options the caller set (Corpus.defaults["given"]) carry a "given" tag in the
+    folded settings; those the reader chose from the data do not, and no bare dict key shows."""
+    diag = judged_diagnostics()
+    diag["corpus"]["defaults"] = {"sta_s": 0.02, "sta_source": "given", "lta_s": 0.4,
+                                  "lta_source": "20 × STA", "given": {"sta_s": 0.02}}
+    text = report.render_report(filterbank_json(), diag, None, None)
+    details = visible_text(text[text.index('<details id="details">'):text.index("</main>")])
+    assert re.search(r"STA length\s*given\s*20 ms", details), details[:400]
+    assert re.search(r"LTA length\s*400 ms \(20 × STA\)", details), details[:400]
+    assert "sta_s" not in details and "'given'" not in details

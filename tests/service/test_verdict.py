@@ -198,3 +198,79 @@ def test_warns_when_the_plain_spectrogram_is_sharper_on_held_out_windows(estimat
     found = [w for w in verdict.warnings(diag) if "less sharp than the best plain" in w]
     assert bool(found) == warned
     assert bool(found and "whole interval is below 0" in found[0]) == surely
+
+
+@pytest.mark.parametrize("estimate, low, high, words", [
+    (0.42, 0.31, 0.52, "0.42 bit sharper than the best plain spectrogram on 53 windows the fit "
+                       "never saw, 90 % interval 0.31–0.52"),
+    (-1.5, -2.0, -1.1, "1.50 bits less sharp than the best plain spectrogram on 53 windows the "
+                       "fit never saw, 90 % interval -2.00 to -1.10"),
+    (0.001, None, None, "As sharp as the best plain spectrogram on 53 windows the fit never saw"),
+])
+def test_gain_words_say_the_gain_as_a_person_would(estimate, low, high, words):
+    diag = clean()
+    diag["judgement"]["gain_bits"].update(estimate=estimate, low=low, high=high)
+    assert verdict.gain_words(diag) == words
+
+
+def test_gain_words_in_sample_and_without_judgement():
+    diag = clean()
+    diag["judgement"].update(in_sample=True, held_out_windows=0)
+    assert "on the 158 windows the fit used (none held out)" in verdict.gain_words(diag)
+    assert verdict.gain_words({"stop_reason": "cancelled"}) == \
+        verdict.gain_sentence({"stop_reason": "cancelled"})
+
+
+def test_energy_channels_name_the_channels_the_bursts_fill():
+    """Bursts at 300 Hz over a steady 50 Hz hum, no trigger known: the channel where the bursts
+    stand out most is the one near 300 Hz, not the lowest, and the picks come highest first."""
+    import numpy as np
+
+    from search import Channel, Filterbank
+    from service import energy_channels
+
+    fs, n = 2000.0, 512
+    t = np.arange(n) / fs
+    rng = np.random.default_rng(0)
+    windows = np.array([0.3 * np.sin(2 * np.pi * 50 * t + k)
+                        + np.exp(-0.5 * ((t - 0.1 - 0.01 * k) / 0.01) ** 2) * np.cos(2 * np.pi * 300 * t)
+                        + 0.01 * rng.standard_normal(n) for k in range(6)])
+    centres = np.geomspace(40.0, 800.0, 12)
+    bank = Filterbank([Channel(float(fc), 0.01, 1.0, 0.0) for fc in centres], fs)
+    fb = bank.to_json(window_samples=n, criterion={"name": "renyi"}, objective=1.0)
+    picked = energy_channels.main_channels(fb, windows)
+    assert abs(centres[picked[0][0]] - 300) < 60
+    assert [s for _, s in picked] == sorted((s for _, s in picked), reverse=True)
+    lines = energy_channels.summary_lines(fb, windows)
+    assert lines[0].startswith("channels where the bursts stand out most")
+    assert len(lines) == 1 + energy_channels.LISTED
+    assert "not weighed" in energy_channels.lines_or_note(fb, None)[0]
+
+
+def test_energy_channels_ignore_a_loud_hum_when_the_trigger_is_known():
+    """A 50 Hz hum three times the bursts' amplitude: measured against each channel's level
+    before the trigger onset (the noise window before a pick, common practice), the hum rises
+    by a tiny share of its level and the 300 Hz bursts lead; the corpus form (windows +
+    window_meta) is read."""
+    from types import SimpleNamespace
+
+    import numpy as np
+
+    from search import Channel, Filterbank
+    from service import energy_channels
+
+    fs, n = 2000.0, 512
+    t = np.arange(n) / fs
+    rng = np.random.default_rng(1)
+    onsets = [0.1 + 0.01 * k for k in range(6)]
+    windows = np.array([3.0 * np.sin(2 * np.pi * 50 * t + k)
+                        + np.where(t >= t0, np.exp(-(t - t0) / 0.01), 0.0) * np.sin(2 * np.pi * 300 * (t - t0))
+                        + 0.01 * rng.standard_normal(n) for k, t0 in enumerate(onsets)])
+    centres = np.geomspace(40.0, 800.0, 12)
+    fb = Filterbank([Channel(float(fc), 0.01, 1.0, 0.0) for fc in centres], fs).to_json(
+        window_samples=n, criterion={"name": "renyi"}, objective=1.0)
+    corpus = SimpleNamespace(windows=windows,
+                             window_meta=[{"trigger_offset_s": t0} for t0 in onsets])
+    lines = energy_channels.lines_or_note(fb, corpus)
+    strongest = float(lines[1].split("Hz")[0].split()[-1])
+    assert abs(strongest - 300) < 60

@@ -28,7 +28,7 @@ def _valid_files() -> dict[str, bytes]:
     out = {}
     for fmt, kw in (("MSEED", {"encoding": "STEIM2", "reclen": 512}), ("SAC", {}), ("SEGY", {"data_encoding": 5})):
         tr = Trace(data.astype(np.float32) if fmt != "MSEED" else data,
-                   header={"network": "XM", "station": "F1", "location": "00", "channel": "GPZ",
+                   header={"network": "XX", "station": "F1", "location": "00", "channel": "GPZ",
                            "sampling_rate": 1000.0, "starttime": UTCDateTime(2026, 1, 1)})
         buf = io.BytesIO()
         import warnings

@@ -29,7 +29,7 @@ def test_resampling_keeps_tone_frequency_and_amplitude(native, target):
     x = amp * np.sin(2 * np.pi * f0 * np.arange(n) / native + 0.3)
     up, down = pp.resampling_factors(native, target)
     assert native * up / down == pytest.approx(target)
-    seg = pp.Segment("f", "XM.A.00.HHZ", native, None, 0.0, x)
+    seg = pp.Segment("f", "XX.A.00.HHZ", native, None, 0.0, x)
     y = pp.process_segment(seg, target, None, taper=False).data
     assert y.size == pytest.approx(n * target / native, abs=1)
     core = y[y.size // 8: -y.size // 8]
@@ -99,7 +99,7 @@ def _mseed(path, fs, station, seconds=12.0, channel="HHZ", seed=0):
     for onset in (0.3, 0.55, 0.8):
         i = int(onset * n)
         x[i: i + k.size] += 800 * np.sin(2 * np.pi * fs / 8 * k / fs) * np.exp(-k / (0.02 * fs))
-    tr = Trace(np.rint(x).astype(np.int32), header={"network": "XM", "station": station, "location": "00",
+    tr = Trace(np.rint(x).astype(np.int32), header={"network": "XX", "station": station, "location": "00",
                                                     "channel": channel, "sampling_rate": fs,
                                                     "starttime": UTCDateTime(2026, 1, 1)})
     Stream([tr]).write(str(path), format="MSEED", encoding="STEIM2")
@@ -115,7 +115,7 @@ def test_mixed_rates_resampled_to_most_common(tmp_path):
     assert corpus.sampling_rate_hz == 4000.0
     assert corpus.defaults["sampling_rate_source"] == "most common native rate"
     assert corpus.defaults["native_rates_hz"] == [2000.0, 4000.0]
-    assert {m["trace_id"] for m in corpus.window_meta} == {"XM.A.00.HHZ", "XM.B.00.HHZ", "XM.C.00.HHZ"}
+    assert {m["trace_id"] for m in corpus.window_meta} == {"XX.A.00.HHZ", "XX.B.00.HHZ", "XX.C.00.HHZ"}
 
 
 def test_irreconcilable_rates_are_an_error_naming_the_file(tmp_path):
@@ -136,7 +136,7 @@ def test_component_selection_by_orientation_code(tmp_path):
     for k, ch in enumerate(("GPZ", "GPN", "GPE")):
         _mseed(tmp_path / f"{ch}.mseed", 4000.0, "Q1", channel=ch, seed=k)
     corpus = read_corpus(tmp_path, components="Z")
-    assert {m["trace_id"] for m in corpus.window_meta} == {"XM.Q1.00.GPZ"}
+    assert {m["trace_id"] for m in corpus.window_meta} == {"XX.Q1.00.GPZ"}
     with pytest.raises(CorpusError, match=r"components='1'.*codes found: E, N, Z"):
         read_corpus(tmp_path, components="1")
 

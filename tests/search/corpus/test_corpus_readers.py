@@ -19,7 +19,7 @@ def _read(path, **kw):
 def _stream(data, rate=4000.0, station="STA01", channels=("GPZ",)):
     st = Stream()
     for ch, row in zip(channels, np.atleast_2d(data)):
-        st.append(Trace(row, header={"network": "XM", "station": station, "location": "00",
+        st.append(Trace(row, header={"network": "XX", "station": station, "location": "00",
                                      "channel": ch, "sampling_rate": rate, "starttime": START}))
     return st
 
@@ -34,7 +34,7 @@ def test_mseed_round_trip(tmp_path, encoding, dtype):
     _stream(data, channels=("GPZ", "GPN", "GPE")).write(str(path), format="MSEED", encoding=encoding, reclen=512)
     fmt, traces = _read(path)
     assert fmt == "MSEED"
-    assert [t.trace_id for t in traces] == ["XM.STA01.00.GPZ", "XM.STA01.00.GPN", "XM.STA01.00.GPE"]
+    assert [t.trace_id for t in traces] == ["XX.STA01.00.GPZ", "XX.STA01.00.GPN", "XX.STA01.00.GPE"]
     for t, row in zip(traces, data):
         np.testing.assert_array_equal(t.data, row)
         assert t.sampling_rate_hz == 4000.0
@@ -52,7 +52,7 @@ def test_sac_round_trip(tmp_path, byteorder):
     fmt, traces = _read(path)
     assert fmt == "SAC"
     (t,) = traces
-    assert t.trace_id == "XM.BH3.00.GPZ"
+    assert t.trace_id == "XX.BH3.00.GPZ"
     assert t.sampling_rate_hz == pytest.approx(2500.0)
     assert t.start == pytest.approx(START.timestamp, abs=1e-3)
     np.testing.assert_array_equal(t.data, data)
@@ -113,10 +113,10 @@ def test_npz_round_trip_with_rate_ids_and_start(tmp_path):
     data = np.random.default_rng(4).standard_normal((2, 3000))
     path = tmp_path / "cut.npz"
     np.savez(path, data=data, sampling_rate_hz=np.float64(3000.0),
-             trace_ids=np.array(["XM.Q1.00.GPZ", "XM.Q1.00.GPN"]), start=np.array("2026-01-05T10:20:30.25"))
+             trace_ids=np.array(["XX.Q1.00.GPZ", "XX.Q1.00.GPN"]), start=np.array("2026-01-05T10:20:30.25"))
     fmt, traces = _read(path)
     assert fmt == "NPZ"
-    assert [t.trace_id for t in traces] == ["XM.Q1.00.GPZ", "XM.Q1.00.GPN"]
+    assert [t.trace_id for t in traces] == ["XX.Q1.00.GPZ", "XX.Q1.00.GPN"]
     assert traces[0].sampling_rate_hz == 3000.0
     assert traces[0].start == pytest.approx(START.timestamp)
     np.testing.assert_array_equal(traces[1].data, data[1])
@@ -127,12 +127,12 @@ def test_csv_round_trip_with_seed_header(tmp_path):
     data = np.round(np.random.default_rng(5).standard_normal((500, 2)), 6)
     path = tmp_path / "export.csv"
     with open(path, "w") as fh:
-        fh.write("XM.A1.00.HHZ,XM.A1.00.HHN\n")
+        fh.write("XX.A1.00.HHZ,XX.A1.00.HHN\n")
         for row in data:
             fh.write(f"{row[0]:.6f},{row[1]:.6f}\n")
     fmt, traces = _read(path, csv_sampling_rate_hz=200.0)
     assert fmt == "CSV"
-    assert [t.trace_id for t in traces] == ["XM.A1.00.HHZ", "XM.A1.00.HHN"]
+    assert [t.trace_id for t in traces] == ["XX.A1.00.HHZ", "XX.A1.00.HHN"]
     np.testing.assert_allclose(np.stack([t.data for t in traces]), data.T, atol=1e-12)
 
 
@@ -147,10 +147,10 @@ def test_read_corpus_keeps_seed_ids_start_and_rate(tmp_path):
     path = tmp_path / "one.mseed"
     _stream(np.rint(x).astype(np.int32)).write(str(path), format="MSEED", encoding="STEIM2")
     corpus = read_corpus(path, window_s=0.256)
-    assert corpus.traces == [{"file": str(path), "trace_id": "XM.STA01.00.GPZ", "sampling_rate_hz": 4000.0,
+    assert corpus.traces == [{"file": str(path), "trace_id": "XX.STA01.00.GPZ", "sampling_rate_hz": 4000.0,
                               "start": "2026-01-05T10:20:30.250000Z", "duration_s": 20.0, "windows": 1}]
     (meta,) = corpus.window_meta
-    assert meta["trace_id"] == "XM.STA01.00.GPZ" and meta["file"] == str(path)
+    assert meta["trace_id"] == "XX.STA01.00.GPZ" and meta["file"] == str(path)
     # the window starts a quarter window (pre_trigger 0.25) before the onset, within a few samples
     assert meta["offset_s"] == pytest.approx(8.0 - 0.064, abs=0.005)
     assert meta["start"].startswith("2026-01-05T10:20:38.")

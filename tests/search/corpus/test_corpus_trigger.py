@@ -1,12 +1,12 @@
-"""STA/LTA, trigger onsets and window placement (search/corpus/windowing.py)."""
+"""STA/LTA, trigger intervals and window placement (search/corpus/windowing.py)."""
 import numpy as np
 import pytest
 from hypothesis import given, settings
 from scipy.signal import fftconvolve
 from hypothesis import strategies as st
-from obspy.signal.trigger import classic_sta_lta as ref_classic
-from obspy.signal.trigger import recursive_sta_lta as ref_recursive
-from obspy.signal.trigger import trigger_onset as ref_onset
+from obspy.signal.trigger import classic_sta_lta as ref_boxcar
+from obspy.signal.trigger import recursive_sta_lta as ref_exponential
+from obspy.signal.trigger import trigger_onset as ref_intervals
 
 from search.corpus import windowing as w
 
@@ -21,19 +21,19 @@ def _bursty(seed, n=40000):
 
 
 @pytest.mark.parametrize("nsta,nlta", [(20, 300), (7, 1000), (50, 51), (3, 40)])
-def test_classic_sta_lta_equals_obspy(nsta, nlta):
-    """Classic STA/LTA (Allen 1978) equals the reference library obspy.signal.trigger.classic_sta_lta,
-    including the zeroed LTA warm-up, on noise with bursts."""
+def test_boxcar_sta_lta_equals_obspy(nsta, nlta):
+    """STA/LTA from equal-weight moving averages (Allen 1978) equals the reference library
+    obspy.signal.trigger.classic_sta_lta, including the zeroed LTA warm-up, on noise with bursts."""
     x = _bursty(1)
-    np.testing.assert_allclose(w.classic_sta_lta(x, nsta, nlta), ref_classic(x, nsta, nlta), rtol=1e-7, atol=1e-9)
+    np.testing.assert_allclose(w.boxcar_sta_lta(x, nsta, nlta), ref_boxcar(x, nsta, nlta), rtol=1e-7, atol=1e-9)
 
 
 @pytest.mark.parametrize("nsta,nlta", [(20, 300), (7, 1000), (50, 51), (1, 2)])
-def test_recursive_sta_lta_equals_obspy(nsta, nlta):
-    """Recursive STA/LTA (one-pole averages) equals obspy.signal.trigger.recursive_sta_lta, the
-    reference library, sample for sample."""
+def test_exponential_sta_lta_equals_obspy(nsta, nlta):
+    """STA/LTA from exponentially weighted (one-pole) averages equals
+    obspy.signal.trigger.recursive_sta_lta, the reference library, sample for sample."""
     x = _bursty(2)
-    np.testing.assert_allclose(w.recursive_sta_lta(x, nsta, nlta), ref_recursive(x, nsta, nlta), rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(w.exponential_sta_lta(x, nsta, nlta), ref_exponential(x, nsta, nlta), rtol=1e-10, atol=1e-12)
 
 
 def test_moving_sum_across_blocks_matches_direct_sum():
@@ -52,18 +52,18 @@ def test_moving_sum_across_blocks_matches_direct_sum():
     on=st.floats(1.5, 6.0),
     gap=st.floats(0.0, 1.4),
 )
-def test_trigger_onsets_equal_obspy(seed, on, gap):
+def test_trigger_intervals_equal_obspy(seed, on, gap):
     """Trigger on/off pairs equal obspy.signal.trigger.trigger_onset (reference library) for any
     thresholds off ≤ on on the STA/LTA of bursty noise."""
     x = _bursty(seed % 1000, n=20000)
-    cf = ref_classic(x, 15, 300)
+    cf = ref_boxcar(x, 15, 300)
     off = on - gap
-    ours = w.trigger_onsets(cf, on, off)
-    ref = np.asarray(ref_onset(cf, on, off), dtype=np.int64).reshape(-1, 2)
+    ours = w.trigger_intervals(cf, on, off)
+    ref = np.asarray(ref_intervals(cf, on, off), dtype=np.int64).reshape(-1, 2)
     np.testing.assert_array_equal(ours, ref)
 
 
-def test_trigger_onsets_edge_cases_equal_obspy():
+def test_trigger_intervals_edge_cases_equal_obspy():
     """Edge cases — a trigger still on at the last sample, single-sample runs, nothing above the
     threshold — match obspy.signal.trigger.trigger_onset (reference library)."""
     cases = [
@@ -74,8 +74,8 @@ def test_trigger_onsets_edge_cases_equal_obspy():
     ]
     for cf in cases:
         cf = cf.astype(float)
-        ref = np.asarray(ref_onset(cf, 3.5, 1.5), dtype=np.int64).reshape(-1, 2)
-        np.testing.assert_array_equal(w.trigger_onsets(cf, 3.5, 1.5), ref)
+        ref = np.asarray(ref_intervals(cf, 3.5, 1.5), dtype=np.int64).reshape(-1, 2)
+        np.testing.assert_array_equal(w.trigger_intervals(cf, 3.5, 1.5), ref)
 
 
 def test_fast_length_is_a_power_of_two():

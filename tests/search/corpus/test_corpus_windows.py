@@ -25,7 +25,7 @@ def _burst_record(fs, seconds, onsets_s, seed=0, amp=600.0, noise=10.0):
 
 def _write_mseed(path, data, fs, station="A1", channel="HHZ", start=UTCDateTime(2026, 2, 3, 4, 5, 6)):
     tr = Trace(np.rint(data).astype(np.int32), header={
-        "network": "XM", "station": station, "location": "00", "channel": channel,
+        "network": "XX", "station": station, "location": "00", "channel": channel,
         "sampling_rate": fs, "starttime": start})
     Stream([tr]).write(str(path), format="MSEED", encoding="STEIM2")
     return path
@@ -38,7 +38,8 @@ def test_bursts_found_with_defaults_scaled_to_the_rate(tmp_path):
     """The same call finds every burst at 5 kHz, 4 kHz, 2 kHz and 250 Hz: the dominant frequency,
     STA (4 periods), LTA (20 × STA) and window length derive from the data, so for a record that
     is the same in samples they are about the same in samples at every rate (DESIGN §6; STA/LTA lengths after
-    Trnkoczy, NMSOP 2012)."""
+    Trnkoczy, "Understanding and parameter setting of STA/LTA trigger algorithm", NMSOP-2 IS 8.1,
+    2012). Without a trigger kind the reader uses equal-weight averages and records 'boxcar'."""
     sizes = set()
     for fs in (5000.0, 4000.0, 2000.0, 250.0):
         path = _write_mseed(tmp_path / f"r{fs:g}.mseed", _burst_record(fs, 28.0, ONSETS), fs)
@@ -53,6 +54,7 @@ def test_bursts_found_with_defaults_scaled_to_the_rate(tmp_path):
         for key in ("sampling_rate_hz", "sta_s", "lta_s", "trigger_on", "trigger_off", "window_s", "pre_trigger",
                     "trigger", "max_windows", "seed", "windowing"):
             assert key in d
+        assert d["trigger"] == "boxcar"
         sizes.add(corpus.window_samples)
     # bursts last ~ 15-period e-folding: the window covers them, rounded to an FFT size, and in
     # samples it hardly depends on the rate (the noise differs between the records)
@@ -65,9 +67,9 @@ def test_given_options_are_used_and_recorded(tmp_path):
     fs = 4000.0
     path = _write_mseed(tmp_path / "r.mseed", _burst_record(fs, 28.0, ONSETS), fs)
     corpus = read_corpus(path, sta_s=0.01, lta_s=0.2, trigger_on=4.0, trigger_off=1.2, window_s=0.128,
-                         trigger="recursive", pre_trigger=0.1)
+                         trigger="exponential", pre_trigger=0.1)
     d = corpus.defaults
-    assert (d["sta_s"], d["lta_s"], d["trigger_on"], d["trigger_off"], d["trigger"]) == (0.01, 0.2, 4.0, 1.2, "recursive")
+    assert (d["sta_s"], d["lta_s"], d["trigger_on"], d["trigger_off"], d["trigger"]) == (0.01, 0.2, 4.0, 1.2, "exponential")
     assert corpus.window_samples == 512 and d["window_source"] == "given"
     assert corpus.n_windows == len(ONSETS)
 
@@ -335,6 +337,8 @@ def test_zero_windows_says_why(tmp_path):
 @pytest.mark.parametrize("options,message", [
     ({"windowing": "events"}, r"windowing='events': expected one of bursts, whole, sliding"),
     ({"trigger": "fancy"}, r"trigger='fancy'"),
+    ({"trigger": "classic"}, r"trigger='classic': expected one of boxcar \(equal-weight moving averages\), "
+                             r"exponential \(recursive exponentially weighted averages\)"),
     ({"window_s": -1}, r"window_s=-1: must be a positive number"),
     ({"max_windows": 0}, r"max_windows=0"),
     ({"pre_trigger": 1.5}, r"pre_trigger=1.5"),
