@@ -13,7 +13,7 @@ from fastapi.responses import FileResponse, HTMLResponse
 from service.auth import require_tenant
 from service.models import JobList, JobRequest, JobView
 from service.routers import COMMON, errors
-from service.store import write_blob
+from service.store import NotFound, write_blob
 
 log = logging.getLogger("burstlens.api")
 router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
@@ -32,12 +32,16 @@ def request_digest(body: JobRequest) -> str:
     return hashlib.sha256(canonical.encode()).hexdigest()
 
 
-def check_settings(options: dict) -> None:
-    """The engine's own validation of the settings, before anything is queued (422 on error)."""
-    from search.settings import split_settings
+def check_settings(options: dict, read_options: dict | None = None) -> None:
+    """The engine's own validation of the settings, before anything is queued (422 on error),
+    with the corpus's own reading options (``read_options`` of its upload) under the job's, as
+    the worker will merge them: a clash shows now, not as a failed job."""
+    from search.settings import check_corpus_options, split_settings
 
     try:
-        split_settings(dict(options))
+        corpus_options, _ = split_settings(dict(options))
+        if read_options:
+            check_corpus_options({**read_options, **corpus_options})
     except (ValueError, TypeError) as exc:
         raise HTTPException(status_code=422, detail=f"invalid settings: {exc}") from None
 
@@ -64,8 +68,12 @@ def create_job(body: JobRequest, request: Request, response: Response,
             raise HTTPException(status_code=400, detail=f"Idempotency-Key longer than "
                                                         f"{MAX_KEY_LENGTH} characters")
     options = body.settings.to_options()
-    check_settings(options)
     store, settings = request.app.state.store, request.app.state.settings
+    try:
+        read_options = store.get_corpus(body.corpus_id, tenant)["summary"].get("read_options")
+    except NotFound:
+        read_options = None     # create_job answers the 404 below
+    check_settings(options, read_options)
     job, created = store.create_job(tenant, body.corpus_id, options,
                                     max_queued=settings.max_queued_jobs,
                                     idempotency_key=idempotency_key,

@@ -166,6 +166,12 @@ def test_upload_takes_the_corpus_options_and_records_them(make_client, tmp_path)
         assert response.status_code == 422, bad
         assert field in response.json()["error"]["message"]
     assert sorted(os.listdir(data / "blobs" / "corpora")) == before and os.listdir(data / "tmp") == []
+    # a job whose settings clash with the upload's options is refused now, not failed later
+    corpus_id = client.post("/v1/corpora", files=corpus_files(2),
+                           data={"trigger_on": "3"}).json()["id"]
+    clash = client.post("/v1/jobs", json={"corpus_id": corpus_id,
+                                          "settings": {**TINY, "trigger_off": 3.5}})
+    assert clash.status_code == 422 and "trigger_off" in clash.json()["error"]["message"]
 
 
 def test_unknown_ids_are_404(make_client):
