@@ -35,9 +35,14 @@ def reduce_scores(scores, how: str = "mean") -> float:
 
 
 def resampled_objectives(per_window, indices: np.ndarray, how: str = "mean") -> np.ndarray:
-    """``(B,)`` objective of each bootstrap resample (rows of ``indices``) of the per-window scores."""
-    scores = np.asarray(per_window, dtype=np.float64)
-    return np.array([reduce_scores(scores[row], how) for row in indices], dtype=np.float64)
+    """``(B,)`` objective of each bootstrap resample (rows of ``indices``) of the per-window
+    scores, all rows at once; a resample holding a non-finite score is +inf, as in
+    :func:`reduce_scores`."""
+    drawn = np.asarray(per_window, dtype=np.float64)[np.asarray(indices, dtype=np.int64)]
+    finite = np.all(np.isfinite(drawn), axis=1)
+    with np.errstate(invalid="ignore"):
+        return np.where(finite, reduce_rows(np.where(np.isfinite(drawn), drawn, 0.0), how),
+                        np.inf)
 
 
 def percentile_interval(values, level: float = INTERVAL_LEVEL) -> tuple[float, float]:
@@ -51,13 +56,14 @@ def percentile_interval(values, level: float = INTERVAL_LEVEL) -> tuple[float, f
     return float(low), float(high)
 
 
-def objective_interval(per_window, indices: np.ndarray, how: str = "mean") -> dict:
+def objective_interval(per_window, indices: np.ndarray, how: str = "mean",
+                       level: float = INTERVAL_LEVEL) -> dict:
     """``{"estimate", "low", "high"}`` of the corpus objective: estimate on all windows, interval
     from the bootstrap resamples (``low``/``high`` are null without resamples)."""
     estimate = reduce_scores(per_window, how)
     if len(indices) == 0:
         return {"estimate": estimate, "low": None, "high": None}
-    low, high = percentile_interval(resampled_objectives(per_window, indices, how))
+    low, high = percentile_interval(resampled_objectives(per_window, indices, how), level)
     return {"estimate": estimate, "low": _json_float(low), "high": _json_float(high)}
 
 
@@ -232,7 +238,7 @@ def paired_gain(result, baseline, rng: np.random.Generator, how: str = "mean",
         return out
     out["estimate"] = reduce_scores(b, how) - reduce_scores(r, how)
     if resamples > 0:
-        draws = rng.integers(0, r.size, size=(int(resamples), r.size), dtype=np.int64)
+        draws = bootstrap_indices(r.size, int(resamples), rng)
         gains = reduce_rows(b[draws], how) - reduce_rows(r[draws], how)
         low, high = percentile_interval(gains, level)
         out["low"], out["high"] = _json_float(low), _json_float(high)
@@ -246,6 +252,5 @@ def interval_on(per_window, rng: np.random.Generator, how: str = "mean",
     s = np.asarray(per_window, dtype=np.float64)
     if s.size == 0 or not np.all(np.isfinite(s)):
         return {"objective": None, "low": None, "high": None}
-    draws = rng.integers(0, s.size, size=(int(resamples), s.size), dtype=np.int64)
-    low, high = percentile_interval(reduce_rows(s[draws], how), level)
-    return {"objective": reduce_scores(s, how), "low": _json_float(low), "high": _json_float(high)}
+    iv = objective_interval(s, bootstrap_indices(s.size, int(resamples), rng), how, level)
+    return {"objective": iv["estimate"], "low": iv["low"], "high": iv["high"]}

@@ -603,12 +603,6 @@ class FilterbankSearch:
         if not np.all(np.isfinite(windows)):
             raise ValueError("corpus.windows holds NaN or Inf samples")
         s = resolve_search_options(opts, corpus.sampling_rate_hz, windows.shape[1])
-        if s["chirp"]:
-            from search.sweeps import sweep_rate_bound
-
-            found = sweep_rate_bound(windows, s["sampling_rate_hz"], s["band_hz"])
-            s["chirp_bound_hz_per_s"] = float(found["chirp_bound_hz_per_s"])
-            s["chirp_bound_source"] = found["source"]
         for name, value, ok in (("batch", self.batch, isinstance(self.batch, int) and self.batch >= 1),
                                 ("initial_points", self.initial_points,
                                  self.initial_points is None or (isinstance(self.initial_points, int)
@@ -671,8 +665,22 @@ class FilterbankSearch:
         the family search and the refinement (stop reason ``time_limit``); the baselines and
         the judgement always run, since the gain needs them. Returns self.
         """
+        from search.split import held_out_split
+
         settings = self._resolve(corpus)
-        run = _Run(self, corpus, settings, self._space(settings), progress, checkpoint, should_stop)
+        windows = np.asarray(corpus.windows)
+        split = held_out_split(getattr(corpus, "window_meta", None), len(windows),
+                               settings["window_s"], settings["held_out"], settings["seed"])
+        if settings["chirp"]:
+            # the bound is part of the search space: found on the fit windows only
+            from search.sweeps import sweep_rate_bound
+
+            found = sweep_rate_bound(windows[split.fit], settings["sampling_rate_hz"],
+                                     settings["band_hz"])
+            settings.update(chirp_bound_hz_per_s=float(found["chirp_bound_hz_per_s"]),
+                            chirp_bound_source=found["source"])
+        run = _Run(self, corpus, settings, self._space(settings), split, progress, checkpoint,
+                   should_stop)
         try:
             run.execute(resume_from)
         finally:
@@ -700,14 +708,10 @@ class _Run:
     STAGE_SPAN = {"baselines": (0.0, 0.1), "family": (0.1, 0.55), "refine": (0.55, 0.9),
                   "judge": (0.9, 1.0)}
 
-    def __init__(self, est, corpus, settings, space, progress, checkpoint, should_stop):
-        from search.split import held_out_split
-
-        self.est, self.corpus, self.s, self.space = est, corpus, settings, space
+    def __init__(self, est, corpus, settings, space, split, progress, checkpoint, should_stop):
+        self.est, self.corpus, self.s, self.space, self.split = est, corpus, settings, space, split
         self.progress_cb, self.checkpoint_cb, self.should_stop = progress, checkpoint, should_stop
         self.all_windows = np.ascontiguousarray(np.asarray(corpus.windows, dtype=np.float64))
-        self.split = held_out_split(getattr(corpus, "window_meta", None), len(self.all_windows),
-                                    settings["window_s"], settings["held_out"], settings["seed"])
         # stages 0–2 see only the fit windows; the judgement sees only the held-out ones
         self.windows = self.all_windows[self.split.fit]
         self.spec = settings["criterion"]
@@ -1355,30 +1359,28 @@ class _Run:
                                   f"spectrogram window on the channel grid on {where}"}
             p, r, origin = on_grid, refs["spectrogram_on_grid"], "spectrogram"
         gain = dg.paired_gain(r.scores, refs["spectrogram"].scores, draws(), self.how)
-        capped = int(np.sum(on_grid[1] < sigma))
+        # per baseline: its parameters, and how it was fitted (None: not fitted, only judged)
+        described = {
+            "spectrogram": (dict(base["spectrogram"]["parameters"]), base["spectrogram"]),
+            "spectrogram_on_grid": (
+                {"time_spread_s": sigma, "cell_area": 1.0, "chirp_hz_per_s": 0.0,
+                 "capped_channels": int(np.sum(on_grid[1] < sigma)),
+                 "note": "the best spectrogram window on the channel grid, shortened where the "
+                         "grid cannot sample it; the fallback"}, None),
+            "scalogram": (dict(base["scalogram"]["parameters"]), base["scalogram"]),
+            "pseudo_wvd": (
+                {"time_spread_s": float(reference["pseudo_wvd"][1][0]),
+                 "cell_area": float(reference["pseudo_wvd"][2][0]),
+                 "note": "kernel limit: quarter-sample time spread, lag window 1000x the "
+                         "window; far narrower than the channel spacing"}, None)}
         baselines = {}
-        for name in ("spectrogram", "spectrogram_on_grid", "scalogram", "pseudo_wvd"):
-            scored_ref = refs[name]
-            entry = dg.interval_on(scored_ref.scores, draws(), self.how)
-            fitted = base.get(name.replace("_on_grid", ""))
-            if name == "pseudo_wvd":
-                parameters = {"time_spread_s": float(reference[name][1][0]),
-                              "cell_area": float(reference[name][2][0]),
-                              "note": "kernel limit: quarter-sample time spread, lag window "
-                                      "1000x the window; far narrower than the channel spacing"}
-            elif name == "spectrogram_on_grid":
-                parameters = {"time_spread_s": sigma, "cell_area": 1.0, "chirp_hz_per_s": 0.0,
-                              "capped_channels": capped,
-                              "note": "the best spectrogram window on the channel grid, shortened "
-                                      "where the grid cannot sample it; the fallback"}
-            else:
-                parameters = dict(fitted["parameters"])
-            entry.update(parameters=parameters,
-                         evaluations=fitted["evaluations"] if fitted and name != "spectrogram_on_grid" else 1,
-                         objective_fit=_finite_or_none(fitted["objective"])
-                         if fitted and name != "spectrogram_on_grid" else None,
-                         negative_share=_finite_or_none(np.mean(scored_ref.shares)))
-            baselines[name] = entry
+        for name, (parameters, fitted) in described.items():
+            baselines[name] = {
+                **dg.interval_on(refs[name].scores, draws(), self.how),
+                "parameters": parameters,
+                "evaluations": fitted["evaluations"] if fitted else 1,
+                "objective_fit": _finite_or_none(fitted["objective"]) if fitted else None,
+                "negative_share": _finite_or_none(np.mean(refs[name].shares))}
         result = dg.interval_on(r.scores, draws(), self.how)
         judgement = {
             "in_sample": in_sample, "held_out_share": s["held_out"],
@@ -1446,7 +1448,7 @@ class _Run:
         judged burst windows (search.onset), for the result and the best plain spectrogram
         (window std ``sigma`` on the channel ``centers``; the channel sum is its band energy
         envelope, whatever the grid samples)."""
-        from search.onset import image_onsets
+        from search.onset import error_summary_ms, image_onsets
         from search.transform import transform
 
         meta = getattr(self.corpus, "window_meta", None) or []
@@ -1464,9 +1466,7 @@ class _Run:
             onsets = np.concatenate([image_onsets(transform(self.all_windows[keep[k:k + CHUNK]],
                                                             fb, eps=self.s["eps"]), self.space.fs)
                                      for k in range(0, keep.size, CHUNK)])
-            errors = 1e3 * np.abs(onsets - trigger)
-            out[name] = {"median_ms": float(np.median(errors)),
-                         "p90_ms": float(np.percentile(errors, 90)), "windows": int(keep.size)}
+            out[name] = error_summary_ms(onsets, trigger)
         return out
 
     def stability(self, p, origin) -> dict:

@@ -22,7 +22,7 @@ import math
 
 import numpy as np
 
-from search.wvd import analytic_signal
+from search.wvd import analytic_signal, autocorrelation, wvd_frequencies
 
 MAX_WINDOWS = 256        # windows looked at, taken at a fixed stride beyond this
 BATCH = 32               # windows per vectorised batch (bounds memory)
@@ -50,10 +50,7 @@ def _ridges(z, fs, lo, hi, lags, n_freqs, hop, smooth_samples):
 
     b, n = z.shape
     m = np.arange(lags + 1)
-    padded = np.zeros((b, n + 2 * lags), dtype=np.complex128)
-    padded[:, lags:lags + n] = z
-    idx = np.arange(n)[:, None] + lags
-    r = padded[:, idx + m] * np.conj(padded[:, idx - m])              # r[n, m] = z[n+m] z*[n−m]
+    r = autocorrelation(z, lags)                                      # (B, N, L+1)
     # Gaussian lag window reaching 1e-3 at the last lag; half weight at m = 0 so W = 2 Re FFT
     h = np.exp(-0.5 * (m / (lags / 3.7)) ** 2)
     h[0] = 0.5
@@ -67,7 +64,7 @@ def _ridges(z, fs, lo, hi, lags, n_freqs, hop, smooth_samples):
         r = gaussian_filter1d(r.real, sigma, axis=1, mode="constant") \
             + 1j * gaussian_filter1d(r.imag, sigma, axis=1, mode="constant")
     w = 2.0 * np.fft.fft(r, n=n_freqs, axis=2).real                   # f_k = k fs / (2 Nf)
-    freqs = np.arange(n_freqs) * fs / (2.0 * n_freqs)
+    freqs = wvd_frequencies(n_freqs, fs)
     k = np.flatnonzero((freqs >= lo) & (freqs <= hi))
     wb = w[:, :, k]
     peak = np.argmax(wb, axis=2)
