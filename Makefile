@@ -24,6 +24,7 @@ chromium:
 	fi
 
 test: venv chromium
+	$(BIN)/ruff check .
 	$(BIN)/python -m pytest tests
 
 demo: venv

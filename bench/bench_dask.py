@@ -84,10 +84,11 @@ def main(argv: list[str] | None = None) -> int:
     rows = {"serial": fit(corpus, options, 1)}
     with joblib.parallel_config(backend="loky"):
         rows["joblib"] = fit(corpus, options, 2)
-    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                      dashboard_address="127.0.0.1:0") as cluster, Client(cluster):
-        with joblib.parallel_config(backend="dask"):
-            rows["dask"] = fit(corpus, options, -1)
+    with (LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                       dashboard_address="127.0.0.1:0") as cluster,
+          Client(cluster),
+          joblib.parallel_config(backend="dask")):
+        rows["dask"] = fit(corpus, options, -1)
 
     same = all(json.dumps(r[3], sort_keys=True) == json.dumps(rows["serial"][3], sort_keys=True)
                for r in rows.values())

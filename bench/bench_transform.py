@@ -24,12 +24,12 @@ counts how often the model picked the faster.
 """
 from __future__ import annotations
 
-import importlib
 import math
 import resource
 import sys
 import time
 import tracemalloc
+from functools import partial
 from pathlib import Path
 
 import numpy as np
@@ -42,9 +42,8 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from search import Channel, Filterbank, center_grid, prepare, transform  # noqa: E402
+from search.transform import auto_chirp_method, clear_plans  # noqa: E402
 from search.wvd import lag_count, truncation_width  # noqa: E402
-
-engine = importlib.import_module("search.transform")
 
 FS = 4000.0
 CHANNELS = 96
@@ -82,11 +81,11 @@ def verdict(value, target, smaller=True):
 def speed(n_samples: int, n_windows: int, rounds: int, workers: int | None) -> dict:
     plain, chirped = filterbanks()
     windows = np.random.default_rng(n_samples).standard_normal((n_windows, n_samples))
-    engine._PLANS.clear()
+    clear_plans()
     start = time.perf_counter()
     transform(windows, plain, workers=workers)
     cold = time.perf_counter() - start
-    engine._PLANS.clear()
+    clear_plans()
     start = time.perf_counter()
     transform(windows, chirped, workers=workers)
     cold_chirp = time.perf_counter() - start
@@ -116,7 +115,7 @@ def speed(n_samples: int, n_windows: int, rounds: int, workers: int | None) -> d
     per = {name: t / n_windows * 1e3 for name, t in times.items()}  # ms per window
     tag = f"N={n_samples} [{'1 thread' if workers == 1 else 'all cores'}]"
     method = {"lag": "lag-major", "doppler": "Doppler rows"}[
-        engine._plan(chirped, n_samples, EPS).chirped.method]
+        auto_chirp_method(chirped, n_samples, eps=EPS)]
     print(f"{tag}: per window  transform {per['transform']:.2f} ms (prepared windows "
           f"{per['prepared']:.2f} ms; cold first call {cold / n_windows * 1e3:.2f} ms), "
           f"chirped {per['chirped']:.2f} ms ({method}; cold {cold_chirp / n_windows * 1e3:.2f} "
@@ -164,7 +163,7 @@ def peak_memory(workers: int | None, n_samples: int = 4096, n_windows: int = 8) 
     plain, chirped = filterbanks()
     windows = np.random.default_rng(4).standard_normal((n_windows, n_samples))
     for name, fb in (("unchirped", plain), ("chirped", chirped)):
-        engine._PLANS.clear()
+        clear_plans()
         tracemalloc.start()
         base, _ = tracemalloc.get_traced_memory()
         image = transform(windows, fb, workers=workers)
@@ -197,26 +196,12 @@ def chirp_method_choice(rounds: int = 3) -> None:
     for n_samples, n_windows in ((1024, 16), (4096, 4)):
         windows = np.random.default_rng(5).standard_normal((n_windows, n_samples))
         for name, fb in cases:
-            engine._PLANS.clear()
-            pick = engine._plan(fb, n_samples, EPS).chirped.method
-            plans = {}
-            saved = engine._chirp_method
-            try:
-                for method in ("lag", "doppler"):
-                    engine._chirp_method = lambda *args, method=method: method
-                    engine._PLANS.clear()
-                    plans[method] = engine._plan(fb, n_samples, EPS)
-            finally:
-                engine._chirp_method = saved
-            key = (fb.key(), n_samples, EPS)  # the plan cache's key: each run uses its own plan
-
-            def run(plan):
-                engine._PLANS[key] = plan
-                transform(windows, fb, workers=1)
-
-            runs = {method: (lambda plan=plan: run(plan)) for method, plan in plans.items()}
+            pick = auto_chirp_method(fb, n_samples, eps=EPS)
+            clear_plans()  # room in the cache for the two forced ways' weights
+            runs = {method: partial(transform, windows, fb, eps=EPS, workers=1, chirp_method=method)
+                    for method in ("lag", "doppler")}
             times = {m: t / n_windows * 1e3 for m, t in best_times(runs, rounds).items()}
-            engine._PLANS.clear()
+            clear_plans()
             good = times[pick] <= 1.15 * min(times.values())
             chosen_right += good
             total += 1

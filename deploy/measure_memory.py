@@ -94,7 +94,7 @@ def measure(kind: str, m: int, c: int, n: int) -> dict:
 
 
 # Regressors of each kind (bytes = Σ coefficient · regressor). The transform holds its (M, C, N)
-# output and (M, N) analytic signals; a fit scores 16-window chunks (search.optimize.CHUNK), so
+# output and (M, N) analytic signals; a fit scores 16-window chunks (search.fit.evaluate.CHUNK), so
 # its peak follows the per-chunk work and the kernel plans, C·N and N, not M (the M-sized arrays
 # of a fit, windows and per-window sums, are 8·M·N + 32·M·C bytes: small next to these here).
 MODELS = {"transform": (("M·C·N", lambda r: r["M"] * r["C"] * r["N"]),
@@ -109,11 +109,11 @@ def fit_formula(kind: str, rows: list[dict]) -> list[tuple[str, float]]:
     a = np.array([[f(r) for _, f in terms] for r in rows], dtype=float)
     y = np.array([r["excess_bytes"] for r in rows], dtype=float)
     coef, *_ = np.linalg.lstsq(a, y, rcond=None)
-    return [(name, float(c)) for (name, _), c in zip(terms, coef)]
+    return [(name, float(c)) for (name, _), c in zip(terms, coef, strict=True)]
 
 
 def predict(kind: str, formula: list[tuple[str, float]], row: dict) -> float:
-    return sum(c * f(row) for (_, c), (_, f) in zip(formula, MODELS[kind]))
+    return sum(c * f(row) for (_, c), (_, f) in zip(formula, MODELS[kind], strict=True))
 
 
 def main(argv: list[str] | None = None) -> int:

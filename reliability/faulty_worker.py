@@ -3,8 +3,8 @@
     python -m reliability.faulty_worker --data-dir D --fault SPEC [--stats FILE]
 
 It is the real :class:`service.worker.Worker` over the real store; only the moment of death is
-arranged, by wrapping the service's own functions in this process (the service's files are not
-touched). ``SPEC``:
+arranged, through the worker's ``on_progress`` / ``on_checkpoint`` hooks and by wrapping the
+store's public methods in this process (the service's files are not touched). ``SPEC``:
 
 - ``none`` — no fault; run one job and write call counts to ``--stats`` (a reference run);
 - ``round:K:D`` — D seconds after the K-th progress report (inside the next round's compute);
@@ -33,26 +33,23 @@ def die() -> None:
     time.sleep(60)  # never reached: SIGKILL is delivered before this returns
 
 
-def install(spec: str, counts: dict) -> None:
+def install(spec: str, counts: dict) -> dict:
+    """Arrange the fault of ``spec``; returns the hooks to give :class:`Worker`."""
     import service.store as store_module
     import service.worker as worker_module
 
     kind, *params = spec.split(":")
-    real_progress = worker_module._JobRun.progress
-    real_checkpoint = worker_module._JobRun.checkpoint
     real_write_blob = worker_module.write_blob
     real_record = store_module.Store.record_checkpoint
     real_heartbeat = store_module.Store.heartbeat
 
-    def progress(self, info):
+    def on_progress(run, info):
         counts["progress"] += 1
         if kind == "round" and counts["progress"] == int(params[0]):
             threading.Timer(float(params[1]), die).start()
-        return real_progress(self, info)
 
-    def checkpoint(self, state):
+    def on_checkpoint(run, seq):
         counts["checkpoint"] += 1
-        return real_checkpoint(self, state)
 
     def write_blob(path, chunks):
         is_checkpoint = Path(path).parent.name == "checkpoints"
@@ -80,16 +77,15 @@ def install(spec: str, counts: dict) -> None:
     def heartbeat(self, job, lease_s):
         counts["heartbeat"] += 1
         if kind == "heartbeat" and counts["heartbeat"] == int(params[0]):
-            with self._tx() as con:  # the service's own transaction and owned update
-                self._owned_update(con, job, "lease_until = ?", (time.time() + lease_s,))
+            with self.transaction() as con:  # the store's own transaction and lease renewal
+                self.renew_lease(con, job, lease_s)
                 die()
         return real_heartbeat(self, job, lease_s)
 
-    worker_module._JobRun.progress = progress
-    worker_module._JobRun.checkpoint = checkpoint
     worker_module.write_blob = write_blob
     store_module.Store.record_checkpoint = record_checkpoint
     store_module.Store.heartbeat = heartbeat
+    return {"on_progress": on_progress, "on_checkpoint": on_checkpoint}
 
 
 def main(argv=None) -> int:
@@ -104,8 +100,8 @@ def main(argv=None) -> int:
     from service.worker import Worker
 
     counts = {"progress": 0, "checkpoint": 0, "heartbeat": 0}
-    install(args.fault, counts)
-    worker = Worker(ServiceSettings(data_dir=Path(args.data_dir)))
+    hooks = install(args.fault, counts)
+    worker = Worker(ServiceSettings(data_dir=Path(args.data_dir)), **hooks)
     worker.install_signal_handlers()
     started = time.monotonic()
     # one job, waiting up to 30 s for it to be claimable

@@ -110,7 +110,7 @@ def run(cycles: int = 2, batch: int = 3, burst: int = 3, seed: int = 20261202,
                 thread.join(timeout=60)
             client.close()
             # orphans stop at their next heartbeat; give them a bounded time, then kill them
-            if not wait_until(lambda: not any(_alive(p) for p in children), 60):
+            if not wait_until(lambda children=children: not any(_alive(p) for p in children), 60):
                 details.append(f"cycle {cycle}: orphaned workers still alive after 60 s; killed")
                 for pid in children:
                     if _alive(pid):
@@ -118,7 +118,7 @@ def run(cycles: int = 2, batch: int = 3, burst: int = 3, seed: int = 20261202,
             integrity.append(integrity_check(data))
             server = LiveServer(data, workers=2, **ENV).start()
             client = httpx.Client(base_url=server.url, timeout=60.0)
-            for key, seen in list(answers.items()):
+            for key in list(answers):
                 if key not in acked:  # the answer was lost: retry with the same key, as a client would
                     submit(client, key)
         keys = set(answers)

@@ -41,11 +41,11 @@ def main(argv=None) -> int:
     log_path = args.log or os.path.join(tempfile.gettempdir(),
                                         f"burstlens-reliability-{os.getpid()}.log")
     terminal = os.fdopen(os.dup(sys.stdout.fileno()), "w", buffering=1)
-    log = open(log_path, "w", buffering=1)
     sys.stdout.flush()
     sys.stderr.flush()
-    os.dup2(log.fileno(), sys.stdout.fileno())  # children inherit these descriptors
-    os.dup2(log.fileno(), sys.stderr.fileno())
+    with open(log_path, "w") as log:  # only its descriptor is used: stdout and stderr take it over
+        os.dup2(log.fileno(), sys.stdout.fileno())  # children inherit these descriptors
+        os.dup2(log.fileno(), sys.stderr.fileno())
     started = time.monotonic()
     rows = []
     try:

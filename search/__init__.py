@@ -35,4 +35,4 @@ def __getattr__(name):
 # `transform` is both a submodule and a function: importing the submodule binds the module to
 # the package attribute and would shadow the lazy export, so bind the function eagerly (this
 # loads only numpy and scipy).
-from search.transform import prepare, transform  # noqa: E402
+from search.transform import prepare as prepare, transform as transform  # noqa: E402

@@ -1,10 +1,20 @@
 """Sharpness criteria for time–frequency images (lower is sharper) and corpus reducers.
 
 Every criterion first normalises an image to unit sum, ``p = image / Σ image`` (the signed sum:
-for a Wigner–Ville-type distribution it is the signal energy). An image whose sum is not positive
-and finite is not a distribution and scores ``+inf`` (an invalid candidate), as does any image
-whose score comes out non-finite. (The sparsity measures themselves act on magnitudes and are
-scale invariant; :class:`Criterion` applies the same validity rule to them.)
+for a Wigner–Ville-type distribution it is the signal energy; with cell sizes, Σ image·ΔA). An
+image whose sum is not positive and finite is not a distribution and scores ``+inf`` (an invalid
+candidate), as does any image whose score comes out non-finite. (The sparsity measures
+themselves act on magnitudes and are scale invariant; :class:`Criterion` applies the same
+validity rule to them.)
+
+One definition per criterion: a score depends on an image only through four sums over its
+cells (:meth:`Criterion.row_stats`: the criterion's own term, the mass, the absolute mass, the
+negative mass), reduced to the score by :meth:`Criterion.scores_from_totals`. Sums add, so an
+image cut into rows — the search keeps one per (window, channel) and replaces one row per trial
+— is scored from its rows' totals, to round-off as :meth:`Criterion.score` scores it whole. The
+negative share (:func:`shares_from_totals`) and the positivity ceiling
+(:func:`ceiling_objective`) come from the same sums. The Gini index needs the sorted image and
+is scored on whole images only.
 
 Units: an image is a density on the time–frequency plane. Cell (c, n) of a filterbank image has
 its own area ``ΔA_c = Δt·Δf_c`` (``cell_size``, s·Hz; :func:`cell_sizes` gives it for a channel
@@ -41,9 +51,8 @@ from dataclasses import asdict, dataclass
 import numpy as np
 from scipy.stats import trim_mean
 
-CRITERIA = ("renyi", "concentration", "sparsity")
-SPARSITY_MEASURES = ("gini", "hoyer")
-REDUCERS = ("mean", "median", "trimmed")
+from search.settings import CRITERIA, REDUCERS, SPARSITY_MEASURES
+
 TRIM_FRACTION = 0.1  # cut from each side by reduce_scores(how="trimmed")
 
 # Rows scored per block: the float64 working copy stays near 2 MB (cache-sized, and bounded
@@ -93,21 +102,21 @@ def cell_sizes(centers_hz, sampling_rate_hz: float) -> np.ndarray:
 
 
 # --------------------------------------------------------------------------------------------
-# Row-wise kernels: x is (M, K) float64, one image per row; w is None (every cell counts 1) or
-# (K,) cell sizes; each returns (M,) float64.
+# The criterion core: per-row sufficient statistics and their reduction to a score.
+#
+# A row is a run of cells summed together, the last axis of an array: a whole flattened image
+# (Criterion.score) or one channel of one window (the search, whose refinement rescores a trial
+# by replacing one row). Sums add, so the statistics of rows that tile an image total the
+# image's, and one reduction (Criterion.scores_from_totals) serves both ways of scoring.
+
+Q, TOTAL, L1, NEGATIVE = range(4)   # columns of the statistics (Criterion.row_stats)
 
 
 def _weighted_sum(values: np.ndarray, w) -> np.ndarray:
-    # product then numpy's pairwise sum, not BLAS or einsum: the same bits whatever the thread
-    # count or the arrays' alignment in memory (a fit must not depend on where it ran)
-    return values.sum(axis=1) if w is None else (values * w).sum(axis=1)
-
-
-def _unit_sum_rows(x: np.ndarray, w=None) -> tuple[np.ndarray, np.ndarray]:
-    """T = Σ x·w per row and the mask of rows whose mass is positive and finite."""
-    total = _weighted_sum(x, w)
-    valid = np.isfinite(total) & (total > 0)
-    return np.where(valid, total, 1.0), valid
+    # product then numpy's pairwise sum over the last axis, not BLAS or einsum: the same bits
+    # whatever the thread count or the arrays' alignment in memory (a fit must not depend on
+    # where it ran)
+    return values.sum(axis=-1) if w is None else (values * w).sum(axis=-1)
 
 
 def _signed_power(p: np.ndarray, alpha: float) -> np.ndarray:
@@ -121,34 +130,34 @@ def _signed_power(p: np.ndarray, alpha: float) -> np.ndarray:
     return np.sign(p) * np.abs(p) ** alpha
 
 
-def _renyi_rows(x: np.ndarray, alpha: float, w=None) -> np.ndarray:
-    # With p = x·w/T: Σ p^α w^{1−α} = Σ w·x^α / T^α, so the image is never rescaled in place.
-    total, valid = _unit_sum_rows(x, w)
-    if alpha == 1.0:
-        # Shannon limit as α → 1 under the same convention: −Σ p·log2|p/w| = −Σ w·x·log2|x|/T
-        # + log2 T (0·log 0 = 0).
-        a = np.abs(x)
-        logs = np.log2(a, out=np.zeros_like(a), where=a > 0)
-        h = -_weighted_sum(x * logs, w) / total + np.log2(total)
-    else:
-        ratio = _weighted_sum(_signed_power(x, alpha), w) / _signed_power(total, alpha)
-        positive = ratio > 0
-        valid &= positive
-        h = np.log2(np.where(positive, ratio, 1.0)) / (1.0 - alpha)
-    return _invalid_to_inf(h, valid)
+def _row_stats(x: np.ndarray, w, terms) -> np.ndarray:
+    """The four sums of :meth:`Criterion.row_stats`, (..., 4); column Q is NaN without ``terms``."""
+    q = np.full(x.shape[:-1], np.nan) if terms is None else _weighted_sum(terms, w)
+    return np.stack([q, _weighted_sum(x, w), _weighted_sum(np.abs(x), w),
+                     _weighted_sum(np.maximum(-x, 0.0), w)], axis=-1)
 
 
-def _concentration_rows(x: np.ndarray, p_exp: float, w=None) -> np.ndarray:
-    # M_p = (Σ w·|x/T|^{1/p})^p, the plane's ∫|ρ|^{1/p} for the density ρ = x/T.
-    total, valid = _unit_sum_rows(x, w)
-    root = np.abs(x) ** (1.0 / p_exp) if p_exp != 2.0 else np.sqrt(np.abs(x))
-    s = _weighted_sum(root, w)
-    positive = s > 0
-    h = p_exp * np.log2(np.where(positive, s, 1.0)) - np.log2(total)
-    return _invalid_to_inf(h, valid & positive)
+def _positive_mass(totals: np.ndarray) -> np.ndarray:
+    """Images whose mass T = Σ ΔA·S is positive and finite: the only ones that are distributions."""
+    t = totals[..., TOTAL]
+    return np.isfinite(t) & (t > 0)
+
+
+def shares_from_totals(totals, undefined: float = 0.0) -> np.ndarray:
+    """Negative share Σ ΔA·S⁻ / Σ ΔA·|S| of statistics totals (..., 4), shape (...,).
+
+    ``undefined`` where the absolute mass is zero or not finite: the search takes 0 (an all-zero
+    image has no negative mass, and its score is already invalid), the public functions NaN.
+    This is the quantity the positivity ceiling bounds (:func:`ceiling_objective`).
+    """
+    l1, neg = totals[..., L1], totals[..., NEGATIVE]
+    ok = np.isfinite(l1) & (l1 > 0)
+    with _quiet():
+        return np.where(ok, neg / np.where(ok, l1, 1.0), undefined)
 
 
 def _gini_rows(x: np.ndarray) -> np.ndarray:
+    """Gini index of each row of x (M, K); NaN for a row with no finite positive magnitude."""
     a = np.sort(np.abs(x), axis=1)
     k = a.shape[1]
     # Hurley & Rickard (2009), eq. for sorted c_(1) ≤ … ≤ c_(K): G = 1 − 2 Σ c_(i)/‖c‖₁·(K−i+½)/K
@@ -158,36 +167,9 @@ def _gini_rows(x: np.ndarray) -> np.ndarray:
     return np.where(valid, 1.0 - 2.0 * (a @ weights) / np.where(valid, l1, 1.0), np.nan)
 
 
-def _hoyer_rows(x: np.ndarray, w=None) -> np.ndarray:
-    # Cell sizes enter relative to their mean, so equal cells give Hoyer's measure unchanged.
-    k = x.shape[1]
-    if k < 2:
-        raise ValueError(f"Hoyer's measure needs at least 2 values per image, got {k}")
-    rel = None if w is None else w / np.mean(w)
-    a = np.abs(x)
-    l1 = _weighted_sum(a, rel)
-    l2 = np.sqrt(_weighted_sum(a * a, rel))
-    valid = np.isfinite(l1) & np.isfinite(l2) & (l2 > 0)
-    root_k = math.sqrt(k)
-    return np.where(valid, (root_k - l1 / np.where(valid, l2, 1.0)) / (root_k - 1.0), np.nan)
-
-
-def _negative_mass_rows(x: np.ndarray, w=None) -> np.ndarray:
-    l1 = _weighted_sum(np.abs(x), w)
-    negative = _weighted_sum(np.maximum(-x, 0.0), w)
-    valid = np.isfinite(l1) & (l1 > 0)
-    return np.where(valid, negative / np.where(valid, l1, 1.0), np.nan)
-
-
 def _quiet():
     # Invalid images (inf, NaN, overflow) are expected inputs here and are scored +inf/NaN.
     return np.errstate(over="ignore", invalid="ignore", divide="ignore")
-
-
-def _invalid_to_inf(values: np.ndarray, valid: np.ndarray) -> np.ndarray:
-    out = np.where(valid, values, np.inf)
-    out[~np.isfinite(out)] = np.inf
-    return out
 
 
 def _as_rows(image, what: str = "image") -> np.ndarray:
@@ -210,6 +192,14 @@ def _cell_weights(cell_size, shape: tuple):
     if not (np.all(np.isfinite(w)) and np.all(w > 0)):
         raise ValueError("cell_size must hold positive finite cell areas (s·Hz)")
     return np.ascontiguousarray(w).reshape(-1)
+
+
+def _score_one(criterion: Criterion, image, cell_size) -> float:
+    """One image of any shape, flattened into one row."""
+    x = _as_rows(image)
+    w = _cell_weights(cell_size, np.shape(image))
+    with _quiet():
+        return float(criterion._score_rows(x, w)[0])
 
 
 # --------------------------------------------------------------------------------------------
@@ -246,11 +236,7 @@ def renyi_entropy(image, alpha: float = 3.0, cell_size=None) -> float:
         ``Σ p^α ≤ 0`` or the result is not finite. For equal cells the two differ by
         ``log2(dt_s·df_hz)`` (:func:`continuous_entropy`).
     """
-    alpha = _check_alpha(alpha)
-    x = _as_rows(image)
-    w = _cell_weights(cell_size, np.shape(image))
-    with _quiet():
-        return float(_renyi_rows(x, alpha, w)[0])
+    return _score_one(Criterion(alpha=alpha), image, cell_size)
 
 
 def continuous_entropy(h_grid, dt_s: float, df_hz: float):
@@ -280,11 +266,7 @@ def concentration(image, p: float = 2.0, cell_size=None) -> float:
     ``Σ image ≤ 0``. With ``cell_size`` (s·Hz, as in :func:`renyi_entropy`) the cells are
     weighted by their area, ``M_p = (Σ ΔA·|p/ΔA|^{1/p})^p``: the value on the plane.
     """
-    p = _check_p(p)
-    x = _as_rows(image)
-    w = _cell_weights(cell_size, np.shape(image))
-    with _quiet():
-        return float(_concentration_rows(x, p, w)[0])
+    return _score_one(Criterion(name="concentration", p=p), image, cell_size)
 
 
 def gini_index(values) -> float:
@@ -304,8 +286,10 @@ def hoyer_sparsity(values) -> float:
     ``(√K − ‖c‖₁/‖c‖₂) / (√K − 1)`` (Hoyer, JMLR 5, 2004): one-hot → 1, constant → 0. Needs
     K ≥ 2 values. NaN (undefined) for an all-zero or non-finite input.
     """
+    x = np.abs(_as_rows(values, "values"))
     with _quiet():
-        return float(_hoyer_rows(_as_rows(values, "values"))[0])
+        score = float(Criterion(name="sparsity", measure="hoyer")._score_rows(x)[0])
+    return -score if math.isfinite(score) else math.nan
 
 
 def negative_mass_fraction(image, cell_size=None) -> float:
@@ -318,7 +302,7 @@ def negative_mass_fraction(image, cell_size=None) -> float:
     x = _as_rows(image)
     w = _cell_weights(cell_size, np.shape(image))
     with _quiet():
-        return float(_negative_mass_rows(x, w)[0])
+        return float(shares_from_totals(_row_stats(x, w, None), undefined=math.nan)[0])
 
 
 def negative_share(images, cell_size=None) -> np.ndarray:
@@ -338,8 +322,9 @@ def negative_share(images, cell_size=None) -> np.ndarray:
     out = np.empty(x.shape[0], dtype=np.float64)
     for start in range(0, x.shape[0], rows):
         with _quiet():
-            out[start:start + rows] = _negative_mass_rows(
-                flat[start:start + rows].astype(np.float64, copy=False), w)
+            out[start:start + rows] = shares_from_totals(
+                _row_stats(flat[start:start + rows].astype(np.float64, copy=False), w, None),
+                undefined=math.nan)
     return out
 
 
@@ -390,6 +375,12 @@ class Criterion:
     concentration values are then on the continuous plane, comparable across grids; Hoyer's
     measure weights cells relative to their mean size; the Gini index counts cells as they are
     (a sorted-magnitude measure has no area form here), so it is comparable only on one grid.
+
+    Each criterion is defined once, as per-row statistics (:meth:`row_stats`) and their
+    reduction (:meth:`scores_from_totals`); :meth:`score` applies both to whole images, the
+    search to (window, channel) rows totalled over channels. The Gini index needs the sorted
+    image, so it is not :attr:`separable` and is scored on whole images only (its validity and
+    penalty still come from the row statistics).
     """
 
     name: str = "renyi"
@@ -401,7 +392,7 @@ class Criterion:
     def __post_init__(self):
         self.validate()
 
-    def validate(self) -> "Criterion":
+    def validate(self) -> Criterion:
         """Raise ``ValueError`` naming the field and the value if any field is out of range."""
         if self.name not in CRITERIA:
             raise ValueError(f"criterion name must be one of {', '.join(CRITERIA)}; got {self.name!r}")
@@ -415,6 +406,107 @@ class Criterion:
                 or not (np.isfinite(lam) and lam >= 0):
             raise ValueError(f"negative_mass_penalty must be a finite number >= 0, got {lam!r}")
         return self
+
+    # -- the core: statistics of rows, and their totals reduced to a score ------------------
+
+    @property
+    def separable(self) -> bool:
+        """True when a score depends on an image only through the totals of its rows'
+        statistics (:meth:`row_stats`): every criterion but the Gini index."""
+        return not (self.name == "sparsity" and self.measure == "gini")
+
+    def _terms(self, x: np.ndarray):
+        """The criterion's own per-cell term q(S), summed into column ``Q`` (None for Gini)."""
+        if self.name == "renyi":
+            alpha = float(self.alpha)
+            if alpha == 1.0:   # Shannon limit: S·log2|S|, with 0·log 0 = 0
+                a = np.abs(x)
+                return x * np.log2(a, out=np.zeros_like(a), where=a > 0)
+            return _signed_power(x, alpha)
+        if self.name == "concentration":
+            p = float(self.p)
+            return np.sqrt(np.abs(x)) if p == 2.0 else np.abs(x) ** (1.0 / p)
+        return x * x if self.measure == "hoyer" else None
+
+    def row_stats(self, rows, cell_size=None) -> np.ndarray:
+        """Sufficient statistics of each row (the last axis) of ``rows``: shape (..., 4) float64.
+
+        Columns ``Q``, ``TOTAL``, ``L1``, ``NEGATIVE``: Σ w·q(S), Σ w·S, Σ w·|S| and
+        Σ w·max(−S, 0), with ``cell_size`` w the cell areas along the row (s·Hz, shape (K,);
+        None: every cell counts 1) and q the criterion's own term: S^α for Rényi (odd integer α
+        keeps the sign, non-integer α takes sign(S)·|S|^α), S·log2|S| at α = 1, |S|^{1/p} for
+        concentration, S² for Hoyer's measure, none (NaN) for the Gini index. The statistics of
+        rows that tile an image total the image's: the search keeps them per (window, channel)
+        row, each multiplied by its channel's cell area, and sums them over channels.
+        """
+        x = np.asarray(rows, dtype=np.float64)
+        return _row_stats(x, cell_size, self._terms(x))
+
+    def scores_from_totals(self, totals, n_cells: int, mean_cell: float = 1.0) -> np.ndarray:
+        """Scores, shape (...,) float64, of images from their statistics totals (..., 4).
+
+        ``n_cells`` K, the number of cells of an image (Hoyer's √K); ``mean_cell`` the mean of
+        the cell areas the totals were weighted with (Hoyer's measure sees cells relative to it;
+        1 when they were already relative). With T = Σ ΔA·S the image's mass:
+
+        - Rényi: H_α = log2(Σ ΔA·S^α / T^α)/(1−α), which is log2 Σ p^α ΔA^{1−α}/(1−α) for
+          p = S·ΔA/T (Baraniuk, Flandrin, Janssen, Michel, IEEE Trans. IT 47(4), 2001); at
+          α = 1, −Σ ΔA·S·log2|S|/T + log2 T.
+        - concentration: p·log2 Σ ΔA·|S|^{1/p} − log2 T (Stanković, Signal Processing 81(3),
+          2001).
+        - Hoyer: −(√K − l1/l2)/(√K − 1), l1 and l2 on the relative cell areas (Hoyer, JMLR 5,
+          2004).
+
+        plus λ·Σ ΔA·S⁻/Σ ΔA·|S| (``negative_mass_penalty``). ``+inf`` unless T is positive and
+        finite, the inner sum is positive and the score finite.
+        """
+        if not self.separable:
+            raise ValueError("the Gini index is not a function of row sums; score whole images")
+        q, t = totals[..., Q], totals[..., TOTAL]
+        with _quiet():
+            valid = _positive_mass(totals)
+            tt = np.where(valid, t, 1.0)
+            if self.name == "renyi" and float(self.alpha) == 1.0:
+                h = -q / tt + np.log2(tt)
+            elif self.name == "renyi":
+                alpha = float(self.alpha)
+                power = q / _signed_power(tt, alpha)
+                valid &= power > 0
+                h = np.log2(np.where(power > 0, power, 1.0)) / (1.0 - alpha)
+            elif self.name == "concentration":
+                valid &= q > 0
+                h = float(self.p) * np.log2(np.where(q > 0, q, 1.0)) - np.log2(tt)
+            else:
+                if n_cells < 2:
+                    raise ValueError(
+                        f"Hoyer's measure needs at least 2 values per image, got {n_cells}")
+                root_k = math.sqrt(n_cells)
+                l2 = np.sqrt(q)
+                valid &= (l2 > 0) & np.isfinite(l2)
+                ratio = totals[..., L1] / np.where(l2 > 0, l2, 1.0) / math.sqrt(mean_cell)
+                h = -(root_k - ratio) / (root_k - 1.0)
+            return self._finish(h, totals, valid)
+
+    def _finish(self, h: np.ndarray, totals: np.ndarray, valid: np.ndarray) -> np.ndarray:
+        """Add λ times the negative share; +inf where invalid or not finite."""
+        lam = float(self.negative_mass_penalty)
+        if lam:
+            l1 = totals[..., L1]
+            h = h + lam * totals[..., NEGATIVE] / np.where(l1 > 0, l1, 1.0)
+        return np.where(valid & np.isfinite(h), h, np.inf)
+
+    def _score_rows(self, x: np.ndarray, w=None) -> np.ndarray:
+        """Scores (M,) of whole images, one per row of x (M, K); w (K,) cell areas or None."""
+        if not self.separable:
+            stats = _row_stats(x, w, None)
+            return self._finish(-_gini_rows(x), stats, _positive_mass(stats))
+        if self.name == "sparsity" and w is not None:
+            # Hoyer's measure sees cell areas relative to their mean: dividing them here (mean 1)
+            # gives the value of dividing the totals by √mean later
+            w = w / np.mean(w)
+        return self.scores_from_totals(self.row_stats(x, w), x.shape[1])
+
+    # -- scoring images ----------------------------------------------------------------------
 
     def score(self, images, cell_size=None) -> np.ndarray:
         """Score a stack of images.
@@ -447,20 +539,6 @@ class Criterion:
                 out[start:start + rows] = self._score_rows(block, w)
         return out
 
-    def _score_rows(self, x: np.ndarray, w=None) -> np.ndarray:
-        if self.name == "renyi":
-            s = _renyi_rows(x, float(self.alpha), w)
-        elif self.name == "concentration":
-            s = _concentration_rows(x, float(self.p), w)
-        else:
-            total = x.sum(axis=1)
-            sparse = _gini_rows(x) if self.measure == "gini" else _hoyer_rows(x, w)
-            s = _invalid_to_inf(-sparse, np.isfinite(total) & (total > 0))
-        if self.negative_mass_penalty:
-            s = s + float(self.negative_mass_penalty) * _negative_mass_rows(x, w)
-            s[~np.isfinite(s)] = np.inf
-        return s
-
     def to_json(self) -> dict:
         """``{"name", "alpha", "p", "measure", "negative_mass_penalty"}`` (JSON-ready)."""
         d = asdict(self)
@@ -469,7 +547,7 @@ class Criterion:
         return d
 
     @classmethod
-    def from_json(cls, obj) -> "Criterion":
+    def from_json(cls, obj) -> Criterion:
         """Inverse of :meth:`to_json`; missing keys take the defaults, unknown keys are an error."""
         if not isinstance(obj, dict):
             raise ValueError(f"criterion must be a JSON object, got {type(obj).__name__}")
@@ -477,6 +555,10 @@ class Criterion:
         if unknown:
             raise ValueError(f"unknown criterion field(s): {', '.join(unknown)}")
         return cls(**obj)
+
+
+# --------------------------------------------------------------------------------------------
+# From per-window scores to the corpus objective.
 
 
 def reduce_scores(scores, how: str = "mean") -> float:
@@ -499,3 +581,22 @@ def reduce_scores(scores, how: str = "mean") -> float:
     if how == "median":
         return float(np.median(s))
     return float(trim_mean(s, TRIM_FRACTION))
+
+
+def ceiling_objective(scores, shares, how: str, max_negative_share: float):
+    """The corpus objective under the positivity ceiling: the reduced scores
+    (:func:`reduce_scores`), or ``+inf`` when the mean negative share of the windows
+    (:func:`shares_from_totals`) exceeds ``max_negative_share``, whatever the criterion.
+
+    ``scores`` and ``shares`` (M,) give a float; (M, n), one candidate per column, give (n,).
+    """
+    scores = np.asarray(scores, dtype=np.float64)
+    if scores.ndim == 1:
+        if float(np.mean(shares)) > max_negative_share:
+            return math.inf
+        return reduce_scores(scores, how)
+    if how == "mean" and np.all(np.isfinite(scores)):
+        out = scores.mean(axis=0)
+    else:
+        out = np.array([reduce_scores(scores[:, i], how) for i in range(scores.shape[1])])
+    return np.where(np.mean(shares, axis=0) > max_negative_share, np.inf, out)

@@ -42,10 +42,11 @@ from __future__ import annotations
 
 import json
 import os
-import tempfile
 from dataclasses import dataclass
 
 import numpy as np
+
+from search.safe_io import atomic_write
 
 DEFAULT_SEED = 20260317
 SAMPLING_RATE_HZ = 4000.0
@@ -229,7 +230,8 @@ def make_catalogue(rng, duration_s: float, n_events: int = 30, n_blasts: int = 2
         stress = 10 ** rng.uniform(5.0, 7.0)
         loc = _event_location(rng)
         guided = abs(loc[2] - REEF_DEPTH) < REEF_HALF_THICKNESS or rng.uniform() < 0.2
-        sources.append(Source("event", float(t), tuple(loc), float(mw), float(stress), random_double_couple(rng), bool(guided)))
+        sources.append(Source("event", float(t), tuple(loc), float(mw), float(stress), random_double_couple(rng),
+                              bool(guided)))
     # production blasts: a row of delayed charges at the development end, 25 ms apart
     for k in range(n_blasts):
         t0 = duration_s * (0.3 + 0.45 * k) + rng.uniform(-1, 1)
@@ -266,7 +268,8 @@ def _arrivals(src: Source, station_xyz: np.ndarray, f: np.ndarray, buf_t0: float
         band = np.exp(-0.5 * ((f - GUIDED_CENTRE_HZ) / GUIDED_WIDTH_HZ) ** 2)
         r0 = GUIDED_REF_DISTANCE_M
         strength = 0.6 * np.linalg.norm(us) * np.sqrt(r0 / max(r, 50.0))  # 2-D spreading, r^(−1/2)
-        spec = source * band * attenuation(f, r / (0.75 * VS), QS) * np.exp(1j * phase) / (4 * np.pi * RHO * VS ** 3 * r0)
+        spec = (source * band * attenuation(f, r / (0.75 * VS), QS) * np.exp(1j * phase)
+                / (4 * np.pi * RHO * VS ** 3 * r0))
         pol = np.array([rng.uniform(-0.3, 0.3), rng.uniform(-1, 1), rng.uniform(-1, 1)])
         out += np.outer(strength * pol / np.linalg.norm(pol), spec)
     return out
@@ -386,32 +389,18 @@ def write_demo_corpus(out_dir: str, seed: int = DEFAULT_SEED) -> list[str]:
     written = []
     for code, data in records.items():
         stream = Stream()
-        for channel, row in zip(CHANNELS, data):
+        for channel, row in zip(CHANNELS, data, strict=True):
             tr = Trace(np.ascontiguousarray(row), header={
                 "network": NETWORK, "station": code, "location": LOCATION, "channel": channel,
                 "sampling_rate": SAMPLING_RATE_HZ, "starttime": UTCDateTime(START)})
             stream.append(tr)
         path = os.path.join(out_dir, f"{NETWORK}.{code}.{LOCATION}.mseed")
-        _atomic_write(path, lambda fh, st=stream: st.write(fh, format="MSEED", encoding="STEIM2", reclen=4096, byteorder=">"))
+        atomic_write(path, lambda fh, st=stream: st.write(fh, format="MSEED", encoding="STEIM2", reclen=4096,
+                                                          byteorder=">"))
         written.append(path)
     cat = os.path.join(out_dir, "catalogue.json")
     text = json.dumps({"site": "Quillmoor Deep (invented)", "seed": seed, "start": START,
                        "sources": catalogue_json(sources)}, indent=1) + "\n"
-    _atomic_write(cat, lambda fh: fh.write(text.encode()))
+    atomic_write(cat, lambda fh: fh.write(text.encode()))
     written.append(cat)
     return sorted(written)
-
-
-def _atomic_write(path: str, write) -> None:
-    folder = os.path.dirname(os.path.abspath(path))
-    fd, tmp = tempfile.mkstemp(dir=folder, prefix=".tmp-", suffix=os.path.basename(path))
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            write(fh)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise

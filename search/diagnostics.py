@@ -1,8 +1,8 @@
 """Judging a search: bootstrap intervals, reference baselines and convergence records.
 
 Pure functions (resampling, intervals, the one-step refit of a parameter on a resample) and one
-small record-keeper (:class:`ConvergenceLog`). The scoring itself happens in
-:mod:`search.optimize`; this module only does the arithmetic on per-window scores, so it can be
+small record-keeper (:class:`ConvergenceLog`). The scoring itself happens in the stages of
+:mod:`search.fit`; this module only does the arithmetic on per-window scores, so it can be
 tested without a transform.
 
 Conventions: per-window scores are criterion values (bits for Rényi; lower is sharper) in window

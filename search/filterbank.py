@@ -104,7 +104,7 @@ class Channel:
     @classmethod
     def from_spreads(
         cls, center_hz, time_spread_s, freq_spread_hz, correlation=0.0
-    ) -> "Channel":
+    ) -> Channel:
         """The channel with time std σ_t, frequency std σ_f and t–f correlation ρ (|ρ| < 1).
 
         a = 4π·σ_t·σ_f·√(1−ρ²), β = ρ·σ_f/σ_t: ρ > 0 matches upward sweeps.
@@ -133,7 +133,7 @@ class Channel:
         sweeps, like β)."""
         return self.chirp_hz_per_s * self.time_spread_s / self.freq_spread_hz
 
-    def validate(self, sampling_rate_hz: float) -> "Channel":
+    def validate(self, sampling_rate_hz: float) -> Channel:
         """Check the channel against a sampling rate; return it, or raise ValueError naming the
         field and value (f_c must lie strictly between 0 and the Nyquist frequency fs/2)."""
         fs = _check_sampling_rate(sampling_rate_hz)
@@ -273,7 +273,7 @@ class Filterbank:
     def __repr__(self) -> str:
         return f"Filterbank({len(self)} channels, sampling_rate_hz={self._fs!r})"
 
-    def with_channel(self, index: int, channel: Channel) -> "Filterbank":
+    def with_channel(self, index: int, channel: Channel) -> Filterbank:
         """A copy with channel ``index`` replaced (used by per-channel refinement)."""
         channels = list(self._channels)
         channels[index] = channel
@@ -319,14 +319,14 @@ class Filterbank:
     @classmethod
     def constant_window(
         cls, centers_hz, time_spread_s, sampling_rate_hz, *, chirp_hz_per_s=0.0
-    ) -> "Filterbank":
+    ) -> Filterbank:
         """Gaussian spectrogram: the same σ_t (s) at every centre, a = 1."""
         return cls._family(centers_hz, time_spread_s, 1.0, chirp_hz_per_s, sampling_rate_hz)
 
     @classmethod
     def constant_q(
         cls, centers_hz, cycles, sampling_rate_hz, *, chirp_hz_per_s=0.0
-    ) -> "Filterbank":
+    ) -> Filterbank:
         """Constant-Q Gaussian scalogram, a = 1: σ_t = cycles / f_c, i.e. the time std of the
         window energy |h|² spans ``cycles`` periods of the centre frequency.
 
@@ -340,12 +340,12 @@ class Filterbank:
     @classmethod
     def constant_area(
         cls, centers_hz, time_spread_s, cell_area, sampling_rate_hz, *, chirp_hz_per_s=0.0
-    ) -> "Filterbank":
+    ) -> Filterbank:
         """A chosen cell area a at every centre; σ_t (s) scalar or one per centre."""
         return cls._family(centers_hz, time_spread_s, cell_area, chirp_hz_per_s, sampling_rate_hz)
 
     @classmethod
-    def _family(cls, centers_hz, time_spread_s, cell_area, chirp_hz_per_s, fs) -> "Filterbank":
+    def _family(cls, centers_hz, time_spread_s, cell_area, chirp_hz_per_s, fs) -> Filterbank:
         centers = _as_centers(centers_hz)
         shape = centers.shape
         try:
@@ -359,7 +359,7 @@ class Filterbank:
                 f"per centre ({shape[0]})"
             ) from None
         channels = []
-        for index, values in enumerate(zip(centers, spreads, areas, chirps)):
+        for index, values in enumerate(zip(centers, spreads, areas, chirps, strict=True)):
             try:
                 channels.append(Channel(*(float(v) for v in values)))
             except ValueError as exc:
@@ -385,7 +385,7 @@ class Filterbank:
         }
 
     @classmethod
-    def from_json(cls, obj: Mapping) -> "Filterbank":
+    def from_json(cls, obj: Mapping) -> Filterbank:
         """Read :meth:`to_json` output, checking format, version and every field.
 
         Each channel needs ``center_hz`` and ``time_spread_s``, and either ``cell_area`` /

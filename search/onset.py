@@ -122,7 +122,7 @@ def onset_errors_ms(images, trigger_offset_s, sampling_rate_hz: float) -> dict:
         return {"median_ms": None, "p90_ms": None, "windows": 0, "per_window_ms": per_window}
     found = image_onsets(images[has], sampling_rate_hz)
     signed = 1e3 * (found - np.array([float(offsets[i]) for i in has]))
-    for i, d in zip(has, signed):
+    for i, d in zip(has, signed, strict=True):
         per_window[i] = float(d)
     return {**error_summary_ms(found, [float(offsets[i]) for i in has]),
             "per_window_ms": per_window}

@@ -209,9 +209,9 @@ def _fail(name: str, value, cause: str):
 
 
 def _int(name, value, minimum=None, allow=()):
-    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
-        if not (isinstance(value, float) and value.is_integer()):
-            _fail(name, value, "must be an integer")
+    if (isinstance(value, bool) or not isinstance(value, numbers.Integral)) and not (
+            isinstance(value, float) and value.is_integer()):
+        _fail(name, value, "must be an integer")
     value = int(value)
     if value in allow:
         return value

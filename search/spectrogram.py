@@ -1,7 +1,7 @@
 """The plain Gaussian spectrogram on its own FFT grid: the baseline a person would pick by hand.
 
 A filterbank's channel grid limits the kernels it can hold: a window longer than
-1/(4π Δf_c) falls between the channel centres (``search.optimize.SearchSpace.grid_cap_s``). The
+1/(4π Δf_c) falls between the channel centres (``search.fit.space.SearchSpace.grid_cap_s``). The
 plain spectrogram a person compares against has no such limit: its FFT grid is as fine as its
 window needs. So the gain is measured against the spectrogram scored on an FFT grid whose bin
 spacing is at most its window's frequency spread 1/(4π σ_t), over the search band. Scores are

@@ -22,7 +22,7 @@ sharpens arrivals sweeping upward at β Hz/s. Summing over k in closed form leav
   matrix applied to R. R is formed lag by lag (an FFT over time per lag) or, when the bands
   reach few θ bins, only at those bins (Doppler rows: for each bin, one FFT over the lags of
   the spectrum of z times its shifted copy, the cross-correlation theorem); a cost model picks
-  the cheaper, both are exact.
+  the cheaper, both are exact; ``transform(..., chirp_method="lag" | "doppler")`` forces one.
 
 Truncation by ε (default 1e-6): lags up to L_c (:func:`search.wvd.lag_count`), time kernels to
 ±⌈√(2 ln(1/ε))·σ_t·fs⌉ samples. float64 inside; work is cut in blocks of about 64 MB whatever M
@@ -38,6 +38,7 @@ import threading
 from collections import OrderedDict
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
+from functools import partial
 
 import numpy as np
 from numpy.lib.stride_tricks import as_strided
@@ -65,6 +66,9 @@ _COST_PRODUCT = 1.25  # per complex product of the Doppler rows
 _COST_SPARSE_ONE, _COST_SPARSE_BATCH = 5.0, 1.6  # per sparse weight, alone or batched
 _PLAN_CACHE_ENTRIES = 16
 _PLAN_CACHE_BYTES = 256 << 20
+# Ways of forming the chirped channels' ambiguity samples (transform's chirp_method): the cost
+# model's choice, lag by lag (lag-major), or only at the θ bins the bands reach (Doppler rows).
+CHIRP_METHODS = ("auto", "lag", "doppler")
 
 
 @dataclass(frozen=True, eq=False)
@@ -101,7 +105,7 @@ def prepare(windows) -> PreparedWindows:
 
 
 def transform(windows, filterbank: Filterbank, *, eps: float = 1e-6, dtype=np.float32,
-              workers: int | None = None) -> np.ndarray:
+              workers: int | None = None, chirp_method: str = "auto") -> np.ndarray:
     """Filterbank image of each window.
 
     windows: (M, N) real samples at ``filterbank.sampling_rate_hz``, one (N,) window, or the
@@ -110,7 +114,11 @@ def transform(windows, filterbank: Filterbank, *, eps: float = 1e-6, dtype=np.fl
     level of the Gaussian tails. ``workers``: threads to use (default: the BLAS thread count in
     force — all CPUs, or 1 in a joblib worker); the lag products run on that many threads with
     one BLAS thread each (BLAS is limited through threadpoolctl during the call), the FFTs with
-    ``workers`` threads.
+    ``workers`` threads. ``chirp_method``: how the chirped channels (β ≠ 0) form their
+    ambiguity samples R(θ, m) — ``"auto"`` (default) the cheaper by the module's cost model
+    (:func:`auto_chirp_method` tells which), ``"lag"`` lag by lag (one FFT over time per lag),
+    ``"doppler"`` only at the θ bins their bands reach (Doppler rows); all are exact and agree to
+    round-off. Unchirped channels ignore it.
     """
     if not isinstance(filterbank, Filterbank):
         raise ValueError(f"filterbank must be a Filterbank, got {type(filterbank).__name__}")
@@ -121,7 +129,8 @@ def transform(windows, filterbank: Filterbank, *, eps: float = 1e-6, dtype=np.fl
     workers = _default_workers() if workers is None else int(workers)
     if workers < 1:
         raise ValueError(f"workers={workers!r} must be ≥ 1")
-    plan = _plan(filterbank, n_samples, float(eps))
+    _check_chirp_method(chirp_method)
+    plan = _plan(filterbank, n_samples, float(eps), chirp_method)
     out = np.empty((n_windows, len(filterbank), n_samples), dtype=dtype)
     if plan.fast is not None:
         _run_fast(plan.fast, z, out, workers)
@@ -130,8 +139,34 @@ def transform(windows, filterbank: Filterbank, *, eps: float = 1e-6, dtype=np.fl
     return out[0] if prepared.single else out
 
 
+def auto_chirp_method(filterbank: Filterbank, n_samples: int, *, eps: float = 1e-6) -> str | None:
+    """The way ``transform(..., chirp_method="auto")`` forms the chirped channels of
+    ``filterbank`` on windows of ``n_samples`` samples: ``"lag"`` or ``"doppler"``, None when
+    no channel is chirped. Builds and caches the weights as the transform's first call would."""
+    if not isinstance(filterbank, Filterbank):
+        raise ValueError(f"filterbank must be a Filterbank, got {type(filterbank).__name__}")
+    truncation_width(eps)  # validates eps
+    if isinstance(n_samples, bool) or not isinstance(n_samples, (int, np.integer)) or n_samples < 1:
+        raise ValueError(f"n_samples={n_samples!r} must be a whole number of samples ≥ 1")
+    chirped = _plan(filterbank, int(n_samples), float(eps), "auto").chirped
+    return None if chirped is None else chirped.method
+
+
+def clear_plans() -> None:
+    """Forget the cached per-filterbank weights: the next transform of each filterbank builds
+    them again (to time a first call, or to free their memory)."""
+    with _PLANS_LOCK:
+        _PLANS.clear()
+
+
+def _check_chirp_method(chirp_method) -> None:
+    if not isinstance(chirp_method, str) or chirp_method not in CHIRP_METHODS:
+        raise ValueError(f"chirp_method={chirp_method!r}: choose one of "
+                         f"{', '.join(map(repr, CHIRP_METHODS))}")
+
+
 # ---------------------------------------------------------------------------------------------
-# Plans: everything that depends on (filterbank, N, ε) only, cached across calls.
+# Plans: everything that depends on (filterbank, N, ε, chirp method) only, cached across calls.
 
 
 @dataclass
@@ -169,8 +204,8 @@ _PLANS_LOCK = threading.Lock()
 _BLAS = None  # threadpoolctl controller, made on first use
 
 
-def _plan(filterbank: Filterbank, n_samples: int, eps: float) -> _Plan:
-    key = (filterbank.key(), n_samples, eps)
+def _plan(filterbank: Filterbank, n_samples: int, eps: float, chirp_method: str) -> _Plan:
+    key = (filterbank.key(), n_samples, eps, chirp_method)
     with _PLANS_LOCK:
         plan = _PLANS.get(key)
         if plan is not None:
@@ -181,7 +216,8 @@ def _plan(filterbank: Filterbank, n_samples: int, eps: float) -> _Plan:
     chirp_idx = np.flatnonzero(chirp != 0.0)
     plan = _Plan(
         _fast_plan(filterbank, fast_idx, n_samples, eps) if fast_idx.size else None,
-        _chirp_plan(filterbank, chirp_idx, n_samples, eps) if chirp_idx.size else None,
+        _chirp_plan(filterbank, chirp_idx, n_samples, eps, chirp_method)
+        if chirp_idx.size else None,
     )
     with _PLANS_LOCK:
         _PLANS[key] = plan
@@ -278,11 +314,12 @@ def _group_by_size(sizes: np.ndarray) -> list[tuple[int, int]]:
     return runs[::-1]
 
 
-def _chirp_plan(filterbank, idx, n_samples, eps) -> _ChirpPlan:
-    """Plan for the chirped channels: the cheaper of the lag-major and the Doppler-row ways of
-    forming R(θ, m) (both exact, see :func:`_run_chirped`), by the cost model of
-    :func:`_chirp_method`, with the banded weights laid out for it: one CSR matrix, filled one
-    channel at a time (int32 indices where they fit, no argsort), then cut into row blocks."""
+def _chirp_plan(filterbank, idx, n_samples, eps, method) -> _ChirpPlan:
+    """Plan for the chirped channels: the lag-major or the Doppler-row way of forming R(θ, m)
+    (both exact, see :func:`_run_chirped`) as ``method`` says, ``"auto"`` the cheaper by the
+    cost model of :func:`_chirp_method`, with the banded weights laid out for it: one CSR
+    matrix, filled one channel at a time (int32 indices where they fit, no argsort), then cut
+    into row blocks."""
     fs = filterbank.sampling_rate_hz
     k = truncation_width(eps)
     spread = filterbank.conditional_freq_spread_hz[idx]
@@ -306,7 +343,8 @@ def _chirp_plan(filterbank, idx, n_samples, eps) -> _ChirpPlan:
                                           real=True),
     }
     reached = _bins_reached(shears, sigma, lags, sizes["doppler"], fs, k)
-    method = _chirp_method(sigma, lags, n_samples, sizes, int(reached.sum()), fs, k)
+    if method == "auto":
+        method = _chirp_method(sigma, lags, n_samples, sizes, int(reached.sum()), fs, k)
     size = sizes[method]
     if method == "lag":  # row blocks of lags start..start+width−1 stacked: b·(C·P) + c·P + q
         width = max(1, min(n_lags, _BLOCK_BYTES // (16 * size)))
@@ -349,7 +387,7 @@ def _chirp_plan(filterbank, idx, n_samples, eps) -> _ChirpPlan:
     whole = sp.csr_matrix((data, (row, column)), shape=(n_rows, n_columns))
     del data, row, column
     blocks = [cut + (_row_block(whole, r0, r1, n_cols),)
-              for cut, (r0, r1, n_cols) in zip(cuts, shapes)]
+              for cut, (r0, r1, n_cols) in zip(cuts, shapes, strict=True)]
     if method == "doppler":
         blocks = [(_segments(rows[first:stop]), first, stop, matrix)
                   for first, stop, matrix in blocks]
@@ -370,7 +408,7 @@ def _segments(bins: np.ndarray) -> list[tuple[int, int, int]]:
     """Runs of consecutive θ bins in a block: (offset in the block, count, first bin)."""
     breaks = np.flatnonzero(np.diff(bins) != 1) + 1
     starts, ends = np.r_[0, breaks], np.r_[breaks, bins.size]
-    return [(int(a), int(b - a), int(bins[a])) for a, b in zip(starts, ends)]
+    return [(int(a), int(b - a), int(bins[a])) for a, b in zip(starts, ends, strict=True)]
 
 
 def _chirp_entries(center, sigma, spread, shear, lags, size, fs, k):
@@ -407,7 +445,7 @@ def _band_bins(band):
 def _bins_reached(shears, sigma, lags, size, fs, k) -> np.ndarray:
     """(P,) bool: the θ bins mod P that some channel's band reaches at some lag (s = −β)."""
     reached = np.zeros(size, dtype=bool)
-    for shear, band, n_lags in zip(shears, _half_bands(sigma, size, fs, k), lags):
+    for shear, band, n_lags in zip(shears, _half_bands(sigma, size, fs, k), lags, strict=True):
         starts = _band_starts(shear, 2.0 * np.arange(n_lags + 1) / fs, band, size, fs)
         # the hull of the lag bands (they overlap unless a band moves more than its width
         # from one lag to the next; a superset costs time, never accuracy)
@@ -510,7 +548,7 @@ def _run_fast(plan: _FastPlan, z: np.ndarray, out: np.ndarray, workers: int) -> 
                     for unit in units:
                         lag_products(lagged, w0, unit)
                 else:
-                    for _ in pool.map(lambda unit: lag_products(lagged, w0, unit), units):
+                    for _ in pool.map(partial(lag_products, lagged, w0), units):
                         pass
                 for start, stop, fft_size, kernels in plan.convolutions:
                     spectrum = sfft.rfft(lagged[:, start:stop, :fft_size], axis=2,

@@ -111,7 +111,10 @@ def install_error_handlers(app: FastAPI) -> None:
 
 
 def create_app(settings: ServiceSettings | None = None) -> FastAPI:
-    """Build the API over ``settings.data_dir`` (creating the store if it does not exist)."""
+    """Build the API over ``settings.data_dir`` (creating the store if it does not exist).
+
+    The app keeps its settings and store on ``app.state``; routes take them through
+    ``service.dependencies`` (``get_settings``, ``get_store``), which tests override."""
     from search import __version__
     from service.routers import corpora, health, jobs, transform
 

@@ -14,6 +14,7 @@ import secrets
 
 from fastapi import HTTPException, Request
 
+from service.dependencies import SettingsDep, StoreDep
 from service.store import Store
 
 LOCAL_TENANT = "local"
@@ -56,10 +57,9 @@ def _unauthorized(message: str) -> HTTPException:
     return HTTPException(status_code=401, detail=message, headers={"WWW-Authenticate": "Bearer"})
 
 
-def require_tenant(request: Request) -> str:
+def require_tenant(request: Request, store: StoreDep, settings: SettingsDep) -> str:
     """FastAPI dependency: the caller's tenant, or 401 with ``WWW-Authenticate: Bearer``."""
-    store: Store = request.app.state.store
-    if not auth_required(store, request.app.state.settings.tokens_required):
+    if not auth_required(store, settings.tokens_required):
         return LOCAL_TENANT
     header = request.headers.get("authorization", "")
     scheme, _, token = header.partition(" ")

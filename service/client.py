@@ -13,9 +13,10 @@ from __future__ import annotations
 
 import time
 import uuid
+from collections.abc import Callable, Iterable
 from contextlib import ExitStack
 from pathlib import Path
-from typing import Any, Callable, Iterable
+from typing import Any
 
 import httpx
 
@@ -57,7 +58,7 @@ class Client:
     def close(self) -> None:
         self.http.close()
 
-    def __enter__(self) -> "Client":
+    def __enter__(self) -> Client:
         return self
 
     def __exit__(self, *exc) -> None:

@@ -35,7 +35,7 @@ def parse_read_options(fields: dict[str, str]) -> dict[str, Any]:
 
 
 def _renamer(paths: list[Path], names: list[str]):
-    pairs = sorted(((str(p), n) for p, n in zip(paths, names)), key=lambda x: -len(x[0]))
+    pairs = sorted(((str(p), n) for p, n in zip(paths, names, strict=True)), key=lambda x: -len(x[0]))
     folders = sorted({str(p.parent) for p in paths}, key=len, reverse=True)
 
     def rename(text: str) -> str:

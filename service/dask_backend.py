@@ -3,7 +3,7 @@
 The cluster is an existing ``dask scheduler`` with ``dask worker`` processes (DESIGN §2: no
 home-made cluster code). A worker process opens one ``distributed.Client`` with :func:`connect`
 and runs each fit inside :func:`evaluations_on`, which sets joblib's Dask backend for that
-client; the search's joblib calls then fan out to the cluster (``search.optimize`` scatters the
+client; the search's joblib calls then fan out to the cluster (``search.fit.evaluate`` scatters the
 windows once per fit).
 
 Failure modes this module turns into clear errors instead of waits:
@@ -24,8 +24,8 @@ Failure modes this module turns into clear errors instead of waits:
 from __future__ import annotations
 
 import re
-from contextlib import contextmanager
-from typing import Iterator
+from collections.abc import Iterator
+from contextlib import contextmanager, suppress
 
 BACKEND_NAME = "burstlens-dask"
 DEFAULT_CONNECT_TIMEOUT_S = 10.0
@@ -86,16 +86,14 @@ def ensure_client(client, address: str, timeout_s: float = DEFAULT_CONNECT_TIMEO
     if client is not None and getattr(client, "status", None) == "running":
         return client
     if client is not None:
-        try:
+        with suppress(Exception):  # already broken: nothing left to release
             client.close()
-        except Exception:  # already broken: nothing left to release
-            pass
     return connect(address, timeout_s)
 
 
 def _backend_class():
     # joblib's own Dask backend (joblib registers it lazily under "dask"); subclassed, and named
-    # like it, because search.optimize recognises the Dask backend by that class name
+    # like it, because search.fit.evaluate recognises the Dask backend by that class name
     from joblib._dask import DaskDistributedBackend as JoblibDaskBackend
 
     class DaskDistributedBackend(JoblibDaskBackend):

@@ -46,7 +46,7 @@ def burst_contrast(filterbank_json: Mapping, windows, trigger_offset_s=None) -> 
     offsets = list(trigger_offset_s) if trigger_offset_s is not None else [None] * len(image)
     contrast = np.empty(image.shape[:2])
     tiny = np.finfo(float).tiny
-    for i, (rows, onset) in enumerate(zip(image, offsets)):
+    for i, (rows, onset) in enumerate(zip(image, offsets, strict=True)):
         start = None if onset is None else int(round(float(onset) * fs))
         if start is not None and 2 * edge <= start < n - 2 * edge:
             background = rows[:, edge:start].mean(axis=1)

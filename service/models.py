@@ -168,7 +168,7 @@ class JobView(BaseModel):
                                                              "once the job succeeded.")
 
     @classmethod
-    def from_job(cls, job: dict[str, Any]) -> "JobView":
+    def from_job(cls, job: dict[str, Any]) -> JobView:
         return cls(id=job["id"], state=job["state"], progress=Progress(**job["progress"]),
                    attempts=job["attempts"], error=job["error"], corpus_id=job["corpus_id"],
                    settings=job["settings"], stop_reason=job["stop_reason"],
@@ -200,7 +200,7 @@ class CorpusView(BaseModel):
     summary: dict[str, Any] = Field(..., description="What the corpus reader found (no samples).")
 
     @classmethod
-    def from_corpus(cls, corpus: dict[str, Any]) -> "CorpusView":
+    def from_corpus(cls, corpus: dict[str, Any]) -> CorpusView:
         return cls(id=corpus["id"], created_at=corpus["created_at"], bytes=corpus["bytes"],
                    files=[CorpusFile(name=f["name"], bytes=f["bytes"], sha256=f["sha256"])
                           for f in corpus["files"]],

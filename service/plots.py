@@ -166,7 +166,7 @@ def tiling_figure(center_hz, time_spread_s, cell_area, chirp_hz_per_s) -> Figure
                          linewidth=1.3, gid=REFERENCE_GID,
                          label=f"Heisenberg cell a = 1 (σ_t = {1e3 * ref_st:.3g} ms)"))
 
-    half_f = np.array([np.sqrt(kernel_covariance(s, a, b)[1, 1]) for s, a, b in zip(st, area, beta)])
+    half_f = np.array([np.sqrt(kernel_covariance(s, a, b)[1, 1]) for s, a, b in zip(st, area, beta, strict=True)])
     ax.set_xlim(-1.4 * t_reach_ms, 2.4 * t_reach_ms + 1.4 * 1e3 * ref_st)
     ax.set_ylim(max(0.0, float(np.min(fc - 1.3 * half_f))), float(np.max(fc + 1.3 * half_f)))
     ax.axvline(0.0, color="#999999", linewidth=0.8, zorder=0)
@@ -242,7 +242,7 @@ def example_figure(times_s, waveforms, spectrograms, learned, center_hz,
         mesh = None
         for ax, image, title, kind in zip((ax_s, ax_l), pair,
                                           (literal(spectrogram_label), "learned filterbank"),
-                                          ("spectrogram", "learned")):
+                                          ("spectrogram", "learned"), strict=True):
             mesh = ax.pcolormesh(t_ms, fc, _to_db(image, peak), shading="nearest",
                                  cmap=IMAGE_CMAP, vmin=-DYNAMIC_RANGE_DB, vmax=0.0,
                                  rasterized=True, gid=f"image:{kind}")
@@ -358,7 +358,7 @@ def channel_parameters_figure(center_hz, time_spread_s, cell_area, chirp_hz_per_
     bands = bands or {}
     fig = _new_figure(7.6, 6.4)
     axes = fig.subplots(3, 1, sharex=True)
-    for s, (ax, (field, values, scale, label)) in enumerate(zip(axes, fields)):
+    for s, (ax, (field, values, scale, label)) in enumerate(zip(axes, fields, strict=True)):
         colour = PALETTE[s]
         band = bands.get(field)
         if band is not None:
@@ -388,8 +388,8 @@ def channel_parameters_figure(center_hz, time_spread_s, cell_area, chirp_hz_per_
         ax.set_ylabel(label)
         if field != "chirp_hz_per_s":  # one key for the line and band, one for the a = 1 line
             handles, names = ax.get_legend_handles_labels()
-            keep = [(h, n) for h, n in zip(handles, names) if s == 0 or n.startswith("Heisenberg")]
-            ax.legend(*zip(*keep), fontsize=8, loc="best", frameon=True, framealpha=0.85,
+            keep = [(h, n) for h, n in zip(handles, names, strict=True) if s == 0 or n.startswith("Heisenberg")]
+            ax.legend(*zip(*keep, strict=True), fontsize=8, loc="best", frameon=True, framealpha=0.85,
                       edgecolor="none")
         _plain(ax)
     if _log_axis_wanted(fc):
@@ -417,7 +417,7 @@ def baselines_figure(entries: Sequence[Mapping], objective_label: str = "objecti
     fig = _new_figure(7.6, 0.55 * len(entries) + 1.6)
     ax = fig.add_subplot()
     rows = np.arange(len(entries))[::-1]
-    for y, entry in zip(rows, entries):
+    for y, entry in zip(rows, entries, strict=True):
         value = float(entry["objective"])
         low = entry.get("low")
         high = entry.get("high")

@@ -25,6 +25,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from search.documents import DiagnosticsDocument, FilterbankDocument
+from search.safe_io import finite_or_none
 from service import palette, plots, verdict
 
 PLOT_NAMES = ("tiling", "examples", "convergence", "channels", "baselines")
@@ -80,11 +82,6 @@ def _column(channels: list[dict], field: str) -> np.ndarray:
     return np.array([float(c[field]) for c in channels])
 
 
-def _sampling_rate(filterbank_json: Mapping) -> float | None:
-    value = filterbank_json.get("sampling_rate_hz")
-    return float(value) if isinstance(value, (int, float)) else None
-
-
 def _criterion(filterbank_json: Mapping, diagnostics: Mapping) -> dict:
     criterion = filterbank_json.get("criterion")
     if criterion is None:
@@ -114,12 +111,6 @@ def _count(value) -> int | None:
         return value
     if isinstance(value, (list, tuple)):
         return len(value)
-    return None
-
-
-def _finite(value) -> float | None:
-    if isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value):
-        return float(value)
     return None
 
 
@@ -178,11 +169,12 @@ def example_indices(per_window: Mapping, available: int) -> list[tuple[str, int,
 
 def _spectrogram_spread(diagnostics: Mapping) -> float:
     parameters = ((diagnostics.get("baselines") or {}).get("spectrogram") or {}).get("parameters")
-    spread = parameters.get("time_spread_s") if isinstance(parameters, Mapping) else None
-    if _finite(spread) is None or spread <= 0:
+    recorded = parameters.get("time_spread_s") if isinstance(parameters, Mapping) else None
+    spread = finite_or_none(recorded)
+    if spread is None or spread <= 0:
         raise ValueError("diagnostics['baselines']['spectrogram']['parameters']['time_spread_s']: "
-                         f"expected a positive number, got {spread!r}")
-    return float(spread)
+                         f"expected a positive number, got {recorded!r}")
+    return spread
 
 
 def _examples(filterbank_json: Mapping, diagnostics: Mapping, windows, fs: float | None) -> Plot:
@@ -211,7 +203,7 @@ def _examples(filterbank_json: Mapping, diagnostics: Mapping, windows, fs: float
         where = ""
         if isinstance(meta, list) and index < len(meta) and isinstance(meta[index], Mapping):
             names = [str(meta[index][k]) for k in ("file", "trace_id") if meta[index].get(k)]
-            offset = _finite(meta[index].get("offset_s"))
+            offset = finite_or_none(meta[index].get("offset_s"))
             where = (f", {' '.join(names)}" if names else "") + \
                 (f" at {offset:.3f} s" if offset is not None else "")
         labels.append(f"{label}: window {index}{where} ({gain:+.2f} bits)")
@@ -237,7 +229,7 @@ def _convergence(diagnostics: Mapping, label: str) -> Plot:
         return Plot("convergence", None, note, note)
     figure = plots.convergence_figure(evaluations, best, stop, objective_label=label)
     stages = list(dict.fromkeys(str(e["stage"]) for e in evaluations))
-    finite = [float(e["objective"]) for e in evaluations if _finite(e.get("objective")) is not None]
+    finite = [v for v in (finite_or_none(e.get("objective")) for e in evaluations) if v is not None]
     best_text = f"; best objective {min(finite):.4g}" if finite else ""
     alt = (f"Convergence: objective of each of {len(evaluations)} evaluations in order, stages "
            f"{', '.join(stages)}, with the best so far per stage as a step line{best_text}; the "
@@ -249,7 +241,7 @@ def _convergence(diagnostics: Mapping, label: str) -> Plot:
 
 
 def _or_nan(value) -> float:
-    number = _finite(value)
+    number = finite_or_none(value)
     return math.nan if number is None else number
 
 
@@ -303,7 +295,7 @@ BASELINE_PARAMETER = {"spectrogram": "time_spread_s", "scalogram": "cycles"}
 
 def _parameter_text(name: str, parameters) -> str:
     key = BASELINE_PARAMETER.get(name)
-    value = _finite(parameters.get(key)) if isinstance(parameters, Mapping) and key else None
+    value = finite_or_none(parameters.get(key)) if isinstance(parameters, Mapping) and key else None
     if value is None:
         return ""
     if key == "time_spread_s":
@@ -315,17 +307,19 @@ def baseline_entries(diagnostics: Mapping) -> list[dict]:
     """Baselines and the result as plot entries (label, objective, low, high, is_result)."""
     entries = []
     for key, value in (diagnostics.get("baselines") or {}).items():
-        if not isinstance(value, Mapping) or _finite(value.get("objective")) is None:
+        objective = finite_or_none(value.get("objective")) if isinstance(value, Mapping) else None
+        if objective is None:
             continue
         label = BASELINE_NAMES.get(key, key.replace("_", " "))
         detail = _parameter_text(key, value.get("parameters"))
         entries.append({"label": f"{label} ({detail})" if detail else label,
-                        "objective": float(value["objective"]), "low": _finite(value.get("low")),
-                        "high": _finite(value.get("high"))})
+                        "objective": objective, "low": finite_or_none(value.get("low")),
+                        "high": finite_or_none(value.get("high"))})
     result = diagnostics.get("result") or {}
-    if _finite(result.get("objective")) is not None:
-        entries.append({"label": "learned filterbank", "objective": float(result["objective"]),
-                        "low": _finite(result.get("low")), "high": _finite(result.get("high")),
+    objective = finite_or_none(result.get("objective"))
+    if objective is not None:
+        entries.append({"label": "learned filterbank", "objective": objective,
+                        "low": finite_or_none(result.get("low")), "high": finite_or_none(result.get("high")),
                         "is_result": True})
     return entries
 
@@ -335,7 +329,7 @@ def _baselines(diagnostics: Mapping, label: str) -> Plot:
     if not entries:
         note = "Baselines are not shown: the diagnostics record no finite baseline objective."
         return Plot("baselines", None, note, note)
-    gain = _finite(diagnostics.get("gain_bits"))
+    gain = finite_or_none(diagnostics.get("gain_bits"))
     figure = plots.baselines_figure(entries, objective_label=label, gain_bits=gain)
 
     def interval(e):
@@ -349,7 +343,7 @@ def _baselines(diagnostics: Mapping, label: str) -> Plot:
     where = "the held-out windows the fit never saw" if held_out else "the same windows"
     caption = f"Points: objective over {where}; bars: intervals where recorded."
     missing = [BASELINE_NAMES.get(k, k) for k, v in (diagnostics.get("baselines") or {}).items()
-               if not (isinstance(v, Mapping) and _finite(v.get("objective")) is not None)]
+               if not (isinstance(v, Mapping) and finite_or_none(v.get("objective")) is not None)]
     if missing:
         caption += f" Not shown, no finite score (an invalid image): {', '.join(missing)}."
     return Plot("baselines", plots.figure_png(figure), alt, caption)
@@ -362,7 +356,7 @@ def _check_windows(filterbank_json: Mapping, windows, sampling_rate_hz) -> None:
     shape = np.shape(windows)
     if len(shape) != 2 or shape[0] == 0 or shape[1] == 0:
         raise ValueError(f"windows: expected a (M, N) array of windows, got shape {shape}")
-    fs = _sampling_rate(filterbank_json)
+    fs = FilterbankDocument(filterbank_json).sampling_rate_hz
     if sampling_rate_hz is not None and fs is not None \
             and not math.isclose(float(sampling_rate_hz), fs, rel_tol=1e-9):
         raise ValueError(f"sampling_rate_hz: the windows are at {float(sampling_rate_hz):g} Hz but "
@@ -481,7 +475,7 @@ def _channel_table(channels: list[dict], diagnostics: Mapping) -> str:
         '<th scope="col">stability interval</th><th scope="col" data-field="equivalent">reading</th>'
     units = ("", *(u for _, u, _, _ in CHANNEL_COLUMNS), "refits on resampled windows", "")
     body = []
-    for index, (channel, entry) in enumerate(zip(channels, boot)):
+    for index, (channel, entry) in enumerate(zip(channels, boot, strict=True)):
         cells = [f"<td>{index}</td>"]
         for _, _, field, text in CHANNEL_COLUMNS:
             exact = f' data-field="{field}" data-value="{float(channel[field])!r}"' if field else ""
@@ -527,7 +521,7 @@ def _rejections(windows_info: Mapping, corpus: Mapping) -> str:
 
 
 def _percent(value) -> str:
-    number = _finite(value)
+    number = finite_or_none(value)
     return "not recorded" if number is None else f"{100 * number:.3g} %"
 
 
@@ -538,7 +532,7 @@ def _onset_text(onset) -> str:
     parts, counts = [], set()
     for name in ("result", "spectrogram"):
         entry = onset.get(name) if isinstance(onset.get(name), Mapping) else {}
-        median, p90 = _finite(entry.get("median_ms")), _finite(entry.get("p90_ms"))
+        median, p90 = finite_or_none(entry.get("median_ms")), finite_or_none(entry.get("p90_ms"))
         shown = [f"{v:.3g}" if v is not None else "?" for v in (median, p90)]
         parts.append(f"{name} {shown[0]} / {shown[1]} ms")
         if _count(entry.get("windows")) is not None:
@@ -548,17 +542,18 @@ def _onset_text(onset) -> str:
 
 
 def _headline(filterbank_json: Mapping, diagnostics: Mapping, channels: list[dict]) -> str:
-    gain = _finite(diagnostics.get("gain_bits"))
+    gain = finite_or_none(diagnostics.get("gain_bits"))
     result = diagnostics.get("result") or {}
-    objective = _finite(result.get("objective"))
-    low, high = _finite(result.get("low")), _finite(result.get("high"))
+    objective = finite_or_none(result.get("objective"))
+    low, high = finite_or_none(result.get("low")), finite_or_none(result.get("high"))
     windows_info = diagnostics.get("windows") or {}
     used, rejected = _count(windows_info.get("used")), _count(windows_info.get("rejected"))
     judged = verdict.judgement(diagnostics)
     held_out = judged is not None and judged.get("in_sample") is not True
     negative = (judged or {}).get("negative_share")
     negative = negative if isinstance(negative, Mapping) else {}
-    ceiling = _finite(negative.get("max_allowed"))
+    ceiling = finite_or_none(negative.get("max_allowed"))
+    fs = FilterbankDocument(filterbank_json).sampling_rate_hz
     cards = [
         ("gain over the best spectrogram" + (", held-out" if held_out else ""),
          f"{gain:+.3f} bits" if gain is not None else "not recorded"),
@@ -573,8 +568,7 @@ def _headline(filterbank_json: Mapping, diagnostics: Mapping, channels: list[dic
         ("windows used / rejected", f"{'?' if used is None else used} / "
                                      f"{'?' if rejected is None else rejected}"),
         ("channels", str(len(channels))),
-        ("sampling rate", f"{_sampling_rate(filterbank_json):g} Hz"
-         if _sampling_rate(filterbank_json) else "not recorded"),
+        ("sampling rate", f"{fs:g} Hz" if fs else "not recorded"),
     ]
     return '<div class="cards">' + "".join(
         f'<div class="card"><div class="label">{_e(k)}</div><div class="value">{_e(v)}</div></div>'
@@ -590,7 +584,7 @@ def _verdict(diagnostics: Mapping) -> str:
     if judged is not None:
         gain = judged.get("gain_bits")
         gain = gain if isinstance(gain, Mapping) else {}
-        level, resamples = _finite(gain.get("level")), _count(gain.get("resamples"))
+        level, resamples = finite_or_none(gain.get("level")), _count(gain.get("resamples"))
         judged_on = "fitted" if judged.get("in_sample") is True else "held-out"
         interval = f"{100 * level:.0f} % interval" if level is not None else "interval"
         if resamples:
@@ -619,7 +613,7 @@ def _judgement_table(diagnostics: Mapping) -> str:
 
     def objective(entry) -> str:
         entry = entry if isinstance(entry, Mapping) else {}
-        value, low, high = (_finite(entry.get(k)) for k in ("objective", "low", "high"))
+        value, low, high = (finite_or_none(entry.get(k)) for k in ("objective", "low", "high"))
         if value is None:
             return "not recorded"
         return f"{value:.4g}" + (f" [{low:.4g}, {high:.4g}]" if low is not None and high is not None
@@ -627,7 +621,7 @@ def _judgement_table(diagnostics: Mapping) -> str:
 
     negative = judged.get("negative_share")
     negative = negative if isinstance(negative, Mapping) else {}
-    per_channel = [_finite(v) for v in negative.get("per_channel") or []]
+    per_channel = [finite_or_none(v) for v in negative.get("per_channel") or []]
     worst = max((v for v in per_channel if v is not None), default=None)
     rows = {
         "judged in-sample": judged.get("in_sample"),
@@ -827,12 +821,11 @@ def _what_was_tuned(filterbank_json: Mapping, diagnostics: Mapping, channels: li
     spacing = f", {settings['spacing']} spacing" if settings.get("spacing") else ""
     parts = [site, f"{len(channels)} channels at {fc.min():.4g}–{fc.max():.4g} Hz{spacing}"]
     used = _count((diagnostics.get("windows") or {}).get("used"))
-    fs = _sampling_rate(filterbank_json)
+    fs = FilterbankDocument(filterbank_json).sampling_rate_hz
     samples = filterbank_json.get("window_samples")
     if used is not None and fs and isinstance(samples, int):
-        windowing = (corpus.get("defaults") or {}).get("windowing") if isinstance(
-            corpus.get("defaults"), Mapping) else None
-        kind = "burst windows" if windowing == "bursts" else "windows"
+        kind = "burst windows" if DiagnosticsDocument(diagnostics).windowing == "bursts" \
+            else "windows"
         parts.append(f"{used} {kind} of {1e3 * samples / fs:.4g} ms at {fs:g} Hz")
     return " · ".join(parts)
 
@@ -908,14 +901,10 @@ def render_report(filterbank_json: Mapping, diagnostics: Mapping, windows=None,
                                               sampling_rate_hz)}
     corpus = diagnostics.get("corpus") or {}
     windows_info = diagnostics.get("windows") or {}
-    nested = filterbank_json.get("provenance")
-    nested = nested if isinstance(nested, Mapping) else {}
-    defaults = corpus.get("defaults") if isinstance(corpus, Mapping) else None
-    # the job's own settings, as the service records them beside the resolved ones
-    job = filterbank_json.get("job")
-    given = next((holder["settings"] for holder in (job, nested)
-                  if isinstance(holder, Mapping) and isinstance(holder.get("settings"), Mapping)),
-                 None)
+    recorded_run = DiagnosticsDocument(diagnostics)
+    # the job's own settings, as the service records them beside the resolved ones (None for
+    # a filterbank from `burstlens tune`: settings then carry no given/default tag)
+    given = FilterbankDocument(filterbank_json).job_settings
     run = {k: diagnostics.get(k) for k in ("stop_reason", "origin", "seed", "elapsed_s", "version")
            if diagnostics.get(k) is not None}
     fallback = diagnostics.get("fallback")
@@ -929,7 +918,9 @@ def render_report(filterbank_json: Mapping, diagnostics: Mapping, windows=None,
 <p class="tuned" id="tuned">{_e(tuned)}</p>
 <p class="aid">An analysis aid, not a safety or warning system: see the cautions below.</p></header>
 {_verdict(diagnostics)}
-<nav><a href="#examples">Example bursts</a><a href="#channels">Channels</a><a href="#tiling">Tiling and convergence</a><a href="#judgement">Judgement in numbers</a><a href="#cautions">Cautions</a><a href="#details">Settings and files</a></nav>
+<nav><a href="#examples">Example bursts</a><a href="#channels">Channels</a>\
+<a href="#tiling">Tiling and convergence</a><a href="#judgement">Judgement in numbers</a>\
+<a href="#cautions">Cautions</a><a href="#details">Settings and files</a></nav>
 <main>
 <section id="examples"><h2>Example bursts: best plain spectrogram against the tuned filterbank</h2>
 {_figure_html(figures["examples"])}</section>
@@ -956,13 +947,14 @@ resampled windows.</p>
 <div><h3>Windows</h3>{_kv_table(_window_counts(windows_info))}
 <h4>Rejected windows by reason</h4>{_rejections(windows_info, corpus)}</div>
 </div>
-{_settings_section(diagnostics.get("settings"), given, defaults)}
+{_settings_section(recorded_run.settings, given, recorded_run.reader_defaults)}
 {_trace_table(corpus)}
 <h3>Recorded in the filterbank file</h3>
 {_setting_cells((*i, None) for i in recorded)}
 </details>
 </main>
-<footer>Generated by burstlens {_e(diagnostics.get("version", ""))}. This page is self-contained: it loads nothing from the network.</footer>"""
+<footer>Generated by burstlens {_e(diagnostics.get("version", ""))}. \
+This page is self-contained: it loads nothing from the network.</footer>"""
     return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
             "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
             "<meta http-equiv=\"Content-Security-Policy\" content=\"default-src 'none'; "

@@ -19,9 +19,12 @@ import sqlite3
 import threading
 import time
 import uuid
+from collections.abc import Iterable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
-from typing import Any, Iterable, Iterator
+from typing import Any
+
+from search.safe_io import finite_or_none
 
 STATES = ("queued", "running", "succeeded", "failed", "cancelled")
 FINAL_STATES = ("succeeded", "failed", "cancelled")
@@ -182,12 +185,14 @@ class Store:
                        self.blob_dir / "results"):
             folder.mkdir(parents=True, exist_ok=True)
         self._local = threading.local()
-        con = self._connection()
+        con = self.connection()
         con.execute("PRAGMA journal_mode=WAL")
         con.executescript(_SCHEMA)
 
     # -- connections ------------------------------------------------------------------------
-    def _connection(self) -> sqlite3.Connection:
+    def connection(self) -> sqlite3.Connection:
+        """This thread's connection (opened on first use; ``synchronous=FULL``, 30 s busy
+        timeout). For reads; writes go through :meth:`transaction`."""
         # one connection per thread and process (a forked child must not reuse its parent's)
         con = getattr(self._local, "con", None)
         if con is None or self._local.pid != os.getpid():
@@ -200,9 +205,9 @@ class Store:
         return con
 
     @contextmanager
-    def _tx(self) -> Iterator[sqlite3.Connection]:
+    def transaction(self) -> Iterator[sqlite3.Connection]:
         """A write transaction taken with BEGIN IMMEDIATE; COMMIT on success, ROLLBACK on error."""
-        con = self._connection()
+        con = self.connection()
         con.execute("BEGIN IMMEDIATE")
         try:
             yield con
@@ -215,7 +220,7 @@ class Store:
             raise
 
     def _query(self, sql: str, args: tuple = ()) -> list[sqlite3.Row]:
-        return self._connection().execute(sql, args).fetchall()
+        return self.connection().execute(sql, args).fetchall()
 
     def close(self) -> None:
         """Close this thread's connection (a later call opens a new one)."""
@@ -228,7 +233,7 @@ class Store:
     def add_token(self, name: str, tenant: str, token_sha256: str) -> str:
         token_id = uuid.uuid4().hex
         try:
-            with self._tx() as con:
+            with self.transaction() as con:
                 con.execute("INSERT INTO tokens (id, name, tenant, token_sha256, created_at) "
                             "VALUES (?, ?, ?, ?, ?)", (token_id, name, tenant, token_sha256, _now()))
         except sqlite3.IntegrityError:
@@ -236,7 +241,7 @@ class Store:
         return token_id
 
     def revoke_token(self, name: str) -> bool:
-        with self._tx() as con:
+        with self.transaction() as con:
             cur = con.execute("UPDATE tokens SET revoked_at = ? WHERE name = ? AND revoked_at IS NULL",
                               (_now(), name))
         return cur.rowcount == 1
@@ -282,7 +287,7 @@ class Store:
         fsync_dir(final.parent)
         total = sum(int(f["bytes"]) for f in files)
         try:
-            with self._tx() as con:
+            with self.transaction() as con:
                 con.execute("INSERT INTO corpora (id, tenant, created_at, files, summary, bytes, "
                             "source_hash) VALUES (?, ?, ?, ?, ?, ?, ?)",
                             (corpus_id, tenant, _now(), json.dumps(files), json.dumps(summary),
@@ -307,7 +312,7 @@ class Store:
         return [folder / f["stored"] for f in corpus["files"]]
 
     def delete_corpus(self, corpus_id: str, tenant: str) -> None:
-        with self._tx() as con:
+        with self.transaction() as con:
             row = con.execute("SELECT tenant FROM corpora WHERE id = ?", (corpus_id,)).fetchone()
             if row is None or row["tenant"] != tenant:
                 raise NotFound(f"no corpus {corpus_id!r}")
@@ -337,7 +342,7 @@ class Store:
         Same tenant + idempotency key + request hash → the existing job and ``created=False``;
         same key with another request → :class:`IdempotencyMismatch`.
         """
-        with self._tx() as con:
+        with self.transaction() as con:
             if idempotency_key is not None:
                 row = con.execute("SELECT * FROM jobs WHERE tenant = ? AND idempotency_key = ?",
                                   (tenant, idempotency_key)).fetchone()
@@ -381,7 +386,7 @@ class Store:
 
     def cancel_job(self, job_id: str, tenant: str) -> dict[str, Any]:
         """Cancel a queued job at once; flag a running one (its worker stops at the next heartbeat)."""
-        with self._tx() as con:
+        with self.transaction() as con:
             row = con.execute("SELECT * FROM jobs WHERE id = ?", (job_id,)).fetchone()
             if row is None or row["tenant"] != tenant:
                 raise NotFound(f"no job {job_id!r}")
@@ -426,7 +431,7 @@ class Store:
         A reclaimed job past ``max_attempts`` is failed (keeping its last error) instead, and a
         reclaimed job whose cancel was requested is cancelled.
         """
-        with self._tx() as con:
+        with self.transaction() as con:
             while True:
                 now = _now()
                 row = con.execute(
@@ -465,15 +470,22 @@ class Store:
             raise LeaseLost(f"job {job['id']} attempt {job['attempts']} is no longer owned by "
                             f"{job['owner']}")
 
+    def renew_lease(self, con: sqlite3.Connection, job: dict, lease_s: float) -> None:
+        """Inside a write transaction the caller holds (:meth:`transaction`): push the lease of
+        the job this owner and attempt hold to ``lease_s`` from now. Raises LeaseLost.
+        :meth:`heartbeat` is this plus the cancel flag; the fault experiments
+        (reliability/faulty_worker.py) call it to stop a heartbeat before its COMMIT."""
+        self._owned_update(con, job, "lease_until = ?", (_now() + lease_s,))
+
     def heartbeat(self, job: dict, lease_s: float) -> bool:
         """Renew the lease; returns True when a cancel was requested. Raises LeaseLost."""
-        with self._tx() as con:
-            self._owned_update(con, job, "lease_until = ?", (_now() + lease_s,))
+        with self.transaction() as con:
+            self.renew_lease(con, job, lease_s)
             row = con.execute("SELECT cancel_requested FROM jobs WHERE id = ?", (job["id"],)).fetchone()
         return bool(row["cancel_requested"])
 
     def record_progress(self, job: dict, progress: dict, new_evaluations: int) -> None:
-        with self._tx() as con:
+        with self.transaction() as con:
             self._owned_update(con, job, "progress = ?", (json.dumps(progress),))
             con.execute("INSERT INTO job_rounds (job_id, attempt, at, stage, round, evaluations, "
                         "new_evaluations, best_objective) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
@@ -486,7 +498,7 @@ class Store:
 
     def record_checkpoint(self, job: dict, path: Path, sha256: str, round_: int | None) -> str | None:
         """Point the job at a complete checkpoint blob; returns the previous blob's path."""
-        with self._tx() as con:
+        with self.transaction() as con:
             old = con.execute("SELECT checkpoint_path FROM jobs WHERE id = ?", (job["id"],)).fetchone()
             self._owned_update(con, job, "checkpoint_path = ?, checkpoint_sha256 = ?, "
                                "checkpoint_round = ?", (str(path), sha256, round_))
@@ -494,7 +506,7 @@ class Store:
 
     def drop_checkpoint(self, job: dict) -> None:
         """Forget a checkpoint found corrupt, so the next attempt starts clean."""
-        with self._tx() as con:
+        with self.transaction() as con:
             self._owned_update(con, job, "checkpoint_path = NULL, checkpoint_sha256 = NULL, "
                                "checkpoint_round = NULL", ())
 
@@ -503,7 +515,7 @@ class Store:
                summary: dict | None = None, evaluations: list[dict] | None = None) -> None:
         """Move an owned running job to a final state; the evaluation audit log goes in with it."""
         assert state in FINAL_STATES, state
-        with self._tx() as con:
+        with self.transaction() as con:
             now = _now()
             self._owned_update(con, job, "state = ?, error = ?, stop_reason = ?, result_dir = ?, "
                                "summary = ?, finished_at = ?, owner = NULL, lease_until = NULL",
@@ -515,18 +527,18 @@ class Store:
                     "INSERT INTO evaluations (job_id, seq, stage, round, params, objective, seconds) "
                     "VALUES (?, ?, ?, ?, ?, ?, ?)",
                     [(job["id"], i, e.get("stage"), e.get("round"), json.dumps(e.get("params")),
-                      _finite_or_none(e.get("objective")), e.get("seconds"))
+                      finite_or_none(e.get("objective")), e.get("seconds"))
                      for i, e in enumerate(evaluations)])
 
     def release(self, job: dict) -> None:
         """Give an owned job back to the queue without using up an attempt (graceful stop)."""
-        with self._tx() as con:
+        with self.transaction() as con:
             self._owned_update(con, job, "state = 'queued', owner = NULL, lease_until = NULL, "
                                "attempts = attempts - 1", ())
 
     def retry_or_fail(self, job: dict, error: str, max_attempts: int) -> str:
         """After an error: queue the job again, or fail it once ``max_attempts`` are used."""
-        with self._tx() as con:
+        with self.transaction() as con:
             if job["attempts"] >= max_attempts:
                 self._owned_update(con, job, "state = 'failed', error = ?, finished_at = ?, "
                                    "owner = NULL, lease_until = NULL",
@@ -535,11 +547,3 @@ class Store:
             self._owned_update(con, job, "state = 'queued', error = ?, owner = NULL, "
                                "lease_until = NULL", (error,))
             return "queued"
-
-
-def _finite_or_none(value: Any) -> float | None:
-    try:
-        value = float(value)
-    except (TypeError, ValueError):
-        return None
-    return value if value == value and abs(value) != float("inf") else None

@@ -9,6 +9,7 @@ from __future__ import annotations
 import errno
 import hashlib
 import re
+from contextlib import ExitStack
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -76,74 +77,76 @@ async def receive_multipart(request: Request, folder: Path, *, file_fields: set[
     headers: dict[bytes, bytes] = {}
     part = None  # current part: dict with kind, fh / buffer
     count = 0
-    try:
-        async for chunk in request.stream():
-            try:
-                parser.write(chunk)
-            except Exception as exc:  # python-multipart raises its own parse errors
-                raise HTTPException(status_code=400, detail=f"malformed multipart body: {exc}")
-            for kind, data in events:
-                if kind == "part_begin":
-                    headers, header_field, header_value = {}, b"", b""
-                elif kind == "header_field":
-                    header_field += data
-                elif kind == "header_value":
-                    header_value += data
-                elif kind == "header_end":
-                    headers[header_field.lower()] = header_value
-                    header_field, header_value = b"", b""
-                elif kind == "headers_finished":
-                    _, disp = parse_options_header(headers.get(b"content-disposition", b""))
-                    name = disp.get(b"name", b"").decode("utf-8", "replace")
-                    filename = disp.get(b"filename")
-                    if filename is not None:
-                        if name not in file_fields:
-                            raise HTTPException(status_code=422, detail=f"unexpected file field "
-                                                f"{name!r}; expected {sorted(file_fields)}")
-                        count += 1
-                        if count > max_files:
-                            raise HTTPException(status_code=413, detail=f"more than {max_files} "
-                                                "files in one request (the server's limit)")
-                        original = display_name(filename.decode("utf-8", "replace"))
-                        stored = f"{count - 1:04d}{safe_suffix(original)}"
-                        part = {"file": True, "field": name, "name": original, "stored": stored,
-                                "fh": open(folder / stored, "wb"), "bytes": 0,
-                                "sha": hashlib.sha256()}
-                    else:
-                        if name not in text_fields:
-                            raise HTTPException(status_code=422, detail=f"unexpected form field "
-                                                f"{name!r}; expected {sorted(text_fields | file_fields)}")
-                        part = {"file": False, "field": name, "buf": bytearray()}
-                elif kind == "data" and part is not None:
-                    if part["file"]:
-                        part["fh"].write(data)
-                        part["bytes"] += len(data)
-                        part["sha"].update(data)
-                    else:
-                        part["buf"] += data
-                        if len(part["buf"]) > MAX_FIELD_BYTES:
-                            raise HTTPException(status_code=413, detail=f"form field "
-                                                f"{part['field']!r} larger than {MAX_FIELD_BYTES} bytes")
-                elif kind == "part_end" and part is not None:
-                    if part["file"]:
-                        part["fh"].close()
-                        upload.files.setdefault(part["field"], []).append(
-                            {"name": part["name"], "stored": part["stored"],
-                             "bytes": part["bytes"], "sha256": part["sha"].hexdigest()})
-                    else:
-                        upload.fields[part["field"]] = part["buf"].decode("utf-8", "replace")
-                    part = None
-            events.clear()
-        parser.finalize()
-        if part is not None:
-            raise HTTPException(status_code=400, detail="truncated multipart body (a part never ended)")
-    except ClientDisconnect:
-        raise HTTPException(status_code=400, detail="the client went away during the upload")
-    except OSError as exc:
-        if exc.errno in (errno.ENOSPC, errno.EDQUOT):
-            raise _insufficient_storage() from None
-        raise
-    finally:
-        if part is not None and part.get("file"):
-            part["fh"].close()
+    # the stack closes the file being written if the body fails midway (a part that ended
+    # closed its own file already)
+    with ExitStack() as files:
+        try:
+            async for chunk in request.stream():
+                try:
+                    parser.write(chunk)
+                except Exception as exc:  # python-multipart raises its own parse errors
+                    raise HTTPException(status_code=400,
+                                        detail=f"malformed multipart body: {exc}") from None
+                for kind, data in events:
+                    if kind == "part_begin":
+                        headers, header_field, header_value = {}, b"", b""
+                    elif kind == "header_field":
+                        header_field += data
+                    elif kind == "header_value":
+                        header_value += data
+                    elif kind == "header_end":
+                        headers[header_field.lower()] = header_value
+                        header_field, header_value = b"", b""
+                    elif kind == "headers_finished":
+                        _, disp = parse_options_header(headers.get(b"content-disposition", b""))
+                        name = disp.get(b"name", b"").decode("utf-8", "replace")
+                        filename = disp.get(b"filename")
+                        if filename is not None:
+                            if name not in file_fields:
+                                raise HTTPException(status_code=422, detail=f"unexpected file field "
+                                                    f"{name!r}; expected {sorted(file_fields)}")
+                            count += 1
+                            if count > max_files:
+                                raise HTTPException(status_code=413, detail=f"more than {max_files} "
+                                                    "files in one request (the server's limit)")
+                            original = display_name(filename.decode("utf-8", "replace"))
+                            stored = f"{count - 1:04d}{safe_suffix(original)}"
+                            part = {"file": True, "field": name, "name": original, "stored": stored,
+                                    "fh": files.enter_context(open(folder / stored, "wb")),
+                                    "bytes": 0, "sha": hashlib.sha256()}
+                        else:
+                            if name not in text_fields:
+                                raise HTTPException(status_code=422, detail=f"unexpected form field "
+                                                    f"{name!r}; expected {sorted(text_fields | file_fields)}")
+                            part = {"file": False, "field": name, "buf": bytearray()}
+                    elif kind == "data" and part is not None:
+                        if part["file"]:
+                            part["fh"].write(data)
+                            part["bytes"] += len(data)
+                            part["sha"].update(data)
+                        else:
+                            part["buf"] += data
+                            if len(part["buf"]) > MAX_FIELD_BYTES:
+                                raise HTTPException(status_code=413, detail=f"form field "
+                                                    f"{part['field']!r} larger than {MAX_FIELD_BYTES} bytes")
+                    elif kind == "part_end" and part is not None:
+                        if part["file"]:
+                            part["fh"].close()
+                            upload.files.setdefault(part["field"], []).append(
+                                {"name": part["name"], "stored": part["stored"],
+                                 "bytes": part["bytes"], "sha256": part["sha"].hexdigest()})
+                        else:
+                            upload.fields[part["field"]] = part["buf"].decode("utf-8", "replace")
+                        part = None
+                events.clear()
+            parser.finalize()
+            if part is not None:
+                raise HTTPException(status_code=400, detail="truncated multipart body (a part never ended)")
+        except ClientDisconnect:
+            raise HTTPException(status_code=400,
+                                detail="the client went away during the upload") from None
+        except OSError as exc:
+            if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+                raise _insufficient_storage() from None
+            raise
     return upload

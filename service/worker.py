@@ -12,6 +12,12 @@ One worker runs one job at a time:
 
 SIGTERM (or the parent ``serve`` going away): stop claiming, let the current round end with its
 checkpoint, release the lease without using up an attempt, exit 0.
+
+Hooks for tests and the fault experiments (reliability/): ``Worker(on_progress=f)`` calls
+``f(run, info)`` as each progress report of an attempt (a :class:`JobRun`) arrives, before it is
+stored; ``Worker(on_checkpoint=f)`` calls ``f(run, seq)`` as the attempt's ``seq``-th
+checkpoint (from 1) starts, before its blob is written. A hook that calls
+``worker.request_stop()`` there makes that checkpoint the attempt's last (the SIGTERM path).
 """
 from __future__ import annotations
 
@@ -26,10 +32,12 @@ import socket
 import sqlite3
 import threading
 import uuid
+from collections.abc import Callable
 from contextlib import nullcontext
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
+from search.documents import DiagnosticsDocument, FilterbankDocument, JobRecord
 from service.config import ServiceSettings
 from service.corpus_check import CorpusRejected, CorpusTooLarge, enforce_limits, jsonable, load_corpus
 from service.store import LeaseLost, NotFound, Store, write_blob
@@ -96,12 +104,15 @@ class Worker:
 
     def __init__(self, settings: ServiceSettings, *, owner: str | None = None,
                  search_factory: Callable[..., Any] = default_search_factory,
-                 parent_pid: int | None = None):
+                 parent_pid: int | None = None,
+                 on_progress: Callable[[JobRun, dict], None] | None = None,
+                 on_checkpoint: Callable[[JobRun, int], None] | None = None):
         self.settings = settings
         self.store = Store(settings.data_dir)
         self.owner = owner or f"{socket.gethostname()}:{os.getpid()}:{uuid.uuid4().hex[:6]}"
         self.search_factory = search_factory
         self.parent_pid = parent_pid
+        self.on_progress, self.on_checkpoint = on_progress, on_checkpoint
         self.stopping = threading.Event()
         self._dask_client = None
 
@@ -151,7 +162,7 @@ class Worker:
         log.info("job %s: attempt %d by %s", job["id"], job["attempts"], self.owner)
         beat = Heartbeat(self.store, job, self.settings.lease_s, self.parent_alive, self.request_stop)
         beat.start()
-        run = _JobRun(self, job, beat)
+        run = JobRun(self, job, beat)
         try:
             outcome = run.execute()
         finally:
@@ -170,8 +181,12 @@ class Worker:
         return evaluations_on(self._dask_client)
 
 
-class _JobRun:
-    """State of one attempt at one job (callbacks handed to ``fit``)."""
+class JobRun:
+    """One attempt at one job: the callbacks handed to ``fit`` and the attempt's state.
+
+    ``job`` is the claimed job row, ``beat`` its :class:`Heartbeat` (``beat.cancelled``: a
+    cancel reached this attempt), ``worker`` the :class:`Worker` running it.
+    """
 
     def __init__(self, worker: Worker, job: dict, beat: Heartbeat):
         self.worker, self.store, self.job, self.beat = worker, worker.store, job, beat
@@ -190,6 +205,8 @@ class _JobRun:
         return self.beat.cancelled or self.beat.lost
 
     def progress(self, info: dict) -> None:
+        if self.worker.on_progress is not None:
+            self.worker.on_progress(self, info)
         if self.beat.lost:
             raise LeaseLost(f"job {self.job['id']}: lease lost")
         self.progressed = True
@@ -208,10 +225,12 @@ class _JobRun:
         self.store.record_progress(self.job, info, new)
 
     def checkpoint(self, state: Any) -> None:
+        self.seq += 1
+        if self.worker.on_checkpoint is not None:
+            self.worker.on_checkpoint(self, self.seq)
         if self.beat.lost:
             raise LeaseLost(f"job {self.job['id']}: lease lost")
         data = pickle.dumps(state, protocol=pickle.HIGHEST_PROTOCOL)
-        self.seq += 1
         path = self.store.checkpoint_path(self.job, self.seq)
         write_blob(path, data)
         try:
@@ -271,7 +290,7 @@ class _JobRun:
                 search_options["n_jobs"] = -1  # every Dask worker core
         else:
             search_options["n_jobs"] = min(int(search_options.get("n_jobs", 1)), os.cpu_count() or 1)
-        rename = {str(p): f["name"] for p, f in zip(paths, record["files"])}
+        rename = {str(p): f["name"] for p, f in zip(paths, record["files"], strict=True)}
         return corpus, search_options, rename
 
     def execute(self) -> str:
@@ -361,11 +380,12 @@ class _JobRun:
             return text
 
         try:
-            diagnostics = jsonable(search.diagnostics_, names)
-            filterbank_json = jsonable(filterbank_document(search, job), names)
+            diagnostics = DiagnosticsDocument(jsonable(search.diagnostics_, names))
+            made = FilterbankDocument.of(search.filterbank_, JobRecord(job["id"], job["settings"]))
+            filterbank = FilterbankDocument(jsonable(made.data, names))
             folder = self.store.blob_dir / "results" / job["id"] / f"attempt-{job['attempts']}"
-            write_blob(folder / "filterbank.json", _dumps(filterbank_json))
-            write_blob(folder / "diagnostics.json", _dumps(diagnostics))
+            write_blob(folder / "filterbank.json", filterbank.encode())
+            write_blob(folder / "diagnostics.json", diagnostics.encode())
         except Exception as exc:
             log.exception("job %s: writing the results failed", job["id"])
             try:
@@ -373,21 +393,20 @@ class _JobRun:
                                                 self.settings.max_attempts)
             except LeaseLost:
                 return "lost"
-        self._write_report(folder, filterbank_json, diagnostics, corpus)
-        summary = {"objective": (diagnostics.get("result") or {}).get("objective"),
-                   "gain_bits": diagnostics.get("gain_bits"),
-                   "stop_reason": diagnostics.get("stop_reason"),
-                   "channels": len(filterbank_json.get("channels", []))}
+        self._write_report(folder, filterbank, diagnostics, corpus)
+        summary = {"objective": diagnostics.objective, "gain_bits": diagnostics.gain_bits,
+                   "stop_reason": diagnostics.stop_reason, "channels": len(filterbank.channels)}
         try:
-            self.store.finish(job, "succeeded", stop_reason=diagnostics.get("stop_reason"),
+            self.store.finish(job, "succeeded", stop_reason=diagnostics.stop_reason,
                               result_dir=str(folder), summary=summary,
-                              evaluations=diagnostics.get("evaluations") or [])
+                              evaluations=diagnostics.evaluations)
         except LeaseLost:
             return "lost"
         self._cleanup_checkpoints()
         return "succeeded"
 
-    def _write_report(self, folder: Path, filterbank_json: dict, diagnostics: dict, corpus) -> None:
+    def _write_report(self, folder: Path, filterbank: FilterbankDocument,
+                      diagnostics: DiagnosticsDocument, corpus) -> None:
         """Keep a window sample for the plots and cache report.html; a failure here never fails
         the job (GET /report renders it later)."""
         import numpy as np
@@ -401,23 +420,11 @@ class _JobRun:
             write_blob(folder / "windows.npy", buffer.getvalue())
             from service.report import render_report
 
-            html = render_report(filterbank_json, diagnostics, windows, corpus.sampling_rate_hz)
+            html = render_report(filterbank.data, diagnostics.data, windows,
+                                 corpus.sampling_rate_hz)
             write_blob(folder / "report.html", html.encode("utf-8"))
         except Exception:
             log.exception("job %s: report rendering failed", self.job["id"])
-
-
-def filterbank_document(search, job: dict) -> dict:
-    """The filterbank JSON of DESIGN §8. The engine records window samples, criterion,
-    objective and provenance (corpus hash, settings, version); the service adds which job made
-    it and the settings as submitted."""
-    return search.filterbank_.to_json(job={"id": job["id"], "settings": job["settings"]})
-
-
-def _dumps(obj: Any) -> bytes:
-    import json
-
-    return (json.dumps(obj, indent=1, allow_nan=False) + "\n").encode("utf-8")
 
 
 def run_worker(settings: ServiceSettings, parent_pid: int | None = None) -> int:

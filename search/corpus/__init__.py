@@ -3,9 +3,12 @@
 ``read_corpus(paths, **options) -> Corpus``; every failure is a ``CorpusError`` naming the file
 (or option) and the cause. ``TRIGGERS`` are the accepted STA/LTA kinds (``trigger=``),
 ``TRIGGER_KINDS`` says what each averages, ``DEFAULT_TRIGGER`` is the one used when none is given.
+``folder_files`` and ``is_waveform_file`` say which files of a folder the reader reads (the one
+definition, also used by ``burstlens submit`` to choose what to upload).
 """
-from .ingest import DEFAULT_TRIGGER, TRIGGER_KINDS, TRIGGERS, read_corpus
+from .ingest import (DEFAULT_TRIGGER, TRIGGER_KINDS, TRIGGERS, folder_files, is_waveform_file,
+                     read_corpus)
 from .model import REJECTION_REASONS, Corpus, CorpusError
 
 __all__ = ["read_corpus", "Corpus", "CorpusError", "REJECTION_REASONS", "TRIGGERS", "TRIGGER_KINDS",
-           "DEFAULT_TRIGGER"]
+           "DEFAULT_TRIGGER", "folder_files", "is_waveform_file"]

@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import hashlib
 import os
-from datetime import datetime, timezone
+from datetime import datetime, UTC
 
 import numpy as np
 
@@ -141,7 +141,8 @@ def read_corpus(
         "bandpass_hz": list(opts["bandpass_hz"]) if opts["bandpass_hz"] is not None else None,
         "bandpass_order": preprocess.BANDPASS_ORDER if sos is not None else None,
         "detrend": "linear",
-        "taper": f"cosine, {preprocess.TAPER_FRACTION:g} of each segment per side, at most {preprocess.TAPER_MAX_S:g} s",
+        "taper": f"cosine, {preprocess.TAPER_FRACTION:g} of each segment per side, "
+                 f"at most {preprocess.TAPER_MAX_S:g} s",
         "resampling": "polyphase (scipy.signal.resample_poly)",
         "clip_run_samples": CLIP_RUN,
         "max_windows": opts["max_windows"],
@@ -176,7 +177,8 @@ def _validate_options(**o) -> dict:
                 raise CorpusError(f"{name}={value!r}: must be a positive number")
             o[name] = float(value)
     o["max_windows"] = DEFAULT_MAX_WINDOWS if o["max_windows"] is None else o["max_windows"]
-    if not isinstance(o["max_windows"], (int, np.integer)) or isinstance(o["max_windows"], bool) or o["max_windows"] < 1:
+    if (not isinstance(o["max_windows"], (int, np.integer)) or isinstance(o["max_windows"], bool)
+            or o["max_windows"] < 1):
         raise CorpusError(f"max_windows={o['max_windows']!r}: must be a positive integer")
     o["seed"] = DEFAULT_SEED if o["seed"] is None else o["seed"]
     if not isinstance(o["seed"], (int, np.integer)) or isinstance(o["seed"], bool):
@@ -213,12 +215,8 @@ def expand_paths(paths) -> tuple[list[tuple[str, str]], list[dict]]:
     found: dict[str, tuple[str, bool]] = {}
     for p in paths:
         if os.path.isdir(p):
-            for root, dirs, names in os.walk(p):
-                dirs[:] = sorted(d for d in dirs if not d.startswith("."))
-                for name in sorted(names):
-                    if not name.startswith("."):
-                        full = os.path.join(root, name)
-                        found.setdefault(os.path.abspath(full), (full, False))
+            for full in folder_files(p):
+                found.setdefault(os.path.abspath(full), (full, False))
         elif os.path.isfile(p):
             found[os.path.abspath(p)] = (p, True)
         else:
@@ -230,9 +228,7 @@ def expand_paths(paths) -> tuple[list[tuple[str, str]], list[dict]]:
             head, size = read_head(path)
         except OSError as exc:
             raise CorpusError(f"{path}: cannot be read ({exc.strerror or exc})") from None
-        fmt = detect_format(head, size)
-        if fmt == "CSV" and not explicit and not _looks_numeric(head):
-            fmt = None
+        fmt = detect_format(head, size) if explicit else _folder_format(head, size)
         if fmt is None:
             if explicit:
                 if head[:3] == b"MS\x03":
@@ -245,6 +241,30 @@ def expand_paths(paths) -> tuple[list[tuple[str, str]], list[dict]]:
     if not files:
         raise CorpusError(f"{', '.join(paths)}: no waveform files found")
     return files, skipped
+
+
+def folder_files(folder) -> list[str]:
+    """Every file under ``folder`` the reader looks at: sub-folders walked recursively, names in
+    sorted order, hidden files and folders (names starting with ".") ignored."""
+    files = []
+    for root, dirs, names in os.walk(folder):
+        dirs[:] = sorted(d for d in dirs if not d.startswith("."))
+        files += [os.path.join(root, name) for name in sorted(names) if not name.startswith(".")]
+    return files
+
+
+def is_waveform_file(path) -> bool:
+    """Whether the reader reads ``path`` when it meets it inside a folder: its first bytes carry
+    a known waveform format (the name plays no part), and text only if it holds numbers. A
+    README, JSON metadata or an empty file gives False; ``OSError`` if it cannot be read."""
+    head, size = read_head(os.fspath(path))
+    return _folder_format(head, size) is not None
+
+
+def _folder_format(head: bytes, size: int) -> str | None:
+    """The format of a file met inside a folder, where text counts as CSV only if numeric."""
+    fmt = detect_format(head, size)
+    return None if fmt == "CSV" and not _looks_numeric(head) else fmt
 
 
 def _looks_numeric(head: bytes) -> bool:
@@ -302,7 +322,8 @@ def _segments(raw: list[RawTrace], mode: str, rejections: list[dict]) -> list[Se
 
 
 def _rejection(file, trace_id, offset_s, reason, detail) -> dict:
-    return {"file": file, "trace_id": trace_id, "offset_s": round(float(offset_s), 6), "reason": reason, "detail": detail}
+    return {"file": file, "trace_id": trace_id, "offset_s": round(float(offset_s), 6), "reason": reason,
+            "detail": detail}
 
 
 # --- window placement ---------------------------------------------------------------------------
@@ -414,14 +435,15 @@ def _scan_windows(segments, files, opts, defaults, rejections):
                             "q75": float(np.quantile(durations, 0.75)), "max": float(durations.max())},
     )
     placed = []
-    for seg, o in zip(segments, onsets):
-        starts, counts, short = windowing.place_burst_windows(o[:, 0], seg.data.size, n, int(round(pre * n)), seg.taper_samples)
+    for seg, o in zip(segments, onsets, strict=True):
+        starts, counts, short = windowing.place_burst_windows(o[:, 0], seg.data.size, n, int(round(pre * n)),
+                                                              seg.taper_samples)
         if short:
             placed.append((seg, -1, n, len(short), None))
         # the first onset at or after the start: a window clipped at a segment end does not hold
         # its trigger at pre·n, and an earlier trigger merged into the previous window may fall in it
         first = o[np.searchsorted(o[:, 0], starts), 0] if starts else []
-        placed.extend((seg, s, n, c, int(f) - s) for s, c, f in zip(starts, counts, first))
+        placed.extend((seg, s, n, c, int(f) - s) for s, c, f in zip(starts, counts, first, strict=True))
     return placed
 
 
@@ -437,7 +459,7 @@ def _given_window(window_s: float, fs: float) -> int:
 def _iso(ts: float | None) -> str | None:
     if ts is None:
         return None
-    return datetime.fromtimestamp(ts, tz=timezone.utc).isoformat(timespec="microseconds").replace("+00:00", "Z")
+    return datetime.fromtimestamp(ts, tz=UTC).isoformat(timespec="microseconds").replace("+00:00", "Z")
 
 
 def _assemble(placed, segments, files, skipped, source_hash, fs, opts, defaults, rejections) -> Corpus:

@@ -93,7 +93,7 @@ def finite_runs(data: np.ndarray) -> list[tuple[int, int]]:
     edges = np.diff(np.concatenate(([0], finite.view(np.int8), [0])))
     starts = np.flatnonzero(edges == 1)
     stops = np.flatnonzero(edges == -1)
-    return list(zip(starts.tolist(), stops.tolist()))
+    return list(zip(starts.tolist(), stops.tolist(), strict=True))
 
 
 def choose_rate(rates: list[float], requested: float | None) -> tuple[float, str]:

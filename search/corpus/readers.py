@@ -127,7 +127,8 @@ def read_waveform_file(path: str, fmt: str, *, csv_sampling_rate_hz: float | Non
     except CorpusError:
         raise
     except MemoryError:
-        raise CorpusError(f"{path}: not a readable {fmt} file (its header declares more data than fits in memory)") from None
+        raise CorpusError(f"{path}: not a readable {fmt} file (its header declares more data than fits "
+                          "in memory)") from None
     except Exception as exc:  # any library failure on a malformed file is the file's fault
         raise CorpusError(f"{path}: not a readable {fmt} file ({type(exc).__name__}: {exc})") from None
     if not traces:
@@ -210,13 +211,15 @@ def _read_npz(path, rate):
     if "sampling_rate_hz" in arrays:
         value = arrays["sampling_rate_hz"]
         if value.size != 1 or value.dtype.kind not in "iuf":
-            raise CorpusError(f"{path}: 'sampling_rate_hz' must be one number, got {value.dtype} of shape {value.shape}")
+            raise CorpusError(f"{path}: 'sampling_rate_hz' must be one number, got {value.dtype} of shape "
+                              f"{value.shape}")
         file_rate = float(value.reshape(()))
     ids = None
     if "trace_ids" in arrays:
         ids = arrays["trace_ids"]
         if ids.dtype.kind != "U" or ids.shape != (rows.shape[0],):
-            raise CorpusError(f"{path}: 'trace_ids' must be {rows.shape[0]} strings, got {ids.dtype} of shape {ids.shape}")
+            raise CorpusError(f"{path}: 'trace_ids' must be {rows.shape[0]} strings, got {ids.dtype} of shape "
+                              f"{ids.shape}")
         ids = [str(s) for s in ids]
     start = None
     if "start" in arrays:

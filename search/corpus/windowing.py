@@ -122,7 +122,7 @@ def dominant_frequency(segments: list[np.ndarray], fs: float, nfft: int = 256) -
     total = energy.size
     step = max(1, total // 4096)
     loud_frames, quiet_frames, offset = [], [], 0
-    for f, e in zip(frames, energies):
+    for f, e in zip(frames, energies, strict=True):
         loud_frames.append(f[e > loud_cut])
         first = (-offset) % step
         quiet_frames.append(f[first::step])
@@ -156,7 +156,8 @@ def place_burst_windows(onsets: np.ndarray, n: int, window: int, pre: int, guard
 
     Each window starts ``pre`` samples before its first trigger; a trigger that falls inside the
     current window is merged into it. Windows are moved inward to keep ``guard`` samples (the taper)
-    from the segment ends (onsets inside the guards are the caller's to drop). Returns (starts, merged_counts, too_short_onsets).
+    from the segment ends (onsets inside the guards are the caller's to drop). Returns (starts,
+    merged_counts, too_short_onsets).
     """
     starts, counts, short = [], [], []
     lo, hi = guard, n - guard - window

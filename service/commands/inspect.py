@@ -7,13 +7,13 @@ import sys
 
 
 def register(subparsers) -> None:
-    from service.commands.options import add_corpus_options
+    from service.commands.options import add_corpus_options, add_paths
 
     p = subparsers.add_parser(
         "inspect", help="show what the corpus holds: traces, rates, windows found, rejections",
         description="Read waveform files or folders as the tuner would, and show the traces, the "
                     "windows found per trace, every default chosen, and the rejected windows with reasons.")
-    p.add_argument("paths", nargs="+", metavar="PATH", help="waveform files or folders")
+    add_paths(p)
     add_corpus_options(p)
     p.add_argument("--json", action="store_true", help="print the corpus summary as JSON")
     p.add_argument("--all", action="store_true", help="list every window and rejection, not the first 20")
@@ -21,11 +21,11 @@ def register(subparsers) -> None:
 
 
 def run(args) -> int:
-    from search.settings import check_corpus_options, read_corpus_as_given
-    from service.commands.options import settings_from_args
+    from search.settings import read_corpus_as_given
+    from service.commands.options import corpus_options_from_args
 
     try:
-        corpus = read_corpus_as_given(args.paths, check_corpus_options(settings_from_args(args)))
+        corpus = read_corpus_as_given(args.paths, corpus_options_from_args(args))
     except ValueError as exc:  # a bad option, or a CorpusError (a ValueError) naming the file
         print(f"burstlens inspect: {exc}", file=sys.stderr)
         return 2

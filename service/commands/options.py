@@ -1,16 +1,23 @@
-"""The flags shared by ``inspect``, ``tune`` and ``submit`` (DESIGN §9), declared once.
+"""The arguments shared by ``inspect``, ``tune`` and ``submit`` (DESIGN §9), declared once, and
+the service settings that ``serve``, ``worker`` and ``tokens`` share (:func:`service_settings_from`).
 
-The corpus flags come from the one definition of the corpus options,
-``search.settings.CORPUS_OPTIONS`` (name, kind, default, help, check); the job settings flags
-are the search settings. :func:`settings_from_args` turns the flags given into the JSON settings
-of ``POST /v1/jobs``, which ``search.settings`` checks for every entry point alike.
+Each command adds the groups it takes (:func:`add_paths`, :func:`add_corpus_options`,
+:func:`add_job_settings`) and turns the parsed flags into settings here: :func:`settings_from_args`
+gives the JSON settings of ``POST /v1/jobs`` (corpus options included), which
+``search.settings`` checks for every entry point alike; :func:`corpus_options_from_args` gives
+the checked ``read_corpus`` options alone. The corpus flags come from the one definition of the
+corpus options, ``search.settings.CORPUS_OPTIONS`` (name, kind, default, help, check); the job
+settings flags are :data:`JOB_FLAGS`, with their choices and defaults read from
+``search.settings``.
 """
 from __future__ import annotations
 
 import argparse
 from collections.abc import Sequence
+from dataclasses import dataclass, field
 
-from search.settings import CORPUS_OPTIONS
+from search.settings import (CORPUS_OPTIONS, CRITERIA, CRITERION_DEFAULTS, MAX_HELD_OUT,
+                             SETTINGS_DEFAULTS, SPACINGS, check_corpus_options)
 
 
 class _NotGiven:
@@ -44,6 +51,11 @@ _KIND_ARGS = {"positive": {"type": float}, "share": {"type": float}, "integer": 
               "band": {"type": float, "nargs": 2, "metavar": ("LO", "HI")}}
 
 
+def add_paths(parser: argparse.ArgumentParser) -> None:
+    """The waveform files or folders to read (one or more)."""
+    parser.add_argument("paths", nargs="+", metavar="PATH", help="waveform files or folders")
+
+
 def add_corpus_options(parser: argparse.ArgumentParser) -> None:
     """Every ``read_corpus`` option as a flag (``--sta-s``, ``--bandpass LO HI``, ...)."""
     g = parser.add_argument_group("corpus options (unset: the reader's default or a value "
@@ -74,54 +86,97 @@ def _share(high: float):
     return parse
 
 
+@dataclass(frozen=True)
+class JobFlag:
+    """One job-settings flag: ``flag`` sets the job setting ``setting`` (``criterion.alpha``: a
+    field of the criterion) to its value; an ``off`` flag (``--no-chirp``) takes no value and
+    sets the setting to False. ``argparse``: the keywords of ``add_argument`` (type, nargs,
+    metavar, choices, help)."""
+
+    flag: str
+    setting: str
+    argparse: dict = field(default_factory=dict)
+    off: bool = False
+
+    @property
+    def dest(self) -> str:
+        """The attribute of the parsed arguments (argparse's own name for the flag)."""
+        return self.flag.lstrip("-").replace("-", "_")
+
+
+# The search settings as flags, in --help order; unset flags leave the engine's defaults.
+JOB_FLAGS = (
+    JobFlag("--channels", "channels", {"type": int, "help": "number of channels"}),
+    JobFlag("--band", "band_hz", {"nargs": 2, "type": float, "metavar": ("LO", "HI"),
+                                  "help": "channel band, Hz"}),
+    JobFlag("--spacing", "spacing", {"choices": SPACINGS, "help": "channel centre spacing"}),
+    JobFlag("--criterion", "criterion.name", {"choices": CRITERIA}),
+    JobFlag("--alpha", "criterion.alpha",
+            {"type": float, "help": f"Rényi order (default {CRITERION_DEFAULTS['alpha']:g})"}),
+    JobFlag("--cell-area", "cell_area", {"nargs": 2, "type": float, "metavar": ("MIN", "MAX"),
+                                         "help": "cell area bounds (1 = Heisenberg minimum)"}),
+    JobFlag("--no-chirp", "chirp", {"help": "chirp rate fixed at 0"}, off=True),
+    JobFlag("--no-refine", "refine", {"help": "skip per-channel refinement"}, off=True),
+    JobFlag("--evaluations", "evaluations", {"type": int, "help": "evaluation budget"}),
+    JobFlag("--time-limit", "time_limit_s", {"type": float, "metavar": "S",
+                                              "help": "time budget, s"}),
+    JobFlag("--bootstrap", "bootstrap", {"type": int, "help": "bootstrap resamples"}),
+    JobFlag("--held-out", "held_out", {
+        "type": _share(MAX_HELD_OUT), "metavar": "SHARE",
+        "help": f"share of windows kept out of the fit to judge it (0 to {MAX_HELD_OUT:g}, "
+                f"default {SETTINGS_DEFAULTS['held_out']:g}; 0 judges in-sample)"}),
+    JobFlag("--max-negative-share", "max_negative_share", {
+        "type": _share(1.0), "metavar": "SHARE",
+        "help": "largest share of the image's absolute mass that may be negative (0 to 1, "
+                f"default {SETTINGS_DEFAULTS['max_negative_share']:g})"}),
+    JobFlag("--jobs", "jobs", {"type": int, "help": "parallel evaluations on the worker "
+                                                    "(capped there)"}),
+)
+
+
 def add_job_settings(parser: argparse.ArgumentParser) -> None:
-    """The search settings flags (DESIGN §9); unset flags leave the engine's defaults."""
+    """The search settings flags (DESIGN §9, :data:`JOB_FLAGS`)."""
     g = parser.add_argument_group("job settings (unset: the engine's default, recorded in the result)")
-    g.add_argument("--channels", type=int, help="number of channels")
-    g.add_argument("--band", nargs=2, type=float, metavar=("LO", "HI"), help="channel band, Hz")
-    g.add_argument("--spacing", choices=["log", "linear"], help="channel centre spacing")
-    g.add_argument("--criterion", choices=["renyi", "concentration", "sparsity"])
-    g.add_argument("--alpha", type=float, help="Rényi order (default 3)")
-    g.add_argument("--cell-area", nargs=2, type=float, metavar=("MIN", "MAX"),
-                   help="cell area bounds (1 = Heisenberg minimum)")
-    g.add_argument("--no-chirp", action="store_true", help="chirp rate fixed at 0")
-    g.add_argument("--no-refine", action="store_true", help="skip per-channel refinement")
-    g.add_argument("--evaluations", type=int, help="evaluation budget")
-    g.add_argument("--time-limit", type=float, metavar="S", help="time budget, s")
-    g.add_argument("--bootstrap", type=int, help="bootstrap resamples")
-    g.add_argument("--held-out", type=_share(0.9), metavar="SHARE",
-                   help="share of windows kept out of the fit to judge it (0 to 0.9, default "
-                        "0.25; 0 judges in-sample)")
-    g.add_argument("--max-negative-share", type=_share(1.0), metavar="SHARE",
-                   help="largest share of the image's absolute mass that may be negative "
-                        "(0 to 1, default 0.01)")
-    g.add_argument("--jobs", type=int, help="parallel evaluations on the worker (capped there)")
+    for flag in JOB_FLAGS:
+        action = {"action": "store_true"} if flag.off else {}
+        g.add_argument(flag.flag, **action, **flag.argparse)
 
 
-def settings_from_args(args: argparse.Namespace) -> dict:
-    """Flags → the JSON settings of POST /v1/jobs (only the flags given; a command without the
-    job settings flags gives only corpus options)."""
-    settings: dict = {}
+def _corpus_flags_given(args: argparse.Namespace) -> dict:
+    """The corpus flags given, by option name, as parsed (not yet checked)."""
+    given = {}
     for name in CORPUS_OPTIONS:
         value = getattr(args, name, None)
         if value is not None and not isinstance(value, _NotGiven):
-            settings[name] = value
-    for flag, key in (("channels", "channels"), ("spacing", "spacing"),
-                      ("evaluations", "evaluations"), ("time_limit", "time_limit_s"),
-                      ("bootstrap", "bootstrap"), ("jobs", "jobs"), ("held_out", "held_out"),
-                      ("max_negative_share", "max_negative_share")):
-        if getattr(args, flag, None) is not None:
-            settings[key] = getattr(args, flag)
-    if getattr(args, "band", None) is not None:
-        settings["band_hz"] = list(args.band)
-    if getattr(args, "cell_area", None) is not None:
-        settings["cell_area"] = list(args.cell_area)
-    criterion = {k: v for k, v in (("name", getattr(args, "criterion", None)),
-                                   ("alpha", getattr(args, "alpha", None))) if v is not None}
-    if criterion:
-        settings["criterion"] = criterion
-    if getattr(args, "no_chirp", False):
-        settings["chirp"] = False
-    if getattr(args, "no_refine", False):
-        settings["refine"] = False
+            given[name] = value
+    return given
+
+
+def corpus_options_from_args(args: argparse.Namespace) -> dict:
+    """Flags → the checked ``read_corpus`` options (only those given); ``ValueError`` naming a
+    bad one (``search.settings.check_corpus_options``)."""
+    return check_corpus_options(_corpus_flags_given(args))
+
+
+def settings_from_args(args: argparse.Namespace) -> dict:
+    """Flags → the JSON settings of POST /v1/jobs (only the flags given: the corpus options,
+    then the job settings; a command without the job settings flags gives only corpus
+    options)."""
+    settings = _corpus_flags_given(args)
+    for flag in JOB_FLAGS:
+        value = getattr(args, flag.dest, None)
+        if value is None or value is False:  # not given (an off flag's default is False)
+            continue
+        value = False if flag.off else list(value) if isinstance(value, list) else value
+        group, _, name = flag.setting.rpartition(".")
+        (settings.setdefault(group, {}) if group else settings)[name] = value
     return settings
+
+
+def service_settings_from(args: argparse.Namespace, *names: str):
+    """``ServiceSettings`` (BURSTLENS_* environment) with the flags ``names`` that were given
+    laid over it; shared by ``serve``, ``worker`` and ``tokens``."""
+    from service.config import ServiceSettings
+
+    overrides = {n: getattr(args, n) for n in names if getattr(args, n, None) is not None}
+    return ServiceSettings(**overrides)

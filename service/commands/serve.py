@@ -20,21 +20,16 @@ def register(subparsers) -> None:
     p.set_defaults(func=run)
 
 
-def settings_from(args: argparse.Namespace, *names: str):
-    from service.config import ServiceSettings
-
-    overrides = {n: getattr(args, n) for n in names if getattr(args, n, None) is not None}
-    return ServiceSettings(**overrides)
-
-
 def run(args: argparse.Namespace) -> int:
     import logging
     import sys
 
     from pydantic import ValidationError
 
+    from service.commands.options import service_settings_from
+
     try:
-        settings = settings_from(args, "host", "port", "data_dir", "workers", "dask")
+        settings = service_settings_from(args, "host", "port", "data_dir", "workers", "dask")
     except ValidationError as exc:
         print(f"burstlens serve: {exc}", file=sys.stderr)
         return 2

@@ -10,14 +10,14 @@ import argparse
 
 
 def register(subparsers) -> None:
-    from service.commands.options import add_corpus_options, add_job_settings
+    from service.commands.options import add_corpus_options, add_job_settings, add_paths
 
     p = subparsers.add_parser(
         "submit", help="tune on a server: upload, queue, follow, download",
         description="Upload waveform files as a corpus, queue a tuning job on a burstlens server, "
                     "and (with --wait) follow its progress and download filterbank.json, "
                     "diagnostics.json and report.html into --out.")
-    p.add_argument("paths", nargs="+", metavar="PATH", help="waveform files or folders")
+    add_paths(p)
     p.add_argument("--server", required=True, metavar="URL", help="e.g. http://127.0.0.1:8000")
     p.add_argument("--token", help="bearer token (default: $BURSTLENS_TOKEN)")
     p.add_argument("--wait", action="store_true", help="follow the job until it ends")
@@ -27,23 +27,20 @@ def register(subparsers) -> None:
     p.set_defaults(func=run)
 
 
-# Files met in a folder that are documentation or metadata, never waveforms.
-NOT_WAVEFORMS = {".md", ".txt", ".json", ".html", ".htm", ".pdf", ".xml", ".yaml", ".yml",
-                 ".py", ".png", ".jpg", ".log"}
-
-
 def expand(paths: list[str]) -> list:
-    """Files as given; folders expanded to their files (sorted; hidden files and obvious
-    documentation or metadata, by suffix, skipped)."""
+    """Files as given; folders expanded to the files the corpus reader reads in them (hidden
+    entries and non-waveform files such as a README skipped, by the reader's own
+    ``search.corpus.folder_files`` and ``is_waveform_file``), so the upload holds what the job
+    reads. ``FileNotFoundError`` for a missing path, ``OSError`` for an unreadable file."""
     from pathlib import Path
+
+    from search.corpus import folder_files, is_waveform_file
 
     files = []
     for raw in paths:
         path = Path(raw)
         if path.is_dir():
-            files += sorted(p for p in path.rglob("*") if p.is_file()
-                            and p.suffix.lower() not in NOT_WAVEFORMS
-                            and not any(part.startswith(".") for part in p.relative_to(path).parts))
+            files += [Path(f) for f in folder_files(path) if is_waveform_file(f)]
         elif path.is_file():
             files.append(path)
         else:
@@ -100,7 +97,7 @@ def run(args: argparse.Namespace) -> int:
         return 2
     try:
         files = expand(args.paths)
-    except FileNotFoundError as exc:
+    except OSError as exc:  # a missing path, or a file in a folder that cannot be read
         print(f"burstlens submit: {exc}", file=sys.stderr)
         return 2
     if not files:

@@ -25,10 +25,10 @@ def run(args: argparse.Namespace) -> int:
     import sys
 
     from service.auth import create_token
-    from service.commands.serve import settings_from
+    from service.commands.options import service_settings_from
     from service.store import Conflict, Store
 
-    store = Store(settings_from(args, "data_dir").data_dir)
+    store = Store(service_settings_from(args, "data_dir").data_dir)
     if args.action == "add":
         try:
             token = create_token(store, args.name, args.tenant)

@@ -10,32 +10,19 @@ import argparse
 
 
 def register(subparsers) -> None:
-    from service.commands.options import add_corpus_options, add_job_settings
+    from service.commands.options import add_corpus_options, add_job_settings, add_paths
 
     p = subparsers.add_parser(
         "tune", help="fit a filterbank to a corpus on this machine",
         description="Read the waveform files, cut burst windows, search the filterbank whose "
                     "output is sharpest, and write filterbank.json, diagnostics.json and "
                     "report.html into --out.")
-    p.add_argument("paths", nargs="+", metavar="PATH", help="waveform files or folders")
+    add_paths(p)
     p.add_argument("--out", required=True, metavar="DIR", help="folder for the results")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     add_corpus_options(p)
     add_job_settings(p)
     p.set_defaults(func=run)
-
-
-def _write_json(path, obj) -> None:
-    """JSON to ``path`` through a temp file and a rename, so a reader never sees half a file."""
-    import json
-    import os
-
-    tmp = f"{path}.tmp"
-    with open(tmp, "w", encoding="utf-8") as fh:
-        json.dump(obj, fh, indent=1, allow_nan=False)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
 
 
 def summary_lines(diagnostics: dict) -> list[str]:
@@ -149,15 +136,18 @@ def run(args: argparse.Namespace) -> int:
             bar.close()
 
     out.mkdir(parents=True, exist_ok=True)
-    fb_json = search.filterbank_.to_json()
-    _write_json(out / "filterbank.json", fb_json)
-    _write_json(out / "diagnostics.json", search.diagnostics_)
+    from search.documents import DiagnosticsDocument, FilterbankDocument
+    from search.safe_io import atomic_write
+
+    filterbank_doc = FilterbankDocument.of(search.filterbank_)
+    diagnostics_doc = DiagnosticsDocument(search.diagnostics_)
+    fb_json = filterbank_doc.to_json()
+    for name, doc in (("filterbank.json", filterbank_doc), ("diagnostics.json", diagnostics_doc)):
+        atomic_write(out / name, lambda fh, doc=doc: fh.write(doc.encode(final_newline=False)))
     wrote = ["filterbank.json", "diagnostics.json"]
     report = _render_report(fb_json, search.diagnostics_, corpus)
     if report is not None:
-        tmp = out / "report.html.tmp"
-        tmp.write_text(report, encoding="utf-8")
-        os.replace(tmp, out / "report.html")
+        atomic_write(out / "report.html", lambda fh: fh.write(report.encode("utf-8")))
         wrote.append("report.html")
     from service.energy_channels import lines_or_note
 

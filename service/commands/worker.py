@@ -22,10 +22,10 @@ def run(args: argparse.Namespace) -> int:
 
     from pydantic import ValidationError
 
-    from service.commands.serve import settings_from
+    from service.commands.options import service_settings_from
 
     try:
-        settings = settings_from(args, "data_dir", "dask")
+        settings = service_settings_from(args, "data_dir", "dask")
     except ValidationError as exc:
         print(f"burstlens worker: {exc}", file=sys.stderr)
         return 2

@@ -9,6 +9,7 @@ from starlette.concurrency import run_in_threadpool
 from search.settings import CORPUS_OPTIONS
 from service.auth import require_tenant
 from service.corpus_check import check_corpus, parse_read_options
+from service.dependencies import SettingsDep, StoreDep
 from service.models import CorpusView
 from service.routers import COMMON, errors
 from service.uploads import receive_multipart
@@ -45,7 +46,8 @@ _UPLOAD_BODY = {"requestBody": {"required": True, "content": {"multipart/form-da
 
 @router.post("", status_code=201, response_model=CorpusView, openapi_extra=_UPLOAD_BODY,
              responses=errors(*COMMON, 400, 415))
-async def create_corpus(request: Request, tenant: str = Depends(require_tenant)) -> CorpusView:
+async def create_corpus(request: Request, store: StoreDep, settings: SettingsDep,
+                        tenant: str = Depends(require_tenant)) -> CorpusView:
     """Upload a corpus (multipart field `files`, one part per file).
 
     Corpus options (the job settings `sta_s`, `trigger_on`, `bandpass_hz`, ...) may come as form
@@ -54,7 +56,6 @@ async def create_corpus(request: Request, tenant: str = Depends(require_tenant))
     `summary.read_options`: jobs on it read it so unless their settings override one) and its
     `id` returned. A rejected upload leaves nothing behind.
     """
-    store, settings = request.app.state.store, request.app.state.settings
     folder = await run_in_threadpool(store.new_upload_dir)
     try:
         upload = await receive_multipart(request, folder, file_fields={"files"},
@@ -76,14 +77,14 @@ async def create_corpus(request: Request, tenant: str = Depends(require_tenant))
 
 
 @router.get("/{corpus_id}", response_model=CorpusView, responses=errors(*COMMON, 404))
-def get_corpus(corpus_id: str, request: Request, tenant: str = Depends(require_tenant)) -> CorpusView:
+def get_corpus(corpus_id: str, store: StoreDep, tenant: str = Depends(require_tenant)) -> CorpusView:
     """What the corpus holds: files, traces, windows found, rejections with reasons."""
-    return CorpusView.from_corpus(request.app.state.store.get_corpus(corpus_id, tenant))
+    return CorpusView.from_corpus(store.get_corpus(corpus_id, tenant))
 
 
 @router.delete("/{corpus_id}", status_code=204, response_class=Response,
                responses=errors(*COMMON, 404, 409))
-def delete_corpus(corpus_id: str, request: Request, tenant: str = Depends(require_tenant)) -> Response:
+def delete_corpus(corpus_id: str, store: StoreDep, tenant: str = Depends(require_tenant)) -> Response:
     """Delete a corpus and its files (refused while a queued or running job uses it)."""
-    request.app.state.store.delete_corpus(corpus_id, tenant)
+    store.delete_corpus(corpus_id, tenant)
     return Response(status_code=204)

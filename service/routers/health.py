@@ -3,11 +3,12 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from fastapi import APIRouter, HTTPException, Request
+from fastapi import APIRouter, HTTPException
 from fastapi.responses import FileResponse, PlainTextResponse
 
 from search import __version__
 from service.auth import auth_required
+from service.dependencies import SettingsDep, StoreDep
 from service.models import Health
 from service.routers import errors
 
@@ -17,20 +18,18 @@ STATIC = Path(__file__).resolve().parent.parent / "static"
 
 
 @router.get("/healthz", response_model=Health, responses=errors(500, 503))
-def healthz(request: Request) -> Health:
+def healthz(store: StoreDep, settings: SettingsDep) -> Health:
     """The API is up and its store answers."""
-    store = request.app.state.store
     store.counts_by_state()
     return Health(status="ok", version=__version__,
-                  auth=auth_required(store, request.app.state.settings.tokens_required))
+                  auth=auth_required(store, settings.tokens_required))
 
 
 @router.get("/metrics", response_class=PlainTextResponse, responses={
     200: {"content": {"text/plain": {"example": 'burstlens_jobs{state="queued"} 2\n'}}},
     **errors(500, 503)})
-def metrics(request: Request) -> PlainTextResponse:
+def metrics(store: StoreDep) -> PlainTextResponse:
     """Prometheus text format: jobs by state, evaluations done and their throughput."""
-    store = request.app.state.store
     counts = store.counts_by_state()
     total, rate = store.evaluation_totals(window_s=60.0)
     lines = ["# HELP burstlens_jobs Jobs in the store by state.", "# TYPE burstlens_jobs gauge"]

@@ -7,13 +7,15 @@ import logging
 from pathlib import Path
 from typing import Literal
 
-from fastapi import APIRouter, Depends, Header, HTTPException, Query, Request, Response
+from fastapi import APIRouter, Depends, Header, HTTPException, Query, Response
 from fastapi.responses import FileResponse, HTMLResponse
 
+from search.documents import DiagnosticsDocument, FilterbankDocument
 from service.auth import require_tenant
+from service.dependencies import SettingsDep, StoreDep
 from service.models import JobList, JobRequest, JobView
 from service.routers import COMMON, errors
-from service.store import NotFound, write_blob
+from service.store import NotFound, Store, write_blob
 
 log = logging.getLogger("burstlens.api")
 router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
@@ -49,7 +51,7 @@ def check_settings(options: dict, read_options: dict | None = None) -> None:
 @router.post("", status_code=201, response_model=JobView,
              responses={200: {"model": JobView, "description": "The job this Idempotency-Key "
                               "already created (same body)"}, **errors(*COMMON, 400, 404, 429)})
-def create_job(body: JobRequest, request: Request, response: Response,
+def create_job(body: JobRequest, response: Response, store: StoreDep, settings: SettingsDep,
                tenant: str = Depends(require_tenant),
                idempotency_key: str | None = Header(
                    None, alias="Idempotency-Key",
@@ -68,7 +70,6 @@ def create_job(body: JobRequest, request: Request, response: Response,
             raise HTTPException(status_code=400, detail=f"Idempotency-Key longer than "
                                                         f"{MAX_KEY_LENGTH} characters")
     options = body.settings.to_options()
-    store, settings = request.app.state.store, request.app.state.settings
     try:
         read_options = store.get_corpus(body.corpus_id, tenant)["summary"].get("read_options")
     except NotFound:
@@ -84,28 +85,28 @@ def create_job(body: JobRequest, request: Request, response: Response,
 
 
 @router.get("", response_model=JobList, responses=errors(*COMMON))
-def list_jobs(request: Request, tenant: str = Depends(require_tenant),
+def list_jobs(store: StoreDep, tenant: str = Depends(require_tenant),
               state: Literal["queued", "running", "succeeded", "failed", "cancelled"] | None = None,
               limit: int = Query(100, ge=1, le=1000)) -> JobList:
     """This tenant's jobs, newest first."""
-    jobs = request.app.state.store.list_jobs(tenant, state=state, limit=limit)
+    jobs = store.list_jobs(tenant, state=state, limit=limit)
     return JobList(jobs=[JobView.from_job(j) for j in jobs])
 
 
 @router.get("/{job_id}", response_model=JobView, responses=errors(*COMMON, 404))
-def get_job(job_id: str, request: Request, tenant: str = Depends(require_tenant)) -> JobView:
+def get_job(job_id: str, store: StoreDep, tenant: str = Depends(require_tenant)) -> JobView:
     """State, progress (stage, round, evaluations of budget, best objective), attempts, error."""
-    return JobView.from_job(request.app.state.store.get_job(job_id, tenant))
+    return JobView.from_job(store.get_job(job_id, tenant))
 
 
 @router.post("/{job_id}/cancel", response_model=JobView, responses=errors(*COMMON, 404, 409))
-def cancel_job(job_id: str, request: Request, tenant: str = Depends(require_tenant)) -> JobView:
+def cancel_job(job_id: str, store: StoreDep, tenant: str = Depends(require_tenant)) -> JobView:
     """Cancel: a queued job at once; a running one stops at its worker's next heartbeat."""
-    return JobView.from_job(request.app.state.store.cancel_job(job_id, tenant))
+    return JobView.from_job(store.cancel_job(job_id, tenant))
 
 
-def _result(request: Request, job_id: str, tenant: str, what: str) -> Path:
-    job = request.app.state.store.get_job(job_id, tenant)
+def _result(store: Store, job_id: str, tenant: str, what: str) -> Path:
+    job = store.get_job(job_id, tenant)
     if job["state"] != "succeeded":
         raise HTTPException(status_code=409, detail=f"job {job_id!r} is {job['state']}; results "
                                                     "exist once it has succeeded")
@@ -118,58 +119,60 @@ _JSON_OBJECT = {"content": {"application/json": {"schema": {"type": "object"}}}}
 @router.get("/{job_id}/filterbank", response_class=FileResponse,
             responses={200: {**_JSON_OBJECT, "description": "Filterbank JSON (burstlens-filterbank, "
                              "version 2)"}, **errors(*COMMON, 404, 409, explicit=True)})
-def get_filterbank(job_id: str, request: Request, tenant: str = Depends(require_tenant)):
+def get_filterbank(job_id: str, store: StoreDep, tenant: str = Depends(require_tenant)):
     """The tuned filterbank JSON itself (DESIGN §8), ready for POST /v1/transform or the CLI."""
-    return FileResponse(_result(request, job_id, tenant, "filterbank"), media_type="application/json")
+    return FileResponse(_result(store, job_id, tenant, "filterbank"), media_type="application/json")
 
 
 @router.get("/{job_id}/diagnostics", response_class=FileResponse,
             responses={200: {**_JSON_OBJECT, "description": "Diagnostics JSON"},
                        **errors(*COMMON, 404, 409, explicit=True)})
-def get_diagnostics(job_id: str, request: Request, tenant: str = Depends(require_tenant)):
+def get_diagnostics(job_id: str, store: StoreDep, tenant: str = Depends(require_tenant)):
     """Stop reason, every evaluation, convergence, bootstrap intervals, baselines, gain in bits."""
-    return FileResponse(_result(request, job_id, tenant, "diagnostics"), media_type="application/json")
+    return FileResponse(_result(store, job_id, tenant, "diagnostics"), media_type="application/json")
 
 
 @router.get("/{job_id}/report", response_class=HTMLResponse,
             responses={200: {"content": {"text/html": {}}, "description": "The job's report page"},
                        **errors(*COMMON, 404, 409, explicit=True)})
-def get_report(job_id: str, request: Request, tenant: str = Depends(require_tenant)):
+def get_report(job_id: str, store: StoreDep, tenant: str = Depends(require_tenant)):
     """One self-contained HTML page explaining the result (plots inline)."""
-    path = _result(request, job_id, tenant, "report")
+    path = _result(store, job_id, tenant, "report")
     if not path.is_file():  # rendered at success; render now if that failed or predates it
         try:
             from service.report import render_report
         except ImportError:
-            raise HTTPException(status_code=503, detail="the report renderer is not installed")
+            raise HTTPException(status_code=503,
+                                detail="the report renderer is not installed") from None
         write_blob(path, render_report(*_load_results(path.parent)).encode("utf-8"))
     return HTMLResponse(path.read_text(encoding="utf-8"))
 
 
-def _load_results(folder: Path) -> tuple[dict, dict, "object | None", "float | None"]:
+def _load_results(folder: Path) -> tuple[dict, dict, object | None, float | None]:
     """Stored filterbank and diagnostics JSON, plus the report's window sample if kept."""
     import numpy as np
 
-    filterbank = json.loads((folder / RESULT_FILES["filterbank"]).read_text())
-    diagnostics = json.loads((folder / RESULT_FILES["diagnostics"]).read_text())
+    filterbank = FilterbankDocument(json.loads((folder / RESULT_FILES["filterbank"]).read_text()))
+    diagnostics = DiagnosticsDocument(json.loads((folder / RESULT_FILES["diagnostics"]).read_text()))
     windows_path = folder / RESULT_FILES["windows"]
     windows = np.load(windows_path, allow_pickle=False) if windows_path.is_file() else None
-    return filterbank, diagnostics, windows, filterbank.get("sampling_rate_hz")
+    return filterbank.data, diagnostics.data, windows, filterbank.sampling_rate_hz
 
 
 @router.get("/{job_id}/plots/{name}.png", response_class=Response, responses={
     200: {"content": {"image/png": {"schema": {"type": "string", "format": "binary"}}},
           "description": "One plot of the report"}, **errors(*COMMON, 404, 409, explicit=True)})
-def get_plot(job_id: str, name: PlotName, request: Request,
+def get_plot(job_id: str, name: PlotName, store: StoreDep,
              tenant: str = Depends(require_tenant)) -> Response:
     """A report plot as PNG: tiling, examples, convergence, channels or baselines."""
-    folder = _result(request, job_id, tenant, "filterbank").parent
+    folder = _result(store, job_id, tenant, "filterbank").parent
     path = folder / "plots" / f"{name}.png"
     if not path.is_file():  # drawn on first request, then kept
         try:
             from service.report import report_plots
         except ImportError:
-            raise HTTPException(status_code=503, detail="the report renderer is not installed")
+            raise HTTPException(status_code=503,
+                                detail="the report renderer is not installed") from None
         for plot, png in report_plots(*_load_results(folder)).items():
             write_blob(folder / "plots" / f"{plot}.png", png)
     if not path.is_file():

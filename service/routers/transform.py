@@ -10,10 +10,13 @@ import numpy as np
 from fastapi import APIRouter, Depends, HTTPException, Request, Response
 from starlette.concurrency import run_in_threadpool
 
+from search.documents import FilterbankDocument, npz_members
 from service.auth import require_tenant
 from service.corpus_check import parse_read_options, read_for_client
+from service.dependencies import SettingsDep, StoreDep
 from service.routers import COMMON, errors
 from service.routers.jobs import RESULT_FILES
+from service.store import NotFound, Store
 from service.uploads import receive_multipart
 
 router = APIRouter(prefix="/v1", tags=["transform"])
@@ -33,64 +36,62 @@ _BODY = {"requestBody": {"required": True, "content": {"multipart/form-data": {"
         "csv_sampling_rate_hz": {"type": "number", "exclusiveMinimum": 0}}}}}}}
 
 
-def transform_npz(filterbank_json: dict, paths, names, options: dict, settings) -> bytes:
-    """Read the files at the filterbank's rate and window length, transform, pack as NPZ.
+def transform_npz(document: FilterbankDocument, paths, names, options: dict, settings,
+                  upload_options: dict | None = None) -> bytes:
+    """Read the files as the filterbank's tuning read its corpus, transform, pack as NPZ.
 
-    NPZ arrays (no object arrays): ``representation`` (M, C, N) float32; ``times_s`` (N,) s from
-    the window start; ``center_hz``, ``time_spread_s``, ``freq_spread_hz``, ``cell_area``,
-    ``chirp_hz_per_s``, ``correlation`` (C,) — the channel table; ``sampling_rate_hz`` (); and per
-    window ``window_file``, ``window_trace_id`` (unicode) and ``window_offset_s`` (M,).
+    The corpus reader gets the filterbank's rate and window length and the corpus options its
+    tuning set (``FilterbankDocument.reading_options``: ``upload_options``, the job corpus's own
+    reading options, under the job's settings), then ``options`` from the request on top. The
+    NPZ members are ``search.documents.npz_members``, with the client's file names.
     """
-    from search.filterbank import Filterbank
     from search.transform import transform
 
     try:
-        filterbank = Filterbank.from_json(filterbank_json)
+        filterbank = document.filterbank
+        read = {**document.reading_options(upload_options), **options}
     except (ValueError, KeyError, TypeError) as exc:
         raise HTTPException(status_code=422, detail=f"filterbank: {exc}") from None
-    fs = float(filterbank.sampling_rate_hz)
-    read = {"sampling_rate_hz": fs}
-    window_samples = filterbank_json.get("window_samples")
-    if isinstance(window_samples, (int, float)) and window_samples > 0:
-        read["window_s"] = float(window_samples) / fs
-    provenance = filterbank_json.get("provenance") or {}
-    saved = provenance.get("settings") if isinstance(provenance, dict) else None
-    if isinstance(saved, dict) and saved.get("windowing") in ("bursts", "whole", "sliding"):
-        read["windowing"] = saved["windowing"]
-    read.update(options)
     corpus = read_for_client(paths, names, read, settings)
     m, n = corpus.windows.shape
-    c = len(filterbank.center_hz)
+    c = len(filterbank)
     if m * c * n > settings.max_transform_values:
         limit = settings.max_transform_values
         raise HTTPException(status_code=413, detail=f"the output would hold {m}×{c}×{n} values, "
                                                     f"more than the limit of {limit}")
-    representation = np.asarray(transform(corpus.windows, filterbank), dtype=np.float32)
-    by_stored = {str(p): name for p, name in zip(paths, names)}
-    meta = corpus.window_meta
+    representation = transform(corpus.windows, filterbank)
+    by_stored = {str(p): name for p, name in zip(paths, names, strict=True)}
     buffer = io.BytesIO()
-    np.savez(buffer, representation=representation,
-             times_s=np.arange(n, dtype=np.float64) / fs,
-             center_hz=np.asarray(filterbank.center_hz, dtype=np.float64),
-             time_spread_s=np.asarray(filterbank.time_spread_s, dtype=np.float64),
-             freq_spread_hz=np.asarray(filterbank.freq_spread_hz, dtype=np.float64),
-             cell_area=np.asarray(filterbank.cell_area, dtype=np.float64),
-             chirp_hz_per_s=np.asarray(filterbank.chirp_hz_per_s, dtype=np.float64),
-             correlation=np.asarray(filterbank.correlation, dtype=np.float64),
-             sampling_rate_hz=np.float64(fs),
-             window_file=np.array([by_stored.get(str(w.get("file")), "") for w in meta], dtype=str),
-             window_trace_id=np.array([str(w.get("trace_id", "")) for w in meta], dtype=str),
-             window_offset_s=np.array([float(w.get("offset_s", 0.0)) for w in meta], dtype=np.float64))
+    np.savez(buffer, **npz_members(representation, filterbank, corpus.window_meta,
+                                   lambda stored: by_stored.get(stored, "")))
     return buffer.getvalue()
+
+
+def _upload_options(store: Store, tenant: str, job_id) -> dict:
+    """The reading options recorded with the corpus of this tenant's job ``job_id``, or {} (no
+    such job or corpus here: the filterbank then carries only its job's own settings)."""
+    if not isinstance(job_id, str):
+        return {}
+    try:
+        job = store.get_job(job_id, tenant)
+        corpus = store.get_corpus(job["corpus_id"], tenant)
+    except NotFound:
+        return {}
+    return dict(corpus["summary"].get("read_options") or {})
 
 
 @router.post("/transform", response_class=Response, openapi_extra=_BODY, responses={
     200: {"content": {NPZ_MEDIA_TYPE: {"schema": {"type": "string", "format": "binary"}}},
           "description": "NumPy .npz archive"},
     **errors(*COMMON, 400, 404, 409, 415, explicit=True)})
-async def transform_files(request: Request, tenant: str = Depends(require_tenant)) -> Response:
-    """Apply a filterbank to waveform files: give `filterbank` (JSON) or `job_id`, plus `files`."""
-    store, settings = request.app.state.store, request.app.state.settings
+async def transform_files(request: Request, store: StoreDep, settings: SettingsDep,
+                          tenant: str = Depends(require_tenant)) -> Response:
+    """Apply a filterbank to waveform files: give `filterbank` (JSON) or `job_id`, plus `files`.
+
+    The files are cut into windows as the filterbank's tuning cut its corpus (its windowing,
+    band-pass, trigger and the other corpus options its job and that job's corpus set); the
+    fields `windowing` and `csv_sampling_rate_hz` override those for these files.
+    """
     folder = await run_in_threadpool(store.new_upload_dir)
     try:
         upload = await receive_multipart(
@@ -125,11 +126,14 @@ async def transform_files(request: Request, tenant: str = Depends(require_tenant
             raise HTTPException(status_code=422, detail=f"filterbank: not JSON ({exc})") from None
         if not isinstance(filterbank_json, dict):
             raise HTTPException(status_code=422, detail="filterbank: expected a JSON object")
+        document = FilterbankDocument(filterbank_json)
         options = parse_read_options({k: v for k, v in upload.fields.items()
                                       if k in ("windowing", "csv_sampling_rate_hz")})
-        data = await run_in_threadpool(transform_npz, filterbank_json,
+        made_by = job_id if job_id is not None else (document.job.id if document.job else None)
+        upload_options = await run_in_threadpool(_upload_options, store, tenant, made_by)
+        data = await run_in_threadpool(transform_npz, document,
                                        upload.paths(folder, "files"), [f["name"] for f in files],
-                                       options, settings)
+                                       options, settings, upload_options)
     finally:
         await run_in_threadpool(shutil.rmtree, folder, True)
     return Response(data, media_type=NPZ_MEDIA_TYPE,

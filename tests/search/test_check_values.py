@@ -152,8 +152,8 @@ def test_unequal_energies_entropy_step():
 def test_h2_of_any_wvd_is_zero():
     """Moyal's formula ∫∫ W_z² dt df = (∫|z|² dt)² = (∫∫ W_z dt df)² makes p = W_z/∫∫W_z have
     ∫∫ p² = 1, so H_2 = −log2 ∫∫ p² dt df = 0 bits exactly on the continuous plane, for every
-    finite-energy signal, negative values and cross terms included (J. E. Moyal, "Quantum mechanics as a statistical theory", Proc. Cambridge Philos. Soc.
-    45, 1949; Baraniuk et
+    finite-energy signal, negative values and cross terms included (J. E. Moyal, "Quantum
+    mechanics as a statistical theory", Proc. Cambridge Philos. Soc. 45, 1949; Baraniuk et
     al. 2001, why α = 2 cannot count). Checked on the Gaussian atom, on two atoms, and on a
     seeded random burst (band-limited noise, 200–300 Hz, under a 50 ms Gaussian envelope) whose
     WVD is a third negative. The burst's lags reach 0.4 s, where the 0.01 Hz lag window still

@@ -44,7 +44,9 @@ def test_interval_without_resamples_is_null():
 def test_parabola_step_finds_the_vertex_of_a_parabola(vertex):
     """Three-point parabolic interpolation is exact for a quadratic (R. P. Brent, Algorithms
     for Minimization without Derivatives, 1973, ch. 5)."""
-    f = lambda d: 2.0 * (d - vertex) ** 2 + 1.0
+    def f(d):
+        return 2.0 * (d - vertex) ** 2 + 1.0
+
     h = 0.1
     assert dg.parabola_step(f(-h), f(0.0), f(h), h, 1.0) == pytest.approx(vertex, abs=1e-12)
 
@@ -52,7 +54,9 @@ def test_parabola_step_finds_the_vertex_of_a_parabola(vertex):
 def test_parabola_step_clips_and_handles_concave_and_invalid():
     """Outside the trust region the step is clipped; a concave or flat triple returns its best
     sampled offset (common practice for safeguarded Newton steps)."""
-    f = lambda d: (d - 5.0) ** 2
+    def f(d):
+        return (d - 5.0) ** 2
+
     assert dg.parabola_step(f(-0.1), f(0.0), f(0.1), 0.1, 0.2) == 0.2
     assert dg.parabola_step(1.0, 2.0, 1.5, 0.1, 0.2) == -0.1     # concave: left sample lowest
     assert dg.parabola_step(math.inf, 1.0, 0.5, 0.1, 0.2) == 0.1

@@ -9,12 +9,9 @@ import pickle
 
 import numpy as np
 import pytest
-from scipy.optimize import minimize_scalar
 
 from search.corpus import Corpus
-from search.criteria import Criterion
-from search.optimize import (FilterbankSearch, bounded_brent, row_stats, scores_from_stats,
-                             separable)
+from search.optimize import FilterbankSearch
 from search.settings import split_settings
 
 
@@ -63,64 +60,6 @@ def mixed():
 
 SMALL = dict(channels=8, band_hz=[120.0, 360.0], spacing="log", evaluations=8, subset=8,
              bootstrap=4, batch=4, refine_maxiter=3)
-
-
-# ----------------------------------------------------------------------------- pure parts
-
-@pytest.mark.parametrize("f", [lambda x: (x - 0.3) ** 2, lambda x: math.cos(3 * x) + 0.1 * x,
-                               lambda x: abs(x + 0.7) ** 1.5])
-def test_bounded_brent_takes_scipys_steps(f):
-    """Started where scipy starts (a + (3 − √5)/2·(b − a)), the coroutine proposes exactly the
-    trial points of scipy.optimize.minimize_scalar(method="bounded") and ends at its minimum
-    (reference library; R. P. Brent, Algorithms for Minimization without Derivatives, 1973)."""
-    a, b, xatol = -2.0, 1.5, 1e-5
-    seen = []
-    ref = minimize_scalar(lambda x: seen.append(x) or f(x), bounds=(a, b), method="bounded",
-                          options={"xatol": xatol, "maxiter": 500})
-    x0 = a + 0.5 * (3 - math.sqrt(5)) * (b - a)
-    gen = bounded_brent(a, b, x0, f(x0), xatol, 500)
-    ours = []
-    try:
-        x = next(gen)
-        while True:
-            ours.append(x)
-            x = gen.send(f(x))
-    except StopIteration as stop:
-        x_best, f_best = stop.value
-    assert np.allclose(ours, seen[1:], rtol=0, atol=1e-15)
-    assert x_best == pytest.approx(ref.x, abs=1e-12) and f_best == pytest.approx(ref.fun)
-
-
-@pytest.mark.parametrize("spec", [
-    {"name": "renyi", "alpha": 3.0}, {"name": "renyi", "alpha": 2.5}, {"name": "renyi", "alpha": 1.0},
-    {"name": "renyi", "alpha": 3.0, "negative_mass_penalty": 0.7},
-    {"name": "concentration", "p": 2.0}, {"name": "sparsity", "measure": "hoyer"}])
-@pytest.mark.parametrize("signed", [False, True])
-def test_row_sums_reproduce_the_criteria(spec, signed):
-    """The search's fast path (per-(window, channel) area-weighted sums) equals
-    search.criteria.Criterion.score and negative_share on the images with the same unequal
-    cell sizes of a log grid (the project's reference criteria: Baraniuk et al. 2001, Stanković
-    2001, Hoyer 2004), for non-negative and signed images, and after replacing one row."""
-    from search.criteria import cell_sizes, negative_share
-
-    full = {"name": "renyi", "alpha": 3.0, "p": 2.0, "measure": "gini", "negative_mass_penalty": 0.0}
-    full.update(spec)
-    rng = np.random.default_rng(4)
-    images = rng.gamma(0.5, size=(5, 7, 40))
-    if signed:
-        images -= 0.2 * rng.gamma(0.5, size=images.shape)
-    crit = Criterion(**{k: v for k, v in full.items()})
-    cell = cell_sizes(np.geomspace(50.0, 400.0, 7), 1000.0)[:, 0]
-    stats = row_stats(images, full, cell)
-    scores, shares = scores_from_stats(stats, full, 40, cell)
-    assert np.allclose(scores, crit.score(images, cell[:, None]), rtol=1e-10, atol=0)
-    assert np.allclose(shares, negative_share(images, cell[:, None]), rtol=1e-10, atol=1e-15)
-    images2 = images.copy()
-    images2[:, 3] = rng.gamma(2.0, size=(5, 40))
-    stats[:, 3] = row_stats(images2[:, 3:4], full, cell[3:4])[:, 0]
-    assert np.allclose(scores_from_stats(stats, full, 40, cell)[0],
-                       crit.score(images2, cell[:, None]), rtol=1e-10)
-    assert not separable({**full, "name": "sparsity", "measure": "gini"})
 
 
 # ----------------------------------------------------------------------------- closed forms

@@ -15,7 +15,7 @@ from scipy.signal.windows import gaussian
 
 from search import Channel, Filterbank, prepare, transform
 from search.criteria import renyi_entropy
-from search.transform import PreparedWindows
+from search.transform import CHIRP_METHODS, PreparedWindows, auto_chirp_method, clear_plans
 
 from reference import reference_channel, reference_frequency_count, reference_wvd
 
@@ -59,16 +59,11 @@ def naive_case():
     return x, expected
 
 
-@pytest.fixture(params=["auto", "lag", "doppler"])
-def chirp_method(request, monkeypatch):
+@pytest.fixture(params=CHIRP_METHODS)
+def chirp_method(request):
     """Each way of forming the chirped path's ambiguity samples: the cost model's choice, and
     each of the two forced (both must be exact, whichever the model picks)."""
-    module = importlib.import_module("search.transform")  # the module, not the function
-    if request.param != "auto":
-        monkeypatch.setattr(module, "_chirp_method", lambda *args: request.param)
-    module._PLANS.clear()
-    yield request.param
-    module._PLANS.clear()
+    return request.param
 
 
 @pytest.mark.parametrize("chirped", [False, True], ids=["beta=0", "beta!=0"])
@@ -81,7 +76,8 @@ def test_fast_matches_naive_full_grid(naive_case, chirped, chirp_method):
     x, expected = naive_case
     channels = CHIRPED if chirped else CHANNELS
     rows = slice(len(CHANNELS), None) if chirped else slice(0, len(CHANNELS))
-    image = transform(x, Filterbank(channels, FS), eps=1e-15, dtype=np.float64)
+    image = transform(x, Filterbank(channels, FS), eps=1e-15, dtype=np.float64,
+                      chirp_method=chirp_method)
     assert image.shape == (len(channels), x.size)
     assert _relative_error(image, expected[rows]) < 1e-10
 
@@ -133,7 +129,7 @@ def test_spectrogram_identity(chirp, chirp_method):
     z = hilbert(x)
     centers = [2.0, 100.0, 250.0, 498.0]
     image = transform(x, Filterbank([Channel(f, s, 1.0, chirp) for f in centers], FS),
-                      eps=1e-14, dtype=np.float64)
+                      eps=1e-14, dtype=np.float64, chirp_method=chirp_method)
     stft, norm = _gaussian_stft(z, s, chirp, mfft)
     bins = [int(round(f * mfft / FS)) for f in centers]
     spectrogram = np.array([np.abs(stft[k]) ** 2 + np.abs(stft[k + mfft // 2]) ** 2
@@ -295,40 +291,56 @@ def test_long_windows_are_processed_in_blocks(monkeypatch, chirp_method):
     windows = rng.standard_normal((3, 400))
     fb = Filterbank([Channel(50.0, 0.02), Channel(150.0, 0.01, 1.0, -1200.0),
                      Channel(300.0, 0.005, 0.6), Channel(420.0, 0.03, 0.8, 2500.0)], FS)
-    expected = transform(windows, fb, dtype=np.float64)
+    expected = transform(windows, fb, dtype=np.float64, chirp_method=chirp_method)
     monkeypatch.setattr(module, "_BLOCK_BYTES", 1 << 16)
     monkeypatch.setattr(module, "_GEMM_BLOCK_BYTES", 1 << 14)
     monkeypatch.setattr(module, "_ROW_BLOCK_BYTES", 1 << 14)
-    module._PLANS.clear()
-    blocked = transform(windows, fb, dtype=np.float64, workers=2)
-    serial = transform(windows, fb, dtype=np.float64, workers=1)
-    one_by_one = np.stack([transform(w, fb, dtype=np.float64, workers=2) for w in windows])
-    module._PLANS.clear()
+    clear_plans()  # the cached weights were cut for the default blocks
+    blocked = transform(windows, fb, dtype=np.float64, workers=2, chirp_method=chirp_method)
+    serial = transform(windows, fb, dtype=np.float64, workers=1, chirp_method=chirp_method)
+    one_by_one = np.stack([transform(w, fb, dtype=np.float64, workers=2,
+                                     chirp_method=chirp_method) for w in windows])
+    clear_plans()  # and these for the tiny ones, which the next tests must not reuse
     np.testing.assert_allclose(blocked, expected, rtol=0, atol=1e-12 * np.abs(expected).max())
     np.testing.assert_array_equal(serial, blocked)  # bit-identical however threads share work
     np.testing.assert_array_equal(one_by_one, blocked)
 
 
-def test_chirp_methods_agree_on_long_windows(monkeypatch):
+def test_chirp_methods_agree_on_long_windows():
     """Lag-major and Doppler-row ambiguity samples give the same chirped rows (< 1e-12 of the
     peak) on windows long enough that lag counts are not capped by the window, with cell areas
     below and above 1 and both chirp signs, for the whole filterbank and for each channel alone
     (as refinement computes them, where 2L exceeds the kernel's half width): two independent
     derivations of the same R(θ, m). Source: DESIGN §3 (R the FFT over time of r); the
     cross-correlation theorem (common practice)."""
-    module = importlib.import_module("search.transform")
     windows = np.random.default_rng(9).standard_normal((2, 700))
     fb = Filterbank([Channel(40.0, 0.012, 0.3, 900.0), Channel(230.0, 0.006, 1.0, -3000.0),
                      Channel(470.0, 0.05, 2.5, 150.0)], FS)
     for bank in [fb] + [Filterbank([channel], FS) for channel in fb]:
-        rows = {}
-        for method in ("lag", "doppler"):
-            monkeypatch.setattr(module, "_chirp_method", lambda *args, method=method: method)
-            module._PLANS.clear()
-            rows[method] = transform(windows, bank, dtype=np.float64, eps=1e-12)
+        rows = {method: transform(windows, bank, dtype=np.float64, eps=1e-12,
+                                  chirp_method=method) for method in ("lag", "doppler")}
         np.testing.assert_allclose(rows["doppler"], rows["lag"], rtol=0,
                                    atol=1e-12 * np.abs(rows["lag"]).max())
-    module._PLANS.clear()
+
+
+def test_auto_chirp_method_is_the_forced_one_it_names():
+    """``chirp_method="auto"`` gives, bit for bit, the image of the way ``auto_chirp_method``
+    names, whichever that is (both ways occur below: the cost model picks Doppler rows for a
+    gentle sweep over long kernels and lag by lag for one short kernel at a steep sweep), and
+    None for an unchirped filterbank. Source: the transform's contract (DEVELOPERS.md)."""
+    windows = np.random.default_rng(11).standard_normal((2, 512))
+    cases = [Filterbank([Channel(100.0, 0.04, 1.0, 300.0), Channel(300.0, 0.01, 0.3, 300.0)],
+                        FS),
+             Filterbank([Channel(250.0, 0.002, 1.0, 6000.0)], FS)]
+    picked = []
+    for fb in cases:
+        method = auto_chirp_method(fb, windows.shape[1])
+        picked.append(method)
+        np.testing.assert_array_equal(transform(windows, fb, dtype=np.float64),
+                                      transform(windows, fb, dtype=np.float64,
+                                                chirp_method=method))
+    assert sorted(picked) == ["doppler", "lag"]
+    assert auto_chirp_method(Filterbank([Channel(100.0, 0.01)], FS), 512) is None
 
 
 def test_bad_input_is_named():
@@ -347,3 +359,5 @@ def test_bad_input_is_named():
         transform(np.zeros(64), fb, eps=0.0)
     with pytest.raises(ValueError, match="Filterbank"):
         transform(np.zeros(64), [Channel(100.0, 0.01)])
+    with pytest.raises(ValueError, match="chirp_method='lags'.*'auto', 'lag', 'doppler'"):
+        transform(np.zeros(64), fb, chirp_method="lags")

@@ -44,10 +44,13 @@ def test_lag_count_rule():
     """L_c = min(⌊(N−1)/2⌋, ⌈fs·√(2 ln(1/ε))/(4π σ_c)⌉): the lag weight
     exp(−2π²σ_c²τ²), τ = 2m/fs, is ≤ ε beyond L_c and > ε just before it. Source: DESIGN §3."""
     eps = 1e-6
+
+    def weight(m: int, spread: float) -> float:
+        return math.exp(-2 * math.pi**2 * spread**2 * (2 * m / FS) ** 2)
+
     for spread in (0.7, 3.0, 40.0, 210.0):
         lags = lag_count(spread, FS, 100000, eps)
-        weight = lambda m: math.exp(-2 * math.pi**2 * spread**2 * (2 * m / FS) ** 2)  # noqa: E731
-        assert weight(lags) <= eps * (1 + 1e-12) < weight(lags - 1)
+        assert weight(lags, spread) <= eps * (1 + 1e-12) < weight(lags - 1, spread)
     assert lag_count(0.7, FS, 64, eps) == 31
     both = lag_count(np.array([3.0, 40.0]), FS, 100000, eps)
     np.testing.assert_array_equal(both, [lag_count(s, FS, 100000, eps) for s in (3.0, 40.0)])

@@ -1,4 +1,5 @@
-"""Shared fixtures of the service tests: small burst corpora, in-process apps, live servers.
+"""Shared helpers of the service tests: small burst corpora, settings, live servers (the
+fixtures built on them, ``make_client`` and ``live_server``, are in conftest.py).
 
 The waveforms are made up for these tests only (a seeded noise floor with Gaussian-enveloped
 tone bursts); no check compares against them, they only give the corpus reader something to cut.
@@ -15,7 +16,6 @@ import time
 from pathlib import Path
 
 import numpy as np
-import pytest
 
 from service.config import ServiceSettings
 
@@ -52,26 +52,6 @@ def settings_for(data_dir: Path, **overrides) -> ServiceSettings:
     return ServiceSettings(**values)
 
 
-@pytest.fixture
-def make_client(tmp_path):
-    """Factory of in-process TestClients over one data dir (settings overridable)."""
-    from fastapi.testclient import TestClient
-
-    from service.app import create_app
-
-    clients = []
-
-    def make(**overrides):
-        client = TestClient(create_app(settings_for(tmp_path / "data", **overrides)),
-                            raise_server_exceptions=False)
-        clients.append(client)
-        return client
-
-    yield make
-    for client in clients:
-        client.close()
-
-
 def free_port() -> int:
     with socket.socket() as sock:
         sock.bind(("127.0.0.1", 0))
@@ -94,7 +74,7 @@ class LiveServer:
         self.url = f"http://127.0.0.1:{self.port}"
         self.proc: subprocess.Popen | None = None
 
-    def start(self) -> "LiveServer":
+    def start(self) -> LiveServer:
         import httpx
 
         self.proc = subprocess.Popen(
@@ -155,21 +135,6 @@ def _wait_gone(pid: int, timeout: float) -> None:
             return
         time.sleep(0.1)
     os.kill(pid, signal.SIGKILL)
-
-
-@pytest.fixture
-def live_server(tmp_path):
-    """Factory of live servers over ``tmp_path/data``; all are stopped at teardown."""
-    servers = []
-
-    def make(workers: int = 1, data_dir: Path | None = None, **env) -> LiveServer:
-        server = LiveServer(data_dir or tmp_path / "data", workers, **env).start()
-        servers.append(server)
-        return server
-
-    yield make
-    for server in servers:
-        server.stop()
 
 
 def wait_for(predicate, timeout: float = 60.0, interval: float = 0.1):

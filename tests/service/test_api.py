@@ -3,7 +3,9 @@ from __future__ import annotations
 
 import os
 
-from service_helpers import TINY, corpus_files, make_client  # noqa: F401  (fixture)
+from service_helpers import TINY, corpus_files
+
+from service.dependencies import get_store
 
 
 def _upload(client, count=2, seed=0):
@@ -204,15 +206,16 @@ def test_cancel_queued_job(make_client):
     assert client.post(f"/v1/jobs/{job['id']}/cancel").status_code == 409
 
 
-def test_internal_errors_carry_no_stack_trace(make_client, monkeypatch):
+def test_internal_errors_carry_no_stack_trace(make_client):
     """An unexpected exception becomes a JSON 500 with a reference, never a traceback
     (OWASP, "Improper Error Handling")."""
     client = make_client()
 
-    def broken(*args, **kwargs):
-        raise RuntimeError("secret internal detail")
+    class BrokenStore:
+        def list_jobs(self, *args, **kwargs):
+            raise RuntimeError("secret internal detail")
 
-    monkeypatch.setattr(client.app.state.store, "list_jobs", broken)
+    client.app.dependency_overrides[get_store] = BrokenStore
     response = client.get("/v1/jobs")
     assert response.status_code == 500
     text = response.text
@@ -264,7 +267,7 @@ def test_jobs_page_is_served(make_client):
     assert "/v1/jobs" in response.text
 
 
-def test_store_trouble_is_503_or_507(make_client, monkeypatch):
+def test_store_trouble_is_503_or_507(make_client):
     """SQLite answering "database is locked" past its busy timeout is a 503 with Retry-After;
     "database or disk is full" is a 507 (RFC 9110 §15.6.4, RFC 4918 §11.5)."""
     import sqlite3
@@ -272,10 +275,15 @@ def test_store_trouble_is_503_or_507(make_client, monkeypatch):
     client = make_client()
     for text, status, retry in (("database is locked", 503, "1"),
                                 ("database or disk is full", 507, None)):
-        def failing(*args, text=text, **kwargs):
-            raise sqlite3.OperationalError(text)
+        class FailingStore:
+            """Every store call (the token check included) meets the SQLite error."""
 
-        monkeypatch.setattr(client.app.state.store, "list_jobs", failing)
+            def __getattr__(self, name, text=text):
+                def fail(*args, **kwargs):
+                    raise sqlite3.OperationalError(text)
+                return fail
+
+        client.app.dependency_overrides[get_store] = FailingStore
         response = client.get("/v1/jobs")
         assert response.status_code == status
         assert response.headers.get("retry-after") == retry

@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import hashlib
 
-from service_helpers import TINY, corpus_files, make_client, settings_for  # noqa: F401
+from service_helpers import TINY, corpus_files, settings_for
 
 from service.cli import main as cli
 

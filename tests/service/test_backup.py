@@ -49,7 +49,7 @@ def run_block(marker: str, data: Path, backup: Path) -> None:
 
 def snapshot(store: Store) -> dict:
     """Every token, corpus and job row as the store returns them, plus the result files."""
-    con = store._connection()
+    con = store.connection()
     corpora = {r["id"]: store.get_corpus(r["id"], None) for r in con.execute("SELECT id FROM corpora")}
     jobs = {r["id"]: store.get_job(r["id"], None) for r in con.execute("SELECT id FROM jobs")}
     results = {}

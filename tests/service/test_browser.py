@@ -11,7 +11,7 @@ import re
 import httpx
 import numpy as np
 import pytest
-from service_helpers import TINY, corpus_files, live_server, wait_for  # noqa: F401  (fixture)
+from service_helpers import TINY, corpus_files, wait_for
 
 CHROMIUM = "/usr/bin/chromium"
 LAUNCH_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
@@ -153,7 +153,7 @@ def test_report_from_disk_renders_every_image_and_the_channel_table(browser, tmp
         assert image["alt"].strip() and image["src"].startswith("data:image/png;base64")
     rows = page.evaluate(TABLE_JS)
     assert len(rows) == len(filterbank["channels"])
-    for row, channel in zip(rows, filterbank["channels"]):
+    for row, channel in zip(rows, filterbank["channels"], strict=True):
         for field in ("center_hz", "time_spread_s", "cell_area", "chirp_hz_per_s"):
             assert float(row[field]["value"]) == channel[field]
         assert float(row["center_hz"]["text"]) == pytest.approx(channel["center_hz"], rel=1e-4)

@@ -13,7 +13,7 @@ def atoms(m, n, fs, sigma0, f0, seed=0):
     rng = np.random.default_rng(seed)
     t = np.arange(n) / fs - n / (2 * fs)
     return np.array([np.exp(-(t - d) ** 2 / (4 * sigma0**2)) * np.cos(2 * np.pi * f0 * (t - d) + p)
-                     for d, p in zip(rng.uniform(-0.02, 0.02, m), rng.uniform(0, 6.28, m))])
+                     for d, p in zip(rng.uniform(-0.02, 0.02, m), rng.uniform(0, 6.28, m), strict=True)])
 
 
 def chirps(m, n, fs, beta, sigma0, f0, seed=0):
@@ -22,7 +22,7 @@ def chirps(m, n, fs, beta, sigma0, f0, seed=0):
     t = np.arange(n) / fs - n / (2 * fs)
     return np.array([np.exp(-(t - d) ** 2 / (4 * sigma0**2))
                      * np.cos(2 * np.pi * (f0 * (t - d) + 0.5 * beta * (t - d) ** 2) + p)
-                     for d, p in zip(rng.uniform(-0.02, 0.02, m), rng.uniform(0, 6.28, m))])
+                     for d, p in zip(rng.uniform(-0.02, 0.02, m), rng.uniform(0, 6.28, m), strict=True)])
 
 FAST = ["--windowing", "whole", "--channels", "8", "--band", "120", "360", "--evaluations", "6",
         "--bootstrap", "2"]
@@ -243,9 +243,42 @@ def test_inspect_tune_and_submit_share_the_corpus_flags():
     assert JobSettings(**found[0]).to_options() == found[0]
 
 
+def test_job_flags_set_the_engines_settings_with_its_choices():
+    """Every job-settings flag sets a setting ``search.settings`` knows (a key of
+    SETTINGS_DEFAULTS, or a field of the criterion), offers exactly its choice list, and all of
+    them given at once make settings that ``validate_settings`` accepts; inspect has none of
+    them. Source: DEVELOPERS.md (one definition of each option set, one CLI declaration)."""
+    from search.settings import (CRITERIA, CRITERION_DEFAULTS, SETTINGS_DEFAULTS, SPACINGS,
+                                 validate_settings)
+    from service.cli import build_parser
+    from service.commands.options import JOB_FLAGS, settings_from_args
+
+    for flag in JOB_FLAGS:
+        group, _, name = flag.setting.rpartition(".")
+        assert name in (CRITERION_DEFAULTS if group == "criterion" else SETTINGS_DEFAULTS), flag
+    parser = build_parser()
+    head = ["tune", "x.wav", "--out", "o"]
+    for flag, choices in (("--spacing", SPACINGS), ("--criterion", CRITERIA)):
+        for value in choices:
+            parser.parse_args([*head, flag, value])
+        with pytest.raises(SystemExit):
+            parser.parse_args([*head, flag, "none-of-them"])
+    argv = [*head, "--channels", "12", "--band", "5", "40", "--spacing", SPACINGS[-1],
+            "--criterion", CRITERIA[-1], "--alpha", "2", "--cell-area", "0.5", "2",
+            "--no-chirp", "--no-refine", "--evaluations", "3", "--time-limit", "9",
+            "--bootstrap", "0", "--held-out", "0.2", "--max-negative-share", "0.05", "--jobs", "2"]
+    settings = settings_from_args(parser.parse_args(argv))
+    assert set(settings) == {flag.setting.split(".")[0] for flag in JOB_FLAGS}
+    checked = validate_settings(settings)
+    assert {k: checked[k] for k in settings if k != "criterion"} == {
+        k: v for k, v in settings.items() if k != "criterion"}
+    assert checked["criterion"]["name"] == CRITERIA[-1] and checked["criterion"]["alpha"] == 2.0
+    assert settings_from_args(parser.parse_args(["inspect", "x.wav", "--seed", "3"])) == {"seed": 3}
+
+
 def test_submit_sends_the_corpus_options_with_the_upload_and_the_job(wav_dir, monkeypatch,
                                                                      capsys):
-    """submit reads nothing itself: the upload check reads the corpus with the corpus options
+    """submit reads no corpus itself: the upload check reads the corpus with the corpus options
     (so it finds the windows the job will), and the job's settings carry them too."""
     import service.client
 

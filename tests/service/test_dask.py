@@ -207,19 +207,19 @@ def test_a_cluster_without_workers_fails_the_call_instead_of_waiting():
         client = connect(empty.scheduler_address)
         try:
             started = time.monotonic()
-            with pytest.raises(TimeoutError, match="no worker"):
-                with evaluations_on(client, wait_for_workers_s=1.0):
-                    joblib.Parallel(n_jobs=-1)(joblib.delayed(abs)(-1) for _ in range(2))
+            with (pytest.raises(TimeoutError, match="no worker"),
+                  evaluations_on(client, wait_for_workers_s=1.0)):
+                joblib.Parallel(n_jobs=-1)(joblib.delayed(abs)(-1) for _ in range(2))
             assert time.monotonic() - started < 30.0
         finally:
             client.close()
 
 
 def _prepared_chunks() -> int:
-    """Window chunks prepared in this process (search.optimize caches one per chunk it scored)."""
-    from search import optimize
+    """Window chunks prepared in this process (search.fit.evaluate caches one per chunk it scored)."""
+    from search.fit import evaluate
 
-    return len(optimize._PREPARED)
+    return len(evaluate._PREPARED)
 
 
 def test_a_one_thread_cluster_runs_the_search_on_the_cluster(tmp_path):

@@ -18,8 +18,7 @@ import httpx
 import numpy as np
 import pytest
 
-from service_helpers import (ROOT, TINY, burst_npz, live_server, service_env,  # noqa: F401
-                             settings_for, wait_for)
+from service_helpers import ROOT, TINY, burst_npz, service_env, settings_for, wait_for
 
 from service.cli import main as cli
 from service.client import Client

@@ -3,9 +3,10 @@
 from __future__ import annotations
 
 import errno
+import io
 import os
 
-from service_helpers import TINY, burst_npz, corpus_files, make_client  # noqa: F401
+from service_helpers import TINY, burst_npz, corpus_files
 
 
 def _nothing_left(tmp_path) -> bool:
@@ -88,15 +89,9 @@ def test_disk_full_is_507(make_client, tmp_path, monkeypatch):
     message, and the partial upload is removed."""
     import service.uploads
 
-    class FullDisk:
-        def __init__(self, path, mode):
-            self.fh = open(path, mode)
-
+    class FullDisk(io.FileIO):
         def write(self, data):
             raise OSError(errno.ENOSPC, "No space left on device")
-
-        def close(self):
-            self.fh.close()
 
     monkeypatch.setattr(service.uploads, "open", FullDisk, raising=False)
     client = make_client()

@@ -27,7 +27,7 @@ def test_kernel_covariance_reproduces_cell_area_and_chirp():
     """The kernel covariance has 4π√det Σ = a and conditional-mean slope Σ_tf/Σ_tt = β, as the
     definitions a = 4π σ_t σ_f √(1−ρ²), β = ρ σ_f/σ_t require (DESIGN §3; Gaussian conditioning,
     common practice)."""
-    for st, a, beta in zip(TIME_SPREAD_S, CELL_AREA, CHIRP_HZ_PER_S):
+    for st, a, beta in zip(TIME_SPREAD_S, CELL_AREA, CHIRP_HZ_PER_S, strict=True):
         cov = plots.kernel_covariance(st, a, beta)
         assert 4 * np.pi * np.sqrt(np.linalg.det(cov)) == pytest.approx(a, rel=1e-9)
         assert cov[0, 1] / cov[0, 0] == pytest.approx(beta, rel=1e-12, abs=1e-9)
@@ -58,7 +58,7 @@ def test_tiling_draws_one_ellipse_per_channel_coloured_by_area():
     norm = plots._area_norm(CELL_AREA)
     cmap = matplotlib.colormaps[plots.AREA_CMAP]
     by_centre = {round(float(np.mean(p.get_xy()[:-1, 1])), 6): p for p in ellipses}
-    for fc, a in zip(CENTER_HZ, CELL_AREA):
+    for fc, a in zip(CENTER_HZ, CELL_AREA, strict=True):
         edge = by_centre[round(fc, 6)].get_edgecolor()
         np.testing.assert_allclose(edge[:3], cmap(norm(a))[:3], atol=1e-6)
     # a = 1 maps to the middle of the colour scale whatever the spread of areas
@@ -151,7 +151,7 @@ def test_channel_parameters_draw_values_and_bootstrap_bands():
     assert len(axes) == 3
     scales = {"time_spread_s": 1e3, "cell_area": 1.0, "chirp_hz_per_s": 1.0}
     values = {"time_spread_s": TIME_SPREAD_S, "cell_area": CELL_AREA, "chirp_hz_per_s": CHIRP_HZ_PER_S}
-    for ax, field in zip(axes, scales):
+    for ax, field in zip(axes, scales, strict=True):
         (band,) = [c for c in ax.collections if c.get_gid() == f"band:{field}"]
         assert isinstance(band, PolyCollection)
         y = band.get_paths()[0].vertices[:, 1]
@@ -239,7 +239,7 @@ def test_baselines_draw_one_interval_per_entry():
     assert len(ax.containers) == len(entries)
     assert [t.get_text() for t in ax.get_yticklabels()] == [e["label"] for e in entries]
     assert ax.get_yticklabels()[0].get_text() == "best spectrogram"
-    for container, entry in zip(ax.containers, entries):
+    for container, entry in zip(ax.containers, entries, strict=True):
         marker_x = container.lines[0].get_xdata()[0]
         assert marker_x == pytest.approx(entry["objective"])
         if entry["low"] is not None:

@@ -152,7 +152,7 @@ def test_channel_table_matches_filterbank_json(page_text):
     fb = filterbank_json(channels=7)
     page = Page(page_text)
     assert [r["channel"] for r in page.rows] == list(range(7))
-    for row, channel in zip(page.rows, fb["channels"]):
+    for row, channel in zip(page.rows, fb["channels"], strict=True):
         for field in report.CHANNEL_FIELDS:
             assert float(row["cells"][field]["value"]) == channel[field]
         text = {f: row["cells"][f]["text"] for f in report.CHANNEL_FIELDS}

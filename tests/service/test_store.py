@@ -119,7 +119,7 @@ def test_committed_job_is_visible_to_a_new_connection(tmp_path):
     other = sqlite3.connect(store.db_path)
     assert other.execute("SELECT state FROM jobs WHERE id = ?", (job_id,)).fetchone() == ("queued",)
     assert other.execute("PRAGMA journal_mode").fetchone() == ("wal",)
-    assert store._connection().execute("PRAGMA synchronous").fetchone()[0] == 2  # FULL
+    assert store.connection().execute("PRAGMA synchronous").fetchone()[0] == 2  # FULL
     other.close()
 
 
@@ -145,14 +145,13 @@ def test_failed_commit_leaves_no_open_transaction(tmp_path):
     open until the caller rolls it back (SQLite documentation, "SQLite Foreign Key Support",
     deferred foreign key constraints; the behaviour is from memory of that page)."""
     store, _ = _store_with_jobs(tmp_path, 1)
-    con = store._connection()
+    con = store.connection()
     con.execute("PRAGMA foreign_keys = ON")  # only takes effect outside a transaction
     con.execute("CREATE TEMP TABLE parent (id INTEGER PRIMARY KEY)")
     con.execute("CREATE TEMP TABLE child (parent_id INTEGER REFERENCES parent (id) "
                 "DEFERRABLE INITIALLY DEFERRED)")
-    with pytest.raises(sqlite3.IntegrityError):
-        with store._tx() as tx:
-            tx.execute("INSERT INTO child (parent_id) VALUES (7)")  # checked at COMMIT
+    with pytest.raises(sqlite3.IntegrityError), store.transaction() as tx:
+        tx.execute("INSERT INTO child (parent_id) VALUES (7)")  # checked at COMMIT
     assert not con.in_transaction
     assert con.execute("SELECT count(*) FROM child").fetchone()[0] == 0
     token_id = store.add_token("after", "t", "f" * 64)  # the next write transaction works

@@ -10,7 +10,7 @@ import pytest
 
 from service_helpers import TINY, corpus_files, settings_for, wait_for
 
-import service.worker as worker_module
+from service.dependencies import get_settings
 from service.report import PLOT_NAMES
 from service.routers.jobs import PlotName
 from service.worker import Worker
@@ -39,8 +39,8 @@ def _submit(client, settings=TINY, corpus_id=None):
     return response.json()
 
 
-def _worker(client) -> Worker:
-    return Worker(client.app.state.settings)
+def _worker(client, **hooks) -> Worker:
+    return Worker(client.app.state.settings, **hooks)
 
 
 def _channels(client, job_id):
@@ -86,7 +86,7 @@ def test_job_full_life(shared):
     assert list(arrays["window_file"]) == ["trace0.npz"] * m
 
 
-def test_transform_with_filterbank_json(shared, monkeypatch):
+def test_transform_with_filterbank_json(shared):
     """POST /v1/transform with the filterbank JSON itself gives the same NPZ as with the job id;
     a malformed filterbank is a 422 naming it, an output over the limit a 413 (DESIGN §7)."""
     client, _, job_id = shared
@@ -99,8 +99,12 @@ def test_transform_with_filterbank_json(shared, monkeypatch):
     np.testing.assert_array_equal(a, b)
     bad = client.post("/v1/transform", data={"filterbank": '{"format": "x"}'}, files=corpus_files(1))
     assert bad.status_code == 422 and "filterbank" in bad.json()["error"]["message"]
-    monkeypatch.setattr(client.app.state.settings, "max_transform_values", 1000)
-    big = client.post("/v1/transform", data={"job_id": job["id"]}, files=corpus_files(1, 5))
+    small = client.app.state.settings.model_copy(update={"max_transform_values": 1000})
+    client.app.dependency_overrides[get_settings] = lambda: small
+    try:
+        big = client.post("/v1/transform", data={"job_id": job["id"]}, files=corpus_files(1, 5))
+    finally:
+        client.app.dependency_overrides.clear()
     assert big.status_code == 413 and "limit of 1000" in big.json()["error"]["message"]
 
 
@@ -119,30 +123,23 @@ def test_crashing_job_fails_after_attempts_without_blocking_others(shared):
     assert client.get(f"/v1/jobs/{good['id']}").json()["state"] == "succeeded"
 
 
-def _stop_after_checkpoints(monkeypatch, worker: Worker, count: int) -> None:
-    """Make ``worker`` behave as if SIGTERM arrived after its ``count``-th checkpoint."""
-    original = worker_module._JobRun.checkpoint
-    seen = {"n": 0}
+def _stopped_after_checkpoints(client, count: int) -> Worker:
+    """A worker that behaves as if SIGTERM arrived during its ``count``-th checkpoint (the
+    checkpoint is saved, then the attempt ends), through the worker's ``on_checkpoint`` hook."""
+    def on_checkpoint(run, seq):
+        if seq == count:
+            run.worker.request_stop()
 
-    def checkpoint(self, state):
-        seen["n"] += 1
-        if seen["n"] == count:
-            worker.request_stop()
-        return original(self, state)
-
-    monkeypatch.setattr(worker_module._JobRun, "checkpoint", checkpoint)
+    return _worker(client, on_checkpoint=on_checkpoint)
 
 
-def test_resume_from_checkpoint_matches_uninterrupted(shared, monkeypatch):
+def test_resume_from_checkpoint_matches_uninterrupted(shared):
     """A job stopped after a checkpoint is released (attempt given back) and, resumed from the
     pickled state, ends with exactly the filterbank of an uninterrupted run (DESIGN §5)."""
     client, corpus_id, reference_id = shared
     reference = {"id": reference_id}
     job = _submit(client, TINY, corpus_id)
-    interrupted = _worker(client)
-    _stop_after_checkpoints(monkeypatch, interrupted, 5)
-    interrupted.run(max_jobs=1)
-    monkeypatch.undo()
+    _stopped_after_checkpoints(client, 5).run(max_jobs=1)
     paused = client.get(f"/v1/jobs/{job['id']}").json()
     assert (paused["state"], paused["attempts"]) == ("queued", 0)
     assert client.app.state.store.get_job(job["id"], None)["checkpoint_path"]
@@ -152,17 +149,14 @@ def test_resume_from_checkpoint_matches_uninterrupted(shared, monkeypatch):
     assert _channels(client, job["id"]) == _channels(client, reference["id"])
 
 
-def test_torn_checkpoint_restarts_clean(shared, monkeypatch):
+def test_torn_checkpoint_restarts_clean(shared):
     """A checkpoint whose bytes no longer match the sha256 kept in the store (a torn or altered
     file) is dropped: the job starts over and still ends with the uninterrupted result (a
     digest kept apart from the data detects a torn write; common practice)."""
     client, corpus_id, reference_id = shared
     reference = {"id": reference_id}
     job = _submit(client, TINY, corpus_id)
-    interrupted = _worker(client)
-    _stop_after_checkpoints(monkeypatch, interrupted, 5)
-    interrupted.run(max_jobs=1)
-    monkeypatch.undo()
+    _stopped_after_checkpoints(client, 5).run(max_jobs=1)
     path = Path(client.app.state.store.get_job(job["id"], None)["checkpoint_path"])
     path.write_bytes(path.read_bytes()[: path.stat().st_size // 2])
     _worker(client).run(exit_when_idle=True)
@@ -173,21 +167,18 @@ def test_torn_checkpoint_restarts_clean(shared, monkeypatch):
     assert not list(path.parent.glob(f"{job['id']}-*"))  # checkpoints cleaned up
 
 
-def test_cancel_running_job(shared, monkeypatch):
+def test_cancel_running_job(shared):
     """Cancelling a running job reaches its worker through the heartbeat; the search stops at
     its next round and the job ends cancelled, its checkpoints removed (DESIGN §7)."""
     client, corpus_id, reference_id = shared
     job = _submit(client, TINY, corpus_id)
-    original = worker_module._JobRun.progress
 
-    def progress(self, info):
-        original(self, info)
-        if info.get("round") == 2 and not self.beat.cancelled:  # cancel mid-job, over HTTP
+    def on_progress(run, info):
+        if info.get("round") == 2 and not run.beat.cancelled:  # cancel mid-job, over HTTP
             assert client.post(f"/v1/jobs/{job['id']}/cancel").json()["cancel_requested"]
-            wait_for(lambda: self.beat.cancelled, timeout=30)
+            wait_for(lambda: run.beat.cancelled, timeout=30)
 
-    monkeypatch.setattr(worker_module._JobRun, "progress", progress)
-    assert _worker(client).run(max_jobs=1) == 0
+    assert _worker(client, on_progress=on_progress).run(max_jobs=1) == 0
     done = client.get(f"/v1/jobs/{job['id']}").json()
     assert (done["state"], done["stop_reason"]) == ("cancelled", "cancelled")
     full = client.get(f"/v1/jobs/{reference_id}").json()["progress"]["round"]

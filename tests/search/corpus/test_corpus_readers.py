@@ -18,13 +18,14 @@ def _read(path, **kw):
 
 def _stream(data, rate=4000.0, station="STA01", channels=("GPZ",)):
     st = Stream()
-    for ch, row in zip(channels, np.atleast_2d(data)):
+    for ch, row in zip(channels, np.atleast_2d(data), strict=True):
         st.append(Trace(row, header={"network": "XX", "station": station, "location": "00",
                                      "channel": ch, "sampling_rate": rate, "starttime": START}))
     return st
 
 
-@pytest.mark.parametrize("encoding,dtype", [("STEIM2", np.int32), ("STEIM1", np.int32), ("FLOAT32", np.float32), ("INT16", np.int16)])
+@pytest.mark.parametrize("encoding,dtype", [("STEIM2", np.int32), ("STEIM1", np.int32), ("FLOAT32", np.float32),
+                                            ("INT16", np.int16)])
 def test_mseed_round_trip(tmp_path, encoding, dtype):
     """miniSEED written by ObsPy (SEED Manual v2.4 encodings) reads back sample for sample with its
     SEED ids, start time and rate; recognised by content, not by name."""
@@ -35,7 +36,7 @@ def test_mseed_round_trip(tmp_path, encoding, dtype):
     fmt, traces = _read(path)
     assert fmt == "MSEED"
     assert [t.trace_id for t in traces] == ["XX.STA01.00.GPZ", "XX.STA01.00.GPN", "XX.STA01.00.GPE"]
-    for t, row in zip(traces, data):
+    for t, row in zip(traces, data, strict=True):
         np.testing.assert_array_equal(t.data, row)
         assert t.sampling_rate_hz == 4000.0
         assert t.start == pytest.approx(START.timestamp, abs=1e-6)

@@ -33,7 +33,8 @@ def test_exponential_sta_lta_equals_obspy(nsta, nlta):
     """STA/LTA from exponentially weighted (one-pole) averages equals
     obspy.signal.trigger.recursive_sta_lta, the reference library, sample for sample."""
     x = _bursty(2)
-    np.testing.assert_allclose(w.exponential_sta_lta(x, nsta, nlta), ref_exponential(x, nsta, nlta), rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(w.exponential_sta_lta(x, nsta, nlta), ref_exponential(x, nsta, nlta),
+                               rtol=1e-10, atol=1e-12)
 
 
 def test_moving_sum_across_blocks_matches_direct_sum():

@@ -10,6 +10,8 @@ from obspy import Stream, Trace, UTCDateTime
 
 from search.corpus import REJECTION_REASONS, Corpus, CorpusError, read_corpus
 
+START = UTCDateTime(2026, 2, 3, 4, 5, 6)  # first sample of the records _write_mseed writes
+
 
 def _burst_record(fs, seconds, onsets_s, seed=0, amp=600.0, noise=10.0):
     """Noise with decaying bursts at fs/8 lasting ~40 periods (so durations scale with the rate)."""
@@ -23,7 +25,7 @@ def _burst_record(fs, seconds, onsets_s, seed=0, amp=600.0, noise=10.0):
     return x
 
 
-def _write_mseed(path, data, fs, station="A1", channel="HHZ", start=UTCDateTime(2026, 2, 3, 4, 5, 6)):
+def _write_mseed(path, data, fs, station="A1", channel="HHZ", start=START):
     tr = Trace(np.rint(data).astype(np.int32), header={
         "network": "XX", "station": station, "location": "00", "channel": channel,
         "sampling_rate": fs, "starttime": start})
@@ -69,7 +71,8 @@ def test_given_options_are_used_and_recorded(tmp_path):
     corpus = read_corpus(path, sta_s=0.01, lta_s=0.2, trigger_on=4.0, trigger_off=1.2, window_s=0.128,
                          trigger="exponential", pre_trigger=0.1)
     d = corpus.defaults
-    assert (d["sta_s"], d["lta_s"], d["trigger_on"], d["trigger_off"], d["trigger"]) == (0.01, 0.2, 4.0, 1.2, "exponential")
+    assert (d["sta_s"], d["lta_s"], d["trigger_on"], d["trigger_off"], d["trigger"]) == (
+        0.01, 0.2, 4.0, 1.2, "exponential")
     assert corpus.window_samples == 512 and d["window_source"] == "given"
     assert corpus.n_windows == len(ONSETS)
 
@@ -226,7 +229,7 @@ def test_cap_is_a_seeded_subsample_in_window_order(tmp_path):
     assert offsets != [m["offset_s"] for m in c.window_meta]
     assert a.defaults["windows_found"] == full.n_windows and a.defaults["windows_kept"] == 10
     index = {m["offset_s"]: i for i, m in enumerate(full.window_meta)}
-    for w, m in zip(a.windows, a.window_meta):
+    for w, m in zip(a.windows, a.window_meta, strict=True):
         np.testing.assert_array_equal(w, full.windows[index[m["offset_s"]]])
     assert sum(t["windows"] for t in a.traces) == 10
 
@@ -326,7 +329,8 @@ def test_zero_windows_says_why(tmp_path):
     trace count and suggests windowing='whole'; all-flat windows name the reason counts."""
     noise = tmp_path / "quiet.mseed"
     _write_mseed(noise, np.random.default_rng(6).standard_normal(40000) * 10, 4000.0)
-    with pytest.raises(CorpusError, match=rf"{noise}: zero usable windows: no triggers above 3.5 in 1 traces.*windowing='whole'"):
+    with pytest.raises(CorpusError,
+                       match=rf"{noise}: zero usable windows: no triggers above 3.5 in 1 traces.*windowing='whole'"):
         read_corpus(noise)
     flat = tmp_path / "flat.npy"
     np.save(flat, np.ones(5000))

@@ -1,0 +1,153 @@
+"""One run of ``FilterbankSearch.fit``: what every stage shares.
+
+:class:`RunContext` holds the resolved settings ``s``, the :class:`~search.fit.space.SearchSpace`,
+the held-out split, the windows (``all_windows`` (M, N) float64; ``windows``, the fit windows
+stages 0–2 see), the criterion, the evaluators (created on first use, closed by :meth:`close`)
+and the resumable ``state`` dict that is checkpointed after every round. Each stage module
+(baselines, family, refine, judge) is a function of it.
+
+The state is plain data plus the scikit-optimize ``Optimizer`` and a
+``search.diagnostics.ConvergenceLog``; it pickles, and ``format``/``version`` say which code
+reads it.
+"""
+from __future__ import annotations
+
+import copy
+import math
+import time
+
+import numpy as np
+
+from search import diagnostics as dg
+from search.criteria import ceiling_objective
+from search.fit.evaluate import Evaluator, make_criterion
+from search.safe_io import finite_or_none
+
+STATE_FORMAT = "burstlens-search-state"
+STATE_VERSION = 2
+
+
+class Cancelled(Exception):
+    """Raised inside a stage when ``should_stop()`` says so; the run then goes to the record."""
+
+
+class RunContext:
+    """Settings, windows, state and callbacks of one fit (see the module docstring)."""
+
+    # share of the progress fraction each stage reports in
+    STAGE_SPAN = {"baselines": (0.0, 0.1), "family": (0.1, 0.55), "refine": (0.55, 0.9),
+                  "judge": (0.9, 1.0)}
+
+    def __init__(self, corpus, settings, space, split, progress, checkpoint, should_stop):
+        self.corpus, self.s, self.space, self.split = corpus, settings, space, split
+        self.progress_cb, self.checkpoint_cb, self.should_stop = progress, checkpoint, should_stop
+        self.all_windows = np.ascontiguousarray(np.asarray(corpus.windows, dtype=np.float64))
+        # stages 0–2 see only the fit windows; the judgement sees only the held-out ones
+        self.windows = self.all_windows[self.split.fit]
+        self.spec = settings["criterion"]
+        self.how = self.spec["reduce"]
+        self.criterion = make_criterion(self.spec)
+        self.t_start = time.perf_counter()
+        self.full = None
+        self.sub = None
+        self.held = None
+        self.state = None
+
+    # -- the resumable state ----------------------------------------------------------------
+
+    def fingerprint(self) -> dict:
+        s = {k: v for k, v in self.s.items() if k not in ("time_limit_s", "jobs")}
+        return {"source_hash": getattr(self.corpus, "source_hash", None),
+                "windows": list(self.all_windows.shape), "settings": s,
+                "checksum": float(np.sum(self.all_windows[:, ::7])),
+                "held_out": self.split.held_out.tolist()}
+
+    def new_state(self) -> dict:
+        seed = self.s["seed"]
+        m = len(self.windows)
+        rng = np.random.default_rng(np.random.SeedSequence([seed, 1]))
+        subset = np.sort(rng.choice(m, size=self.s["subset"], replace=False)) if self.s["subset"] < m \
+            else np.arange(m)
+        return {"format": STATE_FORMAT, "version": STATE_VERSION, "fingerprint": self.fingerprint(),
+                "phase": "baselines", "round": 0, "elapsed_s": 0.0, "best": math.inf,
+                "subset": subset.tolist(), "log": dg.ConvergenceLog(), "baselines": {},
+                "family": None, "refine": None, "stop_reason": None}
+
+    def start(self, resume_from) -> None:
+        """Set ``state``: a fresh one, or a copy of ``resume_from`` after checking that it was
+        taken by this code on this corpus with these settings (``ValueError`` otherwise)."""
+        if resume_from is None:
+            self.state = self.new_state()
+            return
+        if not isinstance(resume_from, dict) or resume_from.get("format") != STATE_FORMAT:
+            raise ValueError("resume_from is not a burstlens search state")
+        if resume_from.get("version") != STATE_VERSION:
+            raise ValueError(f"resume_from has state version {resume_from.get('version')}, "
+                             f"this code reads version {STATE_VERSION}")
+        if resume_from["fingerprint"] != self.fingerprint():
+            raise ValueError("resume_from was taken on a different corpus or different settings")
+        self.state = copy.deepcopy(resume_from)
+
+    # -- time, cancel, progress -------------------------------------------------------------
+
+    def elapsed(self) -> float:
+        return self.state["elapsed_s"] + (time.perf_counter() - self.t_start)
+
+    def out_of_time(self) -> bool:
+        limit = self.s["time_limit_s"]
+        return limit is not None and self.elapsed() >= limit
+
+    def cancelled(self) -> bool:
+        return bool(self.should_stop and self.should_stop())
+
+    def check_cancel(self):
+        if self.cancelled():
+            raise Cancelled()
+
+    def report(self, stage: str, fraction_in_stage: float, save: bool = True, **extra):
+        """Progress message for ``stage`` (and a checkpoint of the state unless ``save`` is
+        False)."""
+        lo, hi = self.STAGE_SPAN[stage]
+        st = self.state
+        msg = {"stage": stage, "round": st["round"], "evaluations": st["log"].count("family"),
+               "evaluations_total": st["log"].count(),
+               "budget": self.s["evaluations"], "best_objective": finite_or_none(st["best"]),
+               "fraction": float(lo + (hi - lo) * min(max(fraction_in_stage, 0.0), 1.0))}
+        msg.update(extra)
+        if self.progress_cb:
+            self.progress_cb(msg)
+        if self.checkpoint_cb and save:
+            snap = copy.deepcopy(self.state)
+            snap["elapsed_s"] = self.elapsed()
+            self.checkpoint_cb(snap)
+
+    # -- scoring ----------------------------------------------------------------------------
+
+    def evaluator(self, which: str) -> Evaluator:
+        """``full``: all fit windows; ``subset``: the stage-1 subset of them; ``held``: the
+        held-out windows."""
+        def make(windows):
+            return Evaluator(windows, self.space.fs, self.criterion, self.s["eps"], self.s["jobs"],
+                             self.space.cell)
+        if which == "full":
+            if self.full is None:
+                self.full = make(self.windows)
+            return self.full
+        if which == "held":
+            if self.held is None:
+                self.held = make(self.all_windows[self.split.held_out])
+            return self.held
+        if self.sub is None:
+            self.sub = make(self.windows[np.asarray(self.state["subset"], dtype=np.int64)])
+        return self.sub
+
+    def ceiling(self, scores, shares):
+        """Corpus objective of per-window scores and negative shares, (M,) → float or (M, n) →
+        (n,): the reduced scores, +inf above ``max_negative_share``
+        (``search.criteria.ceiling_objective``)."""
+        return ceiling_objective(scores, shares, self.how, self.s["max_negative_share"])
+
+    def close(self):
+        for ev in (self.full, self.sub, self.held):
+            if ev is not None:
+                ev.close()

@@ -1,0 +1,115 @@
+"""POST /v1/transform and `burstlens transform`: new files are cut as the tuning cut its corpus,
+and both write one NPZ layout."""
+from __future__ import annotations
+
+import io
+
+import numpy as np
+import pytest
+
+from service_helpers import TINY, burst_npz, corpus_files, settings_for
+
+# A quick fit: the windowing under test, not the search, is what these jobs are for.
+QUICK = {**TINY, "bootstrap": 0, "refine": False, "max_windows": 40}
+FS, WINDOW_S = 1000.0, 0.256  # the rate of burst_npz and TINY's window length
+
+
+@pytest.fixture(scope="module")
+def tuned(tmp_path_factory):
+    """Two finished jobs on burst traces: one whose settings ask for sliding windows, one on a
+    corpus uploaded with the reading option windowing=sliding and settings that say nothing."""
+    from fastapi.testclient import TestClient
+
+    from service.app import create_app
+    from service.worker import Worker
+
+    settings = settings_for(tmp_path_factory.mktemp("transform"))
+    with TestClient(create_app(settings), raise_server_exceptions=False) as client:
+        plain = client.post("/v1/corpora", files=corpus_files(2)).json()["id"]
+        sliding = client.post("/v1/corpora", files=corpus_files(2),
+                              data={"windowing": "sliding", "max_windows": "40"}).json()["id"]
+        by_job = client.post("/v1/jobs", json={"corpus_id": plain, "settings": {
+            **QUICK, "windowing": "sliding"}}).json()["id"]
+        by_upload = client.post("/v1/jobs", json={"corpus_id": sliding,
+                                                  "settings": QUICK}).json()["id"]
+        Worker(settings).run(exit_when_idle=True)
+        for job_id in (by_job, by_upload):
+            assert client.get(f"/v1/jobs/{job_id}").json()["state"] == "succeeded"
+        yield client, by_job, by_upload
+
+
+def _offsets(tmp_path, windowing: str) -> list[float]:
+    """Window starts the corpus reader gives the new file (burst_npz seed 5) cut as asked."""
+    from search.corpus import read_corpus
+
+    path = tmp_path / "new.npz"
+    path.write_bytes(burst_npz(5))
+    corpus = read_corpus([str(path)], windowing=windowing, sampling_rate_hz=FS, window_s=WINDOW_S)
+    return [w["offset_s"] for w in corpus.window_meta]
+
+
+def _transform(client, **fields) -> dict:
+    response = client.post("/v1/transform", data=fields, files=corpus_files(1, seed=5))
+    assert response.status_code == 200, response.text
+    with np.load(io.BytesIO(response.content), allow_pickle=False) as npz:
+        return {name: npz[name] for name in npz.files}
+
+
+def test_transform_cuts_new_files_with_the_jobs_windowing(tuned, tmp_path):
+    """A filterbank tuned on sliding windows (the job's setting windowing=sliding) transforms a
+    new file into sliding windows too, given by job id or as the filterbank JSON; the request's
+    own windowing overrides it. The three windowings give different windows on this file
+    (6 bursts, 83 sliding), so the check tells them apart. Regression: the route read the
+    windowing from a key the filterbank file never has and always cut bursts (issue 15)."""
+    client, by_job, _ = tuned
+    sliding, bursts = _offsets(tmp_path, "sliding"), _offsets(tmp_path, "bursts")
+    assert len(sliding) != len(bursts)
+    filterbank = client.get(f"/v1/jobs/{by_job}/filterbank").text
+    for fields in ({"job_id": by_job}, {"filterbank": filterbank}):
+        arrays = _transform(client, **fields)
+        assert arrays["window_offset_s"].tolist() == sliding, fields.keys()
+        assert arrays["representation"].shape == (len(sliding), TINY["channels"], 256)
+    overridden = _transform(client, job_id=by_job, windowing="bursts")
+    assert overridden["window_offset_s"].tolist() == bursts
+
+
+def test_transform_uses_the_reading_options_of_the_jobs_corpus(tuned, tmp_path):
+    """A job on a corpus uploaded with windowing=sliding (a reading option of the upload, which
+    its jobs use unless their settings override it) was tuned on sliding windows, so its
+    filterbank cuts new files into sliding windows, by job id or as its filterbank JSON."""
+    client, _, by_upload = tuned
+    sliding = _offsets(tmp_path, "sliding")
+    filterbank = client.get(f"/v1/jobs/{by_upload}/filterbank").text
+    for fields in ({"job_id": by_upload}, {"filterbank": filterbank}):
+        assert _transform(client, **fields)["window_offset_s"].tolist() == sliding, fields.keys()
+
+
+def test_route_and_command_write_the_same_npz(tuned, tmp_path, monkeypatch):
+    """POST /v1/transform and `burstlens transform` on the same filterbank and file write the
+    same members in the same order with equal arrays (one layout, search.documents.npz_members),
+    the command also cutting the file as the job did."""
+    from service.cli import main
+
+    client, by_job, _ = tuned
+    filterbank = client.get(f"/v1/jobs/{by_job}/filterbank").text
+    (tmp_path / "filterbank.json").write_text(filterbank)
+    with np.load(io.BytesIO(burst_npz(5))) as trace:  # with a SEED id: the trace ids then do
+        buffer = io.BytesIO()                        # not depend on the file's stored name
+        np.savez(buffer, data=trace["data"], sampling_rate_hz=trace["sampling_rate_hz"],
+                 trace_ids=np.array(["XX.NEW.00.HHZ"]))
+    (tmp_path / "new.npz").write_bytes(buffer.getvalue())
+    monkeypatch.chdir(tmp_path)  # the command records the path as given: "new.npz"
+    assert main(["transform", "--filterbank", "filterbank.json", "new.npz",
+                 "--out", "out.npz"]) == 0
+    with np.load(tmp_path / "out.npz", allow_pickle=False) as npz:
+        command = {name: npz[name] for name in npz.files}
+    response = client.post("/v1/transform", data={"filterbank": filterbank},
+                           files=[("files", ("new.npz", buffer.getvalue()))])
+    assert response.status_code == 200, response.text
+    with np.load(io.BytesIO(response.content), allow_pickle=False) as npz:
+        route = {name: npz[name] for name in npz.files}
+    assert len(route["window_file"]) > 6 and set(route["window_trace_id"]) == {"XX.NEW.00.HHZ"}
+    assert list(command) == list(route)
+    for name, array in route.items():
+        assert command[name].dtype == array.dtype, name
+        np.testing.assert_array_equal(command[name], array, err_msg=name)
