@@ -28,7 +28,7 @@ test: venv chromium
 	$(BIN)/python -m pytest tests
 
 demo: venv
-	$(BIN)/python -m service.demo
+	$(BIN)/python -m burstlens.service.demo
 
 bench: venv
 	$(BIN)/python bench/run.py

@@ -31,7 +31,7 @@ TARGET_MB = 2048.0
 CHILD = """
 import json, sys, time
 sys.path.insert(0, {root!r})
-from search.corpus import read_corpus
+from burstlens.search.corpus import read_corpus
 t0 = time.perf_counter()
 corpus = read_corpus({path!r})
 seconds = time.perf_counter() - t0

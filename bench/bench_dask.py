@@ -51,7 +51,7 @@ class BurstCorpus:
 
 def fit(corpus, options: dict, n_jobs: int) -> tuple[float, int, float, dict]:
     """(evaluations per second, evaluations, wall seconds, filterbank JSON) of one fit."""
-    from search.optimize import FilterbankSearch
+    from burstlens.search.optimize import FilterbankSearch
 
     started = time.perf_counter()
     search = FilterbankSearch(**options, n_jobs=n_jobs).fit(corpus)

@@ -40,7 +40,7 @@ def by_hand(windows: np.ndarray, fs: float, n_windows_grid: int = 24) -> dict:
     from scipy.signal import ShortTimeFFT
     from scipy.signal.windows import gaussian
 
-    from search.criteria import Criterion, continuous_entropy
+    from burstlens.search.criteria import Criterion, continuous_entropy
 
     n = windows.shape[1]
     criterion = Criterion("renyi", alpha=3.0)
@@ -85,7 +85,7 @@ def _note() -> str:
 
 
 def search(corpus, **options):
-    from search.optimize import FilterbankSearch
+    from burstlens.search.optimize import FilterbankSearch
 
     return FilterbankSearch(**options).fit(corpus)
 
@@ -109,7 +109,7 @@ def memory_child(n_windows: int, quick: bool) -> None:
     """Run in a child: a search over n_windows × 1024 samples, print peak RSS (MB) as JSON."""
     import resource
 
-    from search.corpus import read_corpus
+    from burstlens.search.corpus import read_corpus
 
     corpus = read_corpus([os.path.join(ROOT, "demo_corpus")])
     reps = -(-n_windows // corpus.n_windows)
@@ -136,7 +136,7 @@ def main() -> int:
         memory_child(args.memory_child, args.quick)
         return 0
 
-    from search.corpus import read_corpus
+    from burstlens.search.corpus import read_corpus
 
     corpus = read_corpus([os.path.join(ROOT, "demo_corpus")])
     fs = corpus.sampling_rate_hz

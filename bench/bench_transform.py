@@ -41,9 +41,9 @@ from threadpoolctl import threadpool_limits
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from search import Channel, Filterbank, center_grid, prepare, transform  # noqa: E402
-from search.transform import auto_chirp_method, clear_plans  # noqa: E402
-from search.wvd import lag_count, truncation_width  # noqa: E402
+from burstlens.search import Channel, Filterbank, center_grid, prepare, transform  # noqa: E402
+from burstlens.search.transform import auto_chirp_method, clear_plans  # noqa: E402
+from burstlens.search.wvd import lag_count, truncation_width  # noqa: E402
 
 FS = 4000.0
 CHANNELS = 96
@@ -212,7 +212,7 @@ def chirp_method_choice(rounds: int = 3) -> None:
 
 
 def main() -> None:
-    print(f"search.transform benchmark: fs={FS:g} Hz, C={CHANNELS}, σ_t 2–50 ms, a=1, "
+    print(f"burstlens.search.transform benchmark: fs={FS:g} Hz, C={CHANNELS}, σ_t 2–50 ms, a=1, "
           f"chirp {CHIRP:+g} Hz/s for the chirped filterbank, eps={EPS:g}")
     with threadpool_limits(1):
         peak_memory(workers=1)

@@ -38,9 +38,9 @@ import json, resource, sys
 import numpy as np
 kind, m, c, n = sys.argv[1], int(sys.argv[2]), int(sys.argv[3]), int(sys.argv[4])
 fs = 1000.0
-from search.filterbank import Filterbank, center_grid
-from search.transform import transform
-from search.optimize import FilterbankSearch
+from burstlens.search.filterbank import Filterbank, center_grid
+from burstlens.search.transform import transform
+from burstlens.search.optimize import FilterbankSearch
 rng = np.random.default_rng(0)
 windows = rng.standard_normal((m, n))
 

@@ -62,7 +62,7 @@ def reader_fuzz(cases: int, seed: int, workdir: Path) -> dict:
     from hypothesis import strategies as st
 
     from reliability.samples import hostile_files, mutate, valid_files
-    from search.corpus import CorpusError, read_corpus
+    from burstlens.search.corpus import CorpusError, read_corpus
 
     marker = workdir / "UNPICKLED"
     seeds = {**valid_files(), **hostile_files(str(marker))}
@@ -225,7 +225,7 @@ FRAMINGS = ("ok", "ok", "ok", "no-closing", "wrong-boundary", "no-boundary-param
 
 
 def _valid_filterbank_json() -> str:
-    from search.filterbank import Filterbank, center_grid
+    from burstlens.search.filterbank import Filterbank, center_grid
 
     fb = Filterbank.constant_window(center_grid([20.0, 400.0], 4, "log"), 0.01, 1000.0)
     return json.dumps(fb.to_json())

@@ -35,8 +35,8 @@ def die() -> None:
 
 def install(spec: str, counts: dict) -> dict:
     """Arrange the fault of ``spec``; returns the hooks to give :class:`Worker`."""
-    import service.store as store_module
-    import service.worker as worker_module
+    import burstlens.service.store as store_module
+    import burstlens.service.worker as worker_module
 
     kind, *params = spec.split(":")
     real_write_blob = worker_module.write_blob
@@ -96,8 +96,8 @@ def main(argv=None) -> int:
     args = parser.parse_args(argv)
     logging.basicConfig(level=logging.WARNING,
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
-    from service.config import ServiceSettings
-    from service.worker import Worker
+    from burstlens.service.config import ServiceSettings
+    from burstlens.service.worker import Worker
 
     counts = {"progress": 0, "checkpoint": 0, "heartbeat": 0}
     hooks = install(args.fault, counts)

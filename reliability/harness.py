@@ -95,7 +95,7 @@ class Workers:
 
     def start(self, fault: str | None = None, stats: Path | None = None) -> subprocess.Popen:
         if fault is None:
-            cmd = [sys.executable, "-m", "service.cli", "worker", "--data-dir", str(self.data_dir),
+            cmd = [sys.executable, "-m", "burstlens.service.cli", "worker", "--data-dir", str(self.data_dir),
                    "--log-level", "warning"]
         else:
             cmd = [sys.executable, "-m", "reliability.faulty_worker", "--data-dir",
@@ -144,7 +144,7 @@ def integrity_check(data_dir: Path) -> str:
 
 def cli_token(data_dir: Path, *args: str) -> str:
     """Run ``burstlens tokens --data-dir D ARGS`` (the operator's way); returns its stdout."""
-    out = subprocess.run([sys.executable, "-m", "service.cli", "tokens", "--data-dir",
+    out = subprocess.run([sys.executable, "-m", "burstlens.service.cli", "tokens", "--data-dir",
                           str(data_dir), *args], cwd=ROOT, env=service_env(), capture_output=True,
                          text=True, timeout=120, check=True)
     return out.stdout.strip()

@@ -8,17 +8,17 @@ from importlib import import_module
 __version__ = "0.1.0"
 
 _EXPORTS = {
-    "Channel": "search.filterbank",
-    "Filterbank": "search.filterbank",
-    "center_grid": "search.filterbank",
-    "transform": "search.transform",
-    "prepare": "search.transform",
-    "renyi_entropy": "search.criteria",
-    "Criterion": "search.criteria",
-    "read_corpus": "search.corpus",
-    "Corpus": "search.corpus",
-    "CorpusError": "search.corpus",
-    "FilterbankSearch": "search.optimize",
+    "Channel": "burstlens.search.filterbank",
+    "Filterbank": "burstlens.search.filterbank",
+    "center_grid": "burstlens.search.filterbank",
+    "transform": "burstlens.search.transform",
+    "prepare": "burstlens.search.transform",
+    "renyi_entropy": "burstlens.search.criteria",
+    "Criterion": "burstlens.search.criteria",
+    "read_corpus": "burstlens.search.corpus",
+    "Corpus": "burstlens.search.corpus",
+    "CorpusError": "burstlens.search.corpus",
+    "FilterbankSearch": "burstlens.search.optimize",
 }
 
 __all__ = sorted(_EXPORTS)
@@ -35,4 +35,4 @@ def __getattr__(name):
 # `transform` is both a submodule and a function: importing the submodule binds the module to
 # the package attribute and would shadow the lazy export, so bind the function eagerly (this
 # loads only numpy and scipy).
-from search.transform import prepare as prepare, transform as transform  # noqa: E402
+from burstlens.search.transform import prepare as prepare, transform as transform  # noqa: E402

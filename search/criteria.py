@@ -51,7 +51,7 @@ from dataclasses import asdict, dataclass
 import numpy as np
 from scipy.stats import trim_mean
 
-from search.settings import CRITERIA, REDUCERS, SPARSITY_MEASURES
+from burstlens.search.settings import CRITERIA, REDUCERS, SPARSITY_MEASURES
 
 TRIM_FRACTION = 0.1  # cut from each side by reduce_scores(how="trimmed")
 

@@ -46,7 +46,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from search.safe_io import atomic_write
+from burstlens.search.safe_io import atomic_write
 
 DEFAULT_SEED = 20260317
 SAMPLING_RATE_HZ = 4000.0

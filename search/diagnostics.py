@@ -30,7 +30,7 @@ def bootstrap_indices(n_windows: int, resamples: int, rng: np.random.Generator) 
 
 def reduce_scores(scores, how: str = "mean") -> float:
     """Corpus objective from per-window scores, in window order (delegates to search.criteria)."""
-    from search.criteria import reduce_scores as _reduce
+    from burstlens.search.criteria import reduce_scores as _reduce
     return float(_reduce(np.asarray(scores, dtype=np.float64), how=how))
 
 
@@ -207,7 +207,7 @@ def reduce_rows(scores: np.ndarray, how: str) -> np.ndarray:
     """The corpus reducer applied to each row of ``scores`` (B, M) at once, (B,)."""
     from scipy.stats import trim_mean
 
-    from search.criteria import TRIM_FRACTION
+    from burstlens.search.criteria import TRIM_FRACTION
 
     if how == "mean":
         return scores.mean(axis=1)

@@ -31,9 +31,9 @@ from typing import Any
 
 import numpy as np
 
-from search.filterbank import FORMAT, VERSION, Filterbank
-from search.safe_io import finite_or_none
-from search.settings import CORPUS_OPTIONS, check_corpus_options
+from burstlens.search.filterbank import FORMAT, VERSION, Filterbank
+from burstlens.search.safe_io import finite_or_none
+from burstlens.search.settings import CORPUS_OPTIONS, check_corpus_options
 
 __all__ = ["FORMAT", "VERSION", "CARRIED_OPTIONS", "JobRecord", "FilterbankDocument",
            "DiagnosticsDocument", "encode", "npz_members", "CHANNEL_TABLE"]

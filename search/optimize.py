@@ -30,11 +30,11 @@ import time
 
 import numpy as np
 
-from search.fit import baselines, family, judge, refine
-from search.fit.context import Cancelled, RunContext
-from search.fit.evaluate import CHUNK
-from search.fit.space import SearchSpace
-from search.settings import SETTINGS_DEFAULTS, resolve_search_options
+from burstlens.search.fit import baselines, family, judge, refine
+from burstlens.search.fit.context import Cancelled, RunContext
+from burstlens.search.fit.evaluate import CHUNK
+from burstlens.search.fit.space import SearchSpace
+from burstlens.search.settings import SETTINGS_DEFAULTS, resolve_search_options
 
 # the stages before the judgement, in order, by the state's phase name
 STAGES = (("baselines", baselines.run), ("family", family.run), ("refine", refine.run))
@@ -157,7 +157,7 @@ class FilterbankSearch:
         the family search and the refinement (stop reason ``time_limit``); the baselines and
         the judgement always run, since the gain needs them. Returns self.
         """
-        from search.split import held_out_split
+        from burstlens.search.split import held_out_split
 
         settings = self._resolve(corpus)
         windows = np.asarray(corpus.windows)
@@ -165,7 +165,7 @@ class FilterbankSearch:
                                settings["window_s"], settings["held_out"], settings["seed"])
         if settings["chirp"]:
             # the bound is part of the search space: found on the fit windows only
-            from search.sweeps import sweep_rate_bound
+            from burstlens.search.sweeps import sweep_rate_bound
 
             found = sweep_rate_bound(windows[split.fit], settings["sampling_rate_hz"],
                                      settings["band_hz"])
@@ -203,6 +203,6 @@ class FilterbankSearch:
         """Apply the fitted filterbank: ``(M, N)`` windows -> ``(M, C, N)`` float32 images."""
         if not hasattr(self, "filterbank_"):
             raise ValueError("FilterbankSearch is not fitted yet: call fit(corpus) first")
-        from search.transform import transform
+        from burstlens.search.transform import transform
 
         return transform(windows, self.filterbank_, eps=self.eps)

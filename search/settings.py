@@ -23,7 +23,7 @@ from importlib import import_module
 def _reader(name: str):
     """A constant of the corpus reader, looked up on use: importing ``search.corpus`` loads
     scipy.signal (over a second), which the CLI's start and corpus-free checks should not pay."""
-    return getattr(import_module("search.corpus.ingest"), name)
+    return getattr(import_module("burstlens.search.corpus.ingest"), name)
 
 
 @dataclass(frozen=True)
@@ -368,7 +368,7 @@ def read_corpus_as_given(paths, options: dict):
     """``read_corpus(paths, **options)``, with ``options`` (checked corpus options) recorded as
     ``Corpus.defaults["given"]``: the reader's record holds the value of every option, this
     says which of them a person set rather than the reader chose (the result's provenance)."""
-    from search.corpus import read_corpus
+    from burstlens.search.corpus import read_corpus
 
     corpus = read_corpus(paths, **options)
     corpus.defaults["given"] = dict(options)

@@ -22,7 +22,7 @@ import math
 
 import numpy as np
 
-from search.wvd import analytic_signal, autocorrelation, wvd_frequencies
+from burstlens.search.wvd import analytic_signal, autocorrelation, wvd_frequencies
 
 MAX_WINDOWS = 256        # windows looked at, taken at a fixed stride beyond this
 BATCH = 32               # windows per vectorised batch (bounds memory)

@@ -46,8 +46,8 @@ import scipy.fft as sfft
 import scipy.sparse as sp
 from threadpoolctl import ThreadpoolController
 
-from search.filterbank import Filterbank
-from search.wvd import analytic_signal, autocorrelation, lag_count, truncation_width
+from burstlens.search.filterbank import Filterbank
+from burstlens.search.wvd import analytic_signal, autocorrelation, lag_count, truncation_width
 
 _BLOCK_BYTES = 64 << 20  # working-set target for one block of r, R or channel rows
 _GEMM_BLOCK_BYTES = 8 << 20  # a block of r for the lag products

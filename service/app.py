@@ -15,9 +15,9 @@ from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.routing import Match
 
-from service.config import ServiceSettings
-from service.limits import BodySizeLimit
-from service.store import Conflict, IdempotencyMismatch, LeaseLost, NotFound, QueueFull, Store
+from burstlens.service.config import ServiceSettings
+from burstlens.service.limits import BodySizeLimit
+from burstlens.service.store import Conflict, IdempotencyMismatch, LeaseLost, NotFound, QueueFull, Store
 
 log = logging.getLogger("burstlens.api")
 
@@ -115,8 +115,8 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
 
     The app keeps its settings and store on ``app.state``; routes take them through
     ``service.dependencies`` (``get_settings``, ``get_store``), which tests override."""
-    from search import __version__
-    from service.routers import corpora, health, jobs, transform
+    from burstlens.search import __version__
+    from burstlens.service.routers import corpora, health, jobs, transform
 
     settings = settings or ServiceSettings()
     store = Store(settings.data_dir)

@@ -14,8 +14,8 @@ import secrets
 
 from fastapi import HTTPException, Request
 
-from service.dependencies import SettingsDep, StoreDep
-from service.store import Store
+from burstlens.service.dependencies import SettingsDep, StoreDep
+from burstlens.service.store import Store
 
 LOCAL_TENANT = "local"
 TOKEN_PREFIX = "bl_"

@@ -25,7 +25,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for module in COMMANDS.values():
-        import_module(f"service.commands.{module}").register(sub)
+        import_module(f"burstlens.service.commands.{module}").register(sub)
     return parser
 
 

@@ -25,7 +25,7 @@ class CorpusTooLarge(ValueError):
 def parse_read_options(fields: dict[str, str]) -> dict[str, Any]:
     """Form fields of an upload (named as the corpus options, ``search.settings.CORPUS_OPTIONS``,
     values as text) → checked corpus reader options; a bad one is a 422 naming it."""
-    from search.settings import CORPUS_OPTIONS, check_corpus_options
+    from burstlens.search.settings import CORPUS_OPTIONS, check_corpus_options
 
     try:
         return check_corpus_options({name: CORPUS_OPTIONS[name].parse(text)
@@ -73,8 +73,8 @@ def jsonable(obj: Any, rename=lambda s: s) -> Any:
 
 def load_corpus(paths: list[Path], names: list[str], options: dict[str, Any]):
     """``search.read_corpus`` over stored files; errors become :class:`CorpusRejected`."""
-    from search.corpus import CorpusError
-    from search.settings import read_corpus_as_given
+    from burstlens.search.corpus import CorpusError
+    from burstlens.search.settings import read_corpus_as_given
 
     rename = _renamer(paths, names)
     try:

@@ -54,8 +54,8 @@ def summary_lines(filterbank: dict, diagnostics: dict, elapsed_s: float,
                   bursts=None) -> list[str]:
     """The held-out gain and any warnings first (``service.verdict``), then the run and the
     channels carrying the energy of the burst corpus ``bursts`` (``service.energy_channels``)."""
-    from service import verdict
-    from service.energy_channels import lines_or_note
+    from burstlens.service import verdict
+    from burstlens.service.energy_channels import lines_or_note
 
     result = diagnostics.get("result") or {}
     spectrogram = (diagnostics.get("baselines") or {}).get("spectrogram") or {}
@@ -76,8 +76,8 @@ def summary_lines(filterbank: dict, diagnostics: dict, elapsed_s: float,
 
 
 def run(corpus_dir: Path, out_dir: Path, settings: dict) -> int:
-    from service.client import Client
-    from service.commands.submit import expand, follow
+    from burstlens.service.client import Client
+    from burstlens.service.commands.submit import expand, follow
 
     files = expand([str(corpus_dir)])
     if not files:
@@ -89,7 +89,7 @@ def run(corpus_dir: Path, out_dir: Path, settings: dict) -> int:
     port = free_port()
     url = f"http://127.0.0.1:{port}"
     env = {k: v for k, v in os.environ.items() if not k.startswith("BURSTLENS_")}
-    proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1",
+    proc = subprocess.Popen([sys.executable, "-m", "burstlens.service.cli", "serve", "--host", "127.0.0.1",
                              "--port", str(port), "--data-dir", str(data_dir), "--workers", "1",
                              "--log-level", "warning"], env=env, cwd=ROOT)
     try:
@@ -107,7 +107,7 @@ def run(corpus_dir: Path, out_dir: Path, settings: dict) -> int:
                 return 1
             saved = client.download_results(job["id"], out_dir)
             filterbank, diagnostics = client.filterbank(job["id"]), client.diagnostics(job["id"])
-        from service.energy_channels import sample_windows
+        from burstlens.service.energy_channels import sample_windows
 
         elapsed_s = time.monotonic() - start
         bursts = sample_windows(files, filterbank)

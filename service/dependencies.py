@@ -11,8 +11,8 @@ from typing import Annotated
 
 from fastapi import Depends, Request
 
-from service.config import ServiceSettings
-from service.store import Store
+from burstlens.service.config import ServiceSettings
+from burstlens.service.store import Store
 
 
 def get_settings(request: Request) -> ServiceSettings:

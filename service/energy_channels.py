@@ -34,7 +34,7 @@ def burst_contrast(filterbank_json: Mapping, windows, trigger_offset_s=None) -> 
     energy: a loud steady tone (hum, fans) has a large level but rises by a small share of it,
     so it ranks low, while the band the bursts fill ranks high. The outer tenths of the window
     are left out (a cut-off tone rings there)."""
-    from search import Filterbank, transform  # heavy: only when a summary is asked for
+    from burstlens.search import Filterbank, transform  # heavy: only when a summary is asked for
 
     windows = np.asarray(windows, dtype=float)
     if windows.ndim != 2 or windows.shape[0] == 0:
@@ -86,7 +86,7 @@ def sample_windows(paths, filterbank_json: Mapping):
     """A corpus of up to ``SAMPLE_WINDOWS`` burst windows read from ``paths`` at the filterbank's
     rate and window length (the corpus reader's own defaults otherwise); None when they cannot
     be read."""
-    from search.corpus import CorpusError, read_corpus
+    from burstlens.search.corpus import CorpusError, read_corpus
 
     fs = float(filterbank_json["sampling_rate_hz"])
     try:

@@ -12,7 +12,7 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, create_model, field_validator
 
-from search.settings import CORPUS_OPTIONS
+from burstlens.search.settings import CORPUS_OPTIONS
 
 JobState = Literal["queued", "running", "succeeded", "failed", "cancelled"]
 

@@ -25,9 +25,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from search.documents import DiagnosticsDocument, FilterbankDocument
-from search.safe_io import finite_or_none
-from service import palette, plots, verdict
+from burstlens.search.documents import DiagnosticsDocument, FilterbankDocument
+from burstlens.search.safe_io import finite_or_none
+from burstlens.service import palette, plots, verdict
 
 PLOT_NAMES = ("tiling", "examples", "convergence", "channels", "baselines")
 CHANNEL_FIELDS = ("center_hz", "time_spread_s", "cell_area", "chirp_hz_per_s")
@@ -182,7 +182,7 @@ def _examples(filterbank_json: Mapping, diagnostics: Mapping, windows, fs: float
     if windows is None:
         note = omitted + "the report was made without the corpus windows."
         return Plot("examples", None, note, note)
-    from search import Filterbank, transform  # heavy: only when examples are drawn
+    from burstlens.search import Filterbank, transform  # heavy: only when examples are drawn
 
     windows = np.asarray(windows, dtype=float)
     filterbank = Filterbank.from_json(filterbank_json)

@@ -15,7 +15,7 @@ import sys
 import threading
 import time
 
-from service.config import ServiceSettings, is_loopback
+from burstlens.service.config import ServiceSettings, is_loopback
 
 log = logging.getLogger("burstlens.serve")
 
@@ -33,7 +33,7 @@ class WorkerPool:
         self._thread = threading.Thread(target=self._supervise, name="worker-supervisor", daemon=True)
 
     def _command(self) -> list[str]:
-        cmd = [sys.executable, "-m", "service.cli", "worker", "--data-dir",
+        cmd = [sys.executable, "-m", "burstlens.service.cli", "worker", "--data-dir",
                str(self.settings.data_dir), "--parent-pid", str(os.getpid())]
         if self.settings.dask:
             cmd += ["--dask", self.settings.dask]
@@ -84,7 +84,7 @@ def bind_policy(settings: ServiceSettings, store) -> ServiceSettings:
     must exist, and tokens stay required even if every token is later revoked, so the API never
     falls open on a reachable address.
     """
-    from service.auth import auth_required
+    from burstlens.service.auth import auth_required
 
     if is_loopback(settings.host):
         return settings
@@ -115,8 +115,8 @@ def serve(settings: ServiceSettings, log_level: str = "info") -> int:
     """Run the API on ``settings.host:port`` with ``settings.workers`` local workers."""
     import uvicorn
 
-    from service.app import create_app
-    from service.store import Store
+    from burstlens.service.app import create_app
+    from burstlens.service.store import Store
 
     try:
         settings = bind_policy(settings, Store(settings.data_dir))
@@ -124,7 +124,7 @@ def serve(settings: ServiceSettings, log_level: str = "info") -> int:
         print(f"burstlens serve: {exc}", file=sys.stderr)
         return 2
     if settings.dask:
-        from service.dask_backend import DaskUnavailable, probe
+        from burstlens.service.dask_backend import DaskUnavailable, probe
 
         try:
             cluster = probe(settings.dask)

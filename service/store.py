@@ -24,7 +24,7 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
-from search.safe_io import finite_or_none
+from burstlens.search.safe_io import finite_or_none
 
 STATES = ("queued", "running", "succeeded", "failed", "cancelled")
 FINAL_STATES = ("succeeded", "failed", "cancelled")

@@ -37,10 +37,10 @@ from contextlib import nullcontext
 from pathlib import Path
 from typing import Any
 
-from search.documents import DiagnosticsDocument, FilterbankDocument, JobRecord
-from service.config import ServiceSettings
-from service.corpus_check import CorpusRejected, CorpusTooLarge, enforce_limits, jsonable, load_corpus
-from service.store import LeaseLost, NotFound, Store, write_blob
+from burstlens.search.documents import DiagnosticsDocument, FilterbankDocument, JobRecord
+from burstlens.service.config import ServiceSettings
+from burstlens.service.corpus_check import CorpusRejected, CorpusTooLarge, enforce_limits, jsonable, load_corpus
+from burstlens.service.store import LeaseLost, NotFound, Store, write_blob
 
 log = logging.getLogger("burstlens.worker")
 
@@ -94,7 +94,7 @@ class Heartbeat(threading.Thread):
 
 
 def default_search_factory(**options):
-    from search.optimize import FilterbankSearch
+    from burstlens.search.optimize import FilterbankSearch
 
     return FilterbankSearch(**options)
 
@@ -175,7 +175,7 @@ class Worker:
         no-op without it. An unreachable scheduler fails the attempt with a clear reason."""
         if not self.settings.dask:
             return nullcontext()
-        from service.dask_backend import ensure_client, evaluations_on
+        from burstlens.service.dask_backend import ensure_client, evaluations_on
 
         self._dask_client = ensure_client(self._dask_client, self.settings.dask)
         return evaluations_on(self._dask_client)
@@ -268,7 +268,7 @@ class JobRun:
         return state
 
     def prepare(self):
-        from search.settings import split_settings
+        from burstlens.search.settings import split_settings
 
         try:
             corpus_options, search_options = split_settings(dict(self.job["settings"]))
@@ -418,7 +418,7 @@ class JobRun:
             buffer = io.BytesIO()
             np.save(buffer, np.ascontiguousarray(windows), allow_pickle=False)
             write_blob(folder / "windows.npy", buffer.getvalue())
-            from service.report import render_report
+            from burstlens.service.report import render_report
 
             html = render_report(filterbank.data, diagnostics.data, windows,
                                  corpus.sampling_rate_hz)
@@ -432,7 +432,7 @@ def run_worker(settings: ServiceSettings, parent_pid: int | None = None) -> int:
     if settings.dask:
         import sys
 
-        from service.dask_backend import DaskUnavailable, probe
+        from burstlens.service.dask_backend import DaskUnavailable, probe
 
         try:
             probe(settings.dask)

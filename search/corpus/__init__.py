@@ -6,9 +6,9 @@
 ``folder_files`` and ``is_waveform_file`` say which files of a folder the reader reads (the one
 definition, also used by ``burstlens submit`` to choose what to upload).
 """
-from .ingest import (DEFAULT_TRIGGER, TRIGGER_KINDS, TRIGGERS, folder_files, is_waveform_file,
-                     read_corpus)
-from .model import REJECTION_REASONS, Corpus, CorpusError
+from burstlens.search.corpus.ingest import (DEFAULT_TRIGGER, TRIGGER_KINDS, TRIGGERS, folder_files,
+                                            is_waveform_file, read_corpus)
+from burstlens.search.corpus.model import REJECTION_REASONS, Corpus, CorpusError
 
 __all__ = ["read_corpus", "Corpus", "CorpusError", "REJECTION_REASONS", "TRIGGERS", "TRIGGER_KINDS",
            "DEFAULT_TRIGGER", "folder_files", "is_waveform_file"]

@@ -11,10 +11,10 @@ from datetime import datetime, UTC
 
 import numpy as np
 
-from . import preprocess, windowing
-from .model import Corpus, CorpusError, RawTrace
-from .preprocess import Segment
-from .readers import detect_format, read_head, read_waveform_file
+from burstlens.search.corpus import preprocess, windowing
+from burstlens.search.corpus.model import Corpus, CorpusError, RawTrace
+from burstlens.search.corpus.preprocess import Segment
+from burstlens.search.corpus.readers import detect_format, read_head, read_waveform_file
 
 WINDOWINGS = ("bursts", "whole", "sliding")
 # STA/LTA kinds and the averages each takes; the error for an unknown kind lists both

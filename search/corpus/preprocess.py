@@ -10,7 +10,7 @@ from fractions import Fraction
 import numpy as np
 from scipy import signal
 
-from .model import CorpusError, RawTrace
+from burstlens.search.corpus.model import CorpusError, RawTrace
 
 # Two rates closer than this (relative) are the same rate written by different clocks.
 SAME_RATE_TOLERANCE = 1e-5

@@ -14,7 +14,7 @@ import zipfile
 
 import numpy as np
 
-from .model import CorpusError, RawTrace
+from burstlens.search.corpus.model import CorpusError, RawTrace
 
 HEAD_BYTES = 4096
 SAC_HEADER_BYTES = 632

@@ -13,7 +13,7 @@ import math
 
 import numpy as np
 
-from search import diagnostics as dg
+from burstlens.search import diagnostics as dg
 
 # 1-D baseline searches: (grid points over log σ_t, then bounded Brent steps between the best
 # point's neighbours). The spectrogram gets the finer search: the gain is measured against it.
@@ -59,7 +59,7 @@ def run(ctx) -> None:
     if "spectrogram" not in base:
         sub, band = ctx.evaluator("subset"), ctx.s["band_hz"]
         sigma, y, n = search("spectrogram", lambda s: sub.spectrogram(s, band))
-        from search.spectrogram import grid_description
+        from burstlens.search.spectrogram import grid_description
 
         base["spectrogram"] = {"objective": y, "evaluations": n,
                                "parameters": {"time_spread_s": sigma, "cell_area": 1.0,

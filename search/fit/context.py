@@ -18,13 +18,15 @@ import time
 
 import numpy as np
 
-from search import diagnostics as dg
-from search.criteria import ceiling_objective
-from search.fit.evaluate import Evaluator, make_criterion
-from search.safe_io import finite_or_none
+from burstlens.search import diagnostics as dg
+from burstlens.search.criteria import ceiling_objective
+from burstlens.search.fit.evaluate import Evaluator, make_criterion
+from burstlens.search.safe_io import finite_or_none
 
 STATE_FORMAT = "burstlens-search-state"
-STATE_VERSION = 2
+# 3: modules pickled in the state moved under the burstlens namespace (burstlens.search.…);
+# 2: chirp signs as users see them. An older state starts over instead of failing to unpickle.
+STATE_VERSION = 3
 
 
 class Cancelled(Exception):

@@ -24,7 +24,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from search.criteria import Criterion, negative_share, shares_from_totals
+from burstlens.search.criteria import Criterion, negative_share, shares_from_totals
 
 CHUNK = 16                      # windows per task; fixed so results never depend on n_jobs
 
@@ -39,7 +39,7 @@ _PREPARED_MAX = 128             # cached prepared chunks per process (LRU)
 
 def _prepared(token: str, windows, start: int, stop: int):
     """Prepared form (search.transform.prepare) of windows[start:stop], cached per process."""
-    from search.transform import prepare
+    from burstlens.search.transform import prepare
 
     key = (token, start, stop)
     with _PREPARED_LOCK:
@@ -67,7 +67,7 @@ def _forget(token: str) -> None:
 
 def make_filterbank(centers_hz, sigma_s, area, beta, fs, provenance=None):
     """Filterbank from per-channel arrays (Hz, s, dimensionless, Hz/s) at sampling rate fs (Hz)."""
-    from search.filterbank import Channel, Filterbank
+    from burstlens.search.filterbank import Channel, Filterbank
 
     channels = [Channel(float(f), float(s), float(a), float(b))
                 for f, s, a, b in zip(centers_hz, sigma_s, area, beta, strict=True)]
@@ -107,7 +107,7 @@ def _score_task(token, windows, start, stop, fs, centers, sigma, area, beta, cel
                 eps, want_stats):
     """Per-window criterion and negative share (and optionally row stats) of one filterbank on
     windows[start:stop]."""
-    from search.transform import transform
+    from burstlens.search.transform import transform
 
     t0 = time.perf_counter()
     images = transform(_prepared(token, windows, start, stop),
@@ -120,7 +120,7 @@ def _score_task(token, windows, start, stop, fs, centers, sigma, area, beta, cel
 def _spectrogram_task(token, windows, start, stop, fs, sigma, band, criterion, eps):
     """Per-window scores of the plain Gaussian spectrogram of time spread ``sigma`` (s) on its
     own FFT grid over ``band`` (search.spectrogram) on windows[start:stop]."""
-    from search.spectrogram import spectrogram_scores
+    from burstlens.search.spectrogram import spectrogram_scores
 
     t0 = time.perf_counter()
     prepared = _prepared(token, windows, start, stop)
@@ -130,7 +130,7 @@ def _spectrogram_task(token, windows, start, stop, fs, sigma, band, criterion, e
 
 def _stats_task(token, windows, start, stop, fs, centers, sigma, area, beta, cell, criterion, eps):
     """Row stats of a (usually one-channel) filterbank on windows[start:stop]."""
-    from search.transform import transform
+    from burstlens.search.transform import transform
 
     images = transform(_prepared(token, windows, start, stop),
                        make_filterbank(centers, sigma, area, beta, fs), eps=eps)

@@ -16,7 +16,7 @@ import math
 
 import numpy as np
 
-from search.fit.context import Cancelled
+from burstlens.search.fit.context import Cancelled
 
 
 def _new_family(ctx) -> dict:

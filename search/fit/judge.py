@@ -14,13 +14,13 @@ import math
 
 import numpy as np
 
-from search import __version__
-from search import diagnostics as dg
-from search.criteria import L1, NEGATIVE
-from search.fit import refine
-from search.fit.baselines import pseudo_wvd, scalogram
-from search.fit.evaluate import CHUNK, Scored, make_filterbank, scores_from_stats
-from search.safe_io import finite_or_none
+from burstlens.search import __version__
+from burstlens.search import diagnostics as dg
+from burstlens.search.criteria import L1, NEGATIVE
+from burstlens.search.fit import refine
+from burstlens.search.fit.baselines import pseudo_wvd, scalogram
+from burstlens.search.fit.evaluate import CHUNK, Scored, make_filterbank, scores_from_stats
+from burstlens.search.safe_io import finite_or_none
 
 
 def _result_params(ctx) -> tuple:
@@ -239,8 +239,8 @@ def onset_timing(ctx, judged, p, centers, sigma) -> dict | None:
     judged burst windows (search.onset), for the result and the best plain spectrogram
     (window std ``sigma`` on the channel ``centers``; the channel sum is its band energy
     envelope, whatever the grid samples)."""
-    from search.onset import error_summary_ms, image_onsets
-    from search.transform import transform
+    from burstlens.search.onset import error_summary_ms, image_onsets
+    from burstlens.search.transform import transform
 
     meta = getattr(ctx.corpus, "window_meta", None) or []
     offsets = [meta[i].get("trigger_offset_s") if i < len(meta) and isinstance(meta[i], dict)

@@ -21,9 +21,9 @@ import time
 
 import numpy as np
 
-from search.criteria import L1, shares_from_totals
-from search.fit.context import Cancelled
-from search.fit.evaluate import scores_from_stats
+from burstlens.search.criteria import L1, shares_from_totals
+from burstlens.search.fit.context import Cancelled
+from burstlens.search.fit.evaluate import scores_from_stats
 
 # ---------------------------------------------------------------------------------------------
 # Bounded Brent as a coroutine, so that many 1-D searches can share each transform call

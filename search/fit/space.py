@@ -40,8 +40,8 @@ class SearchSpace:
     @classmethod
     def from_settings(cls, s: dict) -> SearchSpace:
         """The space of resolved search settings (``search.settings.resolve_search_options``)."""
-        from search.criteria import channel_widths_hz
-        from search.filterbank import center_grid
+        from burstlens.search.criteria import channel_widths_hz
+        from burstlens.search.filterbank import center_grid
 
         lo, hi = s["band_hz"]
         centers = np.asarray(center_grid(s["band_hz"], s["channels"], s["spacing"]), dtype=np.float64)

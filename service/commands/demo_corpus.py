@@ -17,7 +17,7 @@ def register(subparsers) -> None:
 
 
 def run(args) -> int:
-    from search import demo_site
+    from burstlens.search import demo_site
 
     seed = demo_site.DEFAULT_SEED if args.seed is None else args.seed
     try:

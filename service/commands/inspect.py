@@ -7,7 +7,7 @@ import sys
 
 
 def register(subparsers) -> None:
-    from service.commands.options import add_corpus_options, add_paths
+    from burstlens.service.commands.options import add_corpus_options, add_paths
 
     p = subparsers.add_parser(
         "inspect", help="show what the corpus holds: traces, rates, windows found, rejections",
@@ -21,8 +21,8 @@ def register(subparsers) -> None:
 
 
 def run(args) -> int:
-    from search.settings import read_corpus_as_given
-    from service.commands.options import corpus_options_from_args
+    from burstlens.search.settings import read_corpus_as_given
+    from burstlens.service.commands.options import corpus_options_from_args
 
     try:
         corpus = read_corpus_as_given(args.paths, corpus_options_from_args(args))

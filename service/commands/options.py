@@ -16,7 +16,7 @@ import argparse
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
-from search.settings import (CORPUS_OPTIONS, CRITERIA, CRITERION_DEFAULTS, MAX_HELD_OUT,
+from burstlens.search.settings import (CORPUS_OPTIONS, CRITERIA, CRITERION_DEFAULTS, MAX_HELD_OUT,
                              SETTINGS_DEFAULTS, SPACINGS, check_corpus_options)
 
 
@@ -176,7 +176,7 @@ def settings_from_args(args: argparse.Namespace) -> dict:
 def service_settings_from(args: argparse.Namespace, *names: str):
     """``ServiceSettings`` (BURSTLENS_* environment) with the flags ``names`` that were given
     laid over it; shared by ``serve``, ``worker`` and ``tokens``."""
-    from service.config import ServiceSettings
+    from burstlens.service.config import ServiceSettings
 
     overrides = {n: getattr(args, n) for n in names if getattr(args, n, None) is not None}
     return ServiceSettings(**overrides)

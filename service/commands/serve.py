@@ -26,7 +26,7 @@ def run(args: argparse.Namespace) -> int:
 
     from pydantic import ValidationError
 
-    from service.commands.options import service_settings_from
+    from burstlens.service.commands.options import service_settings_from
 
     try:
         settings = service_settings_from(args, "host", "port", "data_dir", "workers", "dask")
@@ -35,6 +35,6 @@ def run(args: argparse.Namespace) -> int:
         return 2
     logging.basicConfig(level=args.log_level.upper(),
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
-    from service.serving import serve
+    from burstlens.service.serving import serve
 
     return serve(settings, log_level=args.log_level)

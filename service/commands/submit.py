@@ -10,7 +10,7 @@ import argparse
 
 
 def register(subparsers) -> None:
-    from service.commands.options import add_corpus_options, add_job_settings, add_paths
+    from burstlens.service.commands.options import add_corpus_options, add_job_settings, add_paths
 
     p = subparsers.add_parser(
         "submit", help="tune on a server: upload, queue, follow, download",
@@ -34,7 +34,7 @@ def expand(paths: list[str]) -> list:
     reads. ``FileNotFoundError`` for a missing path, ``OSError`` for an unreadable file."""
     from pathlib import Path
 
-    from search.corpus import folder_files, is_waveform_file
+    from burstlens.search.corpus import folder_files, is_waveform_file
 
     files = []
     for raw in paths:
@@ -82,11 +82,11 @@ def run(args: argparse.Namespace) -> int:
     import os
     import sys
 
-    from search.settings import split_settings
-    from service import verdict
-    from service.client import Client, ServiceError
-    from service.commands.options import settings_from_args
-    from service.energy_channels import lines_or_note, sample_windows
+    from burstlens.search.settings import split_settings
+    from burstlens.service import verdict
+    from burstlens.service.client import Client, ServiceError
+    from burstlens.service.commands.options import settings_from_args
+    from burstlens.service.energy_channels import lines_or_note, sample_windows
 
     token = args.token or os.environ.get("BURSTLENS_TOKEN")
     settings = settings_from_args(args)

@@ -24,9 +24,9 @@ def register(subparsers) -> None:
 def run(args: argparse.Namespace) -> int:
     import sys
 
-    from service.auth import create_token
-    from service.commands.options import service_settings_from
-    from service.store import Conflict, Store
+    from burstlens.service.auth import create_token
+    from burstlens.service.commands.options import service_settings_from
+    from burstlens.service.store import Conflict, Store
 
     store = Store(service_settings_from(args, "data_dir").data_dir)
     if args.action == "add":

@@ -36,10 +36,10 @@ def run(args: argparse.Namespace) -> int:
         print(f"burstlens transform: {message}", file=sys.stderr)
         return 2
 
-    from search.corpus import CorpusError, read_corpus
-    from search.documents import FilterbankDocument, npz_members
-    from search.safe_io import atomic_write
-    from search.transform import transform
+    from burstlens.search.corpus import CorpusError, read_corpus
+    from burstlens.search.documents import FilterbankDocument, npz_members
+    from burstlens.search.safe_io import atomic_write
+    from burstlens.search.transform import transform
 
     try:
         with open(args.filterbank, encoding="utf-8") as fh:

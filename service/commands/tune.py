@@ -10,7 +10,7 @@ import argparse
 
 
 def register(subparsers) -> None:
-    from service.commands.options import add_corpus_options, add_job_settings, add_paths
+    from burstlens.service.commands.options import add_corpus_options, add_job_settings, add_paths
 
     p = subparsers.add_parser(
         "tune", help="fit a filterbank to a corpus on this machine",
@@ -28,8 +28,8 @@ def register(subparsers) -> None:
 def summary_lines(diagnostics: dict) -> list[str]:
     """The few lines a person reads after a tune (also used by tests): the held-out gain and the
     warnings first (``service.verdict``), then the run in numbers."""
-    from search.diagnostics import wide_channels
-    from service import verdict
+    from burstlens.search.diagnostics import wide_channels
+    from burstlens.service import verdict
 
     d = diagnostics
     lines = verdict.lines(d)
@@ -66,14 +66,14 @@ def run(args: argparse.Namespace) -> int:
     import sys
     from pathlib import Path
 
-    from service.commands.options import settings_from_args
+    from burstlens.service.commands.options import settings_from_args
 
     def fail(message: str) -> int:
         print(f"burstlens tune: {message}", file=sys.stderr)
         return 2
 
     try:
-        from search.settings import split_settings
+        from burstlens.search.settings import split_settings
 
         corpus_options, search_options = split_settings(settings_from_args(args))
     except ValueError as exc:
@@ -82,9 +82,9 @@ def run(args: argparse.Namespace) -> int:
     if out.exists() and not out.is_dir():
         return fail(f"--out {out}: exists and is not a folder")
 
-    from search.corpus import CorpusError
-    from search.optimize import FilterbankSearch
-    from search.settings import read_corpus_as_given
+    from burstlens.search.corpus import CorpusError
+    from burstlens.search.optimize import FilterbankSearch
+    from burstlens.search.settings import read_corpus_as_given
 
     missing = [p for p in args.paths if not os.path.exists(p)]
     if missing:
@@ -136,8 +136,8 @@ def run(args: argparse.Namespace) -> int:
             bar.close()
 
     out.mkdir(parents=True, exist_ok=True)
-    from search.documents import DiagnosticsDocument, FilterbankDocument
-    from search.safe_io import atomic_write
+    from burstlens.search.documents import DiagnosticsDocument, FilterbankDocument
+    from burstlens.search.safe_io import atomic_write
 
     filterbank_doc = FilterbankDocument.of(search.filterbank_)
     diagnostics_doc = DiagnosticsDocument(search.diagnostics_)
@@ -149,7 +149,7 @@ def run(args: argparse.Namespace) -> int:
     if report is not None:
         atomic_write(out / "report.html", lambda fh: fh.write(report.encode("utf-8")))
         wrote.append("report.html")
-    from service.energy_channels import lines_or_note
+    from burstlens.service.energy_channels import lines_or_note
 
     for line in summary_lines(search.diagnostics_) + lines_or_note(fb_json, corpus):
         print(line)
@@ -160,7 +160,7 @@ def run(args: argparse.Namespace) -> int:
 def _render_report(fb_json: dict, diagnostics: dict, corpus):
     """report.html text if ``service.report.render_report`` exists, else None."""
     try:
-        from service.report import render_report
+        from burstlens.service.report import render_report
     except ImportError:
         return None
     return render_report(fb_json, diagnostics, corpus.windows, corpus.sampling_rate_hz)

@@ -22,7 +22,7 @@ def run(args: argparse.Namespace) -> int:
 
     from pydantic import ValidationError
 
-    from service.commands.options import service_settings_from
+    from burstlens.service.commands.options import service_settings_from
 
     try:
         settings = service_settings_from(args, "data_dir", "dask")
@@ -31,6 +31,6 @@ def run(args: argparse.Namespace) -> int:
         return 2
     logging.basicConfig(level=args.log_level.upper(),
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
-    from service.worker import run_worker
+    from burstlens.service.worker import run_worker
 
     return run_worker(settings, parent_pid=args.parent_pid)

@@ -1,7 +1,7 @@
 """API routers, one per resource: corpora, jobs, transform, health (plus the jobs page)."""
 from __future__ import annotations
 
-from service.models import ErrorResponse
+from burstlens.service.models import ErrorResponse
 
 
 def errors(*codes: int, explicit: bool = False) -> dict:

@@ -6,13 +6,13 @@ import shutil
 from fastapi import APIRouter, Depends, HTTPException, Request, Response
 from starlette.concurrency import run_in_threadpool
 
-from search.settings import CORPUS_OPTIONS
-from service.auth import require_tenant
-from service.corpus_check import check_corpus, parse_read_options
-from service.dependencies import SettingsDep, StoreDep
-from service.models import CorpusView
-from service.routers import COMMON, errors
-from service.uploads import receive_multipart
+from burstlens.search.settings import CORPUS_OPTIONS
+from burstlens.service.auth import require_tenant
+from burstlens.service.corpus_check import check_corpus, parse_read_options
+from burstlens.service.dependencies import SettingsDep, StoreDep
+from burstlens.service.models import CorpusView
+from burstlens.service.routers import COMMON, errors
+from burstlens.service.uploads import receive_multipart
 
 router = APIRouter(prefix="/v1/corpora", tags=["corpora"])
 

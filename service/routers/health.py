@@ -6,11 +6,11 @@ from pathlib import Path
 from fastapi import APIRouter, HTTPException
 from fastapi.responses import FileResponse, PlainTextResponse
 
-from search import __version__
-from service.auth import auth_required
-from service.dependencies import SettingsDep, StoreDep
-from service.models import Health
-from service.routers import errors
+from burstlens.search import __version__
+from burstlens.service.auth import auth_required
+from burstlens.service.dependencies import SettingsDep, StoreDep
+from burstlens.service.models import Health
+from burstlens.service.routers import errors
 
 router = APIRouter(tags=["health"])
 

@@ -10,12 +10,12 @@ from typing import Literal
 from fastapi import APIRouter, Depends, Header, HTTPException, Query, Response
 from fastapi.responses import FileResponse, HTMLResponse
 
-from search.documents import DiagnosticsDocument, FilterbankDocument
-from service.auth import require_tenant
-from service.dependencies import SettingsDep, StoreDep
-from service.models import JobList, JobRequest, JobView
-from service.routers import COMMON, errors
-from service.store import NotFound, Store, write_blob
+from burstlens.search.documents import DiagnosticsDocument, FilterbankDocument
+from burstlens.service.auth import require_tenant
+from burstlens.service.dependencies import SettingsDep, StoreDep
+from burstlens.service.models import JobList, JobRequest, JobView
+from burstlens.service.routers import COMMON, errors
+from burstlens.service.store import NotFound, Store, write_blob
 
 log = logging.getLogger("burstlens.api")
 router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
@@ -38,7 +38,7 @@ def check_settings(options: dict, read_options: dict | None = None) -> None:
     """The engine's own validation of the settings, before anything is queued (422 on error),
     with the corpus's own reading options (``read_options`` of its upload) under the job's, as
     the worker will merge them: a clash shows now, not as a failed job."""
-    from search.settings import check_corpus_options, split_settings
+    from burstlens.search.settings import check_corpus_options, split_settings
 
     try:
         corpus_options, _ = split_settings(dict(options))
@@ -140,7 +140,7 @@ def get_report(job_id: str, store: StoreDep, tenant: str = Depends(require_tenan
     path = _result(store, job_id, tenant, "report")
     if not path.is_file():  # rendered at success; render now if that failed or predates it
         try:
-            from service.report import render_report
+            from burstlens.service.report import render_report
         except ImportError:
             raise HTTPException(status_code=503,
                                 detail="the report renderer is not installed") from None
@@ -169,7 +169,7 @@ def get_plot(job_id: str, name: PlotName, store: StoreDep,
     path = folder / "plots" / f"{name}.png"
     if not path.is_file():  # drawn on first request, then kept
         try:
-            from service.report import report_plots
+            from burstlens.service.report import report_plots
         except ImportError:
             raise HTTPException(status_code=503,
                                 detail="the report renderer is not installed") from None

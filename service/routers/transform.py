@@ -10,14 +10,14 @@ import numpy as np
 from fastapi import APIRouter, Depends, HTTPException, Request, Response
 from starlette.concurrency import run_in_threadpool
 
-from search.documents import FilterbankDocument, npz_members
-from service.auth import require_tenant
-from service.corpus_check import parse_read_options, read_for_client
-from service.dependencies import SettingsDep, StoreDep
-from service.routers import COMMON, errors
-from service.routers.jobs import RESULT_FILES
-from service.store import NotFound, Store
-from service.uploads import receive_multipart
+from burstlens.search.documents import FilterbankDocument, npz_members
+from burstlens.service.auth import require_tenant
+from burstlens.service.corpus_check import parse_read_options, read_for_client
+from burstlens.service.dependencies import SettingsDep, StoreDep
+from burstlens.service.routers import COMMON, errors
+from burstlens.service.routers.jobs import RESULT_FILES
+from burstlens.service.store import NotFound, Store
+from burstlens.service.uploads import receive_multipart
 
 router = APIRouter(prefix="/v1", tags=["transform"])
 
@@ -45,7 +45,7 @@ def transform_npz(document: FilterbankDocument, paths, names, options: dict, set
     reading options, under the job's settings), then ``options`` from the request on top. The
     NPZ members are ``search.documents.npz_members``, with the client's file names.
     """
-    from search.transform import transform
+    from burstlens.search.transform import transform
 
     try:
         filterbank = document.filterbank

@@ -22,9 +22,9 @@ import math
 import numpy as np
 import pytest
 
-from search.criteria import Criterion, continuous_entropy, negative_mass_fraction, renyi_entropy
-from search.filterbank import Channel, Filterbank
-from search.transform import transform
+from burstlens.search.criteria import Criterion, continuous_entropy, negative_mass_fraction, renyi_entropy
+from burstlens.search.filterbank import Channel, Filterbank
+from burstlens.search.transform import transform
 
 FS = 1000.0                              # Hz
 N = 1024                                 # samples per window
@@ -205,8 +205,8 @@ def test_pseudo_wvd_of_atom_gives_the_same_check_values():
     Gaussian atom gives H_3 = −0.2075 bits, H_2 = 0 and M_2 = 2 on the continuous plane
     (Baraniuk et al. 2001; Moyal 1949; Stanković 2001), and the same H_3 as the near-WVD
     filterbank above: two independent routes through the project's code agree."""
-    from search.criteria import concentration
-    from search.wvd import analytic_signal, pseudo_wvd
+    from burstlens.search.criteria import concentration
+    from burstlens.search.wvd import analytic_signal, pseudo_wvd
 
     n_freqs = N
     df = FS / (2 * n_freqs)

@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 from scipy.stats import trim_mean
 
-from search import criteria
-from search.criteria import (
+from burstlens.search import criteria
+from burstlens.search.criteria import (
     Criterion,
     concentration,
     continuous_entropy,

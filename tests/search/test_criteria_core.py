@@ -17,9 +17,9 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from search.criteria import Criterion, cell_sizes, negative_share
-from search.fit.evaluate import row_stats, scores_from_stats
-from search.fit.refine import one_changed_scores
+from burstlens.search.criteria import Criterion, cell_sizes, negative_share
+from burstlens.search.fit.evaluate import row_stats, scores_from_stats
+from burstlens.search.fit.refine import one_changed_scores
 
 # derandomized: the same examples on every run
 PROPERTY = settings(max_examples=150, deadline=None, derandomize=True, database=None)

@@ -13,9 +13,9 @@ import math
 import numpy as np
 import pytest
 
-from search import transform
-from search.criteria import cell_sizes, channel_widths_hz, negative_share, renyi_entropy
-from search.filterbank import Filterbank, center_grid
+from burstlens.search import transform
+from burstlens.search.criteria import cell_sizes, channel_widths_hz, negative_share, renyi_entropy
+from burstlens.search.filterbank import Filterbank, center_grid
 
 FS, N = 4000.0, 1024
 CEILING = 0.01          # the default max_negative_share

@@ -6,8 +6,8 @@ import os
 import numpy as np
 import pytest
 
-from search import demo_site as ds
-from search.corpus import read_corpus
+from burstlens.search import demo_site as ds
+from burstlens.search.corpus import read_corpus
 
 ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 DEMO = os.path.join(ROOT, "demo_corpus")

@@ -4,7 +4,7 @@ import math
 import numpy as np
 import pytest
 
-from search import diagnostics as dg
+from burstlens.search import diagnostics as dg
 
 
 def test_bootstrap_indices_are_seeded_resamples_with_replacement():

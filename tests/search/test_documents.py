@@ -7,8 +7,8 @@ import math
 import numpy as np
 import pytest
 
-from search import Filterbank
-from search.documents import (CARRIED_OPTIONS, CHANNEL_TABLE, DiagnosticsDocument,
+from burstlens.search import Filterbank
+from burstlens.search.documents import (CARRIED_OPTIONS, CHANNEL_TABLE, DiagnosticsDocument,
                               FilterbankDocument, JobRecord, npz_members)
 
 FS = 1000.0

@@ -9,7 +9,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from search import Channel, Filterbank, center_grid
+from burstlens.search import Channel, Filterbank, center_grid
 
 FS = 4000.0
 

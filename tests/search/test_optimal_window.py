@@ -16,9 +16,9 @@ import numpy as np
 import pytest
 from scipy.optimize import minimize_scalar
 
-from search.criteria import renyi_entropy
-from search.filterbank import Channel, Filterbank
-from search.transform import transform
+from burstlens.search.criteria import renyi_entropy
+from burstlens.search.filterbank import Channel, Filterbank
+from burstlens.search.transform import transform
 
 FS = 1000.0   # Hz
 F0 = 250.0    # Hz

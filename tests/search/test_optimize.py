@@ -10,9 +10,9 @@ import pickle
 import numpy as np
 import pytest
 
-from search.corpus import Corpus
-from search.optimize import FilterbankSearch
-from search.settings import split_settings
+from burstlens.search.corpus import Corpus
+from burstlens.search.optimize import FilterbankSearch
+from burstlens.search.settings import split_settings
 
 
 def make_corpus(windows, fs):
@@ -302,8 +302,8 @@ def test_a_default_search_on_separated_pairs_keeps_the_counting_property():
     the pair still scores one atom + 1 bit within 0.05 (counting property: Baraniuk, Flandrin,
     Janssen & Michel, IEEE Trans. IT 47(4), 2001): interference is not rewarded. The fit stays
     within the ceiling, and a parameter on a search bound is named in the judgement."""
-    from search.criteria import cell_sizes, renyi_entropy
-    from search.transform import transform
+    from burstlens.search.criteria import cell_sizes, renyi_entropy
+    from burstlens.search.transform import transform
 
     fs, n, sigma0, f0 = 1000.0, 256, 0.008, 200.0
     corpus = make_corpus(pair_windows(16, fs, n, sigma0, f0, 6 * sigma0, seed=5), fs)

@@ -1,7 +1,7 @@
 """Job settings: defaults, the corpus/search split, and errors that name the setting."""
 import pytest
 
-from search.settings import (SETTINGS_DEFAULTS, resolve_search_options, split_settings,
+from burstlens.search.settings import (SETTINGS_DEFAULTS, resolve_search_options, split_settings,
                              validate_settings)
 
 
@@ -87,8 +87,8 @@ def test_every_corpus_option_is_a_setting_for_read_corpus():
     the reader's own defaults stay in force otherwise."""
     import inspect
 
-    from search.corpus import read_corpus
-    from search.settings import CORPUS_KEYS, CORPUS_OPTIONS
+    from burstlens.search.corpus import read_corpus
+    from burstlens.search.settings import CORPUS_KEYS, CORPUS_OPTIONS
 
     keywords = [p.name for p in inspect.signature(read_corpus).parameters.values()
                 if p.kind is inspect.Parameter.KEYWORD_ONLY]
@@ -108,8 +108,8 @@ def test_every_corpus_option_is_a_setting_for_read_corpus():
 def test_trigger_kinds_are_the_readers():
     """The STA/LTA kinds accepted are the reader's TRIGGERS, whatever their names, and the
     default shown is the reader's DEFAULT_TRIGGER."""
-    from search.corpus.ingest import DEFAULT_TRIGGER, TRIGGERS
-    from search.settings import CORPUS_OPTIONS
+    from burstlens.search.corpus.ingest import DEFAULT_TRIGGER, TRIGGERS
+    from burstlens.search.settings import CORPUS_OPTIONS
 
     option = CORPUS_OPTIONS["trigger"]
     assert option.choices == tuple(TRIGGERS) and option.default_text() == DEFAULT_TRIGGER
@@ -155,7 +155,7 @@ def test_bad_corpus_options_name_the_setting(settings, name):
 def test_upload_text_parses_to_the_same_values():
     """Form-field text (the upload's corpus options) parses to the values the JSON settings
     give; a band is LO,HI or [LO, HI] (common practice)."""
-    from search.settings import CORPUS_OPTIONS, check_corpus_options
+    from burstlens.search.settings import CORPUS_OPTIONS, check_corpus_options
 
     text = {"sta_s": "0.02", "max_windows": "20", "bandpass_hz": "[1, 40]", "trigger_on": " 4 ",
             "components": "z"}

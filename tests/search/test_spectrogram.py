@@ -11,11 +11,11 @@ import math
 import numpy as np
 import pytest
 
-from search import transform
-from search.criteria import Criterion, cell_sizes
-from search.filterbank import Filterbank, center_grid
-from search.spectrogram import fft_size, hop, spectrogram_scores
-from search.transform import prepare
+from burstlens.search import transform
+from burstlens.search.criteria import Criterion, cell_sizes
+from burstlens.search.filterbank import Filterbank, center_grid
+from burstlens.search.spectrogram import fft_size, hop, spectrogram_scores
+from burstlens.search.transform import prepare
 
 FS, N = 4000.0, 1024
 

@@ -4,7 +4,7 @@ dependent samples on one side of a split is common practice)."""
 import numpy as np
 import pytest
 
-from search.split import held_out_split
+from burstlens.search.split import held_out_split
 
 
 def meta(offsets, trace="XX.A..HHZ"):

@@ -5,9 +5,9 @@ import numpy as np
 import pytest
 from scipy.signal import chirp
 
-from search import demo_site as ds
-from search import read_corpus
-from search.sweeps import sweep_rate_bound
+from burstlens.search import demo_site as ds
+from burstlens.search import read_corpus
+from burstlens.search.sweeps import sweep_rate_bound
 
 ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 DEMO = os.path.join(ROOT, "demo_corpus")

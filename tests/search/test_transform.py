@@ -13,9 +13,9 @@ from scipy.optimize import minimize_scalar
 from scipy.signal import ShortTimeFFT, hilbert
 from scipy.signal.windows import gaussian
 
-from search import Channel, Filterbank, prepare, transform
-from search.criteria import renyi_entropy
-from search.transform import CHIRP_METHODS, PreparedWindows, auto_chirp_method, clear_plans
+from burstlens.search import Channel, Filterbank, prepare, transform
+from burstlens.search.criteria import renyi_entropy
+from burstlens.search.transform import CHIRP_METHODS, PreparedWindows, auto_chirp_method, clear_plans
 
 from reference import reference_channel, reference_frequency_count, reference_wvd
 
@@ -285,7 +285,7 @@ def test_long_windows_are_processed_in_blocks(monkeypatch, chirp_method):
     chunks) the output is unchanged, and bit-identical on one thread and on two, and for one
     window at a time (runs must not depend on how work is spread, DESIGN §5): memory is bounded
     by blocking, not by M·N·N arrays. Common practice."""
-    module = importlib.import_module("search.transform")  # the module, not the function
+    module = importlib.import_module("burstlens.search.transform")  # the module, not the function
 
     rng = np.random.default_rng(8)
     windows = rng.standard_normal((3, 400))

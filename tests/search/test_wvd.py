@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from scipy.signal import hilbert
 
-from search.wvd import (analytic_signal, autocorrelation, lag_count, pseudo_wvd,
+from burstlens.search.wvd import (analytic_signal, autocorrelation, lag_count, pseudo_wvd,
                         truncation_width, wvd_frequencies)
 
 from reference import reference_wvd

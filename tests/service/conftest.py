@@ -18,7 +18,7 @@ def make_client(tmp_path):
     """Factory of in-process TestClients over one data dir (settings overridable)."""
     from fastapi.testclient import TestClient
 
-    from service.app import create_app
+    from burstlens.service.app import create_app
 
     clients = []
 

@@ -17,7 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
-from service.config import ServiceSettings
+from burstlens.service.config import ServiceSettings
 
 ROOT = Path(__file__).resolve().parents[2]
 
@@ -78,7 +78,7 @@ class LiveServer:
         import httpx
 
         self.proc = subprocess.Popen(
-            [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port",
+            [sys.executable, "-m", "burstlens.service.cli", "serve", "--host", "127.0.0.1", "--port",
              str(self.port), "--data-dir", str(self.data_dir), "--workers", str(self.workers),
              "--log-level", "warning"], cwd=ROOT, env=service_env(**self.env))
         deadline = time.monotonic() + 60

@@ -5,7 +5,7 @@ import os
 
 from service_helpers import TINY, corpus_files
 
-from service.dependencies import get_store
+from burstlens.service.dependencies import get_store
 
 
 def _upload(client, count=2, seed=0):
@@ -145,7 +145,7 @@ def test_upload_takes_the_corpus_options_and_records_them(make_client, tmp_path)
     upload check reads the corpus with them, the corpus records them as read_options (what jobs
     on it use unless their settings override) and its defaults say they were given. A bad one
     is a 422 naming it, and leaves nothing behind."""
-    from search.corpus.ingest import DEFAULT_TRIGGER, TRIGGERS
+    from burstlens.search.corpus.ingest import DEFAULT_TRIGGER, TRIGGERS
 
     kind = next(k for k in TRIGGERS if k != DEFAULT_TRIGGER)
     client = make_client()

@@ -5,7 +5,7 @@ import hashlib
 
 from service_helpers import TINY, corpus_files, settings_for
 
-from service.cli import main as cli
+from burstlens.service.cli import main as cli
 
 
 def _token(tmp_path, capsys, name: str, *extra: str) -> str:
@@ -87,7 +87,7 @@ def test_same_idempotency_key_is_per_tenant(tmp_path, capsys, make_client):
 def test_no_tokens_means_loopback_only(tmp_path, capsys):
     """Without any token stored, `serve` refuses a non-loopback address (exit 2, nothing bound)
     and names the way out; with a token it would be allowed (DESIGN §7)."""
-    from service.serving import serve
+    from burstlens.service.serving import serve
 
     assert serve(settings_for(tmp_path / "data", host="0.0.0.0", workers=0)) == 2
     assert "tokens add" in capsys.readouterr().err
@@ -96,8 +96,8 @@ def test_no_tokens_means_loopback_only(tmp_path, capsys):
 def test_public_address_keeps_auth_on_after_revocation(tmp_path, capsys):
     """Bound to a non-loopback address, the API stays closed even once every token is revoked:
     `serve` pins tokens_required (DESIGN §7: no-token mode only on loopback)."""
-    from service.serving import bind_policy
-    from service.store import Store
+    from burstlens.service.serving import bind_policy
+    from burstlens.service.store import Store
 
     _token(tmp_path, capsys, "alice")
     store = Store(tmp_path / "data")

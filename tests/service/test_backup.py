@@ -16,9 +16,9 @@ import pytest
 from fastapi.testclient import TestClient
 from service_helpers import TINY, corpus_files, settings_for
 
-from service.app import create_app
-from service.store import Store
-from service.worker import Worker
+from burstlens.service.app import create_app
+from burstlens.service.store import Store
+from burstlens.service.worker import Worker
 
 ROOT = Path(__file__).resolve().parents[2]
 GUIDE = ROOT / "deploy" / "README.md"

@@ -98,8 +98,8 @@ class Console:
 
 def tiny_fit():
     """A real FilterbankSearch on a small generated corpus of Gaussian tone bursts in noise."""
-    from search import FilterbankSearch
-    from search.corpus import Corpus
+    from burstlens.search import FilterbankSearch
+    from burstlens.search.corpus import Corpus
 
     fs, n, m = 1000.0, 256, 8
     t = np.arange(n) / fs
@@ -123,7 +123,7 @@ def test_report_from_disk_renders_every_image_and_the_channel_table(browser, tmp
     """The report written to disk and opened as file:// shows every plot (naturalWidth > 0) and
     a channel table equal to the filterbank JSON, logs no console error and requests nothing
     beyond the file (HTML Living Standard img decoding; DESIGN §8 channel fields)."""
-    from service.report import render_report
+    from burstlens.service.report import render_report
 
     search, corpus = tiny_fit()
     filterbank = search.filterbank_.to_json()
@@ -189,8 +189,8 @@ def test_jobs_page_with_a_token_follows_a_job_to_succeeded_and_opens_its_report(
     `succeeded` by polling, while Cancel moves a second, queued job to `cancelled`; the report
     link fetches the page with the token and every image renders (RFC 6750 bearer tokens;
     DESIGN §7 job states)."""
-    from service.auth import create_token
-    from service.store import Store
+    from burstlens.service.auth import create_token
+    from burstlens.service.store import Store
 
     data_dir = tmp_path / "data"
     token = create_token(Store(data_dir), "browser-test")

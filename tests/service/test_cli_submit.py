@@ -2,8 +2,8 @@
 import numpy as np
 from obspy import Stream, Trace, UTCDateTime
 
-from search.corpus import read_corpus
-from service.cli import main
+from burstlens.search.corpus import read_corpus
+from burstlens.service.cli import main
 
 FS = 1000.0
 
@@ -18,7 +18,7 @@ def test_submit_uploads_exactly_the_files_the_reader_reads(tmp_path, monkeypatch
     .dat, an empty file, hidden files), submit uploads exactly ``read_corpus(folder).files``:
     the upload holds what the job reads, no README, no waveform left behind. Source: the Corpus
     contract in DEVELOPERS.md (the reader recognises formats from the content)."""
-    import service.client
+    from burstlens.service import client as client_module
 
     trace = Trace(np.rint(_noise(0)).astype(np.int32), header={
         "network": "XX", "station": "A1", "location": "00", "channel": "HHZ",
@@ -54,7 +54,7 @@ def test_submit_uploads_exactly_the_files_the_reader_reads(tmp_path, monkeypatch
         def submit_job(self, corpus_id, settings):
             return {"id": "j1", "state": "queued"}
 
-    monkeypatch.setattr(service.client, "Client", FakeClient)
+    monkeypatch.setattr(client_module, "Client", FakeClient)
     assert main(["submit", str(tmp_path), "--server", "http://127.0.0.1:1",
                  "--csv-sampling-rate", str(FS), "--windowing", "whole"]) == 0
     read = read_corpus(tmp_path, csv_sampling_rate_hz=FS, windowing="whole").files

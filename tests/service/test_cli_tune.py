@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 from scipy.io import wavfile
 
-from service.cli import main
+from burstlens.service.cli import main
 
 
 def atoms(m, n, fs, sigma0, f0, seed=0):
@@ -49,7 +49,7 @@ def tuned(wav_dir, tmp_path_factory):
 def test_tune_writes_the_results(tuned, capsys):
     """tune exits 0 and writes filterbank.json (format burstlens-filterbank, version 2, DESIGN
     §8) and diagnostics.json (strict JSON with the stop reason); the filterbank reads back."""
-    from search import Filterbank
+    from burstlens.search import Filterbank
 
     code, out = tuned
     assert code == 0
@@ -62,7 +62,7 @@ def test_tune_writes_the_results(tuned, capsys):
     assert diag["windows"]["used"] == 6 and diag["gain_bits"] is not None
     assert diag["settings"]["evaluations"] == 6 and diag["settings"]["band_hz"] == [120.0, 360.0]
     try:
-        from service.report import render_report  # noqa: F401
+        from burstlens.service.report import render_report  # noqa: F401
     except ImportError:
         return
     assert "<html" in (out / "report.html").read_text().lower()
@@ -101,7 +101,7 @@ def test_tune_missing_input_exits_2(tmp_path, capsys):
 def test_transform_writes_plain_npz(tuned, wav_dir, tmp_path):
     """transform writes the NPZ of DESIGN §8 — representation (M, C, N) float32, times_s,
     center_hz and the channel table — loadable without pickles, equal to search.transform."""
-    from search import Filterbank, read_corpus, transform
+    from burstlens.search import Filterbank, read_corpus, transform
 
     _, out = tuned
     npz = tmp_path / "rep.npz"
@@ -133,9 +133,9 @@ def test_transform_bad_filterbank_exits_2(wav_dir, tmp_path, capsys):
 def test_judgement_flags_map_to_the_settings_the_api_accepts():
     """--held-out and --max-negative-share become held_out and max_negative_share, which
     JobSettings accepts; unset, they are left to the engine's defaults."""
-    from service.cli import build_parser
-    from service.commands.options import settings_from_args
-    from service.models import JobSettings
+    from burstlens.service.cli import build_parser
+    from burstlens.service.commands.options import settings_from_args
+    from burstlens.service.models import JobSettings
 
     args = build_parser().parse_args(["tune", "x.wav", "--out", "o", "--held-out", "0.3",
                                       "--max-negative-share", "0.02"])
@@ -154,7 +154,7 @@ def test_judgement_flags_out_of_range_exit_2_naming_the_flag(flag, value, tmp_pa
     refuses the same values (JobSettings)."""
     from pydantic import ValidationError
 
-    from service.models import JobSettings
+    from burstlens.service.models import JobSettings
 
     with pytest.raises(SystemExit) as stop:
         main(["tune", str(tmp_path), "--out", str(tmp_path / "o"), flag, value])
@@ -165,7 +165,7 @@ def test_judgement_flags_out_of_range_exit_2_naming_the_flag(flag, value, tmp_pa
 
 def _trigger_kind():
     """A non-default STA/LTA kind, from the reader's own list."""
-    from search.corpus.ingest import DEFAULT_TRIGGER, TRIGGERS
+    from burstlens.search.corpus.ingest import DEFAULT_TRIGGER, TRIGGERS
 
     return next(kind for kind in TRIGGERS if kind != DEFAULT_TRIGGER)
 
@@ -224,10 +224,10 @@ def test_bad_corpus_options_exit_2_naming_the_setting(wav_dir, tmp_path, capsys,
 def test_inspect_tune_and_submit_share_the_corpus_flags():
     """The three entry points take the same corpus flags and give the same settings, named as
     the job settings of POST /v1/jobs, which JobSettings accepts unchanged."""
-    from search.settings import CORPUS_OPTIONS
-    from service.cli import build_parser
-    from service.commands.options import settings_from_args
-    from service.models import JobSettings
+    from burstlens.search.settings import CORPUS_OPTIONS
+    from burstlens.service.cli import build_parser
+    from burstlens.service.commands.options import settings_from_args
+    from burstlens.service.models import JobSettings
 
     kind = _trigger_kind()
     flags = ["--sta-s", "0.02", "--lta-s", "0.5", "--trigger-on", "3", "--trigger-off", "1.2",
@@ -248,10 +248,10 @@ def test_job_flags_set_the_engines_settings_with_its_choices():
     SETTINGS_DEFAULTS, or a field of the criterion), offers exactly its choice list, and all of
     them given at once make settings that ``validate_settings`` accepts; inspect has none of
     them. Source: DEVELOPERS.md (one definition of each option set, one CLI declaration)."""
-    from search.settings import (CRITERIA, CRITERION_DEFAULTS, SETTINGS_DEFAULTS, SPACINGS,
+    from burstlens.search.settings import (CRITERIA, CRITERION_DEFAULTS, SETTINGS_DEFAULTS, SPACINGS,
                                  validate_settings)
-    from service.cli import build_parser
-    from service.commands.options import JOB_FLAGS, settings_from_args
+    from burstlens.service.cli import build_parser
+    from burstlens.service.commands.options import JOB_FLAGS, settings_from_args
 
     for flag in JOB_FLAGS:
         group, _, name = flag.setting.rpartition(".")
@@ -280,7 +280,7 @@ def test_submit_sends_the_corpus_options_with_the_upload_and_the_job(wav_dir, mo
                                                                      capsys):
     """submit reads no corpus itself: the upload check reads the corpus with the corpus options
     (so it finds the windows the job will), and the job's settings carry them too."""
-    import service.client
+    from burstlens.service import client as client_module
 
     calls = {}
 
@@ -302,7 +302,7 @@ def test_submit_sends_the_corpus_options_with_the_upload_and_the_job(wav_dir, mo
             calls["job"] = settings
             return {"id": "j1", "state": "queued"}
 
-    monkeypatch.setattr(service.client, "Client", FakeClient)
+    monkeypatch.setattr(client_module, "Client", FakeClient)
     assert main(["submit", str(wav_dir), "--server", "http://127.0.0.1:1", "--windowing", "whole",
                  "--components", "z", "--channels", "8"]) == 0
     assert calls["upload"] == {"windowing": "whole", "components": "Z"}

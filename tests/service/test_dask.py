@@ -15,7 +15,7 @@ import httpx
 import pytest
 from service_helpers import ROOT, TINY, corpus_files, free_port, service_env, settings_for, wait_for
 
-from service.dask_backend import DaskUnavailable, connect
+from burstlens.service.dask_backend import DaskUnavailable, connect
 
 pytestmark = pytest.mark.timeout(240)
 
@@ -58,8 +58,8 @@ def reference(tmp_path_factory):
     """The filterbank of the tiny job run by the service's worker with no Dask at all."""
     from fastapi.testclient import TestClient
 
-    from service.app import create_app
-    from service.worker import Worker
+    from burstlens.service.app import create_app
+    from burstlens.service.worker import Worker
 
     data = tmp_path_factory.mktemp("local") / "data"
     with TestClient(create_app(settings_for(data))) as http:
@@ -75,7 +75,7 @@ def dask_server(tmp_path_factory, cluster):
     """`burstlens serve --dask <scheduler>` with one local job worker, stopped at teardown."""
     port = free_port()
     proc = subprocess.Popen(
-        [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port", str(port),
+        [sys.executable, "-m", "burstlens.service.cli", "serve", "--host", "127.0.0.1", "--port", str(port),
          "--data-dir", str(tmp_path_factory.mktemp("dask") / "data"), "--workers", "1", "--dask",
          cluster[0].scheduler_address, "--log-level", "warning"], cwd=ROOT, env=service_env())
     url = f"http://127.0.0.1:{port}"
@@ -154,7 +154,7 @@ def test_unreachable_scheduler_is_a_startup_error(tmp_path, command):
     at startup and says which address it could not reach (common practice: fail fast on bad
     configuration)."""
     address = f"tcp://127.0.0.1:{free_port()}"
-    argv = [sys.executable, "-m", "service.cli", command, "--data-dir", str(tmp_path / "data"),
+    argv = [sys.executable, "-m", "burstlens.service.cli", command, "--data-dir", str(tmp_path / "data"),
             "--dask", address]
     if command == "serve":
         argv += ["--port", str(free_port()), "--workers", "1"]
@@ -177,7 +177,7 @@ def test_evaluations_on_runs_joblib_on_the_cluster_and_reconnects(cluster):
     keeps a live client and replaces a closed one."""
     import joblib
 
-    from service.dask_backend import ensure_client, evaluations_on
+    from burstlens.service.dask_backend import ensure_client, evaluations_on
 
     local, _ = cluster
     client = connect(local.scheduler_address)
@@ -200,7 +200,7 @@ def test_a_cluster_without_workers_fails_the_call_instead_of_waiting():
     import joblib
     from distributed import LocalCluster
 
-    from service.dask_backend import evaluations_on
+    from burstlens.service.dask_backend import evaluations_on
 
     with LocalCluster(n_workers=0, processes=False, protocol="tcp://", host="127.0.0.1",
                       dashboard_address="127.0.0.1:0", scheduler_port=0) as empty:
@@ -217,7 +217,7 @@ def test_a_cluster_without_workers_fails_the_call_instead_of_waiting():
 
 def _prepared_chunks() -> int:
     """Window chunks prepared in this process (search.fit.evaluate caches one per chunk it scored)."""
-    from search.fit import evaluate
+    from burstlens.search.fit import evaluate
 
     return len(evaluate._PREPARED)
 
@@ -232,9 +232,9 @@ def test_a_one_thread_cluster_runs_the_search_on_the_cluster(tmp_path):
 
     from service_helpers import burst_npz
 
-    from search import read_corpus
-    from search.optimize import FilterbankSearch
-    from service.dask_backend import evaluations_on
+    from burstlens.search import read_corpus
+    from burstlens.search.optimize import FilterbankSearch
+    from burstlens.service.dask_backend import evaluations_on
 
     path = tmp_path / "trace.npz"
     path.write_bytes(burst_npz(0))

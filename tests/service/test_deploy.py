@@ -17,7 +17,7 @@ from pathlib import Path
 import pytest
 import yaml
 
-from service.config import ServiceSettings
+from burstlens.service.config import ServiceSettings
 
 ROOT = Path(__file__).resolve().parents[2]
 DEPLOY = ROOT / "deploy"
@@ -36,7 +36,7 @@ def check_argv(argv: list[str]) -> None:
     assert program in ("burstlens", "dask"), f"unexpected program {argv[0]!r} in {argv}"
     sub, options = argv[1], argv[2:]
     if program == "burstlens":
-        from service.cli import build_parser
+        from burstlens.service.cli import build_parser
 
         args = build_parser().parse_args([sub, *options])  # exits 2 on an unknown option
         assert getattr(args, "func", None), f"burstlens {sub}: no command runs for {argv}"

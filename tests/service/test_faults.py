@@ -20,8 +20,8 @@ import pytest
 
 from service_helpers import ROOT, TINY, burst_npz, service_env, settings_for, wait_for
 
-from service.cli import main as cli
-from service.client import Client
+from burstlens.service.cli import main as cli
+from burstlens.service.client import Client
 
 pytestmark = pytest.mark.slow
 
@@ -47,8 +47,8 @@ def reference(corpus_paths, tmp_path_factory):
     """The uninterrupted result of FAULT on the corpus, from an in-process worker."""
     from fastapi.testclient import TestClient
 
-    from service.app import create_app
-    from service.worker import Worker
+    from burstlens.service.app import create_app
+    from burstlens.service.worker import Worker
 
     settings = settings_for(tmp_path_factory.mktemp("reference"))
     with TestClient(create_app(settings)) as client:
@@ -66,7 +66,7 @@ def _round(client: Client, job_id: str) -> int:
 
 
 def _start_worker(data_dir) -> subprocess.Popen:
-    return subprocess.Popen([sys.executable, "-m", "service.cli", "worker", "--data-dir",
+    return subprocess.Popen([sys.executable, "-m", "burstlens.service.cli", "worker", "--data-dir",
                              str(data_dir), "--log-level", "warning"], cwd=ROOT, env=service_env())
 
 

@@ -3,7 +3,7 @@ import hashlib
 import json
 import os
 
-from service.cli import main
+from burstlens.service.cli import main
 
 ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 DEMO = os.path.join(ROOT, "demo_corpus")
@@ -25,7 +25,7 @@ def test_inspect_demo_shows_traces_windows_defaults(capsys):
 
 def test_inspect_json_matches_the_corpus_summary(capsys):
     """`inspect --json` prints Corpus.to_json(): window count, hash and defaults as JSON."""
-    from search.corpus import read_corpus
+    from burstlens.search.corpus import read_corpus
 
     assert main(["inspect", DEMO, "--json", "--components", "Z"]) == 0
     summary = json.loads(capsys.readouterr().out)

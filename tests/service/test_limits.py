@@ -87,13 +87,13 @@ def test_queued_jobs_per_tenant_is_429(make_client):
 def test_disk_full_is_507(make_client, tmp_path, monkeypatch):
     """ENOSPC while storing an upload: 507 Insufficient Storage (RFC 4918 §11.5) with a
     message, and the partial upload is removed."""
-    import service.uploads
+    from burstlens.service import uploads as uploads_module
 
     class FullDisk(io.FileIO):
         def write(self, data):
             raise OSError(errno.ENOSPC, "No space left on device")
 
-    monkeypatch.setattr(service.uploads, "open", FullDisk, raising=False)
+    monkeypatch.setattr(uploads_module, "open", FullDisk, raising=False)
     client = make_client()
     response = client.post("/v1/corpora", files=corpus_files(1))
     assert response.status_code == 507

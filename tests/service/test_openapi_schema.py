@@ -26,7 +26,7 @@ def _seeded_app(data_dir):
     """The app over a fresh store holding one corpus and one queued job."""
     from fastapi.testclient import TestClient
 
-    from service.app import create_app
+    from burstlens.service.app import create_app
 
     app = create_app(settings_for(data_dir, max_queued_jobs=1000))
     with TestClient(app) as client:

@@ -11,7 +11,7 @@ import pytest
 from matplotlib.collections import PolyCollection, QuadMesh
 from matplotlib.colors import to_rgba
 
-from service import plots
+from burstlens.service import plots
 
 CENTER_HZ = np.array([40.0, 80.0, 160.0, 320.0, 640.0, 1280.0, 1800.0])
 TIME_SPREAD_S = np.array([0.020, 0.012, 0.008, 0.005, 0.003, 0.002, 0.0015])

@@ -12,8 +12,8 @@ from html.parser import HTMLParser
 import numpy as np
 import pytest
 
-from search import Channel, Filterbank
-from service import report
+from burstlens.search import Channel, Filterbank
+from burstlens.service import report
 
 HOSTILE = '<script>alert("x")</script><img src=x onerror=alert(1)>'
 
@@ -317,7 +317,7 @@ def test_the_page_leads_with_the_held_out_gain():
 ], ids=["bound", "negative", "fallback", "few-held-out", "in-sample", "time-limit"])
 def test_the_warnings_box_shows_each_warning_that_applies(change):
     """One box under the lead, holding exactly the warnings service.verdict finds."""
-    from service import verdict
+    from burstlens.service import verdict
 
     diag = judged_diagnostics(**change.get("judgement", {}))
     diag.update({k: v for k, v in change.items() if k != "judgement"})
@@ -390,7 +390,7 @@ def test_negative_gain_is_said_as_less_sharp():
 
 def test_report_colours_are_the_palette():
     """The page's CSS variables are service.palette's, in one :root rule."""
-    from service import palette
+    from burstlens.service import palette
 
     text = report.render_report(filterbank_json(), diagnostics(), None, None)
     assert palette.css_variables() in text
@@ -400,7 +400,7 @@ def test_report_colours_are_the_palette():
     ("#000000", "#ffffff", 21.0), ("#767676", "#ffffff", 4.54), ("#ffffff", "#ffffff", 1.0)])
 def test_contrast_ratio_matches_the_wcag_worked_values(first, second, ratio):
     """WCAG 2.1 §1.4.3: black on white 21:1, #767676 on white just above 4.5:1, in either order."""
-    from service import palette
+    from burstlens.service import palette
 
     assert palette.contrast_ratio(first, second) == pytest.approx(ratio, abs=0.005)
     assert palette.contrast_ratio(second, first) == palette.contrast_ratio(first, second)
@@ -410,7 +410,7 @@ def test_palette_text_is_darkened_okabe_ito_and_readable_on_every_background():
     """Every text colour is an Okabe–Ito hue of the plots scaled towards black (same channel
     ratios) and reaches 4.5:1 on every background; one step lighter would not (darkened no more
     than needed); white on the accent (a primary button) passes too."""
-    from service import palette, plots
+    from burstlens.service import palette, plots
 
     assert {c.lower() for c in palette.OKABE_ITO.values()} == {c.lower() for c in plots.PALETTE}
     for name, colour in palette.TEXT.items():
@@ -428,7 +428,7 @@ def test_jobs_page_uses_the_same_palette():
     """service/static/index.html cannot import the palette: its :root rule must equal it."""
     from pathlib import Path
 
-    from service import palette
+    from burstlens.service import palette
 
     page = (Path(report.__file__).parent / "static" / "index.html").read_text(encoding="utf-8")
     assert palette.css_variables() in page

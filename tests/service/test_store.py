@@ -7,7 +7,7 @@ import time
 
 import pytest
 
-from service.store import LeaseLost, Store, write_blob
+from burstlens.service.store import LeaseLost, Store, write_blob
 
 
 def _store_with_jobs(tmp_path, n: int) -> tuple[Store, list[str]]:

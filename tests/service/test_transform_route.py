@@ -20,8 +20,8 @@ def tuned(tmp_path_factory):
     corpus uploaded with the reading option windowing=sliding and settings that say nothing."""
     from fastapi.testclient import TestClient
 
-    from service.app import create_app
-    from service.worker import Worker
+    from burstlens.service.app import create_app
+    from burstlens.service.worker import Worker
 
     settings = settings_for(tmp_path_factory.mktemp("transform"))
     with TestClient(create_app(settings), raise_server_exceptions=False) as client:
@@ -40,7 +40,7 @@ def tuned(tmp_path_factory):
 
 def _offsets(tmp_path, windowing: str) -> list[float]:
     """Window starts the corpus reader gives the new file (burst_npz seed 5) cut as asked."""
-    from search.corpus import read_corpus
+    from burstlens.search.corpus import read_corpus
 
     path = tmp_path / "new.npz"
     path.write_bytes(burst_npz(5))
@@ -88,7 +88,7 @@ def test_route_and_command_write_the_same_npz(tuned, tmp_path, monkeypatch):
     """POST /v1/transform and `burstlens transform` on the same filterbank and file write the
     same members in the same order with equal arrays (one layout, search.documents.npz_members),
     the command also cutting the file as the job did."""
-    from service.cli import main
+    from burstlens.service.cli import main
 
     client, by_job, _ = tuned
     filterbank = client.get(f"/v1/jobs/{by_job}/filterbank").text

@@ -8,7 +8,7 @@ import copy
 
 import pytest
 
-from service import verdict
+from burstlens.service import verdict
 
 
 def clean(channels=3):
@@ -163,8 +163,8 @@ def test_long_channel_lists_are_shortened():
 def test_every_cli_printout_starts_with_the_verdict():
     """tune and the demo print the gain sentence first, then the warnings, from the same
     function the report uses."""
-    from service import demo
-    from service.commands import tune
+    from burstlens.service import demo
+    from burstlens.service.commands import tune
 
     diag = clean()
     diag.update(stop_reason="time_limit", windows={"used": 211, "rejected": 0}, bootstrap=None,
@@ -226,8 +226,8 @@ def test_energy_channels_name_the_channels_the_bursts_fill():
     stand out most is the one near 300 Hz, not the lowest, and the picks come highest first."""
     import numpy as np
 
-    from search import Channel, Filterbank
-    from service import energy_channels
+    from burstlens.search import Channel, Filterbank
+    from burstlens.service import energy_channels
 
     fs, n = 2000.0, 512
     t = np.arange(n) / fs
@@ -256,8 +256,8 @@ def test_energy_channels_ignore_a_loud_hum_when_the_trigger_is_known():
 
     import numpy as np
 
-    from search import Channel, Filterbank
-    from service import energy_channels
+    from burstlens.search import Channel, Filterbank
+    from burstlens.service import energy_channels
 
     fs, n = 2000.0, 512
     t = np.arange(n) / fs

@@ -10,10 +10,10 @@ import pytest
 
 from service_helpers import TINY, corpus_files, settings_for, wait_for
 
-from service.dependencies import get_settings
-from service.report import PLOT_NAMES
-from service.routers.jobs import PlotName
-from service.worker import Worker
+from burstlens.service.dependencies import get_settings
+from burstlens.service.report import PLOT_NAMES
+from burstlens.service.routers.jobs import PlotName
+from burstlens.service.worker import Worker
 
 
 @pytest.fixture(scope="module")
@@ -21,7 +21,7 @@ def shared(tmp_path_factory):
     """One store for the module: a corpus and a finished reference job on it (TINY)."""
     from fastapi.testclient import TestClient
 
-    from service.app import create_app
+    from burstlens.service.app import create_app
 
     settings = settings_for(tmp_path_factory.mktemp("worker"))
     with TestClient(create_app(settings), raise_server_exceptions=False) as client:

@@ -5,7 +5,7 @@ import os
 import numpy as np
 from obspy import Stream, Trace, UTCDateTime
 
-from search.corpus import folder_files, is_waveform_file, read_corpus
+from burstlens.search.corpus import folder_files, is_waveform_file, read_corpus
 
 FS = 1000.0
 

@@ -10,8 +10,8 @@ from hypothesis import strategies as st
 from obspy import Stream, Trace, UTCDateTime
 from scipy.io import wavfile
 
-from search.corpus import CorpusError, read_corpus
-from search.corpus.readers import FORMATS, read_waveform_file
+from burstlens.search.corpus import CorpusError, read_corpus
+from burstlens.search.corpus.readers import FORMATS, read_waveform_file
 
 # libmseed's log callback inside ObsPy may fail to decode damaged bytes; ObsPy ignores that itself
 pytestmark = pytest.mark.filterwarnings("ignore::pytest.PytestUnraisableExceptionWarning")

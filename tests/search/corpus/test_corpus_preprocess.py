@@ -3,8 +3,8 @@ import numpy as np
 import pytest
 from obspy import Stream, Trace, UTCDateTime
 
-from search.corpus import CorpusError, read_corpus
-from search.corpus import preprocess as pp
+from burstlens.search.corpus import CorpusError, read_corpus
+from burstlens.search.corpus import preprocess as pp
 
 
 def _tone_fit(x, fs, f0):
@@ -148,7 +148,7 @@ def test_a_corpus_reads_to_the_same_bits_whatever_the_thread_count(tmp_path):
     line: the residual is orthogonal to 1 and n (normal equations)."""
     from threadpoolctl import threadpool_limits
 
-    from search.corpus.preprocess import demean_detrend
+    from burstlens.search.corpus.preprocess import demean_detrend
 
     rng = np.random.default_rng(0)
     fs, n = 1000.0, 12000

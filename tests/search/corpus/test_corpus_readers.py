@@ -4,8 +4,8 @@ import pytest
 from obspy import Stream, Trace, UTCDateTime
 from scipy.io import wavfile
 
-from search.corpus import CorpusError, read_corpus
-from search.corpus.readers import detect_format, read_head, read_waveform_file
+from burstlens.search.corpus import CorpusError, read_corpus
+from burstlens.search.corpus.readers import detect_format, read_head, read_waveform_file
 
 START = UTCDateTime("2026-01-05T10:20:30.25")
 

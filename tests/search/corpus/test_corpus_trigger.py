@@ -8,7 +8,7 @@ from obspy.signal.trigger import classic_sta_lta as ref_boxcar
 from obspy.signal.trigger import recursive_sta_lta as ref_exponential
 from obspy.signal.trigger import trigger_onset as ref_intervals
 
-from search.corpus import windowing as w
+from burstlens.search.corpus import windowing as w
 
 
 def _bursty(seed, n=40000):

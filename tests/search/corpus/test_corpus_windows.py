@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from obspy import Stream, Trace, UTCDateTime
 
-from search.corpus import REJECTION_REASONS, Corpus, CorpusError, read_corpus
+from burstlens.search.corpus import REJECTION_REASONS, Corpus, CorpusError, read_corpus
 
 START = UTCDateTime(2026, 2, 3, 4, 5, 6)  # first sample of the records _write_mseed writes
 

@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 from scipy.optimize import minimize_scalar
 
-from search.fit.refine import bounded_brent
+from burstlens.search.fit.refine import bounded_brent
 
 
 @pytest.mark.parametrize("f", [lambda x: (x - 0.3) ** 2, lambda x: math.cos(3 * x) + 0.1 * x,
