@@ -57,7 +57,7 @@ TRIM_FRACTION = 0.1  # cut from each side by reduce_scores(how="trimmed")
 
 # Rows scored per block: the float64 working copy stays near 2 MB (cache-sized, and bounded
 # whatever M is); larger blocks measured 2–4× slower on the 2-core dev machine.
-_BLOCK_ELEMENTS = 1 << 18
+BLOCK_ELEMENTS = 1 << 18
 
 
 # --------------------------------------------------------------------------------------------
@@ -318,7 +318,7 @@ def negative_share(images, cell_size=None) -> np.ndarray:
         raise ValueError(f"images must have shape (M, C, N) or (C, N), got {np.shape(images)}")
     w = _cell_weights(cell_size, x.shape[1:])
     flat = x.reshape(x.shape[0], -1)
-    rows = max(1, _BLOCK_ELEMENTS // flat.shape[1])
+    rows = max(1, BLOCK_ELEMENTS // flat.shape[1])
     out = np.empty(x.shape[0], dtype=np.float64)
     for start in range(0, x.shape[0], rows):
         with _quiet():
@@ -531,7 +531,7 @@ class Criterion:
         m = x.shape[0]
         w = _cell_weights(cell_size, x.shape[1:])
         flat = x.reshape(m, -1)
-        rows = max(1, _BLOCK_ELEMENTS // flat.shape[1])
+        rows = max(1, BLOCK_ELEMENTS // flat.shape[1])
         out = np.empty(m, dtype=np.float64)
         for start in range(0, m, rows):  # blocks of windows, not one window at a time
             block = flat[start:start + rows].astype(np.float64, copy=False)

@@ -245,7 +245,7 @@ def make_catalogue(rng, duration_s: float, n_events: int = 30, n_blasts: int = 2
     return sorted(sources, key=lambda s: s.time_s)
 
 
-def _arrivals(src: Source, station_xyz: np.ndarray, f: np.ndarray, buf_t0: float, rng) -> np.ndarray:
+def arrivals(src: Source, station_xyz: np.ndarray, f: np.ndarray, buf_t0: float, rng) -> np.ndarray:
     """Velocity spectra (3, F) of one source at one station in a buffer starting ``buf_t0``
     (s after the origin): P, S and, for reef events, the guided wave."""
     delta = station_xyz - np.asarray(src.location)
@@ -352,7 +352,7 @@ def generate(seed: int = DEFAULT_SEED, duration_s: float = DURATION_S):
             r = float(np.linalg.norm(station - np.asarray(src.location)))
             i0 = int(np.floor((src.time_s + r / VP - 0.05) * fs))
             buf_t0 = i0 / fs - src.time_s
-            wave = np.fft.irfft(_arrivals(src, station, f, buf_t0, rng) * instrument, n=buf, axis=1)
+            wave = np.fft.irfft(arrivals(src, station, f, buf_t0, rng) * instrument, n=buf, axis=1)
             lo, hi = max(i0, 0), min(i0 + buf, n)
             if hi > lo:
                 trace[:, lo:hi] += wave[:, lo - i0: hi - i0]

@@ -364,13 +364,14 @@ def split_settings(settings: dict) -> tuple[dict, dict]:
     return corpus, search
 
 
-def read_corpus_as_given(paths, options: dict):
-    """``read_corpus(paths, **options)``, with ``options`` (checked corpus options) recorded as
-    ``Corpus.defaults["given"]``: the reader's record holds the value of every option, this
-    says which of them a person set rather than the reader chose (the result's provenance)."""
+def read_corpus_as_given(paths, options: dict, *, progress=None):
+    """``read_corpus(paths, **options, progress=progress)``, with ``options`` (checked corpus
+    options) recorded as ``Corpus.defaults["given"]``: the reader's record holds the value of
+    every option, this says which of them a person set rather than the reader chose (the
+    result's provenance). ``progress`` is the reader's callback (``search.corpus.ReadProgress``)."""
     from burstlens.search.corpus import read_corpus
 
-    corpus = read_corpus(paths, **options)
+    corpus = read_corpus(paths, **options, progress=progress)
     corpus.defaults["given"] = dict(options)
     return corpus
 

@@ -49,8 +49,8 @@ from threadpoolctl import ThreadpoolController
 from burstlens.search.filterbank import Filterbank
 from burstlens.search.wvd import analytic_signal, autocorrelation, lag_count, truncation_width
 
-_BLOCK_BYTES = 64 << 20  # working-set target for one block of r, R or channel rows
-_GEMM_BLOCK_BYTES = 8 << 20  # a block of r for the lag products
+BLOCK_BYTES = 64 << 20  # working-set target for one block of r, R or channel rows
+GEMM_BLOCK_BYTES = 8 << 20  # a block of r for the lag products
 _ROW_BLOCKS, _MIN_BLOCK_ROWS = 8, 64  # rows of a window are cut in about 8 blocks of ≥ 64
 # Grouping cost model, in lag-columns per row (measured on the 2-core dev machine): reading the
 # r block costs about 8 output columns, a matrix-product call about 300 lag-columns.
@@ -58,7 +58,7 @@ _GROUP_READ_COLUMNS = 8.0
 _GROUP_CALL_COST = 300.0
 # Chirped path: Doppler-row blocks of about 2 MB (in cache) for batches of up to 8 windows (one
 # sparse product serves the batch); cost model in ns per window, measured on the dev machine.
-_ROW_BLOCK_BYTES = 2 << 20
+ROW_BLOCK_BYTES = 2 << 20
 _DOPPLER_WINDOWS = 8
 _COST_FFT = 0.8  # per point and log2(size) of a complex FFT
 _COST_LAGS = 1.0  # per sample and lag of the lag-major autocorrelation
@@ -347,7 +347,7 @@ def _chirp_plan(filterbank, idx, n_samples, eps, method) -> _ChirpPlan:
         method = _chirp_method(sigma, lags, n_samples, sizes, int(reached.sum()), fs, k)
     size = sizes[method]
     if method == "lag":  # row blocks of lags start..start+width−1 stacked: b·(C·P) + c·P + q
-        width = max(1, min(n_lags, _BLOCK_BYTES // (16 * size)))
+        width = max(1, min(n_lags, BLOCK_BYTES // (16 * size)))
         cuts = [(start, min(n_lags, start + width)) for start in range(0, n_lags, width)]
         block_rows, rows = n_chirp * size, None
         n_rows, n_columns = len(cuts) * block_rows, width * size
@@ -357,7 +357,7 @@ def _chirp_plan(filterbank, idx, n_samples, eps, method) -> _ChirpPlan:
         rows = np.flatnonzero(reached)
         position = np.cumsum(reached) - 1
         phase = 0.5 * np.exp(2j * np.pi * np.arange(size) / size)  # ½·e^{j2πqm/P}, by qm mod P
-        per_block = max(1, _ROW_BLOCK_BYTES // (16 * (size // 2) * _DOPPLER_WINDOWS))
+        per_block = max(1, ROW_BLOCK_BYTES // (16 * (size // 2) * _DOPPLER_WINDOWS))
         cuts = [(first, min(rows.size, first + per_block))
                 for first in range(0, rows.size, per_block)]
         n_rows, n_columns = rows.size * n_chirp, per_block * (size // 2)
@@ -496,17 +496,17 @@ def _run_fast(plan: _FastPlan, z: np.ndarray, out: np.ndarray, workers: int) -> 
     n_fast = plan.channels.size
     size = plan.fft_size
     per_window = n_fast * (8 * size + 16 * (size // 2 + 1) + 8 * size)
-    chunk = max(1, min(n_windows, _BLOCK_BYTES // per_window))
+    chunk = max(1, min(n_windows, BLOCK_BYTES // per_window))
     row_bytes = 16 * (plan.max_lag + 1)
     # Short windows are batched into one product; long ones are cut in row blocks: r[n, m] is
     # zero for m > min(n, N−1−n), so blocks near the window ends need fewer lag columns (about
     # a third less work when L ≈ N/2).
     window_bytes = n_samples * row_bytes
-    if window_bytes <= _GEMM_BLOCK_BYTES // _ROW_BLOCKS:
-        unit_rows, unit_windows = n_samples, max(1, _GEMM_BLOCK_BYTES // window_bytes)
+    if window_bytes <= GEMM_BLOCK_BYTES // _ROW_BLOCKS:
+        unit_rows, unit_windows = n_samples, max(1, GEMM_BLOCK_BYTES // window_bytes)
     else:
         rows = max(_MIN_BLOCK_ROWS, -(-n_samples // _ROW_BLOCKS))
-        unit_rows, unit_windows = max(1, min(n_samples, rows, _GEMM_BLOCK_BYTES // row_bytes)), 1
+        unit_rows, unit_windows = max(1, min(n_samples, rows, GEMM_BLOCK_BYTES // row_bytes)), 1
 
     scratch = threading.local()  # one r buffer per thread, reused block after block
 
@@ -578,7 +578,7 @@ def _run_chirped(plan: _ChirpPlan, z: np.ndarray, out: np.ndarray, workers: int)
         # θ-row blocks run in parallel (each block's products, FFTs and sparse product are
         # independent), window chunks in turn: this parallelises whatever M is
         chunk = min(n_windows, max(1, min(_DOPPLER_WINDOWS,
-                                          _BLOCK_BYTES // (16 * size * n_chirp))))
+                                          BLOCK_BYTES // (16 * size * n_chirp))))
         pool = ThreadPoolExecutor(workers) if workers > 1 and len(plan.blocks) > 1 else None
         try:
             for w0 in range(0, n_windows, chunk):
@@ -590,7 +590,7 @@ def _run_chirped(plan: _ChirpPlan, z: np.ndarray, out: np.ndarray, workers: int)
                 pool.shutdown()
         return
     widest = max(stop - start for start, stop, _ in plan.blocks)
-    chunk = min(n_windows, max(1, _BLOCK_BYTES // (16 * size * max(widest, n_chirp))))
+    chunk = min(n_windows, max(1, BLOCK_BYTES // (16 * size * max(widest, n_chirp))))
     units = [(w0, min(n_windows, w0 + chunk)) for w0 in range(0, n_windows, chunk)]
     # Window chunks run in parallel, each with one FFT thread: the sparse products hold the
     # GIL, so one thread's product overlaps the other's autocorrelation and FFTs.

@@ -120,7 +120,7 @@ def sigma_ellipse(center_hz: float, time_spread_s: float, cell_area: float,
     return np.column_stack([t, center_hz + f])
 
 
-def _area_norm(cell_area: np.ndarray) -> LogNorm:
+def area_norm(cell_area: np.ndarray) -> LogNorm:
     """Log colour scale symmetric about a = 1, so the Heisenberg cell is always the middle colour."""
     reach = max(float(np.max(np.abs(np.log(cell_area)))), np.log(2.0))
     return LogNorm(vmin=np.exp(-reach), vmax=np.exp(reach))
@@ -148,7 +148,7 @@ def tiling_figure(center_hz, time_spread_s, cell_area, chirp_hz_per_s) -> Figure
 
     fig = _new_figure(7.2, 5.0)
     ax = fig.add_subplot()
-    norm = _area_norm(area)
+    norm = area_norm(area)
     colours = matplotlib.colormaps[AREA_CMAP](norm(area))
     # Draw the widest kernels first so narrow ones stay visible on top.
     for c in np.argsort(-st * area):

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import hashlib
 import os
+from dataclasses import dataclass, replace
 from datetime import datetime, UTC
 
 import numpy as np
@@ -41,6 +42,44 @@ MIN_WINDOW = 64
 MAX_WINDOW = 1 << 16
 CLIP_RUN = 3
 TRIGGER_BAND_FACTOR = 4.0  # trigger on [f_dom / 4, 4 f_dom]
+READ_STAGES = ("reading", "preprocessing", "triggering", "cutting")
+
+
+@dataclass(frozen=True)
+class ReadProgress:
+    """Where :func:`read_corpus` is: what its ``progress`` callback receives after each step.
+
+    ``stage`` is one of ``READ_STAGES``, in that order: "reading" after each file
+    (``files_read`` of ``files_total``), then after each segment (a trace, or a run of it between
+    gaps; ``segments_done`` of ``segments_total``) "preprocessing" (detrend, resample,
+    band-pass, taper), "triggering" (the STA/LTA pass; 'bursts' windowing only) and "cutting"
+    (its windows placed and checked). ``hours_read`` sums samples / rate / 3600 over the traces
+    read so far (every trace, before ``components`` selects). ``windows_found`` counts the windows
+    cut and not rejected so far, before the ``max_windows`` cap: after the last segment it is
+    ``Corpus.defaults["windows_found"]``, of which ``windows_kept`` are in ``Corpus.windows``.
+    Counts of a stage not yet begun are 0.
+    """
+
+    stage: str
+    files_read: int
+    files_total: int
+    hours_read: float = 0.0
+    segments_done: int = 0
+    segments_total: int = 0
+    windows_found: int = 0
+
+
+class _Reporter:
+    """Passes the reader's state, updated by each call's keywords, to ``progress`` (if any)."""
+
+    def __init__(self, progress, files_total: int):
+        self.progress = progress
+        self.state = ReadProgress("reading", 0, files_total)
+
+    def __call__(self, **changes) -> None:
+        if self.progress is not None:
+            self.state = replace(self.state, **changes)
+            self.progress(self.state)
 
 
 def read_corpus(
@@ -61,6 +100,7 @@ def read_corpus(
     pre_trigger: float | None = None,
     trigger: str | None = None,
     hop_s: float | None = None,
+    progress=None,
 ) -> Corpus:
     """Read waveform files and cut them into preprocessed windows of one length and one rate.
 
@@ -98,6 +138,11 @@ def read_corpus(
         STA/LTA from equal-weight moving averages, or from recursive exponentially weighted ones.
     hop_s : float, s
         Hop of 'sliding' windows (default half a window).
+    progress : callable, optional
+        Called with a :class:`ReadProgress` (a frozen dataclass) after each file read and after
+        each segment preprocessed, triggered and cut. Not a reading choice: the result is the
+        same with or without it, and it is not recorded in ``defaults``. What it raises
+        propagates, so a caller can stop the reading (nothing is kept).
 
     Returns
     -------
@@ -114,11 +159,16 @@ def read_corpus(
         hop_s=hop_s,
     )
     files, skipped = expand_paths(paths)
+    report = _Reporter(progress, len(files))
     raw: list[RawTrace] = []
     digest = hashlib.sha256()
-    for path, fmt in files:
+    seconds = 0.0
+    for done, (path, fmt) in enumerate(files, 1):
         _hash_file(path, digest)
-        raw.extend(read_waveform_file(path, fmt, csv_sampling_rate_hz=opts["csv_sampling_rate_hz"]))
+        traces = read_waveform_file(path, fmt, csv_sampling_rate_hz=opts["csv_sampling_rate_hz"])
+        raw.extend(traces)
+        seconds += sum(tr.data.size / tr.sampling_rate_hz for tr in traces)
+        report(files_read=done, hours_read=seconds / 3600.0)
     raw = preprocess.join_contiguous(preprocess.select_components(raw, opts["components"]))
 
     rejections: list[dict] = []
@@ -129,8 +179,9 @@ def read_corpus(
     preprocess.check_rates(segments, rate, rate_how)
     sos = preprocess.bandpass_sos(opts["bandpass_hz"], rate) if opts["bandpass_hz"] is not None else None
     whole = opts["windowing"] == "whole"
-    for seg in segments:
+    for done, seg in enumerate(segments, 1):
         preprocess.process_segment(seg, rate, sos, taper=True)
+        report(stage="preprocessing", segments_done=done, segments_total=len(segments))
 
     defaults = {
         "windowing": opts["windowing"],
@@ -151,8 +202,9 @@ def read_corpus(
     if whole:
         placed = _whole_windows(segments, opts, defaults)
     else:
-        placed = _scan_windows(segments, files, opts, defaults, rejections)
-    return _assemble(placed, segments, files, skipped, digest.hexdigest(), rate, opts, defaults, rejections)
+        placed = _scan_windows(segments, files, opts, defaults, rejections, report)
+    return _assemble(placed, segments, files, skipped, digest.hexdigest(), rate, opts, defaults, rejections,
+                     report)
 
 
 # --- options and files --------------------------------------------------------------------------
@@ -332,7 +384,8 @@ def _whole_windows(segments: list[Segment], opts: dict, defaults: dict) -> list[
     """Each segment is one window; longer ones are cut around their energy peak.
 
     Placed windows here and in :func:`_scan_windows` are tuples (segment, start sample or −1 for
-    too short, length, triggers merged, first trigger onset from the start in samples or None).
+    too short, length, triggers merged, first trigger onset from the start in samples or None),
+    in segment order.
     """
     fs = defaults["sampling_rate_hz"]
     lengths = [s.data.size for s in segments]
@@ -357,7 +410,7 @@ def _whole_windows(segments: list[Segment], opts: dict, defaults: dict) -> list[
     return placed
 
 
-def _scan_windows(segments, files, opts, defaults, rejections):
+def _scan_windows(segments, files, opts, defaults, rejections, report):
     """Burst or sliding windows; defaults for STA/LTA and window length come from the data."""
     fs = defaults["sampling_rate_hz"]
     f_dom, info = windowing.dominant_frequency([s.data for s in segments], fs)
@@ -404,15 +457,16 @@ def _scan_windows(segments, files, opts, defaults, rejections):
     trigger_sos = preprocess.bandpass_sos(trigger_band, fs) if trigger_band else None
     sta_lta = windowing.boxcar_sta_lta if opts["trigger"] == "boxcar" else windowing.exponential_sta_lta
     onsets = []
-    for seg in segments:
+    for done, seg in enumerate(segments, 1):
         if seg.data.size <= nlta:
             onsets.append(np.empty((0, 2), dtype=np.int64))
-            continue
-        x = seg.data if trigger_sos is None else preprocess.zero_phase(trigger_sos, seg.data)
-        o = windowing.trigger_intervals(sta_lta(x, nsta, nlta), opts["trigger_on"], opts["trigger_off"])
-        # a trigger inside the taper is the ramp itself, not a burst
-        g = seg.taper_samples
-        onsets.append(o[(o[:, 0] >= g) & (o[:, 0] < seg.data.size - g)])
+        else:
+            x = seg.data if trigger_sos is None else preprocess.zero_phase(trigger_sos, seg.data)
+            o = windowing.trigger_intervals(sta_lta(x, nsta, nlta), opts["trigger_on"], opts["trigger_off"])
+            # a trigger inside the taper is the ramp itself, not a burst
+            g = seg.taper_samples
+            onsets.append(o[(o[:, 0] >= g) & (o[:, 0] < seg.data.size - g)])
+        report(stage="triggering", segments_done=done)
     n_triggers = int(sum(len(o) for o in onsets))
     defaults["triggers"] = n_triggers
     if n_triggers == 0:
@@ -462,10 +516,20 @@ def _iso(ts: float | None) -> str | None:
     return datetime.fromtimestamp(ts, tz=UTC).isoformat(timespec="microseconds").replace("+00:00", "Z")
 
 
-def _assemble(placed, segments, files, skipped, source_hash, fs, opts, defaults, rejections) -> Corpus:
+def _assemble(placed, segments, files, skipped, source_hash, fs, opts, defaults, rejections, report) -> Corpus:
     kept_rows, meta, owners, seen = [], [], [], set()
     per_segment = {id(s): 0 for s in segments}
+    position = {id(s): i for i, s in enumerate(segments)}
+    cut = 0  # segments whose windows are all checked: those before the one being placed
+
+    def segments_cut(upto: int) -> None:
+        nonlocal cut
+        while cut < upto:
+            cut += 1
+            report(stage="cutting", segments_done=cut, windows_found=len(kept_rows))
+
     for seg, start, length, count, trigger in placed:
+        segments_cut(position[id(seg)])
         if start < 0:
             rejections.append(_rejection(
                 seg.file, seg.trace_id, seg.offset_s, "too short",
@@ -495,6 +559,7 @@ def _assemble(placed, segments, files, skipped, source_hash, fs, opts, defaults,
         entry["trigger_offset_s"] = None if trigger is None else trigger / fs
         meta.append(entry)
         owners.append(id(seg))
+    segments_cut(len(segments))
     if not kept_rows:
         counts = {}
         for r in rejections:

@@ -1,4 +1,8 @@
-"""``burstlens inspect PATH...``: what a corpus holds — traces, windows, defaults, rejections."""
+"""``burstlens inspect PATH...``: what a corpus holds — traces, windows, defaults, rejections.
+
+While reading, a progress bar on stderr (not with ``--quiet``) shows the files read, the hours
+of data and the windows found; ``read_with_progress`` is that reading, also used by ``tune``.
+"""
 from __future__ import annotations
 
 import json
@@ -17,15 +21,15 @@ def register(subparsers) -> None:
     add_corpus_options(p)
     p.add_argument("--json", action="store_true", help="print the corpus summary as JSON")
     p.add_argument("--all", action="store_true", help="list every window and rejection, not the first 20")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=run)
 
 
 def run(args) -> int:
-    from burstlens.search.settings import read_corpus_as_given
     from burstlens.service.commands.options import corpus_options_from_args
 
     try:
-        corpus = read_corpus_as_given(args.paths, corpus_options_from_args(args))
+        corpus = read_with_progress(args.paths, corpus_options_from_args(args), quiet=args.quiet)
     except ValueError as exc:  # a bad option, or a CorpusError (a ValueError) naming the file
         print(f"burstlens inspect: {exc}", file=sys.stderr)
         return 2
@@ -37,6 +41,54 @@ def run(args) -> int:
     except BrokenPipeError:  # e.g. piped into head: the reader has seen enough
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
     return 0
+
+
+def read_with_progress(paths, options: dict, *, quiet: bool = False):
+    """The corpus as ``search.settings.read_corpus_as_given(paths, options)`` reads it, with a
+    tqdm bar on stderr unless ``quiet``: the reader's stage and its count (files, then segments),
+    and after it the files read, hours of data (summed over traces) and, once cutting, the
+    windows found before the ``max_windows`` cap. The bar is closed before this returns or raises;
+    errors are the reader's."""
+    from burstlens.search.settings import read_corpus_as_given
+
+    bar = None if quiet else _ReadingBar()
+    try:
+        return read_corpus_as_given(paths, options, progress=None if bar is None else bar.show)
+    finally:
+        if bar is not None:
+            bar.close()
+
+
+class _ReadingBar:
+    """A tqdm bar drawing ``ReadProgress`` states: a stage's count of files or segments."""
+
+    def __init__(self):
+        self.bar = None  # drawn from the first state on, when the number of files is known
+
+    def show(self, p) -> None:
+        from tqdm import tqdm
+
+        n, total = (p.files_read, p.files_total) if p.stage == "reading" else (p.segments_done, p.segments_total)
+        if self.bar is None:
+            self.bar = tqdm(total=total, desc=p.stage, file=sys.stderr,
+                            bar_format="{desc} {n_fmt}/{total_fmt} |{bar}| {elapsed}<{remaining}{postfix}")
+        elif p.stage != self.bar.desc:
+            self.bar.set_description_str(p.stage, refresh=False)
+            self.bar.reset(total=total)  # each stage its own count, elapsed time and rate
+        words = f"{p.files_read} files, {_hours(p.hours_read)} h of data"
+        if p.stage == "cutting":
+            words += f", {p.windows_found} windows found"
+        self.bar.set_postfix_str(words, refresh=False)
+        self.bar.update(n - self.bar.n)  # draws at most every tqdm.mininterval
+
+    def close(self) -> None:
+        if self.bar is not None:
+            self.bar.close()
+
+
+def _hours(hours: float) -> str:
+    """Hours with three significant digits below 100, whole hours above (a month is 720)."""
+    return f"{hours:.3g}" if hours < 100 else f"{hours:.0f}"
 
 
 def render(corpus, limit: int | None = 20) -> str:

@@ -3,7 +3,9 @@
 The files are cut into windows as the filterbank's tuning cut its corpus: its rate and window
 length, and the corpus options its job recorded (``FilterbankDocument.reading_options``);
 ``--windowing`` and ``--max-windows`` override. The NPZ (DESIGN §8) has the members of
-``search.documents.npz_members``, the same as ``POST /v1/transform``.
+``search.documents.npz_members``, the same as ``POST /v1/transform``; it is written a chunk of
+windows at a time (``search.npz_stream``), so memory holds the windows and one chunk of images,
+never the whole (M, C, N) image; a progress bar on stderr counts the windows (``--quiet``: none).
 """
 from __future__ import annotations
 
@@ -22,6 +24,7 @@ def register(subparsers) -> None:
                    help="how windows are cut (default: as the filterbank's tuning recorded, "
                         "else the reader's)")
     p.add_argument("--max-windows", type=int, help="cap on the number of windows")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=run)
 
 
@@ -30,16 +33,13 @@ def run(args: argparse.Namespace) -> int:
     import os
     import sys
 
-    import numpy as np
-
     def fail(message: str) -> int:
         print(f"burstlens transform: {message}", file=sys.stderr)
         return 2
 
     from burstlens.search.corpus import CorpusError, read_corpus
-    from burstlens.search.documents import FilterbankDocument, npz_members
-    from burstlens.search.safe_io import atomic_write
-    from burstlens.search.transform import transform
+    from burstlens.search.documents import FilterbankDocument
+    from burstlens.search.npz_stream import write_transform_npz
 
     try:
         with open(args.filterbank, encoding="utf-8") as fh:
@@ -66,13 +66,22 @@ def run(args: argparse.Namespace) -> int:
     if abs(corpus.sampling_rate_hz - fs) > 1e-9 * fs:
         return fail(f"the windows are at {corpus.sampling_rate_hz:g} Hz but the filterbank "
                     f"is for {fs:g} Hz")
-    representation = transform(corpus.windows, filterbank)
     out = args.out if args.out.endswith(".npz") else args.out + ".npz"
     folder = os.path.dirname(os.path.abspath(out))
     if not os.path.isdir(folder):
         return fail(f"--out {args.out}: folder {folder} does not exist")
-    members = npz_members(representation, filterbank, corpus.window_meta)
-    atomic_write(out, lambda fh: np.savez(fh, **members))
-    print(f"wrote {out}: {representation.shape[0]} windows x {representation.shape[1]} channels "
-          f"x {representation.shape[2]} samples at {fs:g} Hz")
+    bar = None
+    if not args.quiet:
+        from tqdm import tqdm
+
+        bar = tqdm(total=corpus.windows.shape[0], desc="transform", unit="window", file=sys.stderr)
+    try:
+        m, c, n = write_transform_npz(out, corpus.windows, filterbank, corpus.window_meta,
+                                      progress=None if bar is None else bar.update)
+    except OSError as exc:  # e.g. a full disk: nothing was written (the writer removes its temp)
+        return fail(f"--out {out}: {exc.strerror or exc}")
+    finally:
+        if bar is not None:
+            bar.close()
+    print(f"wrote {out}: {m} windows x {c} channels x {n} samples at {fs:g} Hz")
     return 0

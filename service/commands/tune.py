@@ -84,13 +84,13 @@ def run(args: argparse.Namespace) -> int:
 
     from burstlens.search.corpus import CorpusError
     from burstlens.search.optimize import FilterbankSearch
-    from burstlens.search.settings import read_corpus_as_given
+    from burstlens.service.commands.inspect import read_with_progress
 
     missing = [p for p in args.paths if not os.path.exists(p)]
     if missing:
         return fail(f"{missing[0]}: no such file or folder")
     try:
-        corpus = read_corpus_as_given(args.paths, corpus_options)
+        corpus = read_with_progress(args.paths, corpus_options, quiet=args.quiet)
     except (CorpusError, ValueError, OSError) as exc:
         return fail(str(exc))
 

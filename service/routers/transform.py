@@ -1,16 +1,19 @@
 """POST /v1/transform: a filterbank (JSON part or a job id) applied to uploaded waveforms → NPZ."""
 from __future__ import annotations
 
-import io
+import errno
+
 import json
 import shutil
+import uuid
 from pathlib import Path
 
-import numpy as np
 from fastapi import APIRouter, Depends, HTTPException, Request, Response
+from starlette.background import BackgroundTask
 from starlette.concurrency import run_in_threadpool
+from starlette.responses import FileResponse
 
-from burstlens.search.documents import FilterbankDocument, npz_members
+from burstlens.search.documents import FilterbankDocument
 from burstlens.service.auth import require_tenant
 from burstlens.service.corpus_check import parse_read_options, read_for_client
 from burstlens.service.dependencies import SettingsDep, StoreDep
@@ -36,16 +39,17 @@ _BODY = {"requestBody": {"required": True, "content": {"multipart/form-data": {"
         "csv_sampling_rate_hz": {"type": "number", "exclusiveMinimum": 0}}}}}}}
 
 
-def transform_npz(document: FilterbankDocument, paths, names, options: dict, settings,
-                  upload_options: dict | None = None) -> bytes:
-    """Read the files as the filterbank's tuning read its corpus, transform, pack as NPZ.
+def transform_npz(document: FilterbankDocument, paths, names, options: dict, settings, out: Path,
+                  upload_options: dict | None = None) -> None:
+    """Read the files as the filterbank's tuning read its corpus, transform, write the NPZ ``out``.
 
     The corpus reader gets the filterbank's rate and window length and the corpus options its
     tuning set (``FilterbankDocument.reading_options``: ``upload_options``, the job corpus's own
     reading options, under the job's settings), then ``options`` from the request on top. The
-    NPZ members are ``search.documents.npz_members``, with the client's file names.
+    NPZ members are ``search.documents.npz_members``, with the client's file names, written a
+    chunk of windows at a time (``search.npz_stream``); on an error ``out`` is not created.
     """
-    from burstlens.search.transform import transform
+    from burstlens.search.npz_stream import write_transform_npz
 
     try:
         filterbank = document.filterbank
@@ -59,12 +63,21 @@ def transform_npz(document: FilterbankDocument, paths, names, options: dict, set
         limit = settings.max_transform_values
         raise HTTPException(status_code=413, detail=f"the output would hold {m}×{c}×{n} values, "
                                                     f"more than the limit of {limit}")
-    representation = transform(corpus.windows, filterbank)
     by_stored = {str(p): name for p, name in zip(paths, names, strict=True)}
-    buffer = io.BytesIO()
-    np.savez(buffer, **npz_members(representation, filterbank, corpus.window_meta,
-                                   lambda stored: by_stored.get(stored, "")))
-    return buffer.getvalue()
+    write_transform_npz(out, corpus.windows, filterbank, corpus.window_meta,
+                        lambda stored: by_stored.get(stored, ""))
+
+
+class _TempFileResponse(FileResponse):
+    """A FileResponse whose file exists for this response only: its background task deletes it
+    after a full send, and a send that fails (the client went away, an error) deletes it too."""
+
+    async def __call__(self, scope, receive, send) -> None:
+        try:
+            await super().__call__(scope, receive, send)
+        except BaseException:
+            Path(self.path).unlink(missing_ok=True)
+            raise
 
 
 def _upload_options(store: Store, tenant: str, job_id) -> dict:
@@ -93,6 +106,8 @@ async def transform_files(request: Request, store: StoreDep, settings: SettingsD
     fields `windowing` and `csv_sampling_rate_hz` override those for these files.
     """
     folder = await run_in_threadpool(store.new_upload_dir)
+    # the NPZ is written to disk, not memory, in the store's tmp/ (swept at start after a crash)
+    out = store.tmp_dir / f"transform-{uuid.uuid4().hex}.npz"
     try:
         upload = await receive_multipart(
             request, folder, file_fields={"files", "filterbank"},
@@ -131,10 +146,21 @@ async def transform_files(request: Request, store: StoreDep, settings: SettingsD
                                       if k in ("windowing", "csv_sampling_rate_hz")})
         made_by = job_id if job_id is not None else (document.job.id if document.job else None)
         upload_options = await run_in_threadpool(_upload_options, store, tenant, made_by)
-        data = await run_in_threadpool(transform_npz, document,
-                                       upload.paths(folder, "files"), [f["name"] for f in files],
-                                       options, settings, upload_options)
+        await run_in_threadpool(transform_npz, document, upload.paths(folder, "files"),
+                                [f["name"] for f in files], options, settings, out,
+                                upload_options)
+    except OSError as exc:
+        out.unlink(missing_ok=True)
+        if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+            raise HTTPException(status_code=507, detail="the server's disk is full; the transform "
+                                "was not written, try again later or ask the operator") from None
+        raise
+    except BaseException:
+        # the writer leaves no file on its own errors; this covers a cancel after it finished
+        out.unlink(missing_ok=True)
+        raise
     finally:
         await run_in_threadpool(shutil.rmtree, folder, True)
-    return Response(data, media_type=NPZ_MEDIA_TYPE,
-                    headers={"Content-Disposition": 'attachment; filename="transform.npz"'})
+    return _TempFileResponse(out, media_type=NPZ_MEDIA_TYPE,
+                             background=BackgroundTask(out.unlink, missing_ok=True),
+                             headers={"Content-Disposition": 'attachment; filename="transform.npz"'})

@@ -221,7 +221,7 @@ def test_block_processing_does_not_change_scores(monkeypatch):
     rng = np.random.default_rng(9)
     images = rng.random((7, 4, 16))
     whole = Criterion().score(images)
-    monkeypatch.setattr(criteria, "_BLOCK_ELEMENTS", 100)  # 1 window per block
+    monkeypatch.setattr(criteria, "BLOCK_ELEMENTS", 100)  # 1 window per block
     np.testing.assert_array_equal(Criterion().score(images), whole)
 
 

@@ -88,8 +88,8 @@ def test_guided_wave_is_an_up_chirp():
     mt = ds.random_double_couple(np.random.default_rng(1))
     with_gw = ds.Source("event", 0.0, loc, -1.0, 1e6, mt, True)
     without = ds.Source("event", 0.0, loc, -1.0, 1e6, mt, False)
-    a = ds._arrivals(with_gw, station, f, 0.05, np.random.default_rng(2))
-    b = ds._arrivals(without, station, f, 0.05, np.random.default_rng(2))
+    a = ds.arrivals(with_gw, station, f, 0.05, np.random.default_rng(2))
+    b = ds.arrivals(without, station, f, 0.05, np.random.default_rng(2))
     x = np.fft.irfft((a - b) * fs, n=buf, axis=1)
     x = x[np.argmax(np.sum(x ** 2, axis=1))]
     sft = ShortTimeFFT(gaussian(128, 24), hop=16, fs=fs)

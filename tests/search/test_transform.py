@@ -292,9 +292,9 @@ def test_long_windows_are_processed_in_blocks(monkeypatch, chirp_method):
     fb = Filterbank([Channel(50.0, 0.02), Channel(150.0, 0.01, 1.0, -1200.0),
                      Channel(300.0, 0.005, 0.6), Channel(420.0, 0.03, 0.8, 2500.0)], FS)
     expected = transform(windows, fb, dtype=np.float64, chirp_method=chirp_method)
-    monkeypatch.setattr(module, "_BLOCK_BYTES", 1 << 16)
-    monkeypatch.setattr(module, "_GEMM_BLOCK_BYTES", 1 << 14)
-    monkeypatch.setattr(module, "_ROW_BLOCK_BYTES", 1 << 14)
+    monkeypatch.setattr(module, "BLOCK_BYTES", 1 << 16)
+    monkeypatch.setattr(module, "GEMM_BLOCK_BYTES", 1 << 14)
+    monkeypatch.setattr(module, "ROW_BLOCK_BYTES", 1 << 14)
     clear_plans()  # the cached weights were cut for the default blocks
     blocked = transform(windows, fb, dtype=np.float64, workers=2, chirp_method=chirp_method)
     serial = transform(windows, fb, dtype=np.float64, workers=1, chirp_method=chirp_method)

@@ -28,7 +28,7 @@ pytestmark = [
 IMAGES_JS = """() => Array.from(document.images).map(i => ({
     alt: i.alt, complete: i.complete, width: i.naturalWidth, src: i.src.slice(0, 22)}))"""
 
-# Channel table rows as [field -> {value: data-value, text: shown}] (report.py's table).
+# Channel table rows as [field -> {value: data-value, text: shown}] (service/report/sections.py's table).
 TABLE_JS = """() => Array.from(document.querySelectorAll('#channel-table tbody tr')).map(tr => {
     const row = {};
     tr.querySelectorAll('td[data-field]').forEach(td => {

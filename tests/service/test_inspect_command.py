@@ -53,3 +53,18 @@ def test_demo_corpus_command_writes_identical_files(tmp_path, capsys):
         with open(os.path.join(DEMO, os.path.basename(path)), "rb") as fh:
             assert hashlib.sha256(fh.read()).hexdigest() == digest
     assert len(printed) == 6
+
+
+def test_inspect_progress_bar_on_stderr_leaves_stdout_unchanged(capsys):
+    """`inspect` draws its progress on stderr, naming the files read, the hours of data and the
+    windows found (the demo: 5 files of three 60 s traces, 0.25 h), and prints the same summary
+    on stdout as with --quiet, which draws nothing (DESIGN §9: inspect's summary)."""
+    assert main(["inspect", DEMO]) == 0
+    shown = capsys.readouterr()
+    assert main(["inspect", DEMO, "--quiet"]) == 0
+    quiet = capsys.readouterr()
+    assert shown.out == quiet.out and quiet.err == ""
+    last = shown.err.replace("\r", "\n").strip().splitlines()[-1]
+    found = next(line.split(": ")[1] for line in shown.out.splitlines() if line.startswith("  windows_found: "))
+    assert last.startswith("cutting 15/15 ")
+    assert last.endswith(f"5 files, 0.25 h of data, {found} windows found")

@@ -55,7 +55,7 @@ def test_tiling_draws_one_ellipse_per_channel_coloured_by_area():
     assert len(_patches(fig, plots.REFERENCE_GID)) == 1
     centres = sorted(float(np.mean(p.get_xy()[:-1, 1])) for p in ellipses)
     np.testing.assert_allclose(centres, np.sort(CENTER_HZ), rtol=1e-9)
-    norm = plots._area_norm(CELL_AREA)
+    norm = plots.area_norm(CELL_AREA)
     cmap = matplotlib.colormaps[plots.AREA_CMAP]
     by_centre = {round(float(np.mean(p.get_xy()[:-1, 1])), 6): p for p in ellipses}
     for fc, a in zip(CENTER_HZ, CELL_AREA, strict=True):
@@ -215,7 +215,7 @@ def test_example_rows_share_axes_and_colour_limits():
         assert max(a.get_array().max(), b.get_array().max()) == pytest.approx(0.0)
         assert min(a.get_array().min(), b.get_array().min()) >= -plots.DYNAMIC_RANGE_DB - 1e-9
         assert "(Hz)" in a.axes.get_ylabel() and "(ms)" in a.axes.get_xlabel()
-    assert [sub._suptitle.get_text() for sub in fig.subfigs] == ["first", "second"]
+    assert [sub.get_suptitle() for sub in fig.subfigs] == ["first", "second"]
     wave_axes = [ax for ax in fig.axes if ax.get_title(loc="left") == "waveform"]
     assert len(wave_axes) == rows
     assert wave_axes[0].figure is fig.subfigs[0]

@@ -1,4 +1,4 @@
-"""The job report (service/report.py): self-contained HTML, escaped text, a faithful channel table.
+"""The job report (service/report/): self-contained HTML, escaped text, a faithful channel table.
 
 Most tests use a small hand-built filterbank JSON and diagnostics dict that follow the documented
 schema (DEVELOPERS.md, "Contracts between the pieces"); the example-burst test runs the project's
@@ -430,7 +430,7 @@ def test_jobs_page_uses_the_same_palette():
 
     from burstlens.service import palette
 
-    page = (Path(report.__file__).parent / "static" / "index.html").read_text(encoding="utf-8")
+    page = (Path(palette.__file__).parent / "static" / "index.html").read_text(encoding="utf-8")
     assert palette.css_variables() in page
 
 

@@ -113,3 +113,153 @@ def test_route_and_command_write_the_same_npz(tuned, tmp_path, monkeypatch):
     for name, array in route.items():
         assert command[name].dtype == array.dtype, name
         np.testing.assert_array_equal(command[name], array, err_msg=name)
+
+
+def test_transform_leaves_no_file_in_the_data_dir(tuned):
+    """The NPZ is written to the data dir's tmp/ and sent from there: once the response is
+    sent the file is gone (its background task deletes it), as is the upload folder."""
+    client, by_job, _ = tuned
+    tmp_dir = client.app.state.store.tmp_dir
+    arrays = _transform(client, job_id=by_job)
+    assert arrays["representation"].shape[0] > 6
+    assert list(tmp_dir.iterdir()) == []
+
+
+def test_a_failed_transform_leaves_no_file_and_shows_no_internals(tuned, monkeypatch):
+    """A transform failing in the middle of the NPZ (second chunk, one window per chunk) is a
+    500 that names no internals (no exception text, no stack trace), and leaves neither the
+    output nor a temp file in the data dir."""
+    from burstlens.search import npz_stream
+    from burstlens.search.transform import transform
+
+    client, by_job, _ = tuned
+    calls = []
+
+    def failing(chunk, filterbank):
+        calls.append(len(chunk))
+        if len(calls) == 2:
+            raise RuntimeError("secret internals")
+        return transform(chunk, filterbank)
+
+    monkeypatch.setattr(npz_stream, "transform", failing)
+    monkeypatch.setattr(npz_stream, "CHUNK_BYTES", 1)
+    response = client.post("/v1/transform", data={"job_id": by_job}, files=corpus_files(1, seed=5))
+    assert response.status_code == 500 and calls == [1, 1]
+    assert "secret" not in response.text and "Traceback" not in response.text
+    assert list(client.app.state.store.tmp_dir.iterdir()) == []
+
+
+@pytest.mark.parametrize("spec_version", ["2.0", "2.4"])
+def test_a_send_that_fails_still_deletes_the_file(tmp_path, spec_version):
+    """When sending the NPZ fails part-way (the client went away: the server's send raises),
+    the temp file is deleted all the same and the error goes on to the server; a full send
+    deletes it through the background task. Both ASGI paths of the file response (2.0 listens
+    for the disconnect, 2.4 relies on send raising) are covered."""
+    import asyncio
+
+    from starlette.background import BackgroundTask
+
+    from burstlens.service.routers.transform import NPZ_MEDIA_TYPE, _TempFileResponse
+
+    scope = {"type": "http", "method": "POST", "headers": [],
+             "asgi": {"spec_version": spec_version}}
+
+    async def receive():
+        await asyncio.sleep(3600)  # the client stays connected while the body is sent
+
+    def respond(path, send):
+        response = _TempFileResponse(path, media_type=NPZ_MEDIA_TYPE,
+                                     background=BackgroundTask(path.unlink, missing_ok=True))
+        response.chunk_size = 4  # several body messages: the failure comes part-way
+        asyncio.run(response(scope, receive, send))
+
+    sent = []
+
+    async def record(message):
+        sent.append(message)
+
+    async def gone(message):
+        if message["type"] == "http.response.body":
+            raise OSError("connection reset")
+
+    for send in (record, gone):
+        path = tmp_path / f"{send.__name__}.npz"
+        path.write_bytes(b"0123456789")
+        if send is gone:
+            with pytest.raises(OSError, match="connection reset"):
+                respond(path, send)
+        else:
+            respond(path, send)
+            assert b"".join(m.get("body", b"") for m in sent) == b"0123456789"
+        assert not path.exists(), send.__name__
+
+
+def test_command_counts_windows_on_stderr_unless_quiet(tuned, tmp_path, monkeypatch, capsys):
+    """`burstlens transform` draws a progress bar of the windows transformed on stderr (all M
+    of them by the end), none with --quiet; stdout and the file are the same either way."""
+    from burstlens.service.cli import main
+
+    client, by_job, _ = tuned
+    (tmp_path / "filterbank.json").write_text(client.get(f"/v1/jobs/{by_job}/filterbank").text)
+    (tmp_path / "new.npz").write_bytes(burst_npz(5))
+    monkeypatch.chdir(tmp_path)
+    m = len(_offsets(tmp_path, "sliding"))
+    outputs = []
+    for name, extra in (("bar.npz", []), ("quiet.npz", ["--quiet"])):
+        capsys.readouterr()
+        assert main(["transform", "--filterbank", "filterbank.json", "new.npz",
+                     "--out", name, *extra]) == 0
+        outputs.append(capsys.readouterr())
+    assert "transform" in outputs[0].err and f"{m}/{m}" in outputs[0].err
+    assert outputs[1].err == ""
+    assert outputs[0].out.replace("bar.npz", "quiet.npz") == outputs[1].out
+    with np.load(tmp_path / "bar.npz") as bar, np.load(tmp_path / "quiet.npz") as quiet:
+        for name in bar.files:
+            np.testing.assert_array_equal(bar[name], quiet[name], err_msg=name)
+
+
+def _disk_fills_on_second_chunk(monkeypatch):
+    """The second chunk's write meets ENOSPC (one window per chunk), as a full disk would."""
+    import errno
+
+    from burstlens.search import npz_stream
+    from burstlens.search.transform import transform
+
+    calls = []
+
+    def filling(chunk, filterbank):
+        calls.append(len(chunk))
+        if len(calls) == 2:
+            raise OSError(errno.ENOSPC, "No space left on device")
+        return transform(chunk, filterbank)
+
+    monkeypatch.setattr(npz_stream, "transform", filling)
+    monkeypatch.setattr(npz_stream, "CHUNK_BYTES", 1)
+
+
+def test_a_full_disk_is_507_and_leaves_nothing(tuned, monkeypatch):
+    """A full disk while the NPZ is written is 507 Insufficient Storage (RFC 4918 §11.5) with a
+    message for people, as for uploads, and the data dir's tmp/ holds nothing afterwards."""
+    client, by_job, _ = tuned
+    _disk_fills_on_second_chunk(monkeypatch)
+    response = client.post("/v1/transform", data={"job_id": by_job}, files=corpus_files(1, seed=5))
+    assert response.status_code == 507
+    assert "disk is full" in response.json()["error"]["message"]
+    assert list(client.app.state.store.tmp_dir.iterdir()) == []
+
+
+def test_command_names_the_output_on_a_full_disk(tuned, tmp_path, monkeypatch, capsys):
+    """`burstlens transform` on a full disk: exit 2, one line naming --out and the cause, no
+    traceback, and no output or temp file left in the folder (common practice for CLIs)."""
+    from burstlens.service.cli import main
+
+    client, by_job, _ = tuned
+    (tmp_path / "filterbank.json").write_text(client.get(f"/v1/jobs/{by_job}/filterbank").text)
+    (tmp_path / "new.npz").write_bytes(burst_npz(5))
+    monkeypatch.chdir(tmp_path)
+    _disk_fills_on_second_chunk(monkeypatch)
+    assert main(["transform", "--filterbank", "filterbank.json", "new.npz", "--out", "out.npz",
+                 "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert "--out out.npz" in err and "No space left on device" in err and "Traceback" not in err
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["filterbank.json", "new.npz"]

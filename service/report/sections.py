@@ -1,0 +1,315 @@
+"""The report page's HTML fragments: verdict lead, headline cards, judgement and channel
+tables, rejections, corpus and trace tables, settings, figures and the one-line summary.
+
+Each function returns a piece of markup from the two documents (``filterbank_json``, the
+filterbank JSON of DESIGN §8; ``diagnostics``, the search's diagnostics dict); every text that
+comes from data goes through ``esc``. The words themselves are ``service.report.wording``'s.
+"""
+from __future__ import annotations
+
+import base64
+import html
+import math
+from collections.abc import Mapping
+
+from burstlens.search.documents import DiagnosticsDocument, FilterbankDocument
+from burstlens.search.safe_io import finite_or_none
+from burstlens.service import verdict
+from burstlens.service.report.figures import Plot
+from burstlens.service.report.inputs import channel_column, count_of
+from burstlens.service.report.wording import (JOB_SETTINGS, SETTING_ALIASES, equivalent_text, fmt,
+                                              key_stem, onset_text, people_items, percent_text,
+                                              resolution_text, stability_text)
+
+REJECTION_LIST_LIMIT = 200
+TRACE_LIST_LIMIT = 200
+SITES_NAMED = 4  # stations named in the summary line before "and N more"
+_UNSET = object()  # a job setting the job did not give (None is a value it may give)
+
+
+def esc(value) -> str:
+    """Any value as HTML text, quotes escaped too (safe inside attribute values)."""
+    return html.escape(str(value), quote=True)
+
+
+def kv_table(mapping) -> str:
+    """A two-column table of a dict's keys and their values in ``fmt``'s words."""
+    if not isinstance(mapping, Mapping) or not mapping:
+        return '<p class="muted">none recorded</p>'
+    rows = "".join(f"<tr><th scope=\"row\">{esc(k)}</th><td>{esc(fmt(v))}</td></tr>"
+                   for k, v in mapping.items())
+    return f'<table class="kv">{rows}</table>'
+
+
+FWHM_PER_STD = 4 * math.sqrt(math.log(2))  # FWHM of the window amplitude exp(−u²/4σ_t²)
+# (header, unit, data-field of the exact JSON value or None, text of one channel)
+CHANNEL_COLUMNS = (
+    ("centre", "Hz", "center_hz", lambda c: f"{c['center_hz']:.5g}"),
+    ("Gaussian window σ_t", "ms", "time_spread_s", lambda c: f"{1e3 * c['time_spread_s']:.3g}"),
+    ("window FWHM", "ms", None, lambda c: f"{FWHM_PER_STD * 1e3 * c['time_spread_s']:.3g}"),
+    ("resolution against a spectrogram", "cell area a", "cell_area",
+     lambda c: resolution_text(float(c["cell_area"]))),
+    ("matched sweep", "Hz/s", "chirp_hz_per_s", lambda c: f"{c['chirp_hz_per_s']:,.0f}"),
+)
+
+
+def channel_table(channels: list[dict], diagnostics: Mapping) -> str:
+    """One row per channel (``CHANNEL_COLUMNS``, its stability interval, its reading); each
+    drawn field carries ``data-field`` and the exact JSON float as ``data-value``."""
+    boot = (diagnostics.get("bootstrap") or {}).get("channels")
+    boot = boot if isinstance(boot, list) and len(boot) == len(channels) else [None] * len(channels)
+    head = '<th scope="col">#</th>' + "".join(
+        '<th scope="col"' + (f' data-field="{field}"' if field else "") + f">{esc(title)}</th>"
+        for title, _, field, _ in CHANNEL_COLUMNS) + \
+        '<th scope="col">stability interval</th><th scope="col" data-field="equivalent">reading</th>'
+    units = ("", *(u for _, u, _, _ in CHANNEL_COLUMNS), "refits on resampled windows", "")
+    body = []
+    for index, (channel, entry) in enumerate(zip(channels, boot, strict=True)):
+        cells = [f"<td>{index}</td>"]
+        for _, _, field, text in CHANNEL_COLUMNS:
+            exact = f' data-field="{field}" data-value="{float(channel[field])!r}"' if field else ""
+            cells.append(f'<td class="num"{exact}>{esc(text(channel))}</td>')
+        cells.append(f"<td>{esc(stability_text(entry))}</td>")
+        cells.append(f'<td data-field="equivalent">{esc(equivalent_text(channel.get("equivalent")))}</td>')
+        body.append(f'<tr data-channel="{index}">{"".join(cells)}</tr>')
+    unit_row = "".join(f"<td>{esc(u)}</td>" for u in units)
+    return (f'<div class="scroll tall"><table id="channel-table" class="grid"><thead><tr>{head}</tr>'
+            f'<tr class="units">{unit_row}</tr></thead><tbody>{"".join(body)}</tbody></table></div>')
+
+
+def rejections(windows_info: Mapping, corpus: Mapping) -> str:
+    """Counts by reason, then each rejection (file, trace, offset, reason, detail) folded away."""
+    reasons = windows_info.get("rejected_by_reason")
+    if not (isinstance(reasons, Mapping) and reasons):
+        return '<p class="muted">no window was rejected</p>'
+    rows = "".join(f"<tr><td>{esc(k)}</td><td class=\"num\">{esc(fmt(v))}</td></tr>"
+                   for k, v in sorted(reasons.items(), key=lambda kv: str(kv[0])))
+    out = ('<table class="grid small"><thead><tr><th scope="col">reason</th>'
+           f'<th scope="col">windows</th></tr></thead><tbody>{rows}</tbody></table>')
+    each = corpus.get("rejections") if isinstance(corpus, Mapping) else None
+    if isinstance(each, list) and each:
+        keys = ("file", "trace_id", "offset_s", "reason", "detail")
+        head = "".join(f'<th scope="col">{k}</th>' for k in keys)
+        body = "".join("<tr>" + "".join(f"<td>{esc(fmt(r.get(k, '')))}</td>" for k in keys) + "</tr>"
+                       for r in each[:REJECTION_LIST_LIMIT] if isinstance(r, Mapping))
+        more = (f'<p class="muted">{len(each) - REJECTION_LIST_LIMIT} more not listed</p>'
+                if len(each) > REJECTION_LIST_LIMIT else "")
+        out += (f"<details><summary>each rejection ({len(each)})</summary><div class=\"scroll\">"
+                f'<table class="grid small"><thead><tr>{head}</tr></thead><tbody>{body}</tbody>'
+                f"</table></div>{more}</details>")
+    return out
+
+
+def headline(filterbank_json: Mapping, diagnostics: Mapping, channels: list[dict]) -> str:
+    """The judgement's cards: gain, objective, negative share, onset timing, stop reason, windows,
+    channels and sampling rate."""
+    gain = finite_or_none(diagnostics.get("gain_bits"))
+    result = diagnostics.get("result") or {}
+    objective = finite_or_none(result.get("objective"))
+    low, high = finite_or_none(result.get("low")), finite_or_none(result.get("high"))
+    windows_info = diagnostics.get("windows") or {}
+    used, rejected = count_of(windows_info.get("used")), count_of(windows_info.get("rejected"))
+    judged = verdict.judgement(diagnostics)
+    held_out = judged is not None and judged.get("in_sample") is not True
+    negative = (judged or {}).get("negative_share")
+    negative = negative if isinstance(negative, Mapping) else {}
+    ceiling = finite_or_none(negative.get("max_allowed"))
+    fs = FilterbankDocument(filterbank_json).sampling_rate_hz
+    cards = [
+        ("gain over the best spectrogram" + (", held-out" if held_out else ""),
+         f"{gain:+.3f} bits" if gain is not None else "not recorded"),
+        (("held-out objective" if held_out else "objective") + " of the result",
+         (f"{objective:.4g}" if objective is not None else "not recorded")
+         + (f" [{low:.4g}, {high:.4g}]" if low is not None and high is not None else "")),
+        ("negative share of the image", percent_text(negative.get("overall"))
+         + (f" (ceiling {100 * ceiling:.2g} %)" if ceiling is not None else "")),
+        ("onset timing, median / p90", onset_text((judged or {}).get("onset"))
+         if judged is not None else "not recorded"),
+        ("stop reason", str(diagnostics.get("stop_reason", "not recorded"))),
+        ("windows used / rejected", f"{'?' if used is None else used} / "
+                                     f"{'?' if rejected is None else rejected}"),
+        ("channels", str(len(channels))),
+        ("sampling rate", f"{fs:g} Hz" if fs else "not recorded"),
+    ]
+    return '<div class="cards">' + "".join(
+        f'<div class="card"><div class="label">{esc(k)}</div><div class="value">{esc(v)}</div></div>'
+        for k, v in cards) + "</div>"
+
+
+def verdict_lead(diagnostics: Mapping) -> str:
+    """The lead under the title: the held-out gain sentence, how it was measured, and a warnings
+    box only when some warning applies."""
+    judged = verdict.judgement(diagnostics)
+    kind = "lead note" if judged is None else "lead"
+    lead = f'<p class="{kind}" id="gain">{esc(verdict.gain_words(diagnostics))}</p>'
+    if judged is not None:
+        gain = judged.get("gain_bits")
+        gain = gain if isinstance(gain, Mapping) else {}
+        level, resamples = finite_or_none(gain.get("level")), count_of(gain.get("resamples"))
+        judged_on = "fitted" if judged.get("in_sample") is True else "held-out"
+        interval = f"{100 * level:.0f} % interval" if level is not None else "interval"
+        if resamples:
+            interval += f" from {resamples} resamples of the {judged_on} windows"
+        how = [interval,
+               f"{judged['fit_windows']} windows fitted" if count_of(judged.get("fit_windows"))
+               is not None else None,
+               f"{judged['guard_windows']} left out of the fit because they overlap held-out ones"
+               if count_of(judged.get("guard_windows")) else None]
+        lead += f'<p class="muted">{esc("; ".join(h for h in how if h))}.</p>'
+    found = verdict.warnings(diagnostics)
+    if found:
+        items = "".join(f"<li>{esc(w)}</li>" for w in found)
+        lead += (f'<div class="warnings" id="warnings" role="note"><h2>Warnings</h2>'
+                 f"<ul>{items}</ul></div>")
+    return f'<section id="verdict">{lead}</section>'
+
+
+def judgement_table(diagnostics: Mapping) -> str:
+    """The held-out judgement in numbers, or a note when the diagnostics carry none."""
+    judged = verdict.judgement(diagnostics)
+    if judged is None:
+        return ('<p class="muted">no judgement on held-out windows recorded (an older run or a '
+                "cancelled one): objectives and gain here were measured on the windows the fit "
+                "used</p>")
+
+    def objective(entry) -> str:
+        entry = entry if isinstance(entry, Mapping) else {}
+        value, low, high = (finite_or_none(entry.get(k)) for k in ("objective", "low", "high"))
+        if value is None:
+            return "not recorded"
+        return f"{value:.4g}" + (f" [{low:.4g}, {high:.4g}]" if low is not None and high is not None
+                                 else "")
+
+    negative = judged.get("negative_share")
+    negative = negative if isinstance(negative, Mapping) else {}
+    per_channel = [finite_or_none(v) for v in negative.get("per_channel") or []]
+    worst = max((v for v in per_channel if v is not None), default=None)
+    rows = {
+        "judged in-sample": judged.get("in_sample"),
+        "held-out share": judged.get("held_out_share"),
+        "windows held out / fitted / guard": " / ".join(
+            "?" if count_of(judged.get(k)) is None else str(judged[k])
+            for k in ("held_out_windows", "fit_windows", "guard_windows")),
+        "result objective, judged windows": objective(judged.get("result")),
+        "best spectrogram objective, judged windows": objective(judged.get("spectrogram")),
+        "negative share, largest channel": percent_text(worst),
+        "negative share allowed": percent_text(negative.get("max_allowed")),
+        "settings on a search bound": ", ".join(map(str, judged.get("bounds_hit") or [])) or "none",
+    }
+    if judged.get("grouping"):  # how windows were kept apart, as the search words it
+        rows["held-out grouping"] = judged["grouping"]
+    return kv_table(rows)
+
+
+def corpus_summary(corpus: Mapping) -> str:
+    """The corpus record's scalars, with files and traces as counts."""
+    if not isinstance(corpus, Mapping) or not corpus:
+        return '<p class="muted">no corpus summary recorded</p>'
+    scalars = {k: v for k, v in corpus.items()
+               if not isinstance(v, (list, dict)) and k != "defaults"}
+    files = corpus.get("files")
+    if isinstance(files, list) and files:
+        scalars["files"] = len(files)
+    traces = corpus.get("traces")
+    if isinstance(traces, list):
+        scalars["traces"] = len(traces)
+    return kv_table(scalars)
+
+
+def trace_table(corpus: Mapping) -> str:
+    """Every trace segment read (file, SEED id, rate, start, duration, windows it gave)."""
+    traces = corpus.get("traces") if isinstance(corpus, Mapping) else None
+    if not isinstance(traces, list) or not traces:
+        return ""
+    keys = [k for k in ("file", "trace_id", "sampling_rate_hz", "start", "duration_s", "windows")
+            if any(isinstance(t, Mapping) and k in t for t in traces)]
+    head = "".join(f'<th scope="col">{esc(k)}</th>' for k in keys)
+    rows = "".join("<tr>" + "".join(f"<td>{esc(fmt(t.get(k, '')))}</td>" for k in keys) + "</tr>"
+                   for t in traces[:TRACE_LIST_LIMIT] if isinstance(t, Mapping))
+    more = (f'<p class="muted">{len(traces) - TRACE_LIST_LIMIT} more traces not listed</p>'
+            if len(traces) > TRACE_LIST_LIMIT else "")
+    return (f'<h3>Traces read ({len(traces)})</h3><div class="scroll"><table class="grid traces">'
+            f"<thead><tr>{head}</tr></thead><tbody>{rows}</tbody></table></div>{more}")
+
+
+def setting_cells(items) -> str:
+    """Cells of (label, text, tag); the tag says whether the job gave the setting."""
+    cells = []
+    for label, text, tag in items:
+        badge = f' <span class="tag">{esc(tag)}</span>' if tag else ""
+        cells.append(f'<div class="setting"><span class="key">{esc(label)}{badge}</span> '
+                     f'<span class="value">{esc(text)}</span></div>')
+    return f'<div class="settings">{"".join(cells)}</div>'
+
+
+def settings_section(resolved, given, reader_defaults) -> str:
+    """Settings as run (tagged 'given' or 'default' when the job's own settings are known), then
+    the defaults the engine and the corpus reader chose from the data."""
+    resolved = resolved if isinstance(resolved, Mapping) else {}
+    chosen = []
+    for key in JOB_SETTINGS:
+        if key not in resolved:
+            continue
+        asked = None if given is None else next(
+            (given[k] for k in (key, SETTING_ALIASES.get(key)) if k in given), _UNSET)
+        tag = None if given is None else ("default" if asked is _UNSET else "given")
+        value = resolved[key]
+        if value is None and asked not in (None, _UNSET):  # applied elsewhere (e.g. the reader)
+            value = asked
+        if value is None and isinstance(reader_defaults, Mapping):  # the reader's choice
+            value = reader_defaults.get(key)
+        chosen.extend((label, text, tag) for label, text in people_items({key: value}))
+    engine = people_items({k: v for k, v in resolved.items() if k not in JOB_SETTINGS})
+    record = dict(reader_defaults) if isinstance(reader_defaults, Mapping) else {}
+    asked = record.pop("given", None)
+    asked = asked if isinstance(asked, Mapping) else {}
+    # the reader records every option's value; those the caller set are tagged "given"
+    reader = []
+    for key, value in record.items():
+        if str(key).endswith("_source"):
+            continue
+        source = f"{key_stem(str(key))[0]}_source"
+        one = {key: value, **({source: record[source]} if source in record else {})}
+        reader += [(*item, "given" if key in asked else None) for item in people_items(one)]
+    none = '<p class="muted">none recorded</p>'
+    return ("<h3>Settings of the run</h3>" + (setting_cells(chosen) if chosen else none)
+            + "<h3>Corpus reading: options given, and defaults chosen from the data</h3>"
+            + (setting_cells(reader) if reader else none)
+            + "<h3>Defaults the search derived</h3>"
+            + (setting_cells((*i, None) for i in engine) if engine else none))
+
+
+def figure_html(plot: Plot) -> str:
+    """A plot as a figure with its PNG inline as a base64 ``data:`` URL, or its note if omitted."""
+    if plot.png is None:
+        return (f'<figure class="plot omitted" id="plot-{plot.name}"><p class="note">'
+                f"{esc(plot.caption)}</p></figure>")
+    data = base64.b64encode(plot.png).decode("ascii")
+    return (f'<figure class="plot" id="plot-{plot.name}"><img src="data:image/png;base64,{data}" '
+            f'alt="{esc(plot.alt)}"><figcaption>{esc(plot.caption)}</figcaption></figure>')
+
+
+def what_was_tuned(filterbank_json: Mapping, diagnostics: Mapping, channels: list[dict]) -> str:
+    """One line: the site (stations), the files, the channels and band, the windows."""
+    corpus = diagnostics.get("corpus") if isinstance(diagnostics.get("corpus"), Mapping) else {}
+    traces = [t for t in corpus.get("traces") or [] if isinstance(t, Mapping)]
+    stations = list(dict.fromkeys(".".join(str(t["trace_id"]).split(".")[:2]) for t in traces
+                                  if t.get("trace_id")))
+    site = (", ".join(stations[:SITES_NAMED]) + (f" and {len(stations) - SITES_NAMED} more"
+                                                  if len(stations) > SITES_NAMED else "")
+            if stations else "corpus " + str(corpus.get("source_hash") or
+                                             filterbank_json.get("corpus_hash") or "?")[:12])
+    files = corpus.get("files")
+    site += f" ({len(files)} files, {len(traces)} traces)" if isinstance(files, list) else ""
+    fc = channel_column(channels, "center_hz")
+    settings = diagnostics.get("settings") if isinstance(diagnostics.get("settings"), Mapping) else {}
+    spacing = f", {settings['spacing']} spacing" if settings.get("spacing") else ""
+    parts = [site, f"{len(channels)} channels at {fc.min():.4g}–{fc.max():.4g} Hz{spacing}"]
+    used = count_of((diagnostics.get("windows") or {}).get("used"))
+    fs = FilterbankDocument(filterbank_json).sampling_rate_hz
+    samples = filterbank_json.get("window_samples")
+    if used is not None and fs and isinstance(samples, int):
+        kind = "burst windows" if DiagnosticsDocument(diagnostics).windowing == "bursts" \
+            else "windows"
+        parts.append(f"{used} {kind} of {1e3 * samples / fs:.4g} ms at {fs:g} Hz")
+    return " · ".join(parts)

@@ -1,0 +1,157 @@
+"""Values and settings in words and units for people: numbers, shares, intervals, onsets, and
+settings dicts turned into (label, text) pairs.
+
+Pure text: nothing here writes HTML (``service.report.sections`` escapes and places it). Units come
+from the key's suffix (``_hz``, ``_hz_per_s``, ``_samples``, ``_s``; seconds under one in ms).
+"""
+from __future__ import annotations
+
+import json
+import math
+from collections.abc import Mapping
+
+from burstlens.search.safe_io import finite_or_none
+from burstlens.service.report.inputs import count_of
+
+# The job settings of DESIGN §7 (what a person sets); everything else the engine resolved is a
+# default it chose, shown apart with the corpus reader's choices.
+JOB_SETTINGS = ("channels", "band_hz", "spacing", "window_s", "criterion", "cell_area", "chirp",
+                "refine", "evaluations", "time_limit_s", "bootstrap", "seed", "windowing",
+                "max_windows", "held_out", "max_negative_share", "subset", "n_jobs")
+# resolved name -> the job settings' name for it
+SETTING_ALIASES = {"n_jobs": "jobs"}
+
+# Words for setting names whose spelling out is not enough; the rest are spelled out from the key.
+LABELS = {"sta": "STA length", "lta": "LTA length", "window": "window length",
+          "n_jobs": "parallel jobs", "max_windows": "most windows kept", "band": "channel band",
+          "bandpass": "band-pass", "chirp": "chirped channels", "refine": "per-channel refinement",
+          "held_out": "share of windows held out", "max_negative_share": "negative share allowed",
+          "subset": "windows in the family search", "cell_area": "cell area range",
+          "trigger_on": "trigger-on STA/LTA ratio", "trigger_off": "trigger-off STA/LTA ratio",
+          "pre_trigger": "share of the window before the trigger", "eps": "kernel truncation"}
+# unit suffix of a key -> (unit shown, factor); seconds shorter than one are shown in ms
+UNITS = (("_hz_per_s", "Hz/s", 1.0), ("_hz", "Hz", 1.0), ("_samples", "samples", 1.0),
+         ("_s", "s", 1.0))
+
+
+def fmt(value) -> str:
+    """Numbers for people: integers as is, floats to 5 significant digits; others as JSON."""
+    if isinstance(value, bool) or value is None:
+        return json.dumps(value)
+    if isinstance(value, int):
+        return str(value)
+    if isinstance(value, float):
+        return f"{value:.5g}" if math.isfinite(value) else str(value)
+    if isinstance(value, str):
+        return value
+    return json.dumps(value, ensure_ascii=False, default=str)
+
+
+def equivalent_text(equivalent) -> str:
+    """The channel's ``equivalent`` reading as one line of text for people."""
+    if isinstance(equivalent, str):
+        return equivalent
+    if isinstance(equivalent, Mapping):
+        for key in ("text", "description", "summary", "reading"):
+            if isinstance(equivalent.get(key), str):
+                return equivalent[key]
+        return "; ".join(f"{k} {fmt(v)}" for k, v in equivalent.items())
+    return "" if equivalent is None else fmt(equivalent)
+
+
+def resolution_text(area: float) -> str:
+    """Cell area a as a geophysicist reads it: ×1/a finer (super-resolution) or ×a coarser."""
+    if math.isclose(area, 1.0, rel_tol=5e-3):
+        return "as a spectrogram (a = 1)"
+    if area < 1:
+        return f"super-resolution ×{1 / area:.2f}"
+    return f"smoothing ×{area:.2f}"
+
+
+def stability_text(entry) -> str:
+    """The bootstrap interval of one channel's window σ_t (ms) and cell area, or why none."""
+    if not isinstance(entry, Mapping):
+        return "not recorded"
+    method = str(entry.get("method") or "")
+    if method.startswith(("skipped", "not determined")):
+        return method.replace("_", " ")
+    parts = []
+    spread, area = entry.get("time_spread_s"), entry.get("cell_area")
+    if isinstance(spread, (list, tuple)) and len(spread) == 2 and None not in spread:
+        parts.append(f"σ_t {1e3 * spread[0]:.3g}–{1e3 * spread[1]:.3g} ms")
+    if isinstance(area, (list, tuple)) and len(area) == 2 and None not in area:
+        parts.append(f"a {area[0]:.2f}–{area[1]:.2f}")
+    return ", ".join(parts) or "not recorded"
+
+
+def percent_text(value) -> str:
+    """A share (0–1) as a percentage to 3 significant digits, or "not recorded"."""
+    number = finite_or_none(value)
+    return "not recorded" if number is None else f"{100 * number:.3g} %"
+
+
+def onset_text(onset) -> str:
+    """'result m / p ms · spectrogram m / p ms (n windows)' from ``judgement['onset']``."""
+    if not isinstance(onset, Mapping):
+        return "not measured (no trigger offsets)"
+    parts, counts = [], set()
+    for name in ("result", "spectrogram"):
+        entry = onset.get(name) if isinstance(onset.get(name), Mapping) else {}
+        median, p90 = finite_or_none(entry.get("median_ms")), finite_or_none(entry.get("p90_ms"))
+        shown = [f"{v:.3g}" if v is not None else "?" for v in (median, p90)]
+        parts.append(f"{name} {shown[0]} / {shown[1]} ms")
+        if count_of(entry.get("windows")) is not None:
+            counts.add(entry["windows"])
+    windows = f" ({', '.join(map(str, sorted(counts)))} windows)" if counts else ""
+    return " · ".join(parts) + windows
+
+
+def _number_text(value, unit: str) -> str:
+    if unit == "s" and abs(value) < 1:
+        return f"{1e3 * value:.4g} ms"
+    return f"{value:.5g}" + (f" {unit}" if unit else "") if isinstance(value, float) \
+        else f"{value}" + (f" {unit}" if unit else "")
+
+
+def _value_text(value, unit: str = "") -> str:
+    """A setting's value in words and units: ranges as 'low–high', parts as 'name value'."""
+    if isinstance(value, bool) or value is None:
+        return {True: "yes", False: "no", None: "not set"}[value]
+    if isinstance(value, (int, float)):
+        return _number_text(value, unit)
+    if isinstance(value, (list, tuple)) and len(value) == 2 and \
+            all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value):
+        return f"{_number_text(value[0], unit)}–{_number_text(value[1], unit)}"
+    if isinstance(value, (list, tuple)):
+        return ", ".join(_value_text(v, unit) for v in value)
+    if isinstance(value, Mapping):
+        return "; ".join(f"{str(k).replace('_', ' ')} {_value_text(v, unit)}" for k, v in value.items())
+    return str(value)
+
+
+def key_stem(key: str) -> tuple[str, str]:
+    """A setting key without its unit suffix, and the unit it names ("sta_s" -> ("sta", "s"))."""
+    for suffix, unit, _ in UNITS:
+        if key.endswith(suffix) and len(key) > len(suffix):
+            return key[:-len(suffix)], unit
+    return key, ""
+
+
+def people_items(mapping) -> list[tuple[str, str]]:
+    """(label, value text) for a dict of settings or defaults: units from the key's suffix, and
+    each ``<name>_source`` folded into its value in brackets ("STA length 6.25 ms (4 dominant
+    periods)") instead of a row of its own."""
+    if not isinstance(mapping, Mapping):
+        return []
+    sources = {k[:-len("_source")]: v for k, v in mapping.items() if k.endswith("_source")}
+    items = []
+    for key, value in mapping.items():
+        if key.endswith("_source"):
+            continue
+        stem, unit = key_stem(str(key))
+        label = LABELS.get(stem) or LABELS.get(str(key)) or stem.replace("_", " ")
+        text = _value_text(value, unit)
+        if stem in sources:
+            text += f" ({_value_text(sources[stem])})"
+        items.append((label[0].upper() + label[1:], text))
+    return items
