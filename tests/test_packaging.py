@@ -20,11 +20,18 @@ def _setuptools_table() -> dict:
 
 def test_every_package_folder_is_installed_under_burstlens():
     """Each folder of search/ and service/ holding an __init__.py is listed as a package, under
-    the burstlens namespace, so the wheel carries every module the code imports."""
+    the burstlens namespace, so the wheel carries every module the code imports; the only other
+    packages listed are data folders with their files named in package-data."""
     table = _setuptools_table()
     folders = {f"burstlens.{p.parent.relative_to(ROOT).as_posix().replace('/', '.')}"
                for top in ("search", "service") for p in (ROOT / top).rglob("__init__.py")}
-    assert set(table["packages"]) == folders
+    data = set(table["packages"]) - folders
+    assert folders <= set(table["packages"])
+    assert data <= set(table["package-data"]), data
+    for name in data:
+        folder = ROOT / name.removeprefix("burstlens.").replace(".", "/")
+        assert not (folder / "__init__.py").exists()
+        assert any(folder.glob(pattern) for pattern in table["package-data"][name]), name
     assert table["package-dir"] == {"burstlens.search": "search", "burstlens.service": "service"}
 
 

@@ -146,3 +146,30 @@ def wait_for(predicate, timeout: float = 60.0, interval: float = 0.1):
             return value
         time.sleep(interval)
     raise AssertionError(f"condition not met within {timeout} s")
+
+
+def recording_client(calls: dict, n_windows: int = 6):
+    """A stand-in for ``burstlens.service.client.Client`` in CLI tests: records in ``calls`` what
+    ``burstlens submit`` sends (``files``, the upload's reading options ``upload``, the job's
+    settings ``job``) and answers as a server would."""
+
+    class RecordingClient:
+        def __init__(self, server, token):
+            pass
+
+        def __enter__(self):
+            return self
+
+        def __exit__(self, *exc):
+            return False
+
+        def upload_corpus(self, files, **read_options):
+            calls["files"] = [str(f) for f in files]
+            calls["upload"] = read_options
+            return {"id": "c1", "summary": {"n_windows": n_windows}}
+
+        def submit_job(self, corpus_id, settings):
+            calls["job"] = settings
+            return {"id": "j1", "state": "queued"}
+
+    return RecordingClient

@@ -4,6 +4,7 @@ from obspy import Stream, Trace, UTCDateTime
 
 from burstlens.search.corpus import read_corpus
 from burstlens.service.cli import main
+from service_helpers import recording_client
 
 FS = 1000.0
 
@@ -35,29 +36,11 @@ def test_submit_uploads_exactly_the_files_the_reader_reads(tmp_path, monkeypatch
     (tmp_path / "empty.csv").write_bytes(b"")
     np.save(tmp_path / ".scratch.npy", _noise(5))
 
-    uploaded = []
-
-    class FakeClient:
-        def __init__(self, server, token):
-            pass
-
-        def __enter__(self):
-            return self
-
-        def __exit__(self, *exc):
-            return False
-
-        def upload_corpus(self, files, **read_options):
-            uploaded.extend(str(f) for f in files)
-            return {"id": "c1", "summary": {}}
-
-        def submit_job(self, corpus_id, settings):
-            return {"id": "j1", "state": "queued"}
-
-    monkeypatch.setattr(client_module, "Client", FakeClient)
+    calls = {}
+    monkeypatch.setattr(client_module, "Client", recording_client(calls))
     assert main(["submit", str(tmp_path), "--server", "http://127.0.0.1:1",
                  "--csv-sampling-rate", str(FS), "--windowing", "whole"]) == 0
     read = read_corpus(tmp_path, csv_sampling_rate_hz=FS, windowing="whole").files
-    assert sorted(uploaded) == sorted(read)
+    assert sorted(calls["files"]) == sorted(read)
     assert {str(tmp_path / name) for name in ("a.mseed", "b.csv", "c.npy", "numbers.txt")} \
-        <= set(uploaded) and len(uploaded) == 5
+        <= set(calls["files"]) and len(calls["files"]) == 5

@@ -6,6 +6,7 @@ import pytest
 from scipy.io import wavfile
 
 from burstlens.service.cli import main
+from service_helpers import recording_client
 
 
 def atoms(m, n, fs, sigma0, f0, seed=0):
@@ -283,26 +284,7 @@ def test_submit_sends_the_corpus_options_with_the_upload_and_the_job(wav_dir, mo
     from burstlens.service import client as client_module
 
     calls = {}
-
-    class FakeClient:
-        def __init__(self, server, token):
-            pass
-
-        def __enter__(self):
-            return self
-
-        def __exit__(self, *exc):
-            return False
-
-        def upload_corpus(self, files, **read_options):
-            calls["upload"] = read_options
-            return {"id": "c1", "summary": {"n_windows": 6}}
-
-        def submit_job(self, corpus_id, settings):
-            calls["job"] = settings
-            return {"id": "j1", "state": "queued"}
-
-    monkeypatch.setattr(client_module, "Client", FakeClient)
+    monkeypatch.setattr(client_module, "Client", recording_client(calls))
     assert main(["submit", str(wav_dir), "--server", "http://127.0.0.1:1", "--windowing", "whole",
                  "--components", "z", "--channels", "8"]) == 0
     assert calls["upload"] == {"windowing": "whole", "components": "Z"}
