@@ -90,6 +90,16 @@ def row_stats(images: np.ndarray, criterion: Criterion, cell: np.ndarray) -> np.
     return criterion.row_stats(images) * np.asarray(cell, dtype=np.float64)[:, None]
 
 
+def row_masses(images: np.ndarray) -> np.ndarray:
+    """``(M, C, 2)`` float64: the negative mass Σ max(−S, 0) and the absolute mass Σ |S| of
+    each (window, channel) row of ``images`` (M, C, N), summed over its samples. What the
+    judgement pools per channel for a non-separable criterion, whose row stats are the images:
+    summed over windows in window order they equal the sums over (windows, samples) of the
+    whole stack, so it never has to hold one."""
+    x = np.asarray(images, dtype=np.float64)
+    return np.stack([np.maximum(-x, 0.0).sum(axis=2), np.abs(x).sum(axis=2)], axis=-1)
+
+
 def scores_from_stats(stats: np.ndarray, criterion: Criterion, n_samples: int, cell: np.ndarray):
     """``(M,)`` per-window scores and ``(M,)`` negative shares from :func:`row_stats` output
     (summed over channels in channel order; for a non-separable criterion the images are scored
@@ -105,7 +115,8 @@ def scores_from_stats(stats: np.ndarray, criterion: Criterion, n_samples: int, c
 
 def _score_task(token, windows, start, stop, fs, centers, sigma, area, beta, cell, criterion,
                 eps, want_stats):
-    """Per-window criterion and negative share (and optionally row stats) of one filterbank on
+    """Per-window criterion and negative share (and optionally row stats; for a non-separable
+    criterion the rows' masses, :func:`row_masses`, not the images) of one filterbank on
     windows[start:stop]."""
     from burstlens.search.transform import transform
 
@@ -114,6 +125,8 @@ def _score_task(token, windows, start, stop, fs, centers, sigma, area, beta, cel
                        make_filterbank(centers, sigma, area, beta, fs), eps=eps)
     stats = row_stats(images, criterion, cell)
     scores, shares = scores_from_stats(stats, criterion, images.shape[-1], cell)
+    if want_stats and not criterion.separable:
+        stats = row_masses(stats)
     return scores, shares, (stats if want_stats else None), time.perf_counter() - t0
 
 
@@ -144,7 +157,9 @@ def _stats_task(token, windows, start, stop, fs, centers, sigma, area, beta, cel
 @dataclass
 class Scored:
     """One filterbank scored on an evaluator's windows: per-window ``scores`` (n,), negative
-    ``shares`` (n,), row ``stats`` (n, C, k) when asked for, and the work's ``seconds``."""
+    ``shares`` (n,), row ``stats`` (n, C, k) when asked for (:func:`row_stats`; for a
+    non-separable criterion :func:`row_masses` (n, C, 2), so no image stack is held), and the
+    work's ``seconds``."""
 
     scores: np.ndarray
     shares: np.ndarray

@@ -188,12 +188,13 @@ def held_out_judgement(ctx, p, origin):
 
 def negative_shares(ctx, r: Scored) -> dict:
     """Negative share of the judged images: the mean over windows (what the ceiling bounds)
-    and per channel (pooled over windows)."""
+    and per channel (pooled over windows, in window order). ``r.stats``: row stats, or for a
+    non-separable criterion the rows' (negative, absolute) masses (evaluate.row_masses)."""
     x = np.asarray(r.stats, dtype=np.float64)
     if ctx.criterion.separable:
         neg, l1 = x[:, :, NEGATIVE].sum(axis=0), x[:, :, L1].sum(axis=0)
     else:
-        neg, l1 = np.maximum(-x, 0.0).sum(axis=(0, 2)), np.abs(x).sum(axis=(0, 2))
+        neg, l1 = x[:, :, 0].sum(axis=0), x[:, :, 1].sum(axis=0)
     per_channel = np.where(l1 > 0, neg / np.where(l1 > 0, l1, 1.0), 0.0)
     return {"overall": finite_or_none(np.mean(r.shares)),
             "per_channel": [float(v) for v in per_channel],

@@ -53,7 +53,7 @@ def follow(client, job_id: str, *, stream=None) -> dict:
     from tqdm import tqdm
 
     bar = tqdm(total=1000, unit="‰", file=stream, bar_format="{desc} {percentage:3.0f}%|{bar}| "
-               "{elapsed}<{remaining} {postfix}", desc=f"job {job_id[:8]}")
+               "{elapsed}<{remaining}{postfix}", desc=f"job {job_id[:8]}")
 
     def show(job: dict) -> None:
         prog = job.get("progress") or {}

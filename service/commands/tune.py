@@ -99,7 +99,7 @@ def run(args: argparse.Namespace) -> int:
         from tqdm import tqdm
 
         bar = tqdm(total=1000, desc="tune", file=sys.stderr, bar_format="{desc} {percentage:3.0f}%"
-                   "|{bar}| {elapsed}<{remaining} {postfix}")
+                   "|{bar}| {elapsed}<{remaining}{postfix}")
 
     def progress(msg: dict) -> None:
         if bar is None:
