@@ -1,7 +1,10 @@
 """``read_corpus``: files → traces → preprocessed windows, with every choice recorded.
 
 The function is pure: it reads the files, builds a :class:`Corpus` in memory and returns it, or
-raises :class:`CorpusError` having kept nothing.
+raises :class:`CorpusError` having kept nothing. It streams: a scan of every file, then passes over
+bounded processed pieces (stream.py) for the data-chosen defaults and the window placements
+(placement.py) and for cutting the windows (cutting.py), so its memory does not grow with the
+length of the records; only the kept windows are held.
 """
 from __future__ import annotations
 
@@ -12,10 +15,10 @@ from datetime import datetime, UTC
 
 import numpy as np
 
-from burstlens.search.corpus import preprocess, windowing
-from burstlens.search.corpus.model import Corpus, CorpusError, RawTrace
-from burstlens.search.corpus.preprocess import Segment
-from burstlens.search.corpus.readers import detect_format, read_head, read_waveform_file
+from burstlens.search.corpus import cutting, placement, preprocess, stream
+from burstlens.search.corpus.cutting import CLIP_RUN
+from burstlens.search.corpus.model import Corpus, CorpusError
+from burstlens.search.corpus.readers import detect_format, read_head
 
 WINDOWINGS = ("bursts", "whole", "sliding")
 # STA/LTA kinds and the averages each takes; the error for an unknown kind lists both
@@ -33,15 +36,6 @@ DEFAULT_TRIGGER_OFF = 1.5  # common practice (Trnkoczy 2012: 1–1.5)
 DEFAULT_PRE_TRIGGER = 0.25
 DEFAULT_MAX_WINDOWS = 1000
 DEFAULT_SEED = 0
-STA_PERIODS = 4.0          # STA ≈ a few dominant periods (Trnkoczy 2012)
-LTA_PER_STA = 20.0         # LTA ≈ 10–20 × STA (Trnkoczy 2012)
-FALLBACK_FRACTION_OF_FS = 1.0 / 8.0   # dominant frequency when no transient stands out
-SLIDING_PERIODS = 128.0    # default sliding window: this many dominant periods
-DURATION_QUANTILE = 0.9    # window length covers this quantile of the burst durations
-MIN_WINDOW = 64
-MAX_WINDOW = 1 << 16
-CLIP_RUN = 3
-TRIGGER_BAND_FACTOR = 4.0  # trigger on [f_dom / 4, 4 f_dom]
 READ_STAGES = ("reading", "preprocessing", "triggering", "cutting")
 
 
@@ -53,7 +47,9 @@ class ReadProgress:
     (``files_read`` of ``files_total``), then after each segment (a trace, or a run of it between
     gaps; ``segments_done`` of ``segments_total``) "preprocessing" (detrend, resample,
     band-pass, taper), "triggering" (the STA/LTA pass; 'bursts' windowing only) and "cutting"
-    (its windows placed and checked). ``hours_read`` sums samples / rate / 3600 over the traces
+    (its windows placed and checked); each later stage is one pass over the processed pieces,
+    "preprocessing" being the spectrum survey ('bursts', 'sliding') or the energy-peak pass
+    ('whole'). ``hours_read`` sums samples / rate / 3600 over the traces
     read so far (every trace, before ``components`` selects). ``windows_found`` counts the windows
     cut and not rejected so far, before the ``max_windows`` cap: after the last segment it is
     ``Corpus.defaults["windows_found"]``, of which ``windows_kept`` are in ``Corpus.windows``.
@@ -117,7 +113,9 @@ def read_corpus(
     window_s : float, s
         Window length; by default from the trigger durations found, rounded up to a power of two samples.
     max_windows : int
-        Cap; a seeded random subset of this size is kept, in window order (default 1000).
+        Cap; a seeded uniform sample of this size is kept, in window order (default 1000): the
+        windows with the smallest hashed (seed, trace, start) keys, the same whatever the order
+        or split of the files.
     seed : int
         Seed of that subset (default 0).
     sampling_rate_hz : float, Hz
@@ -160,28 +158,34 @@ def read_corpus(
     )
     files, skipped = expand_paths(paths)
     report = _Reporter(progress, len(files))
-    raw: list[RawTrace] = []
     digest = hashlib.sha256()
     seconds = 0.0
-    for done, (path, fmt) in enumerate(files, 1):
-        _hash_file(path, digest)
-        traces = read_waveform_file(path, fmt, csv_sampling_rate_hz=opts["csv_sampling_rate_hz"])
-        raw.extend(traces)
-        seconds += sum(tr.data.size / tr.sampling_rate_hz for tr in traces)
-        report(files_read=done, hours_read=seconds / 3600.0)
-    raw = preprocess.join_contiguous(preprocess.select_components(raw, opts["components"]))
 
-    rejections: list[dict] = []
-    segments = _segments(raw, opts["windowing"], rejections)
+    def file_read(done, raw):
+        nonlocal seconds
+        if raw is not None:
+            seconds += raw.data.size / raw.sampling_rate_hz
+            return
+        _hash_file(files[done - 1][0], digest)
+        report(files_read=done, hours_read=seconds / 3600.0)
+
+    whole = opts["windowing"] == "whole"
+    read = {"csv_rate": opts["csv_sampling_rate_hz"], "components": opts["components"]}
+    found = stream.scan(files, whole=whole, on_file=file_read, **read)
+    if opts["components"] is not None and not found.segments and not found.rejections:
+        raise CorpusError(
+            f"components={opts['components']!r}: no trace has orientation code(s) "
+            f"{''.join(sorted(opts['components']))} (codes found: {', '.join(sorted(found.orientations))})")
+    segments = found.segments
     if not segments:
         raise CorpusError(f"{_describe(files)}: zero usable windows: every trace is non-finite")
     rate, rate_how = preprocess.choose_rate([s.native_rate_hz for s in segments], opts["sampling_rate_hz"])
     preprocess.check_rates(segments, rate, rate_how)
     sos = preprocess.bandpass_sos(opts["bandpass_hz"], rate) if opts["bandpass_hz"] is not None else None
-    whole = opts["windowing"] == "whole"
-    for done, seg in enumerate(segments, 1):
-        preprocess.process_segment(seg, rate, sos, taper=True)
-        report(stage="preprocessing", segments_done=done, segments_total=len(segments))
+    layouts = {s.index: stream.Layout.of(s, rate) for s in segments}
+
+    def read_pieces():
+        return stream.pieces(files, segments, rate, sos, **read)
 
     defaults = {
         "windowing": opts["windowing"],
@@ -199,12 +203,31 @@ def read_corpus(
         "max_windows": opts["max_windows"],
         "seed": opts["seed"],
     }
+    stage = _StageCounter(report, len(segments))
     if whole:
-        placed = _whole_windows(segments, opts, defaults)
+        plans = placement.whole_windows(segments, layouts, read_pieces, opts, defaults, stage)
     else:
-        placed = _scan_windows(segments, files, opts, defaults, rejections, report)
-    return _assemble(placed, segments, files, skipped, digest.hexdigest(), rate, opts, defaults, rejections,
-                     report)
+        plans = placement.scan_windows(segments, layouts, read_pieces, files, opts, defaults, stage)
+    sample = cutting.WindowSample(opts["max_windows"], opts["seed"])
+    stage.begin("cutting")
+    rejected = cutting.cut_windows(read_pieces(), plans, sample, opts["windowing"], _iso,
+                                   on_segment=lambda seg: stage.done(windows_found=sample.found))
+    return _assemble(sample, segments, files, skipped, digest.hexdigest(), rate, opts, defaults,
+                     found.rejections + [r for _, r in sorted(rejected, key=lambda item: item[0])])
+
+
+class _StageCounter:
+    """Counts the segments done in the current stage and reports each."""
+
+    def __init__(self, report, total: int):
+        self.report, self.total, self.stage, self.count = report, total, None, 0
+
+    def begin(self, stage: str) -> None:
+        self.stage, self.count = stage, 0
+
+    def done(self, **more) -> None:
+        self.count += 1
+        self.report(stage=self.stage, segments_done=self.count, segments_total=self.total, **more)
 
 
 # --- options and files --------------------------------------------------------------------------
@@ -345,258 +368,34 @@ def _describe(files) -> str:
     return f"{len(files)} files ({files[0][0]}, …)"
 
 
-# --- segments -----------------------------------------------------------------------------------
-
-def _segments(raw: list[RawTrace], mode: str, rejections: list[dict]) -> list[Segment]:
-    """Split traces at runs of non-finite samples (gaps); in 'whole' mode reject such traces.
-
-    ``offset_s`` counts from the start of the (possibly joined) trace."""
-    out = []
-    for tr in raw:
-        runs = preprocess.finite_runs(tr.data)
-        fs = tr.sampling_rate_hz
-        if mode == "whole" and runs != [(0, tr.data.size)]:
-            bad = tr.data.size - sum(b - a for a, b in runs)
-            rejections.append(_rejection(tr.file, tr.trace_id, 0.0, "non-finite", f"{bad} NaN/Inf samples"))
-            continue
-        prev = 0
-        for a, b in runs:
-            if a > prev:
-                rejections.append(_rejection(tr.file_at(prev), tr.trace_id, prev / fs, "non-finite",
-                                             f"{a - prev} NaN/Inf samples; trace split there"))
-            start = None if tr.start is None else tr.start + a / fs
-            out.append(Segment(tr.file_at(a), tr.trace_id, fs, start, a / fs, tr.data[a:b], source=tr, first_sample=a))
-            prev = b
-        if prev < tr.data.size:
-            rejections.append(_rejection(tr.file_at(prev), tr.trace_id, prev / fs, "non-finite",
-                                         f"{tr.data.size - prev} NaN/Inf samples; trace split there"))
-    return out
-
-
-def _rejection(file, trace_id, offset_s, reason, detail) -> dict:
-    return {"file": file, "trace_id": trace_id, "offset_s": round(float(offset_s), 6), "reason": reason,
-            "detail": detail}
-
-
-# --- window placement ---------------------------------------------------------------------------
-
-def _whole_windows(segments: list[Segment], opts: dict, defaults: dict) -> list[tuple]:
-    """Each segment is one window; longer ones are cut around their energy peak.
-
-    Placed windows here and in :func:`_scan_windows` are tuples (segment, start sample or −1 for
-    too short, length, triggers merged, first trigger onset from the start in samples or None),
-    in segment order.
-    """
-    fs = defaults["sampling_rate_hz"]
-    lengths = [s.data.size for s in segments]
-    if opts["window_s"] is not None:
-        n, how = _given_window(opts["window_s"], fs), "given"
-    elif len(set(lengths)) == 1:
-        n, how = lengths[0], "trace length"
-    else:
-        n, how = int(np.median(lengths)), "median trace length"
-    defaults.update(window_samples=n, window_s=n / fs, window_source=how, pre_trigger=opts["pre_trigger"])
-    placed = []
-    for seg in segments:
-        if seg.data.size < n:
-            placed.append((seg, -1, n, 0, None))
-            continue
-        start = 0
-        if seg.data.size > n:
-            smooth = windowing.moving_sum(np.square(seg.data), max(1, n // 16))
-            peak = int(np.argmax(smooth)) - n // 32
-            start = int(min(max(peak - opts["pre_trigger"] * n, 0), seg.data.size - n))
-        placed.append((seg, start, n, 1, None))
-    return placed
-
-
-def _scan_windows(segments, files, opts, defaults, rejections, report):
-    """Burst or sliding windows; defaults for STA/LTA and window length come from the data."""
-    fs = defaults["sampling_rate_hz"]
-    f_dom, info = windowing.dominant_frequency([s.data for s in segments], fs)
-    source = "transient excess spectrum"
-    if f_dom is None:
-        f_dom, source = fs * FALLBACK_FRACTION_OF_FS, "fallback fs/8 (no transient stands out)"
-    f_dom = float(min(max(f_dom, fs / 100.0), fs / 4.0))
-    defaults.update(dominant_frequency_hz=round(f_dom, 3), dominant_frequency_source=source,
-                    dominant_frequency_loud_frames=info.get("loud_frames", 0))
-    mode = opts["windowing"]
-    pre = opts["pre_trigger"]
-    if mode == "sliding":
-        if opts["window_s"] is not None:
-            n, how = _given_window(opts["window_s"], fs), "given"
-        else:
-            n = int(np.clip(windowing.fast_length(SLIDING_PERIODS * fs / f_dom, "nearest"), MIN_WINDOW, MAX_WINDOW))
-            how = f"{SLIDING_PERIODS:g} dominant periods, rounded to a power of two samples"
-        hop = int(round(opts["hop_s"] * fs)) if opts["hop_s"] is not None else max(1, n // 2)
-        defaults.update(window_samples=n, window_s=n / fs, window_source=how, hop_samples=hop, hop_s=hop / fs)
-        placed = []
-        for seg in segments:
-            starts = windowing.sliding_starts(seg.data.size, n, hop, seg.taper_samples)
-            if not starts:
-                placed.append((seg, -1, n, 0, None))
-            placed.extend((seg, s, n, 0, None) for s in starts)
-        return placed
-
-    sta = opts["sta_s"] if opts["sta_s"] is not None else STA_PERIODS / f_dom
-    nsta = max(2, int(round(sta * fs)))
-    nlta = int(round(opts["lta_s"] * fs)) if opts["lta_s"] is not None else int(round(LTA_PER_STA * nsta))
-    nlta = max(nsta + 1, nlta)
-    defaults.update(
-        trigger=opts["trigger"], sta_s=nsta / fs, lta_s=nlta / fs, sta_samples=nsta, lta_samples=nlta,
-        sta_source="given" if opts["sta_s"] is not None else f"{STA_PERIODS:g} dominant periods",
-        lta_source="given" if opts["lta_s"] is not None else f"{LTA_PER_STA:g} × STA",
-        trigger_on=opts["trigger_on"], trigger_off=opts["trigger_off"], pre_trigger=pre,
-    )
-    # The characteristic function sees the transients' band only (common practice: filter before
-    # triggering, Trnkoczy 2012), so red background noise and low tonal lines cannot trigger.
-    trigger_band = None
-    if opts["bandpass_hz"] is None and source == "transient excess spectrum":
-        trigger_band = [round(f_dom / TRIGGER_BAND_FACTOR, 3), round(min(f_dom * TRIGGER_BAND_FACTOR, 0.4 * fs), 3)]
-    defaults["trigger_band_hz"] = trigger_band
-    trigger_sos = preprocess.bandpass_sos(trigger_band, fs) if trigger_band else None
-    sta_lta = windowing.boxcar_sta_lta if opts["trigger"] == "boxcar" else windowing.exponential_sta_lta
-    onsets = []
-    for done, seg in enumerate(segments, 1):
-        if seg.data.size <= nlta:
-            onsets.append(np.empty((0, 2), dtype=np.int64))
-        else:
-            x = seg.data if trigger_sos is None else preprocess.zero_phase(trigger_sos, seg.data)
-            o = windowing.trigger_intervals(sta_lta(x, nsta, nlta), opts["trigger_on"], opts["trigger_off"])
-            # a trigger inside the taper is the ramp itself, not a burst
-            g = seg.taper_samples
-            onsets.append(o[(o[:, 0] >= g) & (o[:, 0] < seg.data.size - g)])
-        report(stage="triggering", segments_done=done)
-    n_triggers = int(sum(len(o) for o in onsets))
-    defaults["triggers"] = n_triggers
-    if n_triggers == 0:
-        raise CorpusError(
-            f"{_describe(files)}: zero usable windows: no triggers above {opts['trigger_on']:g} in "
-            f"{len(segments)} traces (STA {nsta / fs:g} s, LTA {nlta / fs:g} s); "
-            "try windowing='whole' or 'sliding', or a lower trigger_on"
-        )
-    durations = np.concatenate([windowing.burst_durations(o, nlta) for o in onsets if len(o)]) / fs
-    if opts["window_s"] is not None:
-        n, how = _given_window(opts["window_s"], fs), "given"
-    else:
-        target = np.quantile(durations, DURATION_QUANTILE) * fs / (1.0 - pre)
-        n = int(np.clip(windowing.fast_length(target, "ceil"), MIN_WINDOW, MAX_WINDOW))
-        how = (f"{DURATION_QUANTILE:.0%} quantile of burst durations (triggers within one LTA merged) "
-               "/ (1 − pre_trigger), rounded up to a power of two samples")
-    defaults.update(
-        window_samples=n, window_s=n / fs, window_source=how,
-        burst_duration_s={"median": float(np.median(durations)),
-                            "q75": float(np.quantile(durations, 0.75)), "max": float(durations.max())},
-    )
-    placed = []
-    for seg, o in zip(segments, onsets, strict=True):
-        starts, counts, short = windowing.place_burst_windows(o[:, 0], seg.data.size, n, int(round(pre * n)),
-                                                              seg.taper_samples)
-        if short:
-            placed.append((seg, -1, n, len(short), None))
-        # the first onset at or after the start: a window clipped at a segment end does not hold
-        # its trigger at pre·n, and an earlier trigger merged into the previous window may fall in it
-        first = o[np.searchsorted(o[:, 0], starts), 0] if starts else []
-        placed.extend((seg, s, n, c, int(f) - s) for s, c, f in zip(starts, counts, first, strict=True))
-    return placed
-
-
-def _given_window(window_s: float, fs: float) -> int:
-    n = int(round(window_s * fs))
-    if n < 2:
-        raise CorpusError(f"window_s={window_s!r}: shorter than 2 samples at {fs:g} Hz")
-    return n
-
-
-# --- assembling the result ----------------------------------------------------------------------
-
 def _iso(ts: float | None) -> str | None:
     if ts is None:
         return None
     return datetime.fromtimestamp(ts, tz=UTC).isoformat(timespec="microseconds").replace("+00:00", "Z")
 
 
-def _assemble(placed, segments, files, skipped, source_hash, fs, opts, defaults, rejections, report) -> Corpus:
-    kept_rows, meta, owners, seen = [], [], [], set()
-    per_segment = {id(s): 0 for s in segments}
-    position = {id(s): i for i, s in enumerate(segments)}
-    cut = 0  # segments whose windows are all checked: those before the one being placed
-
-    def segments_cut(upto: int) -> None:
-        nonlocal cut
-        while cut < upto:
-            cut += 1
-            report(stage="cutting", segments_done=cut, windows_found=len(kept_rows))
-
-    for seg, start, length, count, trigger in placed:
-        segments_cut(position[id(seg)])
-        if start < 0:
-            rejections.append(_rejection(
-                seg.file, seg.trace_id, seg.offset_s, "too short",
-                f"trace of {seg.data.size / fs:g} s is shorter than the window of {length / fs:g} s"
-                + (f" ({count} triggers)" if count and defaults["windowing"] == "bursts" else "")))
-            continue
-        offset = seg.offset_s + start / fs
-        ratio = seg.native_rate_hz / fs
-        r0 = int(round(start * ratio))
-        raw = seg.raw[r0: r0 + max(1, int(round(length * ratio)))]
-        window = seg.data[start: start + length]
-        file = seg.file_at(r0)
-        reason = windowing.rejection_reason(raw, window, CLIP_RUN)
-        if reason is None:
-            key = hashlib.sha1(raw.dtype.str.encode() + raw.tobytes()).digest()
-            reason = "duplicate" if key in seen else None
-            seen.add(key)
-        if reason is not None:
-            rejections.append(_rejection(file, seg.trace_id, offset, reason, _detail(reason)))
-            continue
-        kept_rows.append(window)
-        entry = {"file": file, "trace_id": seg.trace_id,
-                 "start": _iso(None if seg.start is None else seg.start + start / fs),
-                 "offset_s": round(offset, 6)}
-        if defaults["windowing"] == "bursts":
-            entry["triggers"] = count
-        entry["trigger_offset_s"] = None if trigger is None else trigger / fs
-        meta.append(entry)
-        owners.append(id(seg))
-    segments_cut(len(segments))
-    if not kept_rows:
+def _assemble(sample, segments, files, skipped, source_hash, fs, opts, defaults, rejections) -> Corpus:
+    kept = sample.kept()
+    if not kept:
         counts = {}
         for r in rejections:
             counts[r["reason"]] = counts.get(r["reason"], 0) + 1
         why = ", ".join(f"{k} {v}" for k, v in sorted(counts.items())) or "none placed"
         raise CorpusError(f"{_describe(files)}: zero usable windows: every window was rejected ({why})")
-    found = len(kept_rows)
-    if found > opts["max_windows"]:
-        rng = np.random.default_rng(opts["seed"])
-        keep = np.sort(rng.choice(found, size=opts["max_windows"], replace=False))
-        kept_rows = [kept_rows[i] for i in keep]
-        meta = [meta[i] for i in keep]
-        owners = [owners[i] for i in keep]
-    for owner in owners:
-        per_segment[owner] += 1
-    defaults.update(windows_found=found, windows_kept=len(kept_rows))
+    per_segment = dict.fromkeys(range(len(segments)), 0)
+    for f in kept:
+        per_segment[f.order[0]] += 1
+    defaults.update(windows_found=sample.found, windows_kept=len(kept))
     traces = []
     for s in segments:
         entry = {"file": s.file, "trace_id": s.trace_id, "sampling_rate_hz": s.native_rate_hz,
-                 "start": _iso(s.start), "duration_s": round(s.raw.size / s.native_rate_hz, 6),
-                 "windows": per_segment[id(s)]}
-        spanned = sorted({s.file_at(0), s.file_at(s.raw.size - 1)} | {
-            f for first, f in (s.source.parts if s.source else [])
-            if s.first_sample <= first < s.first_sample + s.raw.size})
+                 "start": _iso(s.start), "duration_s": round(s.n_raw / s.native_rate_hz, 6),
+                 "windows": per_segment[s.index]}
+        spanned = s.files()
         if len(spanned) > 1:
             entry["files"] = spanned  # contiguous pieces from several files, joined
         traces.append(entry)
-    windows = np.ascontiguousarray(np.stack(kept_rows).astype(np.float64, copy=False))
-    return Corpus(windows=windows, sampling_rate_hz=fs, window_meta=meta, traces=traces,
+    windows = np.ascontiguousarray(np.stack([f.window for f in kept]).astype(np.float64, copy=False))
+    return Corpus(windows=windows, sampling_rate_hz=fs, window_meta=[f.entry for f in kept], traces=traces,
                   rejections=rejections, defaults=defaults, source_hash=source_hash,
                   files=[p for p, _ in files], skipped=skipped)
-
-
-def _detail(reason: str) -> str:
-    return {
-        "flat": "no variation in the raw samples",
-        "non-finite": "NaN/Inf after processing",
-        "clipped": f"peak value held for ≥ {CLIP_RUN} samples (saturated recorder)",
-        "duplicate": "same raw samples as an earlier window",
-    }[reason]

@@ -4,7 +4,6 @@ cosine taper, zero-phase band-pass and polyphase resampling to one common rate. 
 from __future__ import annotations
 
 from collections import Counter
-from dataclasses import dataclass
 from fractions import Fraction
 
 import numpy as np
@@ -21,32 +20,6 @@ MAX_DEFAULT_UPSAMPLING = 2.0
 TAPER_FRACTION = 0.05
 TAPER_MAX_S = 1.0
 BANDPASS_ORDER = 4
-
-
-@dataclass
-class Segment:
-    """A contiguous, finite run of one trace, and its processed samples.
-
-    ``raw`` is the native-rate slice (recorder units and dtype), shape ``(n_native,)``;
-    ``data`` the processed float64 samples at the common rate ``sampling_rate_hz``, shape ``(n,)``;
-    ``offset_s`` the time of its first sample from the start of the trace it came from.
-    """
-
-    file: str
-    trace_id: str
-    native_rate_hz: float
-    start: float | None
-    offset_s: float
-    raw: np.ndarray
-    data: np.ndarray | None = None
-    sampling_rate_hz: float | None = None
-    taper_samples: int = 0
-    source: RawTrace | None = None   # the trace it was cut from
-    first_sample: int = 0            # index of raw[0] in that trace
-
-    def file_at(self, raw_index: int) -> str:
-        """The file holding native sample ``raw_index`` of this segment."""
-        return self.source.file_at(self.first_sample + raw_index) if self.source is not None else self.file
 
 
 def select_components(traces: list[RawTrace], components) -> list[RawTrace]:
@@ -119,7 +92,7 @@ def resampling_factors(native_hz: float, target_hz: float) -> tuple[int, int]:
     return frac.numerator, frac.denominator
 
 
-def check_rates(segments: list[Segment], target_hz: float, how: str) -> None:
+def check_rates(segments, target_hz: float, how: str) -> None:
     """Raise CorpusError if some segment's rate cannot be brought to ``target_hz``."""
     for seg in segments:
         try:
@@ -162,10 +135,21 @@ def taper_length(n: int, fs: float, fraction: float = TAPER_FRACTION, max_s: flo
 
 def cosine_taper(x: np.ndarray, m: int) -> np.ndarray:
     """Multiply the first and last ``m`` samples by a half-cosine (Hann) ramp, in place."""
+    return taper_ends(x, 0, x.size, m)
+
+
+def taper_ends(x: np.ndarray, first: int, n: int, m: int) -> np.ndarray:
+    """:func:`cosine_taper` of a segment of ``n`` samples applied to the part of it that ``x``
+    holds, ``segment[first : first + x.size]``, in place: the same factors on the same samples as
+    tapering the whole segment, so a segment processed in pieces is tapered as one."""
     if m > 0:
         ramp = 0.5 * (1.0 - np.cos(np.pi * np.arange(m) / m))
-        x[:m] *= ramp
-        x[-m:] *= ramp[::-1]
+        head = min(m, first + x.size) - first
+        if head > 0:
+            x[:head] *= ramp[first: first + head]
+        lo = max(first, n - m)
+        if lo < first + x.size:
+            x[lo - first:] *= ramp[::-1][lo - (n - m):first + x.size - (n - m)]
     return x
 
 
@@ -191,20 +175,3 @@ def zero_phase(sos: np.ndarray, x: np.ndarray) -> np.ndarray:
     get a shorter edge padding."""
     padlen = min(3 * (2 * len(sos) + 1), x.size - 1)
     return signal.sosfiltfilt(sos, x, padlen=max(padlen, 0))
-
-
-def process_segment(seg: Segment, target_hz: float, sos: np.ndarray | None, taper: bool = True) -> Segment:
-    """Demean, detrend, taper, resample (polyphase) and band-pass (zero-phase) one segment."""
-    x = seg.raw.astype(np.float64)
-    demean_detrend(x)
-    if taper:
-        cosine_taper(x, taper_length(x.size, seg.native_rate_hz))
-    up, down = resampling_factors(seg.native_rate_hz, target_hz)
-    if (up, down) != (1, 1):
-        x = signal.resample_poly(x, up, down)
-    if sos is not None:
-        x = zero_phase(sos, x)
-    seg.data = x
-    seg.sampling_rate_hz = target_hz
-    seg.taper_samples = taper_length(x.size, target_hz) if taper else 0
-    return seg

@@ -6,11 +6,14 @@ names the file and the cause, so a corrupt upload is a clear message and never a
 """
 from __future__ import annotations
 
+import functools
+import io
 import os
 import re
 import struct
 import warnings
 import zipfile
+from collections.abc import Callable, Iterator
 
 import numpy as np
 
@@ -24,6 +27,11 @@ SEGY_FORMAT_CODES = {1, 2, 3, 5, 8}
 SEED_ID = re.compile(r"^[A-Za-z0-9_-]{0,8}\.[A-Za-z0-9_-]{0,8}\.[A-Za-z0-9_-]{0,8}\.[A-Za-z0-9_-]{0,8}$")
 
 FORMATS = ("MSEED", "SAC", "SEGY", "WAV", "NPY", "NPZ", "CSV")
+
+# Largest block of miniSEED records iter_waveform_chunks decodes at once, bytes of the file.
+CHUNK_BYTES = 16 * 2**20
+# The fixed section of a miniSEED data header (SEED Reference Manual v2.4 ch. 8).
+MSEED_FIXED_HEADER_BYTES = 48
 
 
 def detect_format(head: bytes, size: int) -> str | None:
@@ -120,38 +128,135 @@ def read_head(path: str) -> tuple[bytes, int]:
 
 def read_waveform_file(path: str, fmt: str, *, csv_sampling_rate_hz: float | None = None) -> list[RawTrace]:
     """Read one file of a known format into raw traces; every failure is a CorpusError."""
+    # the reader is looked up inside the check, so an unknown format is a CorpusError too
+    return _checked_traces(path, fmt, lambda: _READERS[fmt](path, csv_sampling_rate_hz))
+
+
+def iter_waveform_chunks(path: str, fmt: str, *, csv_sampling_rate_hz: float | None = None,
+                         chunk_bytes: int | None = None) -> Iterator[list[RawTrace]]:
+    """Read one file of a known format as successive lists of raw traces, in bounded memory.
+
+    A miniSEED file is a sequence of independent records (SEED Reference Manual v2.4 ch. 8). When
+    ``fmt`` is "MSEED", the file is larger than ``chunk_bytes`` and its records share one length,
+    the file is decoded one block of whole records at a time: the block is the largest multiple of
+    the record length that is at most ``chunk_bytes`` (at least one record). A trace that runs
+    across blocks comes out in pieces, one per block, which
+    :func:`burstlens.search.corpus.preprocess.join_contiguous` joins back. Every other file (other
+    formats, small files, record lengths that vary) is read whole and yielded once, exactly as
+    :func:`read_waveform_file` returns it.
+
+    Parameters
+    ----------
+    path : str
+        The file.
+    fmt : str
+        One of ``FORMATS``, as :func:`detect_format` named it.
+    csv_sampling_rate_hz : float, optional
+        Sampling rate, Hz, for formats that carry none (CSV, NPY, NPZ).
+    chunk_bytes : int, optional
+        Bytes of the file decoded at once; ``CHUNK_BYTES`` when None.
+
+    Yields
+    ------
+    list of RawTrace
+        The traces of one block, each with ``file == path``, validated as in :func:`read_waveform_file`.
+
+    Raises
+    ------
+    CorpusError
+        When a block cannot be read; the message names the file and the block's byte range.
+    """
+    limit = CHUNK_BYTES if chunk_bytes is None else chunk_bytes
+    block = _mseed_block_bytes(path, limit) if fmt == "MSEED" else None
+    if block is None:
+        yield read_waveform_file(path, fmt, csv_sampling_rate_hz=csv_sampling_rate_hz)
+        return
+    with open(path, "rb") as fh:
+        offset = 0
+        while raw := fh.read(block):
+            where = f" (bytes {offset}-{offset + len(raw)})"
+            traces = _checked_traces(path, fmt, functools.partial(_mseed_block_traces, path, raw, where), where)
+            offset += len(raw)
+            del raw  # hold no file bytes while the caller works on the traces
+            yield traces
+
+
+def _mseed_block_bytes(path: str, limit: int) -> int | None:
+    """Bytes per block of whole miniSEED records for a file larger than ``limit``, or None when the
+    file is to be read whole (small, not a whole number of equal records, or unreadable)."""
+    size = os.path.getsize(path)
+    if size <= limit:
+        return None
+    from obspy.io.mseed.util import get_record_information
+
+    try:
+        with warnings.catch_warnings(), open(path, "rb") as fh:
+            warnings.simplefilter("ignore")
+            reclen = int(get_record_information(fh)["record_length"])
+    except Exception:  # the whole-file read reports what is wrong with the file
+        return None
+    if reclen <= 0 or size % reclen:
+        return None
+    block = max(reclen, limit // reclen * reclen)
+    # every block must open on a record header, else the records differ in length
+    with open(path, "rb") as fh:
+        for offset in range(block, size, block):
+            fh.seek(offset)
+            if not _is_mseed(fh.read(MSEED_FIXED_HEADER_BYTES)):
+                return None
+    return block
+
+
+def _mseed_block_traces(path: str, raw: bytes, where: str) -> list[RawTrace]:
+    import obspy
+
+    return _stream_traces(path, obspy.read(io.BytesIO(raw), format="MSEED"), where)
+
+
+def _checked_traces(path: str, fmt: str, read: Callable[[], list[RawTrace]], where: str = "") -> list[RawTrace]:
+    """Run ``read`` (a reader of ``path``) and check the traces it returns.
+
+    Any failure, or a list without traces, an empty trace or a sampling rate that is not a positive
+    finite number, becomes a CorpusError whose message opens with ``path`` and ``where`` (the part
+    of the file read, or "" for all of it).
+    """
+    name = f"{path}{where}"
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            traces = _READERS[fmt](path, csv_sampling_rate_hz)
+            traces = read()
     except CorpusError:
         raise
     except MemoryError:
-        raise CorpusError(f"{path}: not a readable {fmt} file (its header declares more data than fits "
+        raise CorpusError(f"{name}: not a readable {fmt} file (its header declares more data than fits "
                           "in memory)") from None
     except Exception as exc:  # any library failure on a malformed file is the file's fault
-        raise CorpusError(f"{path}: not a readable {fmt} file ({type(exc).__name__}: {exc})") from None
+        raise CorpusError(f"{name}: not a readable {fmt} file ({type(exc).__name__}: {exc})") from None
     if not traces:
-        raise CorpusError(f"{path}: {fmt} file holds no traces")
+        raise CorpusError(f"{name}: {fmt} file holds no traces")
     for tr in traces:
         if tr.data.size == 0:
-            raise CorpusError(f"{path}: empty trace {tr.trace_id} (0 samples)")
+            raise CorpusError(f"{name}: empty trace {tr.trace_id} (0 samples)")
         if not (np.isfinite(tr.sampling_rate_hz) and tr.sampling_rate_hz > 0):
-            raise CorpusError(f"{path}: trace {tr.trace_id} has an invalid sampling rate {tr.sampling_rate_hz!r} Hz")
+            raise CorpusError(f"{name}: trace {tr.trace_id} has an invalid sampling rate {tr.sampling_rate_hz!r} Hz")
     return traces
 
 
 def _obspy_traces(path: str, fmt: str) -> list[RawTrace]:
     import obspy
 
-    stream = obspy.read(path, format=fmt)
+    return _stream_traces(path, obspy.read(path, format=fmt))
+
+
+def _stream_traces(path: str, stream, where: str = "") -> list[RawTrace]:
+    """Raw traces of an ObsPy stream read from ``path``: masked gaps become NaN (float64)."""
     out = []
     for tr in stream:
         data = np.asarray(tr.data)
         if np.ma.isMaskedArray(tr.data):
             data = np.ma.filled(tr.data.astype(np.float64), np.nan)
         if data.dtype.kind not in "iuf":
-            raise CorpusError(f"{path}: trace {tr.id} holds {data.dtype} samples, not numbers")
+            raise CorpusError(f"{path}{where}: trace {tr.id} holds {data.dtype} samples, not numbers")
         out.append(RawTrace(path, tr.id, float(tr.stats.sampling_rate), float(tr.stats.starttime.timestamp), data))
     return out
 

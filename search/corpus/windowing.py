@@ -6,7 +6,9 @@ Seismological Observatory Practice 2 (NMSOP-2), information sheet IS 8.1, 2012):
 characteristic function is the ratio of a short-term to a long-term average of x², either
 equal-weight moving averages ('boxcar') or exponentially weighted ones ('exponential'). The
 conventions (trailing windows, zeros during the LTA warm-up, the exponential form's initial state)
-are those of ``obspy.signal.trigger``, which the tests use as the reference.
+are those of ``obspy.signal.trigger``, which the tests use as the reference. The streaming
+classes (``StreamingStaLta``, ``TriggerTracker``, ``EnergyPeak``) give the same results, bit for
+bit, from a trace fed in consecutive chunks of any sizes, carrying bounded state.
 """
 from __future__ import annotations
 
@@ -93,51 +95,237 @@ def trigger_intervals(cf: np.ndarray, on: float, off: float) -> np.ndarray:
     return np.column_stack((above_on[first], run_stop[runs])).astype(np.int64)
 
 
+# --- streaming versions: the same results, bit for bit, from consecutive chunks of a trace ----------
+
+def _last(a: np.ndarray, b: np.ndarray, n: int) -> np.ndarray:
+    """The last ``n`` values of ``a`` followed by ``b`` (1-D), as a new float64 array of at most n
+    values, so the caller never keeps a whole chunk alive through a view."""
+    if b.size >= n:
+        return b[b.size - n:].astype(np.float64)
+    return np.concatenate((a[max(0, a.size - (n - b.size)):], b)).astype(np.float64, copy=False)
+
+
+class _StreamingMovingSum:
+    """``moving_sum(x, n)`` of a trace fed in consecutive chunks, equal bit for bit for any chunking.
+
+    ``moving_sum`` takes the sums of block [s, s + block) — s a multiple of block = max(_CHUNK, 4n)
+    counted from the trace's first sample — as differences of one sequential cumulative sum started
+    at sample s − n (at 0 in the first block). A cumulative sum continued from its last value is the
+    same sum, so carried between chunks are the last n samples (to restart the sum n samples before
+    the next block) and the current block's last n cumulative sums (the values to subtract):
+    at most 2n values, whatever has been fed.
+    """
+
+    def __init__(self, n: int):
+        if n < 1:
+            raise ValueError(f"window length must be at least 1 sample, got {n}")
+        self.n = n
+        self.block = max(_CHUNK, 4 * n)
+        self.position = 0  # samples fed so far
+        self._x_tail = np.empty(0)  # samples position − n .. position − 1 (fewer at the start)
+        self._c_tail = np.empty(0)  # the current block's cumulative sums at those samples
+
+    @property
+    def history_samples(self) -> int:
+        """Number of values carried between chunks (≤ 2n)."""
+        return self._x_tail.size + self._c_tail.size
+
+    def __call__(self, x: np.ndarray) -> np.ndarray:
+        """Trailing sums for the next chunk ``x`` (shape (m,), m ≥ 0); shape (m,) float64."""
+        out = np.empty(x.size, dtype=np.float64)
+        done = 0
+        while done < x.size:
+            take = min(x.size - done, self.block - self.position % self.block)
+            self._piece(x[done: done + take], out[done: done + take])
+            done += take
+        return out
+
+    def _piece(self, x: np.ndarray, out: np.ndarray) -> None:
+        """Sums of ``x`` (non-empty, inside one block) into ``out``, and the carried state updated."""
+        n = self.n
+        if self.position % self.block == 0 and self.position > 0:
+            self._c_tail = np.cumsum(self._x_tail)  # the new block's sum starts at its s − n
+        if self._c_tail.size:
+            c = np.cumsum(np.concatenate((self._c_tail[-1:], x)), dtype=np.float64)[1:]
+        else:
+            c = np.cumsum(x, dtype=np.float64)
+        out[:] = c
+        # subtract the cumulative sum at sample position + k − n: carried for k < n, in c after;
+        # in the first block there is none for the first n − (samples so far) values
+        skip = n - self._c_tail.size
+        m = min(n, x.size)
+        if m > skip:
+            out[skip:m] -= self._c_tail[: m - skip]
+        if x.size > n:
+            out[n:] -= c[: x.size - n]
+        self._c_tail = _last(self._c_tail, c, n)
+        self._x_tail = _last(self._x_tail, x, n)
+        self.position += x.size
+
+
+class StreamingStaLta:
+    """STA/LTA of a trace fed in consecutive chunks of any sizes (Allen 1978; Trnkoczy 2012).
+
+    ``kind`` 'boxcar' or 'exponential', ``nsta`` and ``nlta`` in samples. Calling the object with
+    the next chunk (1-D float64, shape (m,), m ≥ 0) returns the characteristic function of those
+    samples, shape (m,); the outputs, concatenated, equal ``boxcar_sta_lta(whole, nsta, nlta)``
+    resp. ``exponential_sta_lta(whole, nsta, nlta)`` on the concatenated input bit for bit, with
+    the same warm-up zeros and LTA floor, whatever the chunking.
+
+    The boxcar form carries at most 2·nsta + 2·nlta samples of history (see ``history_samples``),
+    the exponential form only the two filter states. One call costs O(m + nsta + nlta), so
+    chunks of at least nlta samples keep the total cost linear.
+    """
+
+    def __init__(self, kind: str, nsta: int, nlta: int):
+        if kind not in ("boxcar", "exponential"):
+            raise ValueError(f"kind must be 'boxcar' or 'exponential', got {kind!r}")
+        self.kind, self.nsta, self.nlta = kind, nsta, nlta
+        self.position = 0  # samples fed so far
+        self._sums = (_StreamingMovingSum(nsta), _StreamingMovingSum(nlta)) if kind == "boxcar" else ()
+        self._csta, self._clta = 1.0 / nsta, 1.0 / nlta
+        # lfilter states of the two recursions, as exponential_sta_lta starts them
+        self._zsta = np.zeros(1)
+        self._zlta = np.array([_TINY * (1.0 - self._clta)])
+
+    @property
+    def history_samples(self) -> int:
+        """Number of samples of history carried between chunks: at most 2·nsta + 2·nlta (boxcar),
+        0 (exponential)."""
+        return sum(s.history_samples for s in self._sums)
+
+    def __call__(self, x: np.ndarray) -> np.ndarray:
+        """Characteristic function (dimensionless), shape (m,), for the next chunk ``x``, shape (m,)."""
+        x2 = np.square(x, dtype=np.float64)
+        if x2.size == 0:
+            return x2
+        cf = self._boxcar(x2) if self.kind == "boxcar" else self._exponential(x2)
+        self.position += x2.size
+        return cf
+
+    def _boxcar(self, x2: np.ndarray) -> np.ndarray:
+        """The steps of ``boxcar_sta_lta`` on one chunk of x²."""
+        sta_sum, lta_sum = self._sums
+        sta = sta_sum(x2)
+        sta /= self.nsta
+        lta = lta_sum(x2)
+        lta /= self.nlta
+        sta[: max(0, self.nlta - 1 - self.position)] = 0.0
+        np.maximum(lta, _TINY, out=lta)
+        sta /= lta
+        return sta
+
+    def _exponential(self, x2: np.ndarray) -> np.ndarray:
+        """The steps of ``exponential_sta_lta`` on one chunk of x², the filter states carried."""
+        first = self.position == 0
+        if first:
+            x2[0] = 0.0  # the recursion starts at the trace's second sample
+        sta, self._zsta = signal.lfilter([self._csta], [1.0, self._csta - 1.0], x2, zi=self._zsta)
+        lta, self._zlta = signal.lfilter([self._clta], [1.0, self._clta - 1.0], x2, zi=self._zlta)
+        if first:
+            lta[0] = _TINY
+        cf = sta / lta
+        cf[: max(0, self.nlta - self.position)] = 0.0
+        return cf
+
+
+class TriggerTracker:
+    """``trigger_intervals`` of a characteristic function fed in consecutive chunks (Allen 1978;
+    Trnkoczy 2012), for ``off ≤ on``.
+
+    ``feed(cf)`` returns the (on, off) pairs, shape (K, 2) int64, whose run of cf ≥ ``off`` has
+    ended inside the data fed so far, in sample indices counted from the first sample ever fed; a
+    run still going at the end of a chunk waits for later chunks (its first cf ≥ ``on`` sample may
+    come in one of them). ``close()`` returns the pair still open at the end of the data, shape
+    (0, 2) or (1, 2), its off the last sample fed. All feed outputs and close(), concatenated,
+    equal ``trigger_intervals(whole_cf, on, off)`` exactly, whatever the chunking.
+    """
+
+    def __init__(self, on: float, off: float):
+        if off > on:
+            raise ValueError(f"off ({off}) must not exceed on ({on})")
+        self.on, self.off = on, off
+        self.position = 0  # samples fed so far
+        self._run_start = -1  # start of the run of cf ≥ off going on at the end of the data, or −1
+        self._onset = -1  # that run's first sample with cf ≥ on, or −1
+
+    def feed(self, cf: np.ndarray) -> np.ndarray:
+        """Pairs completed by the next chunk ``cf`` (shape (m,), m ≥ 0); shape (K, 2) int64."""
+        if cf.size == 0:
+            return np.empty((0, 2), dtype=np.int64)
+        above_off = (cf >= self.off).view(np.int8)
+        going = self._run_start >= 0
+        edges = np.diff(np.concatenate(([int(going)], above_off, [0])))
+        starts = np.flatnonzero(edges == 1) + self.position
+        stops = np.flatnonzero(edges == -1) - 1 + self.position  # the last one is the chunk end if still going
+        above_on = np.flatnonzero(cf >= self.on) + self.position
+        if going:
+            starts = np.concatenate(([self._run_start], starts))
+        if self._onset >= 0:
+            above_on = np.concatenate(([self._onset], above_on))
+        run_of = np.searchsorted(starts, above_on, side="right") - 1
+        runs, first = np.unique(run_of, return_index=True)
+        onsets = np.full(starts.size, -1, dtype=np.int64)
+        onsets[runs] = above_on[first]
+        still_going = bool(above_off[-1])
+        self.position += cf.size
+        self._run_start = int(starts[-1]) if still_going else -1
+        self._onset = int(onsets[-1]) if still_going else -1
+        done = starts.size - still_going
+        hit = onsets[:done] >= 0
+        return np.column_stack((onsets[:done][hit], stops[:done][hit])).astype(np.int64)
+
+    def close(self) -> np.ndarray:
+        """The pair still open at the end of the data fed so far, shape (0, 2) or (1, 2) int64."""
+        if self._onset < 0:
+            return np.empty((0, 2), dtype=np.int64)
+        return np.array([[self._onset, self.position - 1]], dtype=np.int64)
+
+
+class EnergyPeak:
+    """Where the trailing energy of a trace fed in consecutive chunks peaks.
+
+    ``argmax`` is the sample index (counted from the first sample fed; the first one on ties) of
+    the maximum of ``moving_sum(np.square(whole), width)``, ``width`` in samples, equal to
+    ``int(np.argmax(moving_sum(np.square(whole), width)))`` for any chunking (the same block-aligned
+    sums, bit for bit). At most 2·width samples of history are carried.
+    """
+
+    def __init__(self, width: int):
+        self._sum = _StreamingMovingSum(width)
+        self._best = np.nan
+        self._argmax = -1
+
+    @property
+    def history_samples(self) -> int:
+        """Number of samples of history carried between chunks (≤ 2·width)."""
+        return self._sum.history_samples
+
+    @property
+    def argmax(self) -> int:
+        """Index of the peak so far; ValueError before any sample, as ``np.argmax`` of nothing."""
+        if self._argmax < 0:
+            raise ValueError("no samples fed yet")
+        return self._argmax
+
+    def feed(self, x: np.ndarray) -> None:
+        """Take the next chunk ``x`` (1-D, shape (m,), m ≥ 0)."""
+        energy = self._sum(np.square(x))
+        if energy.size == 0:
+            return
+        k = int(np.argmax(energy))
+        v = energy[k]
+        # np.argmax takes the first maximum, and a NaN as the maximum
+        if self._argmax < 0 or v > self._best or (np.isnan(v) and not np.isnan(self._best)):
+            self._best, self._argmax = v, self._sum.position - energy.size + k
+
+
 def fast_length(n: float, mode: str = "ceil") -> int:
     """A power of two near ``n`` (the fastest FFT size): the smallest ≥ n ('ceil') or the closest
     in log scale ('nearest'); at least 2."""
     n = max(float(n), 2.0)
     k = np.log2(n)
     return int(2 ** (np.ceil(k - 1e-12) if mode == "ceil" else np.round(k)))
-
-
-def dominant_frequency(segments: list[np.ndarray], fs: float, nfft: int = 256) -> tuple[float | None, dict]:
-    """Frequency of the transients, Hz: centroid of the loud frames' excess power.
-
-    Frames of ``nfft`` samples (Hann, no overlap) are Fourier transformed; the noise spectrum is the
-    median over frames, the transient spectrum the mean of the frames with more than 8 × the median
-    frame energy (at most the loudest 5 %), and the dominant frequency the centroid of their
-    positive difference, each loud frame normalised to unit excess power. Stationary lines (fans, power-line
-    hum) sit in the median and cancel. Returns (None, info) when no frame stands out.
-    """
-    frames = [x[: (x.size // nfft) * nfft].reshape(-1, nfft) for x in segments if x.size >= nfft]
-    if not frames:
-        return None, {"frames": 0}
-    energies = [np.einsum("ij,ij->i", f, f) for f in frames]
-    energy = np.concatenate(energies)
-    loud_cut = max(8.0 * np.median(energy), np.quantile(energy, 0.95))
-    if not np.any(energy > loud_cut):
-        return None, {"frames": int(energy.size)}
-    # gather the loud frames, and a spread-out subset for the noise, without copying whole traces
-    total = energy.size
-    step = max(1, total // 4096)
-    loud_frames, quiet_frames, offset = [], [], 0
-    for f, e in zip(frames, energies, strict=True):
-        loud_frames.append(f[e > loud_cut])
-        first = (-offset) % step
-        quiet_frames.append(f[first::step])
-        offset += f.shape[0]
-    win = np.hanning(nfft)
-    loud = np.abs(np.fft.rfft(np.concatenate(loud_frames) * win, axis=1)) ** 2
-    noise = np.median(np.abs(np.fft.rfft(np.concatenate(quiet_frames) * win, axis=1)) ** 2, axis=0)
-    # each loud frame counts once, whatever its energy: normalise its excess to unit sum
-    excess = np.clip(loud - noise, 0.0, None)
-    totals = excess.sum(axis=1, keepdims=True)
-    excess = (excess[totals[:, 0] > 0] / totals[totals[:, 0] > 0]).mean(axis=0) if np.any(totals > 0) else np.zeros(1)
-    freqs = np.fft.rfftfreq(nfft, 1.0 / fs)
-    if not excess.sum() > 0:
-        return None, {"frames": int(total)}
-    return float(np.sum(freqs * excess) / excess.sum()), {"frames": int(total), "loud_frames": int(loud.shape[0])}
 
 
 def burst_durations(onsets: np.ndarray, gap: int) -> np.ndarray:

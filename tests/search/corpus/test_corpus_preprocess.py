@@ -5,6 +5,7 @@ from obspy import Stream, Trace, UTCDateTime
 
 from burstlens.search.corpus import CorpusError, read_corpus
 from burstlens.search.corpus import preprocess as pp
+from burstlens.search.corpus import stream
 
 
 def _tone_fit(x, fs, f0):
@@ -29,8 +30,10 @@ def test_resampling_keeps_tone_frequency_and_amplitude(native, target):
     x = amp * np.sin(2 * np.pi * f0 * np.arange(n) / native + 0.3)
     up, down = pp.resampling_factors(native, target)
     assert native * up / down == pytest.approx(target)
-    seg = pp.Segment("f", "XX.A.00.HHZ", native, None, 0.0, x)
-    y = pp.process_segment(seg, target, None, taper=False).data
+    seg = stream.SegmentInfo(stream.TraceInfo(0, "XX.A.00.HHZ", native, None, "f", n, [(0, "f")]), 0, n, 0)
+    layout = stream.Layout.of(seg, target)
+    y, whole = stream.process_piece(x, layout, 0, None)  # one piece: the whole segment, ends tapered (5 %)
+    y = y[whole]
     assert y.size == pytest.approx(n * target / native, abs=1)
     core = y[y.size // 8: -y.size // 8]
     f_est, a_est = _tone_fit(core, target, f0)

@@ -1,0 +1,195 @@
+"""The cutting pass: placed windows are cut from the processed stream as its pieces go by, checked,
+and kept as a seeded uniform sample when there are more than ``max_windows``.
+
+The sample is a bottom-k sample (reservoir sampling by hashed keys): every window found gets a key,
+a 64-bit hash of the seed and of where the window lies (trace, rate, start, sample), and the
+``max_windows`` windows with the smallest keys are kept, in window order. Each window is equally
+likely to be kept, and the kept set depends neither on the order in which the pieces arrive nor on
+how the files were split (common practice; the uniformity follows from the keys being i.i.d.
+uniform, as in Vitter, "Random sampling with a reservoir", ACM TOMS 11(1), 1985, for the
+order-free bottom-k form Cohen & Kaplan, "Summarizing data using bottom-k sketches", PODC 2007).
+"""
+from __future__ import annotations
+
+import hashlib
+import heapq
+from dataclasses import dataclass
+
+import numpy as np
+
+from burstlens.search.corpus import windowing
+from burstlens.search.corpus.stream import Piece, SegmentInfo, rejection
+
+CLIP_RUN = 3
+
+
+@dataclass(frozen=True)
+class Placement:
+    """A window of ``length`` output samples at ``start`` of a segment (−1: the segment is too
+    short for it), with the triggers merged into it and the first trigger's offset from its start
+    in samples (None for 'whole' and 'sliding' windows)."""
+
+    start: int
+    length: int
+    triggers: int = 0
+    trigger: int | None = None
+
+
+@dataclass
+class Found:
+    """A window cut and accepted: its order (segment index, start), key, samples and record."""
+
+    order: tuple
+    key: int
+    window: np.ndarray
+    entry: dict
+
+
+class _SegmentCutter:
+    """Cuts one segment's placed windows from its pieces as they arrive, holding only the
+    samples from the next window's start on (processed, output rate) and its native span."""
+
+    def __init__(self, seg: SegmentInfo, plan: list[Placement]):
+        self.seg = seg
+        self.plan = [p for p in plan if p.start >= 0]
+        self.i = 0
+        self.out = np.empty(0)
+        self.out_lo = 0
+        self.raw = None
+        self.raw_lo = 0
+
+    def add(self, piece: Piece):
+        """(placement, processed window, native span, first native sample) of each window now
+        complete."""
+        core = piece.samples
+        if self.i >= len(self.plan):
+            return
+        self.out = np.concatenate((self.out, core)) if self.out.size else core
+        self.raw = piece.raw if self.raw is None or self.raw.size == 0 else np.concatenate((self.raw, piece.raw))
+        if self.out_lo + self.out.size != piece.start + core.size:  # nothing held yet: start here
+            self.out_lo = piece.start
+            self.raw_lo = piece.raw_start
+        out_hi, raw_hi = self.out_lo + self.out.size, self.raw_lo + self.raw.size
+        ratio = piece.layout.native_hz / piece.layout.rate_hz
+        n_raw = piece.layout.n_raw
+        while self.i < len(self.plan):
+            p = self.plan[self.i]
+            r0 = int(round(p.start * ratio))
+            r1 = min(r0 + max(1, int(round(p.length * ratio))), n_raw)
+            if p.start + p.length > out_hi or r1 > raw_hi:
+                break
+            yield (p, self.out[p.start - self.out_lo: p.start + p.length - self.out_lo],
+                   self.raw[r0 - self.raw_lo: r1 - self.raw_lo], r0)
+            self.i += 1
+        if self.i < len(self.plan):  # keep what the next window needs
+            nxt = self.plan[self.i]
+            keep = max(0, nxt.start - self.out_lo)
+            keep_raw = max(0, min(int(round(nxt.start * ratio)), raw_hi) - self.raw_lo)
+            self.out, self.out_lo = self.out[keep:].copy(), self.out_lo + keep
+            self.raw, self.raw_lo = self.raw[keep_raw:].copy(), self.raw_lo + keep_raw
+        else:
+            self.out, self.raw = np.empty(0), None
+
+
+class WindowSample:
+    """The accepted windows' bottom-k sample, with the order-free duplicate rule: of windows with
+    the same native samples, the first in window order is kept and the others are 'duplicate'."""
+
+    def __init__(self, max_windows: int, seed: int):
+        self.max_windows = max_windows
+        self.seed = int(seed).to_bytes(8, "little", signed=True)
+        self.heap: list[tuple] = []        # (−key, order, Found) of the smallest keys
+        self.first_of: dict[bytes, tuple] = {}      # samples' digest -> (order, record) of the first
+        self.duplicate_records: dict[tuple, dict] = {}   # order -> rejection record
+        self.accepted = 0
+
+    @property
+    def found(self) -> int:
+        return self.accepted - len(self.duplicate_records)
+
+    def key(self, seg: SegmentInfo, start: int) -> int:
+        trace = seg.trace
+        where = f"{trace.trace_id}|{trace.sampling_rate_hz!r}|{trace.start!r}|" \
+                f"{trace.file if trace.start is None else ''}|{seg.first_sample}|{start}"
+        return int.from_bytes(hashlib.sha256(self.seed + where.encode()).digest()[:8], "little")
+
+    def offer(self, found: Found, digest: bytes, record: dict) -> None:
+        """Take an accepted window; ``record`` is its rejection record should it be a duplicate."""
+        self.accepted += 1
+        earlier = self.first_of.get(digest)
+        if earlier is not None:
+            mine = (found.order, record)
+            loser = max(earlier, mine, key=lambda e: e[0])
+            self.duplicate_records[loser[0]] = loser[1]
+            self.first_of[digest] = min(earlier, mine, key=lambda e: e[0])
+            if loser is mine:
+                return
+        else:
+            self.first_of[digest] = (found.order, record)
+        # room for every window that may still turn out a duplicate of a later-found one
+        capacity = self.max_windows + len(self.duplicate_records)
+        item = (-found.key, found.order, found)
+        if len(self.heap) < capacity:
+            heapq.heappush(self.heap, item)
+        elif item > self.heap[0]:
+            heapq.heapreplace(self.heap, item)
+
+    def kept(self) -> list[Found]:
+        """The kept windows, in window order."""
+        alive = sorted((f for _, _, f in self.heap if f.order not in self.duplicate_records), key=lambda f: f.key)
+        return sorted(alive[: self.max_windows], key=lambda f: f.order)
+
+
+def cut_windows(pieces, plans: dict[int, list[Placement]], sample: WindowSample, windows_mode: str,
+                iso, on_segment=None) -> list[tuple]:
+    """Run the cutting pass over ``pieces``; returns the window rejections as (order, record).
+
+    ``plans`` maps segment index to its placements; accepted windows go to ``sample``.
+    ``on_segment(seg)`` is called after each segment's last piece."""
+    rejected = []
+    cutters: dict[int, _SegmentCutter] = {}
+    for piece in pieces:
+        seg = piece.segment
+        cutter = cutters.get(seg.index)
+        if cutter is None:
+            cutter = cutters[seg.index] = _SegmentCutter(seg, plans[seg.index])
+            fs = piece.layout.rate_hz
+            for p in plans[seg.index]:
+                if p.start < 0:
+                    rejected.append(((seg.index, -1), rejection(
+                        seg.file, seg.trace_id, seg.offset_s, "too short",
+                        f"trace of {piece.layout.n / fs:g} s is shorter than the window of {p.length / fs:g} s"
+                        + (f" ({p.triggers} triggers)" if p.triggers and windows_mode == "bursts" else ""))))
+        fs = piece.layout.rate_hz
+        for p, window, raw, r0 in cutter.add(piece):
+            offset = seg.offset_s + p.start / fs
+            file = seg.file_at(r0)
+            reason = windowing.rejection_reason(raw, window, CLIP_RUN)
+            if reason is not None:
+                rejected.append(((seg.index, p.start), rejection(file, seg.trace_id, offset, reason, detail(reason))))
+                continue
+            entry = {"file": file, "trace_id": seg.trace_id,
+                     "start": iso(None if seg.start is None else seg.start + p.start / fs),
+                     "offset_s": round(offset, 6)}
+            if windows_mode == "bursts":
+                entry["triggers"] = p.triggers
+            entry["trigger_offset_s"] = None if p.trigger is None else p.trigger / fs
+            order = (seg.index, p.start)
+            digest = hashlib.sha1(raw.dtype.str.encode() + raw.tobytes()).digest()
+            sample.offer(Found(order, sample.key(seg, p.start), window.copy(), entry), digest,
+                         rejection(file, seg.trace_id, offset, "duplicate", detail("duplicate")))
+        if piece.last:
+            del cutters[seg.index]
+            if on_segment is not None:
+                on_segment(seg)
+    rejected += sample.duplicate_records.items()
+    return rejected
+
+
+def detail(reason: str) -> str:
+    return {
+        "flat": "no variation in the raw samples",
+        "non-finite": "NaN/Inf after processing",
+        "clipped": f"peak value held for ≥ {CLIP_RUN} samples (saturated recorder)",
+        "duplicate": "same raw samples as an earlier window",
+    }[reason]

@@ -1,0 +1,191 @@
+"""Where the windows go: the data-chosen defaults (dominant frequency, STA/LTA lengths, window
+length) and each segment's window placements, from passes over the processed pieces.
+
+'bursts': a survey pass gives the dominant frequency of the transients (hence STA/LTA lengths and
+the trigger band), a triggering pass the STA/LTA trigger intervals of every segment (state carried
+from piece to piece), and from their durations the window length. 'sliding': the survey pass, then
+windows every hop. 'whole': a pass finds each long segment's energy peak.
+"""
+from __future__ import annotations
+
+import hashlib
+
+import numpy as np
+
+from burstlens.search.corpus import preprocess, windowing
+from burstlens.search.corpus.cutting import Placement
+from burstlens.search.corpus.model import CorpusError
+from burstlens.search.corpus.stream import FRAME
+from burstlens.search.corpus.survey import SpectrumSurvey
+
+STA_PERIODS = 4.0          # STA ≈ a few dominant periods (Trnkoczy 2012)
+LTA_PER_STA = 20.0         # LTA ≈ 10–20 × STA (Trnkoczy 2012)
+FALLBACK_FRACTION_OF_FS = 1.0 / 8.0   # dominant frequency when no transient stands out
+SLIDING_PERIODS = 128.0    # default sliding window: this many dominant periods
+DURATION_QUANTILE = 0.9    # window length covers this quantile of the burst durations
+MIN_WINDOW = 64
+MAX_WINDOW = 1 << 16
+TRIGGER_BAND_FACTOR = 4.0  # trigger on [f_dom / 4, 4 f_dom]
+
+
+def given_window(window_s: float, fs: float) -> int:
+    n = int(round(window_s * fs))
+    if n < 2:
+        raise CorpusError(f"window_s={window_s!r}: shorter than 2 samples at {fs:g} Hz")
+    return n
+
+
+def _stream_key(seg) -> int:
+    """A stable integer naming a segment for the spectrum survey's noise sample: the same however
+    its trace was split into files (the file name counts only for traces without a start time)."""
+    trace = seg.trace
+    name = f"{trace.trace_id}|{trace.sampling_rate_hz!r}|{trace.start!r}|" \
+           f"{trace.file if trace.start is None else ''}|{seg.first_sample}"
+    return int.from_bytes(hashlib.sha256(name.encode()).digest()[:8], "little")
+
+
+def whole_windows(segments, layouts, read_pieces, opts, defaults, stage) -> dict:
+    """Each segment is one window; longer ones are cut around their energy peak."""
+    fs = defaults["sampling_rate_hz"]
+    lengths = [layouts[s.index].n for s in segments]
+    if opts["window_s"] is not None:
+        n, how = given_window(opts["window_s"], fs), "given"
+    elif len(set(lengths)) == 1:
+        n, how = lengths[0], "trace length"
+    else:
+        n, how = int(np.median(lengths)), "median trace length"
+    defaults.update(window_samples=n, window_s=n / fs, window_source=how, pre_trigger=opts["pre_trigger"])
+    peaks = {s.index: windowing.EnergyPeak(max(1, n // 16)) for s in segments if layouts[s.index].n > n}
+    stage.begin("preprocessing")
+    for piece in read_pieces():
+        peak = peaks.get(piece.segment.index)
+        if peak is not None:
+            peak.feed(piece.samples)
+        if piece.last:
+            stage.done()
+    plans = {}
+    for seg in segments:
+        size = layouts[seg.index].n
+        if size < n:
+            plans[seg.index] = [Placement(-1, n)]
+            continue
+        start = 0
+        if size > n:
+            top = peaks[seg.index].argmax - n // 32
+            start = int(min(max(top - opts["pre_trigger"] * n, 0), size - n))
+        plans[seg.index] = [Placement(start, n, 1)]
+    return plans
+
+
+def scan_windows(segments, layouts, read_pieces, files, opts, defaults, stage) -> dict:
+    """Burst or sliding windows; defaults for STA/LTA and window length come from the data."""
+    fs = defaults["sampling_rate_hz"]
+    survey = SpectrumSurvey(fs)
+    stage.begin("preprocessing")
+    for piece in read_pieces():
+        survey.add(piece.samples, _stream_key(piece.segment), piece.start // FRAME)
+        if piece.last:
+            stage.done()
+    f_dom, info = survey.result()
+    source = "transient excess spectrum"
+    if f_dom is None:
+        f_dom, source = fs * FALLBACK_FRACTION_OF_FS, "fallback fs/8 (no transient stands out)"
+    f_dom = float(min(max(f_dom, fs / 100.0), fs / 4.0))
+    defaults.update(dominant_frequency_hz=round(f_dom, 3), dominant_frequency_source=source,
+                    dominant_frequency_loud_frames=info.get("loud_frames", 0))
+    pre = opts["pre_trigger"]
+    if opts["windowing"] == "sliding":
+        if opts["window_s"] is not None:
+            n, how = given_window(opts["window_s"], fs), "given"
+        else:
+            n = int(np.clip(windowing.fast_length(SLIDING_PERIODS * fs / f_dom, "nearest"), MIN_WINDOW, MAX_WINDOW))
+            how = f"{SLIDING_PERIODS:g} dominant periods, rounded to a power of two samples"
+        hop = int(round(opts["hop_s"] * fs)) if opts["hop_s"] is not None else max(1, n // 2)
+        defaults.update(window_samples=n, window_s=n / fs, window_source=how, hop_samples=hop, hop_s=hop / fs)
+        plans = {}
+        for seg in segments:
+            layout = layouts[seg.index]
+            starts = windowing.sliding_starts(layout.n, n, hop, layout.taper)
+            plans[seg.index] = [Placement(s, n) for s in starts] or [Placement(-1, n)]
+        return plans
+
+    sta = opts["sta_s"] if opts["sta_s"] is not None else STA_PERIODS / f_dom
+    nsta = max(2, int(round(sta * fs)))
+    nlta = int(round(opts["lta_s"] * fs)) if opts["lta_s"] is not None else int(round(LTA_PER_STA * nsta))
+    nlta = max(nsta + 1, nlta)
+    defaults.update(
+        trigger=opts["trigger"], sta_s=nsta / fs, lta_s=nlta / fs, sta_samples=nsta, lta_samples=nlta,
+        sta_source="given" if opts["sta_s"] is not None else f"{STA_PERIODS:g} dominant periods",
+        lta_source="given" if opts["lta_s"] is not None else f"{LTA_PER_STA:g} × STA",
+        trigger_on=opts["trigger_on"], trigger_off=opts["trigger_off"], pre_trigger=pre,
+    )
+    # The characteristic function sees the transients' band only (common practice: filter before
+    # triggering, Trnkoczy 2012), so red background noise and low tonal lines cannot trigger.
+    trigger_band = None
+    if opts["bandpass_hz"] is None and source == "transient excess spectrum":
+        trigger_band = [round(f_dom / TRIGGER_BAND_FACTOR, 3), round(min(f_dom * TRIGGER_BAND_FACTOR, 0.4 * fs), 3)]
+    defaults["trigger_band_hz"] = trigger_band
+    trigger_sos = preprocess.bandpass_sos(trigger_band, fs) if trigger_band else None
+    onsets = _trigger_pass(segments, layouts, read_pieces, trigger_sos, opts, nsta, nlta, stage)
+    n_triggers = int(sum(len(o) for o in onsets.values()))
+    defaults["triggers"] = n_triggers
+    if n_triggers == 0:
+        described = files[0][0] if len(files) == 1 else f"{len(files)} files ({files[0][0]}, …)"
+        raise CorpusError(
+            f"{described}: zero usable windows: no triggers above {opts['trigger_on']:g} in "
+            f"{len(segments)} traces (STA {nsta / fs:g} s, LTA {nlta / fs:g} s); "
+            "try windowing='whole' or 'sliding', or a lower trigger_on"
+        )
+    durations = np.concatenate([windowing.burst_durations(o, nlta) for o in onsets.values() if len(o)]) / fs
+    if opts["window_s"] is not None:
+        n, how = given_window(opts["window_s"], fs), "given"
+    else:
+        target = np.quantile(durations, DURATION_QUANTILE) * fs / (1.0 - pre)
+        n = int(np.clip(windowing.fast_length(target, "ceil"), MIN_WINDOW, MAX_WINDOW))
+        how = (f"{DURATION_QUANTILE:.0%} quantile of burst durations (triggers within one LTA merged) "
+               "/ (1 − pre_trigger), rounded up to a power of two samples")
+    defaults.update(
+        window_samples=n, window_s=n / fs, window_source=how,
+        burst_duration_s={"median": float(np.median(durations)),
+                          "q75": float(np.quantile(durations, 0.75)), "max": float(durations.max())},
+    )
+    plans = {}
+    for seg in segments:
+        layout, o = layouts[seg.index], onsets[seg.index]
+        starts, counts, short = windowing.place_burst_windows(o[:, 0], layout.n, n, int(round(pre * n)),
+                                                              layout.taper)
+        plan = [Placement(-1, n, len(short))] if short else []
+        # the first onset at or after the start: a window clipped at a segment end does not hold
+        # its trigger at pre·n, and an earlier trigger merged into the previous window may fall in it
+        first = o[np.searchsorted(o[:, 0], starts), 0] if starts else []
+        plan += [Placement(s, n, c, int(f) - s) for s, c, f in zip(starts, counts, first, strict=True)]
+        plans[seg.index] = plan
+    return plans
+
+
+def _trigger_pass(segments, layouts, read_pieces, trigger_sos, opts, nsta, nlta, stage) -> dict:
+    """Trigger (on, off) intervals of every segment, output samples, shape (K, 2) each; STA/LTA
+    and the trigger state run on from piece to piece, so they equal one pass over the segment."""
+    onsets = {s.index: [] for s in segments}
+    running = {s.index: (windowing.StreamingStaLta(opts["trigger"], nsta, nlta),
+                         windowing.TriggerTracker(opts["trigger_on"], opts["trigger_off"]))
+               for s in segments if layouts[s.index].n > nlta}
+    stage.begin("triggering")
+    for piece in read_pieces():
+        index = piece.segment.index
+        if index in running:
+            sta_lta, tracker = running[index]
+            x = piece.samples if trigger_sos is None else preprocess.zero_phase(trigger_sos, piece.extended)[piece.core]
+            onsets[index].append(tracker.feed(sta_lta(x)))
+            if piece.last:
+                onsets[index].append(tracker.close())
+        if piece.last:
+            stage.done()
+    out = {}
+    for seg in segments:
+        layout = layouts[seg.index]
+        o = np.concatenate(onsets[seg.index]) if onsets[seg.index] else np.empty((0, 2), dtype=np.int64)
+        # a trigger inside the taper is the ramp itself, not a burst
+        g = layout.taper
+        out[seg.index] = o[(o[:, 0] >= g) & (o[:, 0] < layout.n - g)]
+    return out
