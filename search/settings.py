@@ -364,14 +364,15 @@ def split_settings(settings: dict) -> tuple[dict, dict]:
     return corpus, search
 
 
-def read_corpus_as_given(paths, options: dict, *, progress=None):
-    """``read_corpus(paths, **options, progress=progress)``, with ``options`` (checked corpus
-    options) recorded as ``Corpus.defaults["given"]``: the reader's record holds the value of
-    every option, this says which of them a person set rather than the reader chose (the
-    result's provenance). ``progress`` is the reader's callback (``search.corpus.ReadProgress``)."""
+def read_corpus_as_given(paths, options: dict, *, progress=None, mapper=None):
+    """``read_corpus(paths, **options, progress=progress, mapper=mapper)``, with ``options``
+    (checked corpus options) recorded as ``Corpus.defaults["given"]``: the reader's record holds
+    the value of every option, this says which of them a person set rather than the reader chose
+    (the result's provenance). ``progress`` is the reader's callback (``search.corpus.ReadProgress``),
+    ``mapper`` runs its tasks elsewhere (a Dask cluster); neither changes the result."""
     from burstlens.search.corpus import read_corpus
 
-    corpus = read_corpus(paths, **options, progress=progress)
+    corpus = read_corpus(paths, **options, progress=progress, mapper=mapper)
     corpus.defaults["given"] = dict(options)
     return corpus
 

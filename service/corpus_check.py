@@ -71,14 +71,15 @@ def jsonable(obj: Any, rename=lambda s: s) -> Any:
     return rename(str(obj))
 
 
-def load_corpus(paths: list[Path], names: list[str], options: dict[str, Any]):
-    """``search.read_corpus`` over stored files; errors become :class:`CorpusRejected`."""
+def load_corpus(paths: list[Path], names: list[str], options: dict[str, Any], mapper=None):
+    """``search.read_corpus`` over stored files (its tasks on a cluster with ``mapper``); errors
+    become :class:`CorpusRejected`."""
     from burstlens.search.corpus import CorpusError
     from burstlens.search.settings import read_corpus_as_given
 
     rename = _renamer(paths, names)
     try:
-        return read_corpus_as_given([str(p) for p in paths], options)
+        return read_corpus_as_given([str(p) for p in paths], options, mapper=mapper)
     except CorpusError as exc:
         raise CorpusRejected(rename(str(exc))) from None
     except (ValueError, TypeError) as exc:

@@ -129,3 +129,29 @@ def evaluations_on(client,
     with joblib.parallel_config(backend=BACKEND_NAME, client=client,
                                 wait_for_workers_timeout=wait_for_workers_s):
         yield
+
+
+class ClusterMap:
+    """``read_corpus``'s ``mapper`` on a Dask client: one task per item, results in item order.
+
+    The reader's tasks open the corpus files by path, so the Dask workers must see the data dir
+    at the same path (a shared file system, or object storage mounted there; deploy/README.md).
+    """
+
+    def __init__(self, client):
+        self.client = client
+
+    def __call__(self, fn, items) -> list:
+        items = list(items)
+        return self.client.gather(self.client.map(fn, items, pure=False)) if items else []
+
+
+def sees_files(client, paths) -> bool:
+    """Whether every Dask worker can read the first of ``paths`` (the reader's tasks may run on
+    any of them)."""
+    import os
+
+    first = str(paths[0])
+    answers = client.run(os.access, first, os.R_OK)
+    return bool(answers) and all(answers.values())
+

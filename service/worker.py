@@ -170,6 +170,20 @@ class Worker:
         log.info("job %s: %s", job["id"], outcome)
         return outcome
 
+    def reading_mapper(self, paths):
+        """``read_corpus``'s ``mapper`` with ``--dask ADDR`` when every Dask worker sees the
+        corpus files (a shared data dir), else None: the files are then read here, as without
+        Dask, and the log says why."""
+        if not self.settings.dask:
+            return None
+        from burstlens.service.dask_backend import ClusterMap, ensure_client, sees_files
+
+        self._dask_client = ensure_client(self._dask_client, self.settings.dask)
+        if not sees_files(self._dask_client, paths):
+            log.warning("the Dask workers do not see %s: reading the corpus on this host", paths[0])
+            return None
+        return ClusterMap(self._dask_client)
+
     def dask_context(self):
         """joblib's Dask backend on the cluster of ``--dask ADDR`` (service.dask_backend); a
         no-op without it. An unreachable scheduler fails the attempt with a clear reason."""
@@ -281,7 +295,8 @@ class JobRun:
         options = {**record["summary"].get("read_options", {}), **corpus_options}
         paths = self.store.corpus_paths(record)
         try:
-            corpus = load_corpus(paths, [f["name"] for f in record["files"]], options)
+            corpus = load_corpus(paths, [f["name"] for f in record["files"]], options,
+                                 mapper=self.worker.reading_mapper(paths))
             enforce_limits(corpus, self.settings)
         except (CorpusRejected, CorpusTooLarge) as exc:
             raise PermanentError(str(exc)) from None

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import hashlib
 import heapq
+from datetime import UTC, datetime
 from dataclasses import dataclass
 
 import numpy as np
@@ -91,13 +92,42 @@ class _SegmentCutter:
             self.out, self.raw = np.empty(0), None
 
 
+def window_key(seed: int, seg: SegmentInfo, start: int) -> int:
+    """The 64-bit sampling key of the window at output sample ``start`` of ``seg``: a hash of the
+    seed and of where the window lies (SEED id, rate, the trace's start time or, for untimed
+    traces, its file, the segment's first sample, the start), never of the order things arrive."""
+    trace = seg.trace
+    where = f"{trace.trace_id}|{trace.sampling_rate_hz!r}|{trace.start!r}|" \
+            f"{trace.file if trace.start is None else ''}|{seg.first_sample}|{start}"
+    seed_bytes = int(seed).to_bytes(8, "little", signed=True)
+    return int.from_bytes(hashlib.sha256(seed_bytes + where.encode()).digest()[:8], "little")
+
+
+class Candidates:
+    """Every accepted window as offered: a cluster task's share of the cutting pass, for the
+    client to sample (``keep_samples`` False: records only) or to collect (True)."""
+
+    def __init__(self, keep_samples: bool):
+        self.keep_samples = keep_samples
+        self.items: list[tuple] = []
+
+    @property
+    def found(self) -> int:
+        return len(self.items)
+
+    def offer(self, found: Found, digest: bytes, record: dict) -> None:
+        if not self.keep_samples:
+            found.window = None
+        self.items.append((found, digest, record))
+
+
 class WindowSample:
     """The accepted windows' bottom-k sample, with the order-free duplicate rule: of windows with
     the same native samples, the first in window order is kept and the others are 'duplicate'."""
 
     def __init__(self, max_windows: int, seed: int):
         self.max_windows = max_windows
-        self.seed = int(seed).to_bytes(8, "little", signed=True)
+        self.seed = seed
         self.heap: list[tuple] = []        # (−key, order, Found) of the smallest keys
         self.first_of: dict[bytes, tuple] = {}      # samples' digest -> (order, record) of the first
         self.duplicate_records: dict[tuple, dict] = {}   # order -> rejection record
@@ -106,12 +136,6 @@ class WindowSample:
     @property
     def found(self) -> int:
         return self.accepted - len(self.duplicate_records)
-
-    def key(self, seg: SegmentInfo, start: int) -> int:
-        trace = seg.trace
-        where = f"{trace.trace_id}|{trace.sampling_rate_hz!r}|{trace.start!r}|" \
-                f"{trace.file if trace.start is None else ''}|{seg.first_sample}|{start}"
-        return int.from_bytes(hashlib.sha256(self.seed + where.encode()).digest()[:8], "little")
 
     def offer(self, found: Found, digest: bytes, record: dict) -> None:
         """Take an accepted window; ``record`` is its rejection record should it be a duplicate."""
@@ -140,27 +164,25 @@ class WindowSample:
         return sorted(alive[: self.max_windows], key=lambda f: f.order)
 
 
-def cut_windows(pieces, plans: dict[int, list[Placement]], sample: WindowSample, windows_mode: str,
-                iso, on_segment=None) -> list[tuple]:
-    """Run the cutting pass over ``pieces``; returns the window rejections as (order, record).
-
-    ``plans`` maps segment index to its placements; accepted windows go to ``sample``.
-    ``on_segment(seg)`` is called after each segment's last piece."""
+def cut_windows(pieces, *, plans: dict, mode: str, seed: int, collector, on_segment=None) -> tuple:
+    """The cutting pass over ``pieces``: returns (``collector``, window rejections as (order,
+    record) pairs). ``plans`` maps segment index to its placements; each accepted window is offered
+    to ``collector`` (a :class:`WindowSample`, or :class:`Candidates` on a cluster worker).
+    ``on_segment()`` is called after each segment's last piece."""
     rejected = []
     cutters: dict[int, _SegmentCutter] = {}
     for piece in pieces:
         seg = piece.segment
+        fs = piece.layout.rate_hz
         cutter = cutters.get(seg.index)
         if cutter is None:
-            cutter = cutters[seg.index] = _SegmentCutter(seg, plans[seg.index])
-            fs = piece.layout.rate_hz
-            for p in plans[seg.index]:
+            cutter = cutters[seg.index] = _SegmentCutter(seg, plans.get(seg.index, []))
+            for p in plans.get(seg.index, []):
                 if p.start < 0:
                     rejected.append(((seg.index, -1), rejection(
                         seg.file, seg.trace_id, seg.offset_s, "too short",
                         f"trace of {piece.layout.n / fs:g} s is shorter than the window of {p.length / fs:g} s"
-                        + (f" ({p.triggers} triggers)" if p.triggers and windows_mode == "bursts" else ""))))
-        fs = piece.layout.rate_hz
+                        + (f" ({p.triggers} triggers)" if p.triggers and mode == "bursts" else ""))))
         for p, window, raw, r0 in cutter.add(piece):
             offset = seg.offset_s + p.start / fs
             file = seg.file_at(r0)
@@ -171,19 +193,24 @@ def cut_windows(pieces, plans: dict[int, list[Placement]], sample: WindowSample,
             entry = {"file": file, "trace_id": seg.trace_id,
                      "start": iso(None if seg.start is None else seg.start + p.start / fs),
                      "offset_s": round(offset, 6)}
-            if windows_mode == "bursts":
+            if mode == "bursts":
                 entry["triggers"] = p.triggers
             entry["trigger_offset_s"] = None if p.trigger is None else p.trigger / fs
-            order = (seg.index, p.start)
             digest = hashlib.sha1(raw.dtype.str.encode() + raw.tobytes()).digest()
-            sample.offer(Found(order, sample.key(seg, p.start), window.copy(), entry), digest,
-                         rejection(file, seg.trace_id, offset, "duplicate", detail("duplicate")))
+            collector.offer(Found((seg.index, p.start), window_key(seed, seg, p.start), window.copy(), entry), digest,
+                            rejection(file, seg.trace_id, offset, "duplicate", detail("duplicate")))
         if piece.last:
             del cutters[seg.index]
             if on_segment is not None:
-                on_segment(seg)
-    rejected += sample.duplicate_records.items()
-    return rejected
+                on_segment()
+    return collector, rejected
+
+
+def iso(ts: float | None) -> str | None:
+    """ISO 8601 UTC with microseconds and a Z, or None."""
+    if ts is None:
+        return None
+    return datetime.fromtimestamp(ts, tz=UTC).isoformat(timespec="microseconds").replace("+00:00", "Z")
 
 
 def detail(reason: str) -> str:

@@ -11,7 +11,7 @@ from __future__ import annotations
 import hashlib
 import os
 from dataclasses import dataclass, replace
-from datetime import datetime, UTC
+from functools import partial
 
 import numpy as np
 
@@ -97,6 +97,7 @@ def read_corpus(
     trigger: str | None = None,
     hop_s: float | None = None,
     progress=None,
+    mapper=None,
 ) -> Corpus:
     """Read waveform files and cut them into preprocessed windows of one length and one rate.
 
@@ -141,6 +142,12 @@ def read_corpus(
         each segment preprocessed, triggered and cut. Not a reading choice: the result is the
         same with or without it, and it is not recorded in ``defaults``. What it raises
         propagates, so a caller can stop the reading (nothing is kept).
+    mapper : callable, optional
+        ``mapper(fn, items) -> results`` in the order of ``items``, e.g. a Dask client's
+        ``map`` then ``gather``: the files are then read, and the passes run, as tasks (one per
+        file for the first look, one per group of files joined by their traces after), and only
+        descriptions, trigger lists and the kept windows come back. The files must be readable
+        at the same paths where the tasks run. Not a reading choice: the result is identical.
 
     Returns
     -------
@@ -158,20 +165,19 @@ def read_corpus(
     )
     files, skipped = expand_paths(paths)
     report = _Reporter(progress, len(files))
+    whole = opts["windowing"] == "whole"
+    csv_rate = opts["csv_sampling_rate_hz"]
     digest = hashlib.sha256()
     seconds = 0.0
-
-    def file_read(done, raw):
-        nonlocal seconds
-        if raw is not None:
-            seconds += raw.data.size / raw.sampling_rate_hz
-            return
+    summaries = []
+    work = [partial(stream.summarize_file, path, fmt, csv_rate) for path, fmt in files]
+    for done, summary in enumerate(map(_call, work) if mapper is None else mapper(_call, work), 1):
         _hash_file(files[done - 1][0], digest)
+        seconds += sum(bt.n / bt.sampling_rate_hz for block in summary for bt in block)
+        summaries.append(summary)
         report(files_read=done, hours_read=seconds / 3600.0)
-
-    whole = opts["windowing"] == "whole"
-    read = {"csv_rate": opts["csv_sampling_rate_hz"], "components": opts["components"]}
-    found = stream.scan(files, whole=whole, on_file=file_read, **read)
+    found = stream.join(files, summaries, components=opts["components"], whole=whole)
+    del summaries
     if opts["components"] is not None and not found.segments and not found.rejections:
         raise CorpusError(
             f"components={opts['components']!r}: no trace has orientation code(s) "
@@ -183,10 +189,6 @@ def read_corpus(
     preprocess.check_rates(segments, rate, rate_how)
     sos = preprocess.bandpass_sos(opts["bandpass_hz"], rate) if opts["bandpass_hz"] is not None else None
     layouts = {s.index: stream.Layout.of(s, rate) for s in segments}
-
-    def read_pieces():
-        return stream.pieces(files, segments, rate, sos, **read)
-
     defaults = {
         "windowing": opts["windowing"],
         "sampling_rate_hz": rate,
@@ -203,17 +205,19 @@ def read_corpus(
         "max_windows": opts["max_windows"],
         "seed": opts["seed"],
     }
-    stage = _StageCounter(report, len(segments))
+    passes = _Passes(files, found, rate, sos, csv_rate, _StageCounter(report, len(segments)), mapper)
     if whole:
-        plans = placement.whole_windows(segments, layouts, read_pieces, opts, defaults, stage)
+        plans = placement.whole_windows(segments, layouts, passes, opts, defaults)
     else:
-        plans = placement.scan_windows(segments, layouts, read_pieces, files, opts, defaults, stage)
-    sample = cutting.WindowSample(opts["max_windows"], opts["seed"])
-    stage.begin("cutting")
-    rejected = cutting.cut_windows(read_pieces(), plans, sample, opts["windowing"], _iso,
-                                   on_segment=lambda seg: stage.done(windows_found=sample.found))
+        plans = placement.scan_windows(segments, layouts, passes, files, opts, defaults)
+    sample, rejected = passes.cut(plans, opts)
+    rejected += sample.duplicate_records.items()
     return _assemble(sample, segments, files, skipped, digest.hexdigest(), rate, opts, defaults,
                      found.rejections + [r for _, r in sorted(rejected, key=lambda item: item[0])])
+
+
+def _call(task):
+    return task()
 
 
 class _StageCounter:
@@ -225,12 +229,66 @@ class _StageCounter:
     def begin(self, stage: str) -> None:
         self.stage, self.count = stage, 0
 
-    def done(self, **more) -> None:
-        self.count += 1
+    def done(self, segments: int = 1, **more) -> None:
+        self.count += segments
         self.report(stage=self.stage, segments_done=self.count, segments_total=self.total, **more)
 
 
-# --- options and files --------------------------------------------------------------------------
+class _Passes:
+    """Runs the passes over the processed pieces: here as one stream over every file (progress
+    after each segment), or with a ``mapper`` one task per :func:`stream.groups` group, whose
+    results are merged (progress after each group)."""
+
+    def __init__(self, files, scan, rate, sos, csv_rate, stage: _StageCounter, mapper):
+        self.files, self.scan, self.stage, self.mapper = files, scan, stage, mapper
+        self.reading = {"rate_hz": rate, "sos": sos, "csv_rate": csv_rate, "assignment": scan.assignment}
+        self.groups = stream.groups(files, scan) if mapper is not None else None
+
+    def run(self, stage: str | None, fn, merge, **options):
+        """``fn(pieces, **options, on_segment=…)`` over the corpus, results merged by ``merge``."""
+        if stage is not None:
+            self.stage.begin(stage)
+        if self.mapper is None:
+            pieces = stream.pieces(self.files, self.scan.segments, **self.reading)
+            return fn(pieces, **options, on_segment=self.stage.done if stage is not None else None)
+        task = partial(_group_pass, fn, self.reading, options)
+        results = []
+        for group, result in zip(self.groups, self.mapper(task, self.groups), strict=True):
+            results.append(result)
+            if stage is not None:
+                self.stage.done(len(group.segments))
+        return merge(results)
+
+    def cut(self, plans: dict, opts: dict):
+        """The cutting pass: (``cutting.WindowSample`` of the kept windows, window rejections).
+        On a cluster in two rounds: every accepted window's record comes back and the sample is
+        drawn here, then only the kept windows' samples are cut and sent."""
+        sample = cutting.WindowSample(opts["max_windows"], opts["seed"])
+        common = {"mode": opts["windowing"], "seed": opts["seed"]}
+        if self.mapper is None:
+            self.stage.begin("cutting")
+            return cutting.cut_windows(stream.pieces(self.files, self.scan.segments, **self.reading), plans=plans,
+                                       collector=sample, **common,
+                                       on_segment=lambda: self.stage.done(windows_found=sample.found))
+        rejected = []
+        for candidates, group_rejected in self.run("cutting", cutting.cut_windows, list, plans=plans,
+                                                   collector=cutting.Candidates(False), **common):
+            for item in candidates.items:
+                sample.offer(*item)
+            rejected += group_rejected
+        kept = {f.order: f for f in sample.kept()}
+        wanted = {index: [p for p in plan if (index, p.start) in kept] for index, plan in plans.items()}
+        for candidates, _ in self.run(None, cutting.cut_windows, list, plans=wanted,
+                                      collector=cutting.Candidates(True), **common):
+            for found, _, _ in candidates.items:
+                kept[found.order].window = found.window
+        return sample, rejected
+
+
+def _group_pass(fn, reading: dict, options: dict, group: stream.Group):
+    """One cluster task: ``fn`` over the pieces of one group's files."""
+    return fn(stream.pieces(group.files, group.segments, **reading), **options)
+
 
 def _validate_options(**o) -> dict:
     o["windowing"] = o["windowing"] or "bursts"
@@ -368,12 +426,6 @@ def _describe(files) -> str:
     return f"{len(files)} files ({files[0][0]}, …)"
 
 
-def _iso(ts: float | None) -> str | None:
-    if ts is None:
-        return None
-    return datetime.fromtimestamp(ts, tz=UTC).isoformat(timespec="microseconds").replace("+00:00", "Z")
-
-
 def _assemble(sample, segments, files, skipped, source_hash, fs, opts, defaults, rejections) -> Corpus:
     kept = sample.kept()
     if not kept:
@@ -389,7 +441,7 @@ def _assemble(sample, segments, files, skipped, source_hash, fs, opts, defaults,
     traces = []
     for s in segments:
         entry = {"file": s.file, "trace_id": s.trace_id, "sampling_rate_hz": s.native_rate_hz,
-                 "start": _iso(s.start), "duration_s": round(s.n_raw / s.native_rate_hz, 6),
+                 "start": cutting.iso(s.start), "duration_s": round(s.n_raw / s.native_rate_hz, 6),
                  "windows": per_segment[s.index]}
         spanned = s.files()
         if len(spanned) > 1:

@@ -44,7 +44,7 @@ def _stream_key(seg) -> int:
     return int.from_bytes(hashlib.sha256(name.encode()).digest()[:8], "little")
 
 
-def whole_windows(segments, layouts, read_pieces, opts, defaults, stage) -> dict:
+def whole_windows(segments, layouts, passes, opts, defaults) -> dict:
     """Each segment is one window; longer ones are cut around their energy peak."""
     fs = defaults["sampling_rate_hz"]
     lengths = [layouts[s.index].n for s in segments]
@@ -55,14 +55,8 @@ def whole_windows(segments, layouts, read_pieces, opts, defaults, stage) -> dict
     else:
         n, how = int(np.median(lengths)), "median trace length"
     defaults.update(window_samples=n, window_s=n / fs, window_source=how, pre_trigger=opts["pre_trigger"])
-    peaks = {s.index: windowing.EnergyPeak(max(1, n // 16)) for s in segments if layouts[s.index].n > n}
-    stage.begin("preprocessing")
-    for piece in read_pieces():
-        peak = peaks.get(piece.segment.index)
-        if peak is not None:
-            peak.feed(piece.samples)
-        if piece.last:
-            stage.done()
+    longer = frozenset(s.index for s in segments if layouts[s.index].n > n)
+    peaks = passes.run("preprocessing", energy_peaks, _union, width=max(1, n // 16), indices=longer)
     plans = {}
     for seg in segments:
         size = layouts[seg.index].n
@@ -71,22 +65,16 @@ def whole_windows(segments, layouts, read_pieces, opts, defaults, stage) -> dict
             continue
         start = 0
         if size > n:
-            top = peaks[seg.index].argmax - n // 32
+            top = peaks[seg.index] - n // 32
             start = int(min(max(top - opts["pre_trigger"] * n, 0), size - n))
         plans[seg.index] = [Placement(start, n, 1)]
     return plans
 
 
-def scan_windows(segments, layouts, read_pieces, files, opts, defaults, stage) -> dict:
+def scan_windows(segments, layouts, passes, files, opts, defaults) -> dict:
     """Burst or sliding windows; defaults for STA/LTA and window length come from the data."""
     fs = defaults["sampling_rate_hz"]
-    survey = SpectrumSurvey(fs)
-    stage.begin("preprocessing")
-    for piece in read_pieces():
-        survey.add(piece.samples, _stream_key(piece.segment), piece.start // FRAME)
-        if piece.last:
-            stage.done()
-    f_dom, info = survey.result()
+    f_dom, info = passes.run("preprocessing", spectrum_survey, _merged, fs=fs).result()
     source = "transient excess spectrum"
     if f_dom is None:
         f_dom, source = fs * FALLBACK_FRACTION_OF_FS, "fallback fs/8 (no transient stands out)"
@@ -126,7 +114,14 @@ def scan_windows(segments, layouts, read_pieces, files, opts, defaults, stage) -
         trigger_band = [round(f_dom / TRIGGER_BAND_FACTOR, 3), round(min(f_dom * TRIGGER_BAND_FACTOR, 0.4 * fs), 3)]
     defaults["trigger_band_hz"] = trigger_band
     trigger_sos = preprocess.bandpass_sos(trigger_band, fs) if trigger_band else None
-    onsets = _trigger_pass(segments, layouts, read_pieces, trigger_sos, opts, nsta, nlta, stage)
+    found = passes.run("triggering", trigger_intervals, _union, sos=trigger_sos, kind=opts["trigger"],
+                       nsta=nsta, nlta=nlta, on=opts["trigger_on"], off=opts["trigger_off"],
+                       indices=frozenset(s.index for s in segments if layouts[s.index].n > nlta))
+    onsets = {}
+    for seg in segments:
+        o = found.get(seg.index, np.empty((0, 2), dtype=np.int64))
+        g, size = layouts[seg.index].taper, layouts[seg.index].n
+        onsets[seg.index] = o[(o[:, 0] >= g) & (o[:, 0] < size - g)]  # in the taper: the ramp, not a burst
     n_triggers = int(sum(len(o) for o in onsets.values()))
     defaults["triggers"] = n_triggers
     if n_triggers == 0:
@@ -163,29 +158,62 @@ def scan_windows(segments, layouts, read_pieces, files, opts, defaults, stage) -
     return plans
 
 
-def _trigger_pass(segments, layouts, read_pieces, trigger_sos, opts, nsta, nlta, stage) -> dict:
-    """Trigger (on, off) intervals of every segment, output samples, shape (K, 2) each; STA/LTA
-    and the trigger state run on from piece to piece, so they equal one pass over the segment."""
-    onsets = {s.index: [] for s in segments}
-    running = {s.index: (windowing.StreamingStaLta(opts["trigger"], nsta, nlta),
-                         windowing.TriggerTracker(opts["trigger_on"], opts["trigger_off"]))
-               for s in segments if layouts[s.index].n > nlta}
-    stage.begin("triggering")
-    for piece in read_pieces():
+# --- passes: each takes the pieces (of the whole corpus, or of one group on a cluster worker) ---
+
+def spectrum_survey(pieces, *, fs: float, on_segment=None) -> SpectrumSurvey:
+    """The spectrum survey of the pieces' processed samples (mergeable)."""
+    survey = SpectrumSurvey(fs)
+    for piece in pieces:
+        survey.add(piece.samples, _stream_key(piece.segment), piece.start // FRAME)
+        if piece.last and on_segment is not None:
+            on_segment()
+    return survey
+
+
+def energy_peaks(pieces, *, width: int, indices: frozenset, on_segment=None) -> dict:
+    """Segment index → output sample of the first maximum of the trailing ``width``-sample energy
+    (``windowing.EnergyPeak``), for the segments in ``indices``."""
+    peaks = {}
+    for piece in pieces:
         index = piece.segment.index
-        if index in running:
+        if index in indices:
+            peaks.setdefault(index, windowing.EnergyPeak(width)).feed(piece.samples)
+        if piece.last and on_segment is not None:
+            on_segment()
+    return {index: peak.argmax for index, peak in peaks.items()}
+
+
+def trigger_intervals(pieces, *, sos, kind: str, nsta: int, nlta: int, on: float, off: float,
+                      indices: frozenset, on_segment=None) -> dict:
+    """Segment index → trigger (on, off) intervals, output samples, shape (K, 2), for the segments
+    in ``indices``: STA/LTA and the trigger state run on from piece to piece, so they equal one pass
+    over the segment; the trigger band's zero-phase filter runs over each piece's extended range."""
+    running, onsets = {}, {}
+    for piece in pieces:
+        index = piece.segment.index
+        if index in indices:
+            if index not in running:
+                running[index] = (windowing.StreamingStaLta(kind, nsta, nlta), windowing.TriggerTracker(on, off))
+                onsets[index] = []
             sta_lta, tracker = running[index]
-            x = piece.samples if trigger_sos is None else preprocess.zero_phase(trigger_sos, piece.extended)[piece.core]
+            x = piece.samples if sos is None else preprocess.zero_phase(sos, piece.extended)[piece.core]
             onsets[index].append(tracker.feed(sta_lta(x)))
             if piece.last:
                 onsets[index].append(tracker.close())
-        if piece.last:
-            stage.done()
+        if piece.last and on_segment is not None:
+            on_segment()
+    return {index: np.concatenate(parts) for index, parts in onsets.items()}
+
+
+def _union(results) -> dict:
     out = {}
-    for seg in segments:
-        layout = layouts[seg.index]
-        o = np.concatenate(onsets[seg.index]) if onsets[seg.index] else np.empty((0, 2), dtype=np.int64)
-        # a trigger inside the taper is the ramp itself, not a burst
-        g = layout.taper
-        out[seg.index] = o[(o[:, 0] >= g) & (o[:, 0] < layout.n - g)]
+    for r in results:
+        out.update(r)
     return out
+
+
+def _merged(surveys) -> SpectrumSurvey:
+    first, *rest = surveys
+    for other in rest:
+        first.merge(other)
+    return first

@@ -1,9 +1,11 @@
 """The reader's streams: files → joined traces → finite segments → processed pieces, a bounded
 number of samples at a time.
 
-A corpus is read in passes. :func:`scan` reads every file once and returns the segment table (each
-contiguous, finite run of a trace: where it lies, its rate and length) without processing anything.
-:func:`pieces` reads the files again and yields each segment's processed samples as
+A corpus is read in passes. :func:`summarize_file` reads a file once and describes its blocks'
+traces without keeping samples; :func:`join` joins those descriptions into traces and returns the
+segment table (each contiguous, finite run of a trace: where it lies, its rate and length) and
+where each block's samples go. :func:`groups` splits the corpus into sets of files that can be read
+apart (one cluster task each). :func:`pieces` reads the files again and yields each segment's processed samples as
 :class:`Piece` objects of at most about ``PIECE_SAMPLES`` native samples (the core) processed with
 ``MARGIN_SAMPLES`` of the neighbouring samples on each side (the overlap that the detrend, the
 polyphase resampler and the zero-phase filters need), so memory stays flat whatever the length of
@@ -116,65 +118,59 @@ class SegmentInfo:
         return sorted({self.file_at(0), self.file_at(self.n_raw - 1)} | inside)
 
 
+@dataclass(frozen=True)
+class BlockTrace:
+    """One trace of one read block of a file as the scan sees it: no samples, only its SEED id,
+    native rate, start (POSIX s or None), sample kind, length, runs of finite samples (half-open,
+    block indices) and orientation code."""
+
+    trace_id: str
+    sampling_rate_hz: float
+    start: float | None
+    kind: str
+    n: int
+    runs: tuple
+    orientation: str
+
+
+def summarize_file(path: str, fmt: str, csv_rate) -> list[list[BlockTrace]]:
+    """The :class:`BlockTrace` of every trace of every read block of one file (a cluster task:
+    the samples stay where the file is read)."""
+    return [[BlockTrace(raw.trace_id, raw.sampling_rate_hz, raw.start, raw.data.dtype.kind, raw.data.size,
+                        tuple(preprocess.finite_runs(raw.data)), raw.orientation) for raw in block]
+            for block in iter_waveform_chunks(path, fmt, csv_sampling_rate_hz=csv_rate)]
+
+
 @dataclass
 class Scan:
-    """What :func:`scan` found: the segments in corpus order, the non-finite spans as rejections
+    """What :func:`join` found: the segments in corpus order, the non-finite spans as rejections
     (traces in order, then time; with ``windowing='whole'`` a trace holding any is rejected
-    whole), and the orientation codes met (for the error when ``components`` matches none)."""
+    whole), the orientation codes met (for the error when ``components`` matches none), and
+    ``assignment``: (file, block, trace in block) → (trace serial, first sample in the trace,
+    samples), how later passes route what they read."""
 
     segments: list[SegmentInfo]
     rejections: list[dict]
     orientations: set
+    assignment: dict
 
 
-def _joined(files, csv_rate, components, on_file=None):
-    """Yield ('data', trace, first sample, samples) for each block read and ('close', trace) when a
-    trace ends, joining blocks that continue one another (hourly files, read blocks)."""
-    open_ends: dict[tuple, TraceInfo] = {}
-    serial = 0
-    for done, (path, fmt) in enumerate(files, 1):
-        for block in iter_waveform_chunks(path, fmt, csv_sampling_rate_hz=csv_rate):
-            for raw in block:
-                if components is not None and raw.orientation not in components:
-                    if on_file is not None:
-                        on_file(None, raw)
-                    continue
-                kind = raw.data.dtype.kind
-                key = (raw.trace_id, raw.sampling_rate_hz)
-                trace = open_ends.get(key)
-                if trace is None or not trace.continues(raw.trace_id, raw.sampling_rate_hz, raw.start, kind):
-                    if trace is not None:
-                        yield "close", trace, 0, None
-                    trace = TraceInfo(serial, raw.trace_id, raw.sampling_rate_hz, raw.start, kind)
-                    serial += 1
-                    open_ends[key] = trace
-                if not trace.parts or trace.parts[-1][1] != path:
-                    trace.parts.append((trace.n, path))
-                first = trace.n
-                trace.n += raw.data.size
-                if on_file is not None:
-                    on_file(None, raw)
-                yield "data", trace, first, raw.data
-        if on_file is not None:
-            on_file(done, None)
-    for trace in sorted(open_ends.values(), key=lambda t: t.serial):
-        yield "close", trace, 0, None
+def join(files, summaries, *, components, whole: bool) -> Scan:
+    """Join the files' block traces into traces and list the segments: runs of finite samples.
 
-
-def scan(files, *, csv_rate, components, whole: bool, on_file=None) -> Scan:
-    """Read every file once and list the segments: runs of finite samples of each joined trace.
-
-    A run of NaN/Inf samples splits its trace and is a rejection ('non-finite', "trace split
-    there"); with ``whole`` a trace holding any is rejected entire. ``on_file(files_done, raw)``
-    is called after each trace block read (files_done None) and after each file (raw None).
+    ``summaries[i]`` is :func:`summarize_file` of ``files[i]``. A block trace continues the open
+    trace of its SEED id and rate when it starts within half a sample of its end (hourly files,
+    read blocks). A run of NaN/Inf samples splits its trace and is a rejection ('non-finite',
+    "trace split there"); with ``whole`` a trace holding any is rejected entire.
     """
-    runs: dict[int, list] = {}       # trace serial -> [(first, n)]
+    traces: list[TraceInfo] = []
+    open_ends: dict[tuple, TraceInfo] = {}
+    runs: dict[int, list] = {}       # trace serial -> [(first, n)] finite runs
     nan_runs: dict[int, list] = {}   # trace serial -> [(first, n)]
-    state: dict[int, list] = {}      # trace serial -> [segment start or None, NaN start or None]
-    traces: dict[int, TraceInfo] = {}
-    orientations = set()
+    state: dict[int, list] = {}      # trace serial -> [run start or None, NaN start or None]
+    assignment, orientations = {}, set()
 
-    def close_run(serial, stop):
+    def close(serial, stop):
         seg_start, nan_start = state[serial]
         if seg_start is not None:
             runs[serial].append((seg_start, stop - seg_start))
@@ -182,57 +178,103 @@ def scan(files, *, csv_rate, components, whole: bool, on_file=None) -> Scan:
             nan_runs[serial].append((nan_start, stop - nan_start))
         state[serial] = [None, None]
 
-    def seen(done, raw):
-        if raw is not None:
-            orientations.add(raw.orientation or "none")
-        if on_file is not None:
-            on_file(done, raw)
+    for (path, _), blocks in zip(files, summaries, strict=True):
+        for b, block in enumerate(blocks):
+            for i, bt in enumerate(block):
+                orientations.add(bt.orientation or "none")
+                if components is not None and bt.orientation not in components:
+                    continue
+                key = (bt.trace_id, bt.sampling_rate_hz)
+                trace = open_ends.get(key)
+                if trace is None or not trace.continues(bt.trace_id, bt.sampling_rate_hz, bt.start, bt.kind):
+                    if trace is not None:
+                        close(trace.serial, trace.n)
+                    trace = TraceInfo(len(traces), bt.trace_id, bt.sampling_rate_hz, bt.start, bt.kind)
+                    traces.append(trace)
+                    open_ends[key] = trace
+                    runs[trace.serial], nan_runs[trace.serial], state[trace.serial] = [], [], [None, None]
+                if not trace.parts or trace.parts[-1][1] != path:
+                    trace.parts.append((trace.n, path))
+                first = trace.n
+                trace.n += bt.n
+                assignment[(path, b, i)] = (trace.serial, first, bt.n)
+                _follow_runs(state[trace.serial], runs[trace.serial], nan_runs[trace.serial], first, bt)
+    for trace in open_ends.values():
+        close(trace.serial, trace.n)
 
-    for what, trace, first, data in _joined(files, csv_rate, components, seen):
-        serial = trace.serial
-        if what == "close":
-            close_run(serial, trace.n)
+    segments, rejections = [], []
+    for trace in sorted(traces, key=lambda t: t.order):
+        fs = trace.sampling_rate_hz
+        if whole and nan_runs[trace.serial]:
+            bad = sum(n for _, n in nan_runs[trace.serial])
+            rejections.append(rejection(trace.file, trace.trace_id, 0.0, "non-finite", f"{bad} NaN/Inf samples"))
             continue
-        if serial not in traces:
-            traces[serial], runs[serial], nan_runs[serial], state[serial] = trace, [], [], [None, None]
-        st = state[serial]
-        pos = first
-        for a, b in preprocess.finite_runs(data):
-            a, b = first + a, first + b
-            if a > pos:  # non-finite samples before this run
-                if st[0] is not None:
-                    runs[serial].append((st[0], pos - st[0]))
-                    st[0] = None
-                if st[1] is None:
-                    st[1] = pos
-            if st[1] is not None:
-                nan_runs[serial].append((st[1], a - st[1]))
-                st[1] = None
-            if st[0] is None:
-                st[0] = a
-            pos = b
-        if pos < first + data.size:
+        for first, n in nan_runs[trace.serial]:
+            rejections.append(rejection(trace.file_at(first), trace.trace_id, first / fs, "non-finite",
+                                        f"{n} NaN/Inf samples; trace split there"))
+        segments += [SegmentInfo(trace, first, n) for first, n in runs[trace.serial]]
+    for i, seg in enumerate(segments):
+        seg.index = i
+    return Scan(segments, rejections, orientations, assignment)
+
+
+def _follow_runs(st: list, runs: list, nan_runs: list, first: int, bt: BlockTrace) -> None:
+    """Extend a trace's finite runs and NaN runs by one block trace starting at sample ``first``;
+    ``st`` = [open run start or None, open NaN start or None] carries across blocks."""
+    pos = first
+    for a, b in bt.runs:
+        a, b = first + a, first + b
+        if a > pos:  # non-finite samples before this run
             if st[0] is not None:
-                runs[serial].append((st[0], pos - st[0]))
+                runs.append((st[0], pos - st[0]))
                 st[0] = None
             if st[1] is None:
                 st[1] = pos
+        if st[1] is not None:
+            nan_runs.append((st[1], a - st[1]))
+            st[1] = None
+        if st[0] is None:
+            st[0] = a
+        pos = b
+    if pos < first + bt.n:
+        if st[0] is not None:
+            runs.append((st[0], pos - st[0]))
+            st[0] = None
+        if st[1] is None:
+            st[1] = pos
 
-    segments, rejections = [], []
-    for serial in sorted(traces, key=lambda s: traces[s].order):
-        trace = traces[serial]
-        fs = trace.sampling_rate_hz
-        if whole and nan_runs[serial]:
-            bad = sum(n for _, n in nan_runs[serial])
-            rejections.append(rejection(trace.file, trace.trace_id, 0.0, "non-finite", f"{bad} NaN/Inf samples"))
-            continue
-        for first, n in nan_runs[serial]:
-            rejections.append(rejection(trace.file_at(first), trace.trace_id, first / fs, "non-finite",
-                                        f"{n} NaN/Inf samples; trace split there"))
-        segments += [SegmentInfo(trace, first, n) for first, n in runs[serial]]
-    for i, seg in enumerate(segments):
-        seg.index = i
-    return Scan(segments, rejections, orientations)
+
+@dataclass(frozen=True)
+class Group:
+    """Files and segments that can be read apart from the rest: every file holding a sample of
+    one of its segments' traces, and those segments (a cluster task reads one group)."""
+
+    files: tuple
+    segments: tuple
+
+
+def groups(files, scan: Scan) -> list[Group]:
+    """The corpus split into :class:`Group` s: files joined by the traces they share (connected
+    components), in the order of their first segment."""
+    parent = {path: path for path, _ in files}
+
+    def root(p):
+        while parent[p] != p:
+            parent[p] = parent[parent[p]]
+            p = parent[p]
+        return p
+
+    for seg in scan.segments:
+        names = [f for _, f in seg.trace.parts]
+        for other in names[1:]:
+            parent[root(other)] = root(names[0])
+    members: dict[str, list] = {}
+    for seg in scan.segments:
+        members.setdefault(root(seg.trace.file), []).append(seg)
+    out = []
+    for top, segs in members.items():
+        out.append(Group(tuple((p, fmt) for p, fmt in files if root(p) == top), tuple(segs)))
+    return out
 
 
 def rejection(file, trace_id, offset_s, reason, detail) -> dict:
@@ -374,34 +416,47 @@ class _Builder:
             self.k += 1
 
 
-def pieces(files, segments: list[SegmentInfo], rate_hz: float, sos, *, csv_rate, components):
-    """Read the files again and yield every segment's :class:`Piece` objects, each segment's in
-    order (segments interleave as their samples arrive). ``segments`` is :func:`scan`'s table for
-    the same files and options."""
+def pieces(files, segments, rate_hz: float, sos, *, csv_rate, assignment):
+    """Read ``files`` again and yield the :class:`Piece` objects of ``segments`` (each segment's in
+    order; segments interleave as their samples arrive). ``assignment`` is :func:`join`'s, for
+    the same files and options; ``files`` may be a :class:`Group`'s, read apart from the rest."""
     by_trace: dict[int, list[SegmentInfo]] = {}
     for seg in segments:
         by_trace.setdefault(seg.trace.serial, []).append(seg)
     builders: dict[int, _Builder] = {}
-    for what, trace, first, data in _joined(files, csv_rate, components):
-        if what == "close":
-            continue
-        end = first + data.size
-        for seg in by_trace.get(trace.serial, ()):
-            s0, s1 = seg.first_sample, seg.first_sample + seg.n_raw
-            if s1 <= first or s0 >= end:
-                continue
-            builder = builders.get(seg.index)
-            if builder is None:
-                builder = builders[seg.index] = _Builder(seg, Layout.of(seg, rate_hz))
-            builder.add(data[max(s0, first) - first: min(s1, end) - first])
-            for k, ext in builder.ready():
-                layout = builder.layout
-                x, core = process_piece(ext, layout, k, sos)
-                c0, c1 = layout.core_range(k)
-                e0 = layout.extended(k)[0]
-                yield Piece(seg, layout, k, x, core, layout.to_output(c0), ext[c0 - e0: c1 - e0], c0)
-            if builder.k == builder.layout.n_pieces:
-                del builders[seg.index]
+    for path, fmt in files:
+        for b, block in enumerate(iter_waveform_chunks(path, fmt, csv_sampling_rate_hz=csv_rate)):
+            for i, raw in enumerate(block):
+                where = assignment.get((path, b, i))
+                if where is None or where[0] not in by_trace:
+                    continue
+                serial, first, n = where
+                if raw.data.size != n:
+                    raise CorpusError(f"{path}: changed while being read ({raw.data.size} samples where the "
+                                      f"first look found {n})")
+                yield from _route(by_trace[serial], builders, first, raw.data, rate_hz, sos)
     if builders:
         missing = ", ".join(f"{b.seg.file} ({b.seg.trace_id})" for b in builders.values())
         raise CorpusError(f"{missing}: changed while being read (fewer samples than at the first look)")
+
+
+def _route(segments, builders, first, data, rate_hz, sos):
+    """Hand the samples of a trace from sample ``first`` on to the segments they fall in, and
+    yield each piece that becomes complete."""
+    end = first + data.size
+    for seg in segments:
+        s0, s1 = seg.first_sample, seg.first_sample + seg.n_raw
+        if s1 <= first or s0 >= end:
+            continue
+        builder = builders.get(seg.index)
+        if builder is None:
+            builder = builders[seg.index] = _Builder(seg, Layout.of(seg, rate_hz))
+        builder.add(data[max(s0, first) - first: min(s1, end) - first])
+        for k, ext in builder.ready():
+            layout = builder.layout
+            x, core = process_piece(ext, layout, k, sos)
+            c0, c1 = layout.core_range(k)
+            e0 = layout.extended(k)[0]
+            yield Piece(seg, layout, k, x, core, layout.to_output(c0), ext[c0 - e0: c1 - e0], c0)
+        if builder.k == builder.layout.n_pieces:
+            del builders[seg.index]

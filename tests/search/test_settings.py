@@ -90,10 +90,11 @@ def test_every_corpus_option_is_a_setting_for_read_corpus():
     from burstlens.search.corpus import read_corpus
     from burstlens.search.settings import CORPUS_KEYS, CORPUS_OPTIONS
 
-    # `progress` is the caller's callback, not a reading choice, so it is no corpus option
+    # `progress` (the caller's callback) and `mapper` (where the tasks run) are not reading
+    # choices, so they are no corpus options
     keywords = [p.name for p in inspect.signature(read_corpus).parameters.values()
-                if p.kind is inspect.Parameter.KEYWORD_ONLY and p.name != "progress"]
-    assert list(inspect.signature(read_corpus).parameters)[-1] == "progress"
+                if p.kind is inspect.Parameter.KEYWORD_ONLY and p.name not in ("progress", "mapper")]
+    assert list(inspect.signature(read_corpus).parameters)[-2:] == ["progress", "mapper"]
     assert list(CORPUS_OPTIONS) == list(CORPUS_KEYS) == keywords
     assert set(CORPUS_KEYS) <= set(SETTINGS_DEFAULTS)
     given = {"sta_s": 0.02, "lta_s": 0.4, "trigger_on": 4, "trigger_off": 1.2, "pre_trigger": 0.1,
