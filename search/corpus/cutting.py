@@ -115,43 +115,46 @@ class Candidates:
     def found(self) -> int:
         return len(self.items)
 
-    def offer(self, found: Found, digest: bytes, record: dict) -> None:
+    def offer(self, found: Found, digest: int) -> None:
         if not self.keep_samples:
             found.window = None
-        self.items.append((found, digest, record))
+        self.items.append((found, digest))
 
 
 class WindowSample:
     """The accepted windows' bottom-k sample, with the order-free duplicate rule: of windows with
-    the same native samples, the first in window order is kept and the others are 'duplicate'."""
+    the same native samples, the first in window order is kept and the others are 'duplicate'.
+
+    Memory: the kept windows (at most ``max_windows`` plus one per duplicate seen) and, per window
+    found, its 64-bit samples digest and order (about 150 B; two windows of different samples share
+    a digest with odds below 1e-7 for a million windows)."""
 
     def __init__(self, max_windows: int, seed: int):
         self.max_windows = max_windows
         self.seed = seed
         self.heap: list[tuple] = []        # (−key, order, Found) of the smallest keys
-        self.first_of: dict[bytes, tuple] = {}      # samples' digest -> (order, record) of the first
-        self.duplicate_records: dict[tuple, dict] = {}   # order -> rejection record
+        self.first_of: dict[int, tuple] = {}   # digest of the native samples -> order of the first
+        self.duplicates: set[tuple] = set()    # orders of the windows that repeat an earlier one
         self.accepted = 0
 
     @property
     def found(self) -> int:
-        return self.accepted - len(self.duplicate_records)
+        return self.accepted - len(self.duplicates)
 
-    def offer(self, found: Found, digest: bytes, record: dict) -> None:
-        """Take an accepted window; ``record`` is its rejection record should it be a duplicate."""
+    def offer(self, found: Found, digest: int) -> None:
+        """Take an accepted window; ``digest`` is a 64-bit hash of its native samples."""
         self.accepted += 1
         earlier = self.first_of.get(digest)
         if earlier is not None:
-            mine = (found.order, record)
-            loser = max(earlier, mine, key=lambda e: e[0])
-            self.duplicate_records[loser[0]] = loser[1]
-            self.first_of[digest] = min(earlier, mine, key=lambda e: e[0])
-            if loser is mine:
+            loser = max(earlier, found.order)
+            self.duplicates.add(loser)
+            self.first_of[digest] = min(earlier, found.order)
+            if loser == found.order:
                 return
         else:
-            self.first_of[digest] = (found.order, record)
+            self.first_of[digest] = found.order
         # room for every window that may still turn out a duplicate of a later-found one
-        capacity = self.max_windows + len(self.duplicate_records)
+        capacity = self.max_windows + len(self.duplicates)
         item = (-found.key, found.order, found)
         if len(self.heap) < capacity:
             heapq.heappush(self.heap, item)
@@ -160,7 +163,7 @@ class WindowSample:
 
     def kept(self) -> list[Found]:
         """The kept windows, in window order."""
-        alive = sorted((f for _, _, f in self.heap if f.order not in self.duplicate_records), key=lambda f: f.key)
+        alive = sorted((f for _, _, f in self.heap if f.order not in self.duplicates), key=lambda f: f.key)
         return sorted(alive[: self.max_windows], key=lambda f: f.order)
 
 
@@ -196,14 +199,25 @@ def cut_windows(pieces, *, plans: dict, mode: str, seed: int, collector, on_segm
             if mode == "bursts":
                 entry["triggers"] = p.triggers
             entry["trigger_offset_s"] = None if p.trigger is None else p.trigger / fs
-            digest = hashlib.sha1(raw.dtype.str.encode() + raw.tobytes()).digest()
-            collector.offer(Found((seg.index, p.start), window_key(seed, seg, p.start), window.copy(), entry), digest,
-                            rejection(file, seg.trace_id, offset, "duplicate", detail("duplicate")))
+            digest = int.from_bytes(hashlib.sha1(raw.dtype.str.encode() + raw.tobytes()).digest()[:8], "little")
+            collector.offer(Found((seg.index, p.start), window_key(seed, seg, p.start), window.copy(), entry), digest)
         if piece.last:
             del cutters[seg.index]
             if on_segment is not None:
                 on_segment()
     return collector, rejected
+
+
+def duplicate_rejections(sample: WindowSample, segments: list[SegmentInfo], rate_hz: float) -> list[tuple]:
+    """(order, record) of each window ``sample`` found to repeat an earlier one, its record made
+    from its place as the cutting pass makes it (kept as orders only: a few bytes per window)."""
+    out = []
+    for index, start in sorted(sample.duplicates):
+        seg = segments[index]
+        r0 = int(round(start * seg.native_rate_hz / rate_hz))
+        out.append(((index, start), rejection(seg.file_at(r0), seg.trace_id, seg.offset_s + start / rate_hz,
+                                              "duplicate", detail("duplicate"))))
+    return out
 
 
 def iso(ts: float | None) -> str | None:

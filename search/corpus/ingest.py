@@ -211,7 +211,7 @@ def read_corpus(
     else:
         plans = placement.scan_windows(segments, layouts, passes, files, opts, defaults)
     sample, rejected = passes.cut(plans, opts)
-    rejected += sample.duplicate_records.items()
+    rejected += cutting.duplicate_rejections(sample, segments, rate)
     return _assemble(sample, segments, files, skipped, digest.hexdigest(), rate, opts, defaults,
                      found.rejections + [r for _, r in sorted(rejected, key=lambda item: item[0])])
 
@@ -280,7 +280,7 @@ class _Passes:
         wanted = {index: [p for p in plan if (index, p.start) in kept] for index, plan in plans.items()}
         for candidates, _ in self.run(None, cutting.cut_windows, list, plans=wanted,
                                       collector=cutting.Candidates(True), **common):
-            for found, _, _ in candidates.items:
+            for found, _ in candidates.items:
                 kept[found.order].window = found.window
         return sample, rejected
 

@@ -147,8 +147,7 @@ def test_the_window_sample_is_uniform():
     for seed in range(4000):
         sample = cutting.WindowSample(10, seed)
         for start in range(40):
-            sample.offer(cutting.Found((0, start), cutting.window_key(seed, seg, start), np.zeros(1), {"start": start}),
-                         start.to_bytes(4, "little"), {})
+            sample.offer(cutting.Found((0, start), cutting.window_key(seed, seg, start), np.zeros(1), {}), start)
         kept = [f.order[1] for f in sample.kept()]
         assert len(kept) == 10 and kept == sorted(kept)
         counts[kept] += 1
@@ -164,10 +163,9 @@ def test_duplicates_are_judged_in_window_order_whatever_the_arrival():
     for arrival in ([0, 1, 2, 3], [3, 2, 1, 0]):
         sample = cutting.WindowSample(2, 0)
         for start in arrival:
-            digest = b"same" if start in (1, 3) else start.to_bytes(4, "little")
-            found = cutting.Found((0, start), cutting.window_key(0, seg, start), np.zeros(1), {})
-            sample.offer(found, digest, {"at": start})
-        assert sample.found == 3 and list(sample.duplicate_records) == [(0, 3)]
+            digest = 99 if start in (1, 3) else start
+            sample.offer(cutting.Found((0, start), cutting.window_key(0, seg, start), np.zeros(1), {}), digest)
+        assert sample.found == 3 and sample.duplicates == {(0, 3)}
         assert len(sample.kept()) == 2 and (0, 3) not in [f.order for f in sample.kept()]
 
 
