@@ -22,6 +22,8 @@ def register(subparsers) -> None:
     p.add_argument("--json", action="store_true", help="print the corpus summary as JSON")
     p.add_argument("--all", action="store_true", help="list every window and rejection, not the first 20")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--jobs", dest="reading_jobs", type=int, default=1, metavar="N",
+                   help="processes reading the files (default 1; -1: every core); the result is the same")
     p.set_defaults(func=run)
 
 
@@ -29,7 +31,8 @@ def run(args) -> int:
     from burstlens.service.commands.options import corpus_options_from_args
 
     try:
-        corpus = read_with_progress(args.paths, corpus_options_from_args(args), quiet=args.quiet)
+        corpus = read_with_progress(args.paths, corpus_options_from_args(args), quiet=args.quiet,
+                                    jobs=args.reading_jobs)
     except ValueError as exc:  # a bad option, or a CorpusError (a ValueError) naming the file
         print(f"burstlens inspect: {exc}", file=sys.stderr)
         return 2
@@ -43,20 +46,33 @@ def run(args) -> int:
     return 0
 
 
-def read_with_progress(paths, options: dict, *, quiet: bool = False):
+def read_with_progress(paths, options: dict, *, quiet: bool = False, jobs: int | None = 1):
     """The corpus as ``search.settings.read_corpus_as_given(paths, options)`` reads it, with a
     tqdm bar on stderr unless ``quiet``: the reader's stage and its count (files, then segments),
     and after it the files read, hours of data (summed over traces) and, once cutting, the
     windows found before the ``max_windows`` cap. The bar is closed before this returns or raises;
-    errors are the reader's."""
+    errors are the reader's. ``jobs`` other than 1 reads on that many local processes (joblib;
+    -1: every core): one task per file, then per group of files joined by their traces, with the
+    same result."""
     from burstlens.search.settings import read_corpus_as_given
 
     bar = None if quiet else _ReadingBar()
     try:
-        return read_corpus_as_given(paths, options, progress=None if bar is None else bar.show)
+        return read_corpus_as_given(paths, options, progress=None if bar is None else bar.show,
+                                    mapper=None if jobs in (None, 0, 1) else _on_processes(jobs))
     finally:
         if bar is not None:
             bar.close()
+
+
+def _on_processes(jobs: int):
+    """``read_corpus``'s ``mapper`` on ``jobs`` local processes: results in item order, handed
+    over as they come (so the bar moves)."""
+    from joblib import Parallel, delayed
+
+    def mapper(fn, items):
+        return Parallel(n_jobs=jobs, return_as="generator")(delayed(fn)(item) for item in items)
+    return mapper
 
 
 class _ReadingBar:

@@ -130,7 +130,7 @@ JOB_FLAGS = (
         "help": "largest share of the image's absolute mass that may be negative (0 to 1, "
                 f"default {SETTINGS_DEFAULTS['max_negative_share']:g})"}),
     JobFlag("--jobs", "jobs", {"type": int, "help": "parallel evaluations on the worker "
-                                                    "(capped there)"}),
+                                                    "(capped there); tune also reads on this many processes"}),
 )
 
 

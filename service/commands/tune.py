@@ -90,7 +90,7 @@ def run(args: argparse.Namespace) -> int:
     if missing:
         return fail(f"{missing[0]}: no such file or folder")
     try:
-        corpus = read_with_progress(args.paths, corpus_options, quiet=args.quiet)
+        corpus = read_with_progress(args.paths, corpus_options, quiet=args.quiet, jobs=args.jobs)
     except (CorpusError, ValueError, OSError) as exc:
         return fail(str(exc))
 

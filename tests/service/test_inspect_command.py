@@ -35,6 +35,16 @@ def test_inspect_json_matches_the_corpus_summary(capsys):
     assert summary["defaults"]["components"] == "Z"
 
 
+def test_inspect_reads_on_two_processes_with_the_same_result(capsys):
+    """`inspect --jobs 2` reads the demo's five stations on two local processes (one task per
+    file, then per station's files) and prints the same JSON summary as one process: same windows
+    hash, defaults, records. Source: the reader's contract (a mapper changes nothing)."""
+    assert main(["inspect", DEMO, "--json", "--quiet"]) == 0
+    one = capsys.readouterr().out
+    assert main(["inspect", DEMO, "--json", "--quiet", "--jobs", "2"]) == 0
+    assert capsys.readouterr().out == one
+
+
 def test_inspect_bad_input_exits_2_with_the_message(tmp_path, capsys):
     """A CorpusError is printed on stderr, naming the file and the cause, with exit code 2."""
     junk = tmp_path / "junk.dat"
