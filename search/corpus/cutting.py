@@ -94,11 +94,9 @@ class _SegmentCutter:
 
 def window_key(seed: int, seg: SegmentInfo, start: int) -> int:
     """The 64-bit sampling key of the window at output sample ``start`` of ``seg``: a hash of the
-    seed and of where the window lies (SEED id, rate, the trace's start time or, for untimed
-    traces, its file, the segment's first sample, the start), never of the order things arrive."""
-    trace = seg.trace
-    where = f"{trace.trace_id}|{trace.sampling_rate_hz!r}|{trace.start!r}|" \
-            f"{trace.file if trace.start is None else ''}|{seg.first_sample}|{start}"
+    seed and of where the window lies (``SegmentInfo.place`` and the start), never of the order
+    things arrive."""
+    where = f"{seg.place}|{start}"
     seed_bytes = int(seed).to_bytes(8, "little", signed=True)
     return int.from_bytes(hashlib.sha256(seed_bytes + where.encode()).digest()[:8], "little")
 

@@ -184,7 +184,7 @@ def read_corpus(
             f"{''.join(sorted(opts['components']))} (codes found: {', '.join(sorted(found.orientations))})")
     segments = found.segments
     if not segments:
-        raise CorpusError(f"{_describe(files)}: zero usable windows: every trace is non-finite")
+        raise CorpusError(f"{stream.describe(files)}: zero usable windows: every trace is non-finite")
     rate, rate_how = preprocess.choose_rate([s.native_rate_hz for s in segments], opts["sampling_rate_hz"])
     preprocess.check_rates(segments, rate, rate_how)
     sos = preprocess.bandpass_sos(opts["bandpass_hz"], rate) if opts["bandpass_hz"] is not None else None
@@ -420,12 +420,6 @@ def _hash_file(path: str, digest) -> None:
             digest.update(block)
 
 
-def _describe(files) -> str:
-    if len(files) == 1:
-        return files[0][0]
-    return f"{len(files)} files ({files[0][0]}, …)"
-
-
 def _assemble(sample, segments, files, skipped, source_hash, fs, opts, defaults, rejections) -> Corpus:
     kept = sample.kept()
     if not kept:
@@ -433,7 +427,7 @@ def _assemble(sample, segments, files, skipped, source_hash, fs, opts, defaults,
         for r in rejections:
             counts[r["reason"]] = counts.get(r["reason"], 0) + 1
         why = ", ".join(f"{k} {v}" for k, v in sorted(counts.items())) or "none placed"
-        raise CorpusError(f"{_describe(files)}: zero usable windows: every window was rejected ({why})")
+        raise CorpusError(f"{stream.describe(files)}: zero usable windows: every window was rejected ({why})")
     per_segment = dict.fromkeys(range(len(segments)), 0)
     for f in kept:
         per_segment[f.order[0]] += 1

@@ -15,7 +15,7 @@ import numpy as np
 from burstlens.search.corpus import preprocess, windowing
 from burstlens.search.corpus.cutting import Placement
 from burstlens.search.corpus.model import CorpusError
-from burstlens.search.corpus.stream import FRAME
+from burstlens.search.corpus.stream import FRAME, describe
 from burstlens.search.corpus.survey import SpectrumSurvey
 
 STA_PERIODS = 4.0          # STA ≈ a few dominant periods (Trnkoczy 2012)
@@ -36,12 +36,9 @@ def given_window(window_s: float, fs: float) -> int:
 
 
 def _stream_key(seg) -> int:
-    """A stable integer naming a segment for the spectrum survey's noise sample: the same however
-    its trace was split into files (the file name counts only for traces without a start time)."""
-    trace = seg.trace
-    name = f"{trace.trace_id}|{trace.sampling_rate_hz!r}|{trace.start!r}|" \
-           f"{trace.file if trace.start is None else ''}|{seg.first_sample}"
-    return int.from_bytes(hashlib.sha256(name.encode()).digest()[:8], "little")
+    """A stable integer naming a segment for the spectrum survey's noise sample (from
+    ``SegmentInfo.place``: the same however its trace was split into files)."""
+    return int.from_bytes(hashlib.sha256(seg.place.encode()).digest()[:8], "little")
 
 
 def whole_windows(segments, layouts, passes, opts, defaults) -> dict:
@@ -125,9 +122,8 @@ def scan_windows(segments, layouts, passes, files, opts, defaults) -> dict:
     n_triggers = int(sum(len(o) for o in onsets.values()))
     defaults["triggers"] = n_triggers
     if n_triggers == 0:
-        described = files[0][0] if len(files) == 1 else f"{len(files)} files ({files[0][0]}, …)"
         raise CorpusError(
-            f"{described}: zero usable windows: no triggers above {opts['trigger_on']:g} in "
+            f"{describe(files)}: zero usable windows: no triggers above {opts['trigger_on']:g} in "
             f"{len(segments)} traces (STA {nsta / fs:g} s, LTA {nlta / fs:g} s); "
             "try windowing='whole' or 'sliding', or a lower trigger_on"
         )

@@ -107,6 +107,15 @@ class SegmentInfo:
     def file(self) -> str:
         return self.file_at(0)
 
+    @property
+    def place(self) -> str:
+        """Where the segment lies, the same however its trace was split into files or read
+        blocks: SEED id, rate, the trace's start time (for untimed traces, its file) and the
+        segment's first sample. Seeds the sampling keys (never the order things arrive)."""
+        trace = self.trace
+        return (f"{trace.trace_id}|{trace.sampling_rate_hz!r}|{trace.start!r}|"
+                f"{trace.file if trace.start is None else ''}|{self.first_sample}")
+
     def file_at(self, raw_index: int) -> str:
         """The file holding native sample ``raw_index`` of this segment."""
         return self.trace.file_at(self.first_sample + raw_index)
@@ -275,6 +284,13 @@ def groups(files, scan: Scan) -> list[Group]:
     for top, segs in members.items():
         out.append(Group(tuple((p, fmt) for p, fmt in files if root(p) == top), tuple(segs)))
     return out
+
+
+def describe(files) -> str:
+    """The files read, for an error message: the file, or how many and the first."""
+    if len(files) == 1:
+        return files[0][0]
+    return f"{len(files)} files ({files[0][0]}, …)"
 
 
 def rejection(file, trace_id, offset_s, reason, detail) -> dict:
