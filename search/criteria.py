@@ -53,6 +53,8 @@ from scipy.stats import trim_mean
 
 from burstlens.search.settings import CRITERIA, REDUCERS, SPARSITY_MEASURES
 
+# the criteria that score one image (the search's "detection" scores a corpus: search.fit.detect)
+IMAGE_CRITERIA = tuple(c for c in CRITERIA if c != "detection")
 TRIM_FRACTION = 0.1  # cut from each side by reduce_scores(how="trimmed")
 
 # Rows scored per block: the float64 working copy stays near 2 MB (cache-sized, and bounded
@@ -130,11 +132,35 @@ def _signed_power(p: np.ndarray, alpha: float) -> np.ndarray:
     return np.sign(p) * np.abs(p) ** alpha
 
 
-def _row_stats(x: np.ndarray, w, terms) -> np.ndarray:
-    """The four sums of :meth:`Criterion.row_stats`, (..., 4); column Q is NaN without ``terms``."""
+def _row_stats(x: np.ndarray, w, terms, scored=None) -> np.ndarray:
+    """The four sums of :meth:`Criterion.row_stats`, (..., 4); column Q is NaN without ``terms``.
+
+    ``scored``: the values the criterion scores when they are not the image itself (the burst
+    excess, :func:`burst_excess`); columns Q and TOTAL then sum them, L1 and NEGATIVE still sum
+    the image ``x`` (the positivity ceiling judges the representation, not the excess)."""
+    scored = x if scored is None else scored
     q = np.full(x.shape[:-1], np.nan) if terms is None else _weighted_sum(terms, w)
-    return np.stack([q, _weighted_sum(x, w), _weighted_sum(np.abs(x), w),
+    return np.stack([q, _weighted_sum(scored, w), _weighted_sum(np.abs(x), w),
                      _weighted_sum(np.maximum(-x, 0.0), w)], axis=-1)
+
+
+def burst_excess(images) -> np.ndarray:
+    """Each row's excess over its own level over time: ``max(S − median_n S, 0)``, float64.
+
+    ``images`` (..., C, N): rows along the last axis (one channel of one window, N time
+    samples). A site's steady sound — a line, a fan, the coloured background — has the same
+    level all through a window, so its time median is its floor, and a burst, which fills a
+    small part of the window, leaves the median nearly where the noise puts it (a median is
+    robust to a minority of outliers; common practice). What remains is the burst's energy
+    over the floor. For stationary Gaussian noise the value of a spectrogram at each point is
+    exponentially distributed with the smoothed spectrum as its mean whatever the window
+    (from memory: the χ² law of periodogram values with 2 degrees of freedom, D. B. Percival,
+    A. T. Walden, "Spectral Analysis for Physical Applications", 1993, ch. 6), so the noise's
+    share of the excess has the same distribution per unit area of the plane for every
+    spectrogram window: its bias does not favour one window over another.
+    """
+    x = np.asarray(images, dtype=np.float64)
+    return np.maximum(x - np.median(x, axis=-1, keepdims=True), 0.0)
 
 
 def _positive_mass(totals: np.ndarray) -> np.ndarray:
@@ -370,6 +396,11 @@ class Criterion:
         Sparsity measure.
     negative_mass_penalty : float ≥ 0
         λ; adds ``λ · Σ|p⁻|/Σ|p|`` (:func:`negative_mass_fraction`) to every score.
+    excess : bool
+        Score each row's excess over its own level over time (:func:`burst_excess`) instead of
+        the image: the bursts, not the site's steady sound. Rows are the last axis of a
+        ``(M, C, N)`` stack (one channel of one window). The positivity ceiling and the
+        penalty still see the image itself.
 
     :meth:`score` takes ``cell_size`` (s·Hz per cell, e.g. :func:`cell_sizes`): Rényi and
     concentration values are then on the continuous plane, comparable across grids; Hoyer's
@@ -388,14 +419,18 @@ class Criterion:
     p: float = 2.0
     measure: str = "gini"
     negative_mass_penalty: float = 0.0
+    excess: bool = False
 
     def __post_init__(self):
         self.validate()
 
     def validate(self) -> Criterion:
         """Raise ``ValueError`` naming the field and the value if any field is out of range."""
-        if self.name not in CRITERIA:
-            raise ValueError(f"criterion name must be one of {', '.join(CRITERIA)}; got {self.name!r}")
+        if self.name not in IMAGE_CRITERIA:
+            raise ValueError(f"criterion name must be one of {', '.join(IMAGE_CRITERIA)}; got "
+                             f"{self.name!r}" + (" (the detection criterion scores a corpus, not "
+                                                 "an image: a search setting)"
+                                                 if self.name == "detection" else ""))
         if self.measure not in SPARSITY_MEASURES:
             raise ValueError(
                 f"measure must be one of {', '.join(SPARSITY_MEASURES)}; got {self.measure!r}")
@@ -405,6 +440,8 @@ class Criterion:
         if isinstance(lam, bool) or not isinstance(lam, (int, float, np.integer, np.floating)) \
                 or not (np.isfinite(lam) and lam >= 0):
             raise ValueError(f"negative_mass_penalty must be a finite number >= 0, got {lam!r}")
+        if not isinstance(self.excess, (bool, np.bool_)):
+            raise ValueError(f"excess must be true or false, got {self.excess!r}")
         return self
 
     # -- the core: statistics of rows, and their totals reduced to a score ------------------
@@ -432,7 +469,8 @@ class Criterion:
         """Sufficient statistics of each row (the last axis) of ``rows``: shape (..., 4) float64.
 
         Columns ``Q``, ``TOTAL``, ``L1``, ``NEGATIVE``: Σ w·q(S), Σ w·S, Σ w·|S| and
-        Σ w·max(−S, 0), with ``cell_size`` w the cell areas along the row (s·Hz, shape (K,);
+        Σ w·max(−S, 0) (with :attr:`excess`, Q and TOTAL of the row's burst excess), with
+        ``cell_size`` w the cell areas along the row (s·Hz, shape (K,);
         None: every cell counts 1) and q the criterion's own term: S^α for Rényi (odd integer α
         keeps the sign, non-integer α takes sign(S)·|S|^α), S·log2|S| at α = 1, |S|^{1/p} for
         concentration, S² for Hoyer's measure, none (NaN) for the Gini index. The statistics of
@@ -440,7 +478,8 @@ class Criterion:
         row, each multiplied by its channel's cell area, and sums them over channels.
         """
         x = np.asarray(rows, dtype=np.float64)
-        return _row_stats(x, cell_size, self._terms(x))
+        scored = burst_excess(x) if self.excess else x
+        return _row_stats(x, cell_size, self._terms(scored), scored)
 
     def scores_from_totals(self, totals, n_cells: int, mean_cell: float = 1.0) -> np.ndarray:
         """Scores, shape (...,) float64, of images from their statistics totals (..., 4).
@@ -483,7 +522,9 @@ class Criterion:
                 root_k = math.sqrt(n_cells)
                 l2 = np.sqrt(q)
                 valid &= (l2 > 0) & np.isfinite(l2)
-                ratio = totals[..., L1] / np.where(l2 > 0, l2, 1.0) / math.sqrt(mean_cell)
+                # the excess is non-negative: its L1 norm is its total
+                l1 = totals[..., TOTAL] if self.excess else totals[..., L1]
+                ratio = l1 / np.where(l2 > 0, l2, 1.0) / math.sqrt(mean_cell)
                 h = -(root_k - ratio) / (root_k - 1.0)
             return self._finish(h, totals, valid)
 
@@ -495,16 +536,18 @@ class Criterion:
             h = h + lam * totals[..., NEGATIVE] / np.where(l1 > 0, l1, 1.0)
         return np.where(valid & np.isfinite(h), h, np.inf)
 
-    def _score_rows(self, x: np.ndarray, w=None) -> np.ndarray:
-        """Scores (M,) of whole images, one per row of x (M, K); w (K,) cell areas or None."""
+    def _score_rows(self, x: np.ndarray, w=None, scored=None) -> np.ndarray:
+        """Scores (M,) of whole images, one per row of x (M, K); w (K,) cell areas or None;
+        ``scored`` (M, K) the burst excess of x when :attr:`excess` (else x is scored)."""
+        values = x if scored is None else scored
         if not self.separable:
-            stats = _row_stats(x, w, None)
-            return self._finish(-_gini_rows(x), stats, _positive_mass(stats))
+            stats = _row_stats(x, w, None, values)
+            return self._finish(-_gini_rows(values), stats, _positive_mass(stats))
         if self.name == "sparsity" and w is not None:
             # Hoyer's measure sees cell areas relative to their mean: dividing them here (mean 1)
             # gives the value of dividing the totals by √mean later
             w = w / np.mean(w)
-        return self.scores_from_totals(self.row_stats(x, w), x.shape[1])
+        return self.scores_from_totals(_row_stats(x, w, self._terms(values), values), x.shape[1])
 
     # -- scoring images ----------------------------------------------------------------------
 
@@ -535,15 +578,20 @@ class Criterion:
         out = np.empty(m, dtype=np.float64)
         for start in range(0, m, rows):  # blocks of windows, not one window at a time
             block = flat[start:start + rows].astype(np.float64, copy=False)
+            scored = None
+            if self.excess:   # per (window, channel) row, before the image is flattened
+                part = x[start:start + rows]
+                scored = burst_excess(part).reshape(part.shape[0], -1)
             with _quiet():
-                out[start:start + rows] = self._score_rows(block, w)
+                out[start:start + rows] = self._score_rows(block, w, scored)
         return out
 
     def to_json(self) -> dict:
-        """``{"name", "alpha", "p", "measure", "negative_mass_penalty"}`` (JSON-ready)."""
+        """``{"name", "alpha", "p", "measure", "negative_mass_penalty", "excess"}`` (JSON-ready)."""
         d = asdict(self)
         for key in ("alpha", "p", "negative_mass_penalty"):
             d[key] = float(d[key])
+        d["excess"] = bool(d["excess"])
         return d
 
     @classmethod
@@ -551,7 +599,8 @@ class Criterion:
         """Inverse of :meth:`to_json`; missing keys take the defaults, unknown keys are an error."""
         if not isinstance(obj, dict):
             raise ValueError(f"criterion must be a JSON object, got {type(obj).__name__}")
-        unknown = sorted(set(obj) - {"name", "alpha", "p", "measure", "negative_mass_penalty"})
+        unknown = sorted(set(obj) - {"name", "alpha", "p", "measure", "negative_mass_penalty",
+                                     "excess"})
         if unknown:
             raise ValueError(f"unknown criterion field(s): {', '.join(unknown)}")
         return cls(**obj)

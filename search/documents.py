@@ -4,7 +4,7 @@ Every writer (``burstlens tune``, the service's worker) and every reader (the tr
 command, the report, the result routes) goes through this module, so they agree on the keys.
 
 - :class:`FilterbankDocument`: ``filterbank.json``, ``format`` "burstlens-filterbank",
-  ``version`` 2 (DESIGN §8). Top level: ``sampling_rate_hz``, what the engine recorded
+  ``version`` 3 (DESIGN §8). Top level: ``sampling_rate_hz``, ``steady_lines_hz``, what the engine recorded
   (``window_samples``, ``criterion``, ``objective``, ``gain_bits``, ``judged_on``,
   ``corpus_hash``, ``settings`` as the engine resolved them, ``burstlens_version``), from the
   service ``job`` {``id``, ``settings`` as submitted}, and ``channels``. Version 1 files are read
@@ -114,13 +114,14 @@ class FilterbankDocument:
     # -- the filterbank ---------------------------------------------------------------------
     @cached_property
     def filterbank(self) -> Filterbank:
-        """The channels as a :class:`Filterbank` (versions 2 and 1; ``ValueError`` naming the
+        """The channels as a :class:`Filterbank` (versions 3, 2 and 1; ``ValueError`` naming the
         field when the file is not a filterbank)."""
         return Filterbank.from_json(self.data)
 
     @property
     def version(self):
-        """The file's format version as written (2, or 1 for files read with converted signs)."""
+        """The file's format version as written (3; 2 without steady lines, or 1 for files read
+        with converted signs)."""
         return self.data.get("version")
 
     @property

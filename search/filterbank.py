@@ -23,9 +23,15 @@ of the amplitude h, 4·√(ln 2)·σ_t ≈ 3.33·σ_t; ``gaussian_std_ms`` = √
 A spectrogram with a Gaussian window is the WVD smoothed by the window's own WVD (L. Cohen,
 Time-Frequency Analysis, 1995); its cell area is exactly 1 (de Bruijn 1967; Janssen 1984).
 
-JSON ``version`` 2. Version 1 files wrote the kernel in lag coordinates u = t − t′, so their
-β and ρ had the opposite sign (a channel with β matched arrivals sweeping at −β);
-:meth:`Filterbank.from_json` still reads them, negating both and noting it in the provenance.
+A filterbank also carries the site's steady lines (``steady_lines_hz``: mains hum, pumps,
+fans), found in the tuning corpus: :func:`search.transform.transform` removes them from every
+window before the kernels see it (``search.noise``), so new data is transformed as the
+tuning scored it.
+
+JSON ``version`` 3 (the steady lines); version 2 files have none and load with none. Version 1
+files wrote the kernel in lag coordinates u = t − t′, so their β and ρ had the opposite sign (a
+channel with β matched arrivals sweeping at −β); :meth:`Filterbank.from_json` still reads them,
+negating both and noting it in the provenance.
 """
 from __future__ import annotations
 
@@ -36,7 +42,9 @@ from dataclasses import dataclass
 import numpy as np
 
 FORMAT = "burstlens-filterbank"
-VERSION = 2
+VERSION = 3
+# Version 2 is version 3 without steady lines.
+_NO_LINES_VERSION = 2
 # Version 1 stored chirp_hz_per_s and correlation with the opposite sign (see the docstring).
 _NEGATED_CHIRP_VERSION = 1
 _CONVERSION_NOTE = ("Converted on load from filterbank file version 1, whose chirp_hz_per_s and "
@@ -217,11 +225,22 @@ class Filterbank:
     ``channels``: iterable of :class:`Channel`; ``sampling_rate_hz``: fs, Hz. ``provenance`` is an
     optional dict of facts about how the filterbank was obtained (e.g. ``window_samples``,
     ``criterion``, ``objective``) carried through :meth:`to_json` / :meth:`from_json`.
-    Array properties have shape (C,). Filterbanks are immutable, hashable and compare by value.
+    ``steady_lines_hz``: the site's steady lines, Hz, each in (0, fs/2), removed from windows
+    before the transform (module docstring). Array properties have shape (C,). Filterbanks are
+    immutable, hashable and compare by value.
     """
 
-    def __init__(self, channels: Iterable[Channel], sampling_rate_hz: float, *, provenance=None):
+    def __init__(self, channels: Iterable[Channel], sampling_rate_hz: float, *, provenance=None,
+                 steady_lines_hz: Iterable[float] = ()):
         fs = _check_sampling_rate(sampling_rate_hz)
+        lines = []
+        for index, f in enumerate(steady_lines_hz):
+            f = _finite(f"steady_lines_hz[{index}]", f)
+            if not 0 < f < fs / 2:
+                raise ValueError(f"steady_lines_hz[{index}]: {f!r} Hz is outside (0, fs/2) = "
+                                 f"(0, {fs / 2:g}) Hz")
+            lines.append(f)
+        self._lines = tuple(sorted(lines))
         channels = tuple(channels)
         if not channels:
             raise ValueError("channels: a filterbank needs at least one channel")
@@ -251,6 +270,11 @@ class Filterbank:
     def provenance(self) -> dict:
         return dict(self._provenance)
 
+    @property
+    def steady_lines_hz(self) -> tuple[float, ...]:
+        """The site's steady lines (Hz, ascending) removed before the transform; () for none."""
+        return self._lines
+
     def __len__(self) -> int:
         return len(self._channels)
 
@@ -261,8 +285,8 @@ class Filterbank:
         return self._channels[index]
 
     def key(self) -> tuple:
-        """Hashable value identity: (fs, ((f_c, σ_t, a, β), ...))."""
-        return (self._fs, tuple(c.astuple() for c in self._channels))
+        """Hashable value identity: (fs, ((f_c, σ_t, a, β), ...), steady lines)."""
+        return (self._fs, tuple(c.astuple() for c in self._channels), self._lines)
 
     def __eq__(self, other) -> bool:
         return isinstance(other, Filterbank) and self.key() == other.key()
@@ -277,7 +301,8 @@ class Filterbank:
         """A copy with channel ``index`` replaced (used by per-channel refinement)."""
         channels = list(self._channels)
         channels[index] = channel
-        return Filterbank(channels, self._fs, provenance=self._provenance)
+        return Filterbank(channels, self._fs, provenance=self._provenance,
+                          steady_lines_hz=self._lines)
 
     # -- arrays (C,) -----------------------------------------------------------------------
     @property
@@ -368,18 +393,19 @@ class Filterbank:
 
     # -- JSON ------------------------------------------------------------------------------
     def to_json(self, **provenance) -> dict:
-        """JSON-ready dict: ``format`` "burstlens-filterbank", ``version`` 2,
-        ``sampling_rate_hz``, the provenance (stored facts updated by the keywords, e.g.
-        ``window_samples``, ``criterion``, ``objective``), and ``channels`` (see
+        """JSON-ready dict: ``format`` "burstlens-filterbank", ``version`` 3,
+        ``sampling_rate_hz``, ``steady_lines_hz``, the provenance (stored facts updated by the
+        keywords, e.g. ``window_samples``, ``criterion``, ``objective``), and ``channels`` (see
         :meth:`Channel.to_json`)."""
         facts = {**self._provenance, **provenance}
-        reserved = {"format", "version", "sampling_rate_hz", "channels"} & set(facts)
+        reserved = {"format", "version", "sampling_rate_hz", "channels", "steady_lines_hz"} & set(facts)
         if reserved:
             raise ValueError(f"provenance may not set reserved field(s) {sorted(reserved)}")
         return {
             "format": FORMAT,
             "version": VERSION,
             "sampling_rate_hz": self._fs,
+            "steady_lines_hz": list(self._lines),
             **facts,
             "channels": [c.to_json() for c in self._channels],
         }
@@ -392,19 +418,21 @@ class Filterbank:
         ``chirp_hz_per_s`` (defaults 1 and 0) or ``freq_spread_hz`` / ``correlation``; when both
         are present they must agree. Errors name the field, e.g. ``channels[3].correlation``.
 
-        ``version`` 2, or 1: a version-1 file's ``chirp_hz_per_s`` and ``correlation`` are
-        negated on load (its sign convention was the opposite, see the module docstring), and the
-        provenance gets ``converted_from_version`` = 1 and ``conversion_note`` saying so.
+        ``version`` 3; 2 (no steady lines: loads with none); or 1: a version-1 file's
+        ``chirp_hz_per_s`` and ``correlation`` are negated on load (its sign convention was the
+        opposite, see the module docstring), and the provenance gets ``converted_from_version``
+        = 1 and ``conversion_note`` saying so.
         """
         if not isinstance(obj, Mapping):
             raise ValueError(f"filterbank JSON must be an object, got {type(obj).__name__}")
         if obj.get("format") != FORMAT:
             raise ValueError(f"format={obj.get('format')!r} is not {FORMAT!r}")
         version = obj.get("version")
-        if isinstance(version, bool) or version not in (VERSION, _NEGATED_CHIRP_VERSION):
+        if isinstance(version, bool) or version not in (VERSION, _NO_LINES_VERSION,
+                                                         _NEGATED_CHIRP_VERSION):
             raise ValueError(
-                f"version={version!r} is not supported (expected {VERSION}, or "
-                f"{_NEGATED_CHIRP_VERSION}, read with chirp signs negated)"
+                f"version={version!r} is not supported (expected {VERSION}, {_NO_LINES_VERSION} "
+                f"without steady lines, or {_NEGATED_CHIRP_VERSION}, read with chirp signs negated)"
             )
         negate = version == _NEGATED_CHIRP_VERSION
         if "sampling_rate_hz" not in obj:
@@ -423,14 +451,17 @@ class Filterbank:
                 channels.append(channel.validate(fs))
             except ValueError as exc:
                 raise ValueError(f"{where}.{exc}") from None
+        lines = obj.get("steady_lines_hz", []) if version == VERSION else []
+        if not isinstance(lines, Sequence) or isinstance(lines, (str, bytes)):
+            raise ValueError(f"steady_lines_hz must be a list of frequencies (Hz), got {lines!r}")
         provenance = {
             k: v for k, v in obj.items()
-            if k not in {"format", "version", "sampling_rate_hz", "channels"}
+            if k not in {"format", "version", "sampling_rate_hz", "channels", "steady_lines_hz"}
         }
         if negate:
             provenance["converted_from_version"] = _NEGATED_CHIRP_VERSION
             provenance["conversion_note"] = _CONVERSION_NOTE
-        return cls(channels, fs, provenance=provenance)
+        return cls(channels, fs, provenance=provenance, steady_lines_hz=lines)
 
 
 def _negate_chirp(item: Mapping, where: str) -> dict:

@@ -64,22 +64,27 @@ def aic_onset(energy) -> int:
     return int(k[np.argmin(aic)])
 
 
-def image_onsets(images, sampling_rate_hz: float) -> np.ndarray:
+def image_onsets(images, sampling_rate_hz: float | None = None, *, time_step_s: float | None = None,
+                 first_time_s: float = 0.0) -> np.ndarray:
     """Energy onset of each image, s from the window's first sample, shape (M,) float64.
 
-    ``images``: (M, C, N) energy densities (C channels, N samples at ``sampling_rate_hz`` Hz).
-    The channel sum, clipped at 0 (small negative values of a smoothed Wigner image are not
-    energy), is each window's energy against time; its onset is :func:`aic_onset` on the samples
-    from the start to the energy peak, inclusive (0 when the peak is at sample 0 or 1).
+    ``images``: (M, C, T) energy densities, C channels and T time columns, column n at
+    ``first_time_s + n·time_step_s`` s; give the column spacing either as ``sampling_rate_hz``
+    (Hz: one column per sample, ``time_step_s = 1/fs``) or as ``time_step_s`` (s: an image on a
+    coarser time grid), not both. The channel sum, clipped at 0 (small negative values of a
+    smoothed Wigner image are not energy), is each window's energy against time; its onset is
+    :func:`aic_onset` on the columns from the start to the energy peak, inclusive (column 0 when
+    the peak is at column 0 or 1).
     """
     images = np.asarray(images)
     if images.ndim != 3:
         raise ValueError(f"images must be (M, C, N), got shape {images.shape}")
-    fs = float(sampling_rate_hz)
-    if not (np.isfinite(fs) and fs > 0):
-        raise ValueError(f"sampling_rate_hz={sampling_rate_hz!r}: must be a positive number")
+    step = _time_step_s(sampling_rate_hz, time_step_s)
+    start = float(first_time_s)
+    if not np.isfinite(start):
+        raise ValueError(f"first_time_s={first_time_s!r}: must be a finite number")
     energy = np.clip(images.sum(axis=1, dtype=np.float64), 0.0, None)
-    onsets = np.zeros(energy.shape[0], dtype=np.float64)
+    columns = np.zeros(energy.shape[0], dtype=np.int64)
     for i, e in enumerate(energy):
         # AIC on the energy itself, up to its peak: the two-segment variance model then sees noise
         # then rise, whereas over the whole window the burst's end (back to noise) competes as the
@@ -87,8 +92,26 @@ def image_onsets(images, sampling_rate_hz: float) -> np.ndarray:
         # rise and give outliers at low SNR.
         peak = int(np.argmax(e))
         if peak >= 2:
-            onsets[i] = aic_onset(e[: peak + 1]) / fs
-    return onsets
+            columns[i] = aic_onset(e[: peak + 1])
+    if time_step_s is None:  # k / fs, as before the time step was a parameter (same bits)
+        return start + columns / float(sampling_rate_hz)
+    return start + columns * step
+
+
+def _time_step_s(sampling_rate_hz, time_step_s) -> float:
+    """Seconds between image columns from exactly one of ``sampling_rate_hz`` and ``time_step_s``."""
+    if (sampling_rate_hz is None) == (time_step_s is None):
+        raise ValueError("give exactly one of sampling_rate_hz and time_step_s for the image's time "
+                         f"grid, got sampling_rate_hz={sampling_rate_hz!r}, time_step_s={time_step_s!r}")
+    name, value = (("sampling_rate_hz", sampling_rate_hz) if time_step_s is None
+                   else ("time_step_s", time_step_s))
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        number = float("nan")
+    if not (np.isfinite(number) and number > 0):
+        raise ValueError(f"{name}={value!r}: must be a positive number")
+    return 1.0 / number if time_step_s is None else number
 
 
 def onset_errors_ms(images, trigger_offset_s, sampling_rate_hz: float) -> dict:

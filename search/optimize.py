@@ -34,6 +34,7 @@ from burstlens.search.fit import baselines, family, judge, refine
 from burstlens.search.fit.context import Cancelled, RunContext
 from burstlens.search.fit.evaluate import CHUNK
 from burstlens.search.fit.space import SearchSpace
+from burstlens.search.noise import site_lines
 from burstlens.search.settings import SETTINGS_DEFAULTS, resolve_search_options
 
 # the stages before the judgement, in order, by the state's phase name
@@ -48,7 +49,10 @@ class FilterbankSearch:
     ``criterion`` (name or dict: name, alpha, p, measure, negative_mass_penalty, reduce),
     ``cell_area`` ([min, max]), ``chirp``, ``refine``, ``evaluations`` (stage-1 budget: filterbanks
     scored on the subset), ``time_limit_s``, ``bootstrap`` (resamples; 0 for none), ``seed``,
-    ``n_jobs``, ``subset`` (windows in the stage-1 subset). Tuning knobs (recorded too):
+    ``n_jobs``, ``subset`` (windows in the stage-1 subset), ``compare_to`` (the user's own
+    spectrogram, e.g. ``"hann:256:128"``, scored in the scorecard: ``search.compare``), ``guard``
+    (True: fall back to the best spectrogram when the result detects or picks worse on the fit
+    windows, ``search.fit.judge.pipeline_guard``). Tuning knobs (recorded too):
     ``batch`` points per round, ``initial_points`` of the Latin-hypercube design (default
     2·dims + 2), ``stall_rounds``/``stall_tol``, ``refine_sweeps``, ``refine_maxiter`` (Brent
     iterations per coordinate), ``refine_min_share`` (channels whose mean share of the image mass
@@ -66,7 +70,7 @@ class FilterbankSearch:
                  stall_rounds=3, stall_tol=1e-3, refine_sweeps=1, refine_maxiter=2,
                  refine_min_share=0.1, smoothness=1.0, eps=1e-6,
                  max_negative_share=SETTINGS_DEFAULTS["max_negative_share"],
-                 held_out=SETTINGS_DEFAULTS["held_out"]):
+                 held_out=SETTINGS_DEFAULTS["held_out"], compare_to=None, guard=True):
         self.channels = channels
         self.band_hz = band_hz
         self.spacing = spacing
@@ -91,6 +95,8 @@ class FilterbankSearch:
         self.eps = eps
         self.max_negative_share = max_negative_share
         self.held_out = held_out
+        self.compare_to = compare_to
+        self.guard = guard
 
     # -- settings ---------------------------------------------------------------------------
 
@@ -101,7 +107,7 @@ class FilterbankSearch:
                 "evaluations": self.evaluations, "time_limit_s": self.time_limit_s,
                 "bootstrap": self.bootstrap, "seed": self.seed, "n_jobs": self.n_jobs,
                 "subset": self.subset, "max_negative_share": self.max_negative_share,
-                "held_out": self.held_out}
+                "held_out": self.held_out, "compare_to": self.compare_to, "guard": self.guard}
         windows = np.asarray(corpus.windows)
         if windows.ndim != 2 or windows.shape[0] < 1:
             raise ValueError(f"corpus.windows must be a non-empty (M, N) array, got shape {windows.shape}")
@@ -163,16 +169,18 @@ class FilterbankSearch:
         windows = np.asarray(corpus.windows)
         split = held_out_split(getattr(corpus, "window_meta", None), len(windows),
                                settings["window_s"], settings["held_out"], settings["seed"])
+        lines = site_lines(corpus)
         if settings["chirp"]:
-            # the bound is part of the search space: found on the fit windows only
+            # the bound is part of the search space: found on the fit windows only, without
+            # the site's steady lines
             from burstlens.search.sweeps import sweep_rate_bound
 
-            found = sweep_rate_bound(windows[split.fit], settings["sampling_rate_hz"],
-                                     settings["band_hz"])
+            fit = lines.remove(windows[split.fit], settings["sampling_rate_hz"])
+            found = sweep_rate_bound(fit, settings["sampling_rate_hz"], settings["band_hz"])
             settings.update(chirp_bound_hz_per_s=float(found["chirp_bound_hz_per_s"]),
                             chirp_bound_source=found["source"])
         ctx = RunContext(corpus, settings, SearchSpace.from_settings(settings), split, progress,
-                         checkpoint, should_stop)
+                         checkpoint, should_stop, lines)
         try:
             ctx.start(resume_from)
             self._run(ctx)

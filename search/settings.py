@@ -186,6 +186,9 @@ SETTINGS_DEFAULTS: dict = {
     "subset": 64,             # windows scoring the stage-1 family search
     "max_negative_share": 0.01,  # positivity ceiling: share of the image's absolute mass
     "held_out": 0.25,         # share of windows kept out of the fit and used to judge it
+    "compare_to": None,       # the user's own spectrogram, scored in the scorecard (search.compare)
+    "guard": True,            # fall back to the best spectrogram when the result detects or picks
+                              # worse on the fit windows (search.fit.judge.pipeline_guard)
     # corpus options: None leaves the choice to the reader (recorded in Corpus.defaults)
     **{name: None for name in CORPUS_OPTIONS if name != "seed"},
 }
@@ -193,12 +196,15 @@ SETTINGS_DEFAULTS: dict = {
 CORPUS_KEYS = tuple(CORPUS_OPTIONS)
 SEARCH_KEYS = ("channels", "band_hz", "spacing", "criterion", "cell_area", "chirp", "refine",
                "evaluations", "time_limit_s", "bootstrap", "seed", "jobs", "subset",
-               "max_negative_share", "held_out")
+               "max_negative_share", "held_out", "compare_to", "guard")
 MAX_HELD_OUT = 0.9
 
-CRITERIA = ("renyi", "concentration", "sparsity")
+# "detection" scores a corpus, not an image: the search's detection threshold (search.fit.detect)
+CRITERIA = ("renyi", "concentration", "sparsity", "detection")
+# ``excess``: the search scores each burst's excess over its rows' own level (the site's steady
+# sound removed, search.criteria.burst_excess); false scores whole windows
 CRITERION_DEFAULTS = {"name": "renyi", "alpha": 3.0, "p": 2.0, "measure": "gini",
-                      "negative_mass_penalty": 0.0, "reduce": "mean"}
+                      "negative_mass_penalty": 0.0, "reduce": "mean", "excess": True}
 SPARSITY_MEASURES = ("gini", "hoyer")
 REDUCERS = ("mean", "median", "trimmed")
 SPACINGS = ("log", "linear")
@@ -248,9 +254,12 @@ def _pair(name, value):
 def normalize_criterion(value) -> dict:
     """Criterion setting (a name or a dict) -> full dict with every field filled.
 
-    Fields: ``name`` (renyi | concentration | sparsity), ``alpha`` (Rényi order, > 0; 1 is the
+    Fields: ``name`` (renyi | concentration | sparsity | detection: the weakest burst an energy
+    detector on the image finds, search.fit.detect), ``alpha`` (Rényi order, > 0; 1 is the
     Shannon limit), ``p`` (Stanković's exponent, > 1), ``measure`` (gini | hoyer, for sparsity),
-    ``negative_mass_penalty`` (λ ≥ 0) and ``reduce`` (mean | median | trimmed: the corpus reducer).
+    ``negative_mass_penalty`` (λ ≥ 0), ``reduce`` (mean | median | trimmed: the corpus reducer)
+    and ``excess`` (true: score each burst's excess over the site's steady level, the default;
+    false: score whole windows).
     """
     if isinstance(value, str):
         value = {"name": value}
@@ -274,6 +283,7 @@ def normalize_criterion(value) -> dict:
                                          out["negative_mass_penalty"], nonnegative=True)
     if out["reduce"] not in REDUCERS:
         _fail("criterion.reduce", out["reduce"], f"choose one of {', '.join(REDUCERS)}")
+    out["excess"] = _bool("criterion.excess", out["excess"])
     return out
 
 
@@ -309,6 +319,7 @@ def validate_settings(settings: dict) -> dict:
         _fail("cell_area", out["cell_area"], f"the minimum {lo:g} is greater than the maximum {hi:g}")
     out["cell_area"] = [lo, hi]
     out["chirp"] = _bool("chirp", out["chirp"])
+    out["guard"] = _bool("guard", out["guard"])
     out["refine"] = _bool("refine", out["refine"])
     out["evaluations"] = _int("evaluations", out["evaluations"], minimum=1)
     if out["time_limit_s"] is not None:
@@ -324,6 +335,12 @@ def validate_settings(settings: dict) -> dict:
     if out["max_negative_share"] > 1:
         _fail("max_negative_share", out["max_negative_share"],
               "is a share of the image's absolute mass, at most 1")
+    if out["compare_to"] is not None:
+        from burstlens.search.compare import parse_compare_to
+
+        if not isinstance(out["compare_to"], str):
+            _fail("compare_to", out["compare_to"], "must be a window such as 'hann:256:128'")
+        out["compare_to"] = parse_compare_to(out["compare_to"]).text
     out["held_out"] = _real("held_out", out["held_out"], nonnegative=True)
     if out["held_out"] > MAX_HELD_OUT:
         _fail("held_out", out["held_out"], f"at most {MAX_HELD_OUT:g} of the windows can be held out "
@@ -406,6 +423,10 @@ def resolve_search_options(options: dict, sampling_rate_hz: float, window_sample
         raise ValueError(f"window length {window_samples} samples is too short for the search: "
                          f"the time-spread range [4/fs, window/6] = [{t_lo:g}, {t_hi:g}] s is empty "
                          f"(need at least 25 samples)")
+    if checked["compare_to"] is not None:
+        from burstlens.search.compare import parse_compare_to
+
+        parse_compare_to(checked["compare_to"]).check(window_samples, fs)
     checked["window_s"] = window_s
     checked["time_spread_bounds_s"] = [t_lo, t_hi]
     checked["chirp_bound_hz_per_s"] = (hi - lo) / window_s if checked["chirp"] else 0.0

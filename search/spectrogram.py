@@ -100,3 +100,31 @@ def grid_description(time_spread_s: float, sampling_rate_hz: float, n_samples: i
             "bin_hz": float(sampling_rate_hz) / nfft,
             "hop_samples": hop(time_spread_s, sampling_rate_hz),
             "grid": "FFT bins inside band_hz, time steps of hop_samples"}
+
+
+def spectrogram_representation(time_spread_s: float, sampling_rate_hz: float, band_hz,
+                               n_samples: int, eps: float = 1e-6, name: str = "spectrogram"):
+    """The plain Gaussian spectrogram of time spread σ_t as a scorecard
+    :class:`~search.representation.Representation`: the images and grid of
+    :func:`spectrogram_images` (FFT bins inside ``band_hz``, time steps of :func:`hop` samples,
+    column k centred on sample hop/2 + k·hop) for windows of ``n_samples`` samples."""
+    from burstlens.search.representation import Representation
+    from burstlens.search.wvd import analytic_signal
+
+    fs = float(sampling_rate_hz)
+    step = hop(time_spread_s, fs)
+    length, nfft = fft_size(time_spread_s, fs, n_samples, eps)
+    rows = np.flatnonzero((np.arange(nfft) * fs / nfft >= band_hz[0])
+                          & (np.arange(nfft) * fs / nfft <= band_hz[1]))
+
+    def images(windows):
+        z = analytic_signal(np.atleast_2d(np.asarray(windows, dtype=np.float64)))
+        return np.stack([image for image, _ in spectrogram_images(z, fs, time_spread_s,
+                                                                  band_hz, eps)])
+
+    return Representation(
+        name=name, images=images, time_step_s=step / fs,
+        cell_size=np.full((rows.size, 1), (step / fs) * (fs / nfft)),
+        first_time_s=(step // 2) / fs,
+        description={"kind": "Gaussian spectrogram", "time_spread_s": float(time_spread_s),
+                     **grid_description(time_spread_s, fs, n_samples, eps)})

@@ -109,7 +109,8 @@ def transform(windows, filterbank: Filterbank, *, eps: float = 1e-6, dtype=np.fl
     """Filterbank image of each window.
 
     windows: (M, N) real samples at ``filterbank.sampling_rate_hz``, one (N,) window, or the
-    result of :func:`prepare`. Returns (M, C, N) (or (C, N) for one 1-D window) of ``dtype``;
+    result of :func:`prepare` (not for a filterbank with steady lines: those are removed from
+    the samples first, ``search.noise.remove_lines``). Returns (M, C, N) (or (C, N) for one 1-D window) of ``dtype``;
     row c is S_c of the module docstring, one output sample per input sample. ``eps``: truncation
     level of the Gaussian tails. ``workers``: threads to use (default: the BLAS thread count in
     force — all CPUs, or 1 in a joblib worker); the lag products run on that many threads with
@@ -123,6 +124,13 @@ def transform(windows, filterbank: Filterbank, *, eps: float = 1e-6, dtype=np.fl
     if not isinstance(filterbank, Filterbank):
         raise ValueError(f"filterbank must be a Filterbank, got {type(filterbank).__name__}")
     truncation_width(eps)  # validates eps
+    if filterbank.steady_lines_hz:
+        if isinstance(windows, PreparedWindows):
+            raise ValueError("the filterbank removes steady lines from the samples: pass the "
+                             "windows themselves, not prepare()'s analytic signals")
+        from burstlens.search.noise import remove_lines
+
+        windows = remove_lines(windows, filterbank.sampling_rate_hz, filterbank.steady_lines_hz)
     prepared = prepare(windows)
     z = prepared.analytic
     n_windows, n_samples = z.shape

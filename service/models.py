@@ -24,13 +24,17 @@ class _Strict(BaseModel):
 class CriterionSettings(_Strict):
     """Sharpness criterion (lower is sharper)."""
 
-    name: Literal["renyi", "concentration", "sparsity"] | None = Field(
-        None, description="renyi (default), concentration (Stanković M_p) or sparsity.")
+    name: Literal["renyi", "concentration", "sparsity", "detection"] | None = Field(
+        None, description="renyi (default), concentration (Stanković M_p), sparsity, or "
+                          "detection (the weakest burst an energy detector on the image finds).")
     alpha: float | None = Field(None, gt=0, le=100, description="Rényi order α (default 3).")
     p: float | None = Field(None, gt=0, le=100, description="Concentration exponent p (default 2).")
     measure: Literal["gini", "hoyer"] | None = Field(None, description="Sparsity measure.")
     negative_mass_penalty: float | None = Field(
         None, ge=0, le=1e6, description="λ: adds λ·Σ|p⁻|/Σ|p| to the score.")
+    excess: bool | None = Field(
+        None, description="Score each burst's excess over the site's steady level (default "
+                          "true); false scores whole windows.")
 
     @field_validator("alpha")
     @classmethod
@@ -67,6 +71,9 @@ class _SearchSettings(_Strict):
         None, min_length=2, max_length=2,
         description="[min, max] cell area a (1 = Heisenberg minimum).")
     chirp: bool | None = Field(None, description="Search chirp rates (false: β = 0).")
+    guard: bool | None = Field(None, description="Fall back to the best plain spectrogram when "
+                                                 "the result detects or picks onsets worse on "
+                                                 "the fit windows (default true).")
     refine: bool | None = Field(None, description="Per-channel refinement stage.")
     evaluations: int | None = Field(None, ge=1, le=100_000, description="Evaluation budget.")
     time_limit_s: float | None = Field(None, gt=0, le=7 * 86400, description="Time budget, s.")
@@ -80,6 +87,19 @@ class _SearchSettings(_Strict):
                                       "negative (default 0.01).")
     jobs: int | None = Field(None, ge=1, le=256, description="Parallel evaluations (the worker "
                                                              "caps it at its cores).")
+    compare_to: str | None = Field(
+        None, max_length=64, description="Your own spectrogram, scored beside the result: "
+                                         "KIND:LENGTH[:OVERLAP] in samples, KIND hann or "
+                                         "gaussian, e.g. 'hann:256:192'.")
+
+    @field_validator("compare_to")
+    @classmethod
+    def _compare_to(cls, value):
+        if value is None:
+            return None
+        from burstlens.search.compare import parse_compare_to
+
+        return parse_compare_to(value).text
 
     @field_validator("band_hz")
     @classmethod
@@ -164,8 +184,11 @@ class JobView(BaseModel):
     created_at: float
     started_at: float | None = None
     finished_at: float | None = None
-    summary: dict[str, Any] | None = Field(None, description="objective, gain_bits, stop_reason "
-                                                             "once the job succeeded.")
+    summary: dict[str, Any] | None = Field(
+        None, description="Once the job succeeded: scorecard (the detection margin, onset "
+                          "fidelity and burst sharpness against the best plain spectrogram, in "
+                          "words), scorecard_rows (the same in numbers with paired intervals), "
+                          "objective, gain_bits, stop_reason, channels.")
 
     @classmethod
     def from_job(cls, job: dict[str, Any]) -> JobView:

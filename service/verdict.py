@@ -1,8 +1,12 @@
-"""What a person must read first about a tuned filterbank: the held-out gain and the warnings.
+"""What a person must read first about a tuned filterbank: the scorecard, the gain, the warnings.
 
 The search judges its result on windows the fit never saw (``diagnostics['judgement']``, DESIGN
-§8). ``gain_sentence`` states that gain in one line, ``gain_words`` says it in words for the
-report's headline, and ``warnings`` lists, as plain sentences, every reason to distrust it. The
+§8). ``scorecard_rows`` says, in three sentences, what the pipeline gains: how much weaker a
+burst the site's detector finds, how close the onsets stay to the waveform's, how much sharper
+the bursts are, each against the best plain spectrogram with its interval (and the user's own
+spectrogram when one was named). ``gain_sentence`` states the sharpness gain in one line,
+``gain_words`` says it in words for the report's headline, and ``warnings`` lists, as plain
+sentences, every reason to distrust it. The
 report page, ``burstlens tune``, ``burstlens submit`` and ``make demo`` all call these, so the
 rules live in one place. All accept
 diagnostics without a judgement (older files, cancelled runs) and never raise on missing or null
@@ -213,7 +217,7 @@ def warnings(diagnostics) -> list[str]:
                        "larger corpus or a larger held_out share.")
     gain = _mapping(judged.get("gain_bits"))
     estimate, high = _number(gain.get("estimate")), _number(gain.get("high"))
-    if estimate is not None and estimate < 0:
+    if estimate is not None and round(estimate, 2) < 0:
         surely = high is not None and high < 0
         out.append("The tuned filterbank is less sharp than the best plain spectrogram on windows "
                    "the fit never saw" + (" (the whole interval is below 0)" if surely else "")
@@ -225,6 +229,118 @@ def warnings(diagnostics) -> list[str]:
     return out
 
 
+def scorecard(diagnostics) -> Mapping | None:
+    """``diagnostics['judgement']['scorecard']`` when present (runs before it have none)."""
+    found = _mapping(judgement(diagnostics)).get("scorecard")
+    return found if isinstance(found, Mapping) else None
+
+
+def spectrogram_words(diagnostics) -> str:
+    """The best plain spectrogram as a user would set it up: its Gaussian window in samples
+    (``scipy.signal.windows.gaussian`` std and length) and milliseconds, e.g. "the plain
+    spectrogram with a Gaussian window of std 24 samples (6.1 ms), 183 samples long"."""
+    base = _mapping(_mapping(_mapping(diagnostics).get("baselines")).get("spectrogram"))
+    params = _mapping(base.get("parameters"))
+    sigma = _number(params.get("time_spread_s"))
+    fs = _number(_mapping(_mapping(diagnostics).get("settings")).get("sampling_rate_hz"))
+    if sigma is None:
+        return "the best plain spectrogram"
+    text = "the plain spectrogram with a Gaussian window of"
+    if fs is not None:
+        # |h|² has time std σ_t, so the window's own std is √2·σ_t (search.filterbank)
+        text += f" std {math.sqrt(2.0) * sigma * fs:.0f} samples"
+    text += f" ({1e3 * sigma:.2g} ms time spread)"
+    length = _count(params.get("window_samples"))
+    return text + (f", {length} samples long" if length is not None else "")
+
+
+def _row_interval(entry: Mapping, unit: str) -> tuple[str, bool]:
+    """(" [low, high] unit" or "", whether the interval includes zero)."""
+    low, high = _number(entry.get("low")), _number(entry.get("high"))
+    if low is None or high is None:
+        return "", False
+    return f" [{low:.2f}, {high:.2f}{unit}]", low <= 0.0 <= high
+
+
+def _detection_sentence(card: Mapping, name: str, who: str, spectrogram: str) -> str | None:
+    entry = _mapping(_mapping(_mapping(card.get("rows")).get("detection_db")).get(name))
+    estimate = _number(entry.get("estimate"))
+    if not entry:
+        return None
+    if estimate is None:
+        return f"{who}: the detection margin could not be measured (a threshold was never reached)"
+    interval, zero = _row_interval(entry, " dB")
+    if zero:
+        return (f"{who} finds the site's bursts no weaker and no stronger than the best plain "
+                f"spectrogram ({estimate:+.1f} dB,{interval}: the interval includes zero), so "
+                f"{spectrogram} serves as well for detection")
+    if estimate >= 0:
+        return (f"{who} finds the site's bursts {estimate:.1f} dB weaker than the best plain "
+                f"spectrogram{interval}")
+    return (f"{who} needs the site's bursts {-estimate:.1f} dB stronger than the best plain "
+            f"spectrogram does to find them{interval}")
+
+
+def _onset_sentence(card: Mapping, name: str, who: str) -> str | None:
+    reps = _mapping(card.get("representations"))
+    mine = _number(_mapping(reps.get(name)).get("onset_median_ms"))
+    theirs = _number(_mapping(reps.get("spectrogram")).get("onset_median_ms"))
+    entry = _mapping(_mapping(_mapping(card.get("rows")).get("onset_ms")).get(name))
+    if mine is None:
+        return None
+    text = (f"{who}: onsets within {mine:.1f} ms of the waveform's (median; best plain "
+            f"spectrogram {'?' if theirs is None else f'{theirs:.1f}'} ms)")
+    interval, zero = _row_interval(entry, " ms")
+    if interval:
+        text += f", difference{interval}" + (": the interval includes zero" if zero else "")
+    return text
+
+
+def _sharpness_sentence(card: Mapping, name: str, who: str) -> str | None:
+    entry = _mapping(_mapping(_mapping(card.get("rows")).get("sharpness_bits")).get(name))
+    estimate = _number(entry.get("estimate"))
+    if estimate is None:
+        return None
+    interval, zero = _row_interval(entry, " bit")
+    if round(estimate, 2) == 0:
+        words = "as sharp as the best plain spectrogram on the bursts"
+    else:
+        words = (f"{_bits(abs(estimate))} {'sharper' if estimate > 0 else 'less sharp'} than the "
+                 "best plain spectrogram on the bursts")
+    return f"{who}: {words}{interval}" + (" (the interval includes zero)" if zero else "")
+
+
+def scorecard_rows(diagnostics, result_sharpness: bool = True) -> list[str]:
+    """The scorecard in words, the result first and then the user's own spectrogram: the
+    detection margin, the onset fidelity and the burst sharpness, each against the best plain
+    spectrogram with its paired interval; an interval that includes zero is said plainly with
+    the spectrogram window that serves as well. Empty without a scorecard.
+    ``result_sharpness`` False leaves out the result's sharpness row (the report says it in
+    :func:`gain_words`)."""
+    card = scorecard(diagnostics)
+    if card is None:
+        return []
+    spectrogram = spectrogram_words(diagnostics)
+    out = []
+    compare = _mapping(_mapping(diagnostics).get("settings")).get("compare_to")
+    for name, who in (("result", "the tuned filterbank"),
+                      ("yours", f"your spectrogram ({compare})")):
+        if name not in _mapping(card.get("representations")):
+            continue
+        sharpness = _sharpness_sentence(card, name, who) \
+            if result_sharpness or name != "result" else None
+        for sentence in (_detection_sentence(card, name, who, spectrogram),
+                         _onset_sentence(card, name, who), sharpness):
+            if sentence:
+                out.append(sentence[0].upper() + sentence[1:])
+    if _mapping(card.get("rows")).get("detection_db") is None:
+        out.append("Detection margin: not measured (the corpus has no noise windows to inject "
+                   "the bursts into: 'whole' or 'sliding' windows, or no quiet stretch)")
+    return out
+
+
 def lines(diagnostics) -> list[str]:
-    """The gain sentence, then each warning prefixed ``warning: `` (the CLI's first lines)."""
-    return [gain_sentence(diagnostics)] + [f"warning: {w}" for w in warnings(diagnostics)]
+    """The scorecard rows (or, for runs without one, the gain sentence), then each warning
+    prefixed ``warning: `` (the CLI's first lines)."""
+    lead = scorecard_rows(diagnostics) or [gain_sentence(diagnostics)]
+    return lead + [f"warning: {w}" for w in warnings(diagnostics)]

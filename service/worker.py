@@ -409,7 +409,13 @@ class JobRun:
             except LeaseLost:
                 return "lost"
         self._write_report(folder, filterbank, diagnostics, corpus)
-        summary = {"objective": diagnostics.objective, "gain_bits": diagnostics.gain_bits,
+        from burstlens.service import verdict
+
+        # the scorecard leads: what a pipeline gains, in words and in numbers
+        card = verdict.scorecard(diagnostics.data) or {}
+        summary = {"scorecard": verdict.scorecard_rows(diagnostics.data),
+                   "scorecard_rows": card.get("rows"),
+                   "objective": diagnostics.objective, "gain_bits": diagnostics.gain_bits,
                    "stop_reason": diagnostics.stop_reason, "channels": len(filterbank.channels)}
         try:
             self.store.finish(job, "succeeded", stop_reason=diagnostics.stop_reason,

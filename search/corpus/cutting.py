@@ -8,13 +8,15 @@ likely to be kept, and the kept set depends neither on the order in which the pi
 how the files were split (common practice; the uniformity follows from the keys being i.i.d.
 uniform, as in Vitter, "Random sampling with a reservoir", ACM TOMS 11(1), 1985, for the
 order-free bottom-k form Cohen & Kaplan, "Summarizing data using bottom-k sketches", PODC 2007).
+Noise windows (``Placement.noise``) are cut in the same pass and sampled apart, under keys salted
+``NOISE_SALT``.
 """
 from __future__ import annotations
 
 import hashlib
 import heapq
 from datetime import UTC, datetime
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -22,18 +24,21 @@ from burstlens.search.corpus import windowing
 from burstlens.search.corpus.stream import Piece, SegmentInfo, rejection
 
 CLIP_RUN = 3
+NOISE_SALT = "noise"  # salts the noise windows' keys: a sample apart from the burst windows'
 
 
 @dataclass(frozen=True)
 class Placement:
     """A window of ``length`` output samples at ``start`` of a segment (−1: the segment is too
     short for it), with the triggers merged into it and the first trigger's offset from its start
-    in samples (None for 'whole' and 'sliding' windows)."""
+    in samples (None for 'whole' and 'sliding' windows). ``noise``: a noise window (a quiet
+    stretch between triggers), sampled apart from the others under keys salted ``NOISE_SALT``."""
 
     start: int
     length: int
     triggers: int = 0
     trigger: int | None = None
+    noise: bool = False
 
 
 @dataclass
@@ -92,13 +97,25 @@ class _SegmentCutter:
             self.out, self.raw = np.empty(0), None
 
 
-def window_key(seed: int, seg: SegmentInfo, start: int) -> int:
+def window_key(seed: int, seg: SegmentInfo, start: int, salt: str = "") -> int:
     """The 64-bit sampling key of the window at output sample ``start`` of ``seg``: a hash of the
-    seed and of where the window lies (``SegmentInfo.place`` and the start), never of the order
-    things arrive."""
-    where = f"{seg.place}|{start}"
-    seed_bytes = int(seed).to_bytes(8, "little", signed=True)
-    return int.from_bytes(hashlib.sha256(seed_bytes + where.encode()).digest()[:8], "little")
+    seed and of where the window lies (``SegmentInfo.place`` and the start, after ``salt`` if
+    given), never of the order things arrive."""
+    return int(window_keys(seed, seg, np.array([start]), salt)[0])
+
+
+def window_keys(seed: int, seg: SegmentInfo, starts: np.ndarray, salt: str = "") -> np.ndarray:
+    """:func:`window_key` of each start in ``starts`` (output samples, shape (K,)), shape (K,)
+    uint64: the first 8 bytes (little-endian) of sha256(seed as 8 signed little-endian bytes,
+    "[salt|]place|start")."""
+    head = hashlib.sha256(int(seed).to_bytes(8, "little", signed=True))
+    head.update(f"{salt + '|' if salt else ''}{seg.place}|".encode())
+    out = np.empty(len(starts), dtype=np.uint64)
+    for i, start in enumerate(starts):
+        h = head.copy()
+        h.update(str(int(start)).encode())
+        out[i] = int.from_bytes(h.digest()[:8], "little")
+    return out
 
 
 class Candidates:
@@ -165,12 +182,24 @@ class WindowSample:
         return sorted(alive[: self.max_windows], key=lambda f: f.order)
 
 
-def cut_windows(pieces, *, plans: dict, mode: str, seed: int, collector, on_segment=None) -> tuple:
-    """The cutting pass over ``pieces``: returns (``collector``, window rejections as (order,
-    record) pairs). ``plans`` maps segment index to its placements; each accepted window is offered
-    to ``collector`` (a :class:`WindowSample`, or :class:`Candidates` on a cluster worker).
-    ``on_segment()`` is called after each segment's last piece."""
-    rejected = []
+@dataclass
+class Cut:
+    """What a cutting pass gives: the collectors its accepted windows and noise windows were
+    offered to, and each kind's rejections as (order, record) pairs."""
+
+    windows: object
+    noise: object
+    rejected: list = field(default_factory=list)
+    noise_rejected: list = field(default_factory=list)
+
+
+def cut_windows(pieces, *, plans: dict, mode: str, seed: int, collector, noise, on_segment=None) -> Cut:
+    """The cutting pass over ``pieces``. ``plans`` maps segment index to its placements in start
+    order, noise windows (``Placement.noise``) among them; each accepted window is offered to
+    ``collector`` and each accepted noise window to ``noise`` (each a :class:`WindowSample`, or
+    :class:`Candidates` on a cluster worker). ``on_segment()`` is called after each segment's
+    last piece."""
+    cut = Cut(collector, noise)
     cutters: dict[int, _SegmentCutter] = {}
     for piece in pieces:
         seg = piece.segment
@@ -180,7 +209,7 @@ def cut_windows(pieces, *, plans: dict, mode: str, seed: int, collector, on_segm
             cutter = cutters[seg.index] = _SegmentCutter(seg, plans.get(seg.index, []))
             for p in plans.get(seg.index, []):
                 if p.start < 0:
-                    rejected.append(((seg.index, -1), rejection(
+                    cut.rejected.append(((seg.index, -1), rejection(
                         seg.file, seg.trace_id, seg.offset_s, "too short",
                         f"trace of {piece.layout.n / fs:g} s is shorter than the window of {p.length / fs:g} s"
                         + (f" ({p.triggers} triggers)" if p.triggers and mode == "bursts" else ""))))
@@ -189,21 +218,25 @@ def cut_windows(pieces, *, plans: dict, mode: str, seed: int, collector, on_segm
             file = seg.file_at(r0)
             reason = windowing.rejection_reason(raw, window, CLIP_RUN)
             if reason is not None:
-                rejected.append(((seg.index, p.start), rejection(file, seg.trace_id, offset, reason, detail(reason))))
+                (cut.noise_rejected if p.noise else cut.rejected).append(
+                    ((seg.index, p.start), rejection(file, seg.trace_id, offset, reason, detail(reason))))
                 continue
             entry = {"file": file, "trace_id": seg.trace_id,
                      "start": iso(None if seg.start is None else seg.start + p.start / fs),
                      "offset_s": round(offset, 6)}
-            if mode == "bursts":
-                entry["triggers"] = p.triggers
-            entry["trigger_offset_s"] = None if p.trigger is None else p.trigger / fs
+            if not p.noise:
+                if mode == "bursts":
+                    entry["triggers"] = p.triggers
+                entry["trigger_offset_s"] = None if p.trigger is None else p.trigger / fs
             digest = int.from_bytes(hashlib.sha1(raw.dtype.str.encode() + raw.tobytes()).digest()[:8], "little")
-            collector.offer(Found((seg.index, p.start), window_key(seed, seg, p.start), window.copy(), entry), digest)
+            key = window_key(seed, seg, p.start, NOISE_SALT if p.noise else "")
+            (cut.noise if p.noise else cut.windows).offer(
+                Found((seg.index, p.start), key, window.copy(), entry), digest)
         if piece.last:
             del cutters[seg.index]
             if on_segment is not None:
                 on_segment()
-    return collector, rejected
+    return cut
 
 
 def duplicate_rejections(sample: WindowSample, segments: list[SegmentInfo], rate_hz: float) -> list[tuple]:

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import hashlib
 import os
+from collections import Counter
 from dataclasses import dataclass, replace
 from functools import partial
 
@@ -155,6 +156,9 @@ def read_corpus(
         ``windows`` (M, N) float64 and everything the reader chose in ``defaults``. Each
         ``window_meta`` entry carries ``trigger_offset_s``: seconds from the window's first sample
         to the first trigger onset inside it (None for 'whole' and 'sliding' windows).
+        ``noise_windows`` (K, N) float64, K ≤ ``placement.NOISE_WINDOWS``: the site's noise
+        sample from the quiet stretches between triggers ('bursts'; (0, N) otherwise), with
+        ``noise_meta`` and ``defaults["noise"]``.
     """
     opts = _validate_options(
         windowing=windowing, window_s=window_s, max_windows=max_windows, seed=seed,
@@ -210,9 +214,9 @@ def read_corpus(
         plans = placement.whole_windows(segments, layouts, passes, opts, defaults)
     else:
         plans = placement.scan_windows(segments, layouts, passes, files, opts, defaults)
-    sample, rejected = passes.cut(plans, opts)
-    rejected += cutting.duplicate_rejections(sample, segments, rate)
-    return _assemble(sample, segments, files, skipped, digest.hexdigest(), rate, opts, defaults,
+    cut = passes.cut(plans, opts)
+    rejected = cut.rejected + cutting.duplicate_rejections(cut.windows, segments, rate)
+    return _assemble(cut, segments, files, skipped, digest.hexdigest(), rate, defaults,
                      found.rejections + [r for _, r in sorted(rejected, key=lambda item: item[0])])
 
 
@@ -259,30 +263,35 @@ class _Passes:
                 self.stage.done(len(group.segments))
         return merge(results)
 
-    def cut(self, plans: dict, opts: dict):
-        """The cutting pass: (``cutting.WindowSample`` of the kept windows, window rejections).
-        On a cluster in two rounds: every accepted window's record comes back and the sample is
-        drawn here, then only the kept windows' samples are cut and sent."""
+    def cut(self, plans: dict, opts: dict) -> cutting.Cut:
+        """The cutting pass: a ``cutting.Cut`` whose ``windows`` and ``noise`` are the
+        ``cutting.WindowSample`` s of the kept windows and noise windows. On a cluster in two
+        rounds: every accepted window's record comes back and the samples are drawn here, then
+        only the kept windows' samples are cut and sent."""
         sample = cutting.WindowSample(opts["max_windows"], opts["seed"])
+        noise = cutting.WindowSample(placement.NOISE_WINDOWS, opts["seed"])
         common = {"mode": opts["windowing"], "seed": opts["seed"]}
         if self.mapper is None:
             self.stage.begin("cutting")
             return cutting.cut_windows(stream.pieces(self.files, self.scan.segments, **self.reading), plans=plans,
-                                       collector=sample, **common,
+                                       collector=sample, noise=noise, **common,
                                        on_segment=lambda: self.stage.done(windows_found=sample.found))
-        rejected = []
-        for candidates, group_rejected in self.run("cutting", cutting.cut_windows, list, plans=plans,
-                                                   collector=cutting.Candidates(False), **common):
-            for item in candidates.items:
-                sample.offer(*item)
-            rejected += group_rejected
-        kept = {f.order: f for f in sample.kept()}
+        cut = cutting.Cut(sample, noise)
+        for part in self.run("cutting", cutting.cut_windows, list, plans=plans, collector=cutting.Candidates(False),
+                             noise=cutting.Candidates(False), **common):
+            for found in part.windows.items:
+                sample.offer(*found)
+            for found in part.noise.items:
+                noise.offer(*found)
+            cut.rejected += part.rejected
+            cut.noise_rejected += part.noise_rejected
+        kept = {f.order: f for f in sample.kept() + noise.kept()}
         wanted = {index: [p for p in plan if (index, p.start) in kept] for index, plan in plans.items()}
-        for candidates, _ in self.run(None, cutting.cut_windows, list, plans=wanted,
-                                      collector=cutting.Candidates(True), **common):
-            for found, _ in candidates.items:
+        for part in self.run(None, cutting.cut_windows, list, plans=wanted, collector=cutting.Candidates(True),
+                             noise=cutting.Candidates(True), **common):
+            for found, _ in part.windows.items + part.noise.items:
                 kept[found.order].window = found.window
-        return sample, rejected
+        return cut
 
 
 def _group_pass(fn, reading: dict, options: dict, group: stream.Group):
@@ -420,8 +429,8 @@ def _hash_file(path: str, digest) -> None:
             digest.update(block)
 
 
-def _assemble(sample, segments, files, skipped, source_hash, fs, opts, defaults, rejections) -> Corpus:
-    kept = sample.kept()
+def _assemble(cut, segments, files, skipped, source_hash, fs, defaults, rejections) -> Corpus:
+    kept = cut.windows.kept()
     if not kept:
         counts = {}
         for r in rejections:
@@ -431,7 +440,7 @@ def _assemble(sample, segments, files, skipped, source_hash, fs, opts, defaults,
     per_segment = dict.fromkeys(range(len(segments)), 0)
     for f in kept:
         per_segment[f.order[0]] += 1
-    defaults.update(windows_found=sample.found, windows_kept=len(kept))
+    defaults.update(windows_found=cut.windows.found, windows_kept=len(kept))
     traces = []
     for s in segments:
         entry = {"file": s.file, "trace_id": s.trace_id, "sampling_rate_hz": s.native_rate_hz,
@@ -442,6 +451,22 @@ def _assemble(sample, segments, files, skipped, source_hash, fs, opts, defaults,
             entry["files"] = spanned  # contiguous pieces from several files, joined
         traces.append(entry)
     windows = np.ascontiguousarray(np.stack([f.window for f in kept]).astype(np.float64, copy=False))
+    noise = cut.noise.kept()
+    noise_windows = np.zeros((len(noise), windows.shape[1]))
+    for row, f in zip(noise_windows, noise, strict=True):
+        row[:] = f.window
+    if defaults["noise"]["source"] is not None:
+        defaults["noise"].update(_noise_record(cut, len(noise), defaults["window_s"]))
     return Corpus(windows=windows, sampling_rate_hz=fs, window_meta=[f.entry for f in kept], traces=traces,
                   rejections=rejections, defaults=defaults, source_hash=source_hash,
-                  files=[p for p, _ in files], skipped=skipped)
+                  files=[p for p, _ in files], skipped=skipped,
+                  noise_windows=noise_windows, noise_meta=[f.entry for f in noise])
+
+
+def _noise_record(cut, kept: int, window_s: float) -> dict:
+    """The noise sample's counts: candidates cut and checked, kept, their duration (s), the cap,
+    and the checked windows rejected, by reason (duplicates among them included)."""
+    reasons = [r["reason"] for _, r in cut.noise_rejected] + ["duplicate"] * len(cut.noise.duplicates)
+    return {"windows_checked": cut.noise.accepted + len(cut.noise_rejected), "windows_kept": kept,
+            "duration_s": kept * window_s, "max_windows": placement.NOISE_WINDOWS,
+            "rejected_by_reason": dict(sorted(Counter(reasons).items()))}

@@ -79,6 +79,22 @@ class Corpus:
         The files read, in that order.
     skipped : list of dict
         Files met while expanding a folder that are not waveform files (``file``, ``reason``).
+    noise_windows : ndarray, shape (K, N), float64, or None
+        The site's noise sample: K ≤ 64 noise-only windows of the burst windows' length N,
+        processed as they are, in window order; cut from the quiet stretches between triggers
+        ('bursts' windowing: at least one window length from every trigger interval, outside the
+        taper and the STA/LTA warm-up) and kept as a seeded bottom-k sample of hashed keys salted
+        apart from the burst windows'. (0, N) for 'whole' and 'sliding' windowing, or when no
+        stretch is free; None when built without a reader. Their rejections are counted in
+        ``defaults["noise"]``, not listed in ``rejections``.
+    noise_meta : list of dict, length K
+        Per noise window: ``file``, ``trace_id``, ``start`` (ISO 8601 UTC or None), ``offset_s``.
+
+    ``defaults["noise"]`` records the noise sample: ``source`` ("quiet stretches between
+    triggers", or None with a ``reason``), ``rule`` (in words), ``windows_found`` (noise windows
+    placed), ``windows_checked`` (those cut and checked: the ones with the smallest keys),
+    ``windows_kept``, ``duration_s`` (kept × window length), ``max_windows`` (the cap) and
+    ``rejected_by_reason`` (of the checked ones).
     """
 
     windows: np.ndarray
@@ -90,6 +106,8 @@ class Corpus:
     source_hash: str
     files: list[str] = field(default_factory=list)
     skipped: list[dict] = field(default_factory=list)
+    noise_windows: np.ndarray | None = None
+    noise_meta: list[dict] = field(default_factory=list)
 
     @property
     def n_windows(self) -> int:
@@ -122,4 +140,5 @@ class Corpus:
             "rejections": [dict(r) for r in self.rejections],
             "rejected_by_reason": self.rejected_by_reason(),
             "defaults": dict(self.defaults),
+            "noise_meta": [dict(w) for w in self.noise_meta],
         }

@@ -5,6 +5,11 @@ length) and each segment's window placements, from passes over the processed pie
 the trigger band), a triggering pass the STA/LTA trigger intervals of every segment (state carried
 from piece to piece), and from their durations the window length. 'sliding': the survey pass, then
 windows every hop. 'whole': a pass finds each long segment's energy peak.
+
+Noise windows ('bursts' only): windows of the burst windows' length tiling the quiet stretches
+between triggers (:func:`noise_starts`); of those, the ``NOISE_CANDIDATES`` with the smallest
+sampling keys are placed for the cutting pass (:func:`noise_candidates`), which keeps
+``NOISE_WINDOWS`` of them.
 """
 from __future__ import annotations
 
@@ -13,7 +18,7 @@ import hashlib
 import numpy as np
 
 from burstlens.search.corpus import preprocess, windowing
-from burstlens.search.corpus.cutting import Placement
+from burstlens.search.corpus.cutting import NOISE_SALT, Placement, window_keys
 from burstlens.search.corpus.model import CorpusError
 from burstlens.search.corpus.stream import FRAME, describe
 from burstlens.search.corpus.survey import SpectrumSurvey
@@ -26,6 +31,22 @@ DURATION_QUANTILE = 0.9    # window length covers this quantile of the burst dur
 MIN_WINDOW = 64
 MAX_WINDOW = 1 << 16
 TRIGGER_BAND_FACTOR = 4.0  # trigger on [f_dom / 4, 4 f_dom]
+NOISE_WINDOWS = 64         # cap of the noise sample
+# noise windows cut and checked: those with the smallest keys, so that the kept ones are the
+# bottom-k sample of every acceptable noise window unless more than 15/16 of these are rejected
+NOISE_CANDIDATES = 16 * NOISE_WINDOWS
+NOISE_BLOCK = 1 << 16      # noise window starts made and hashed at a time
+NOISE_SOURCE = "quiet stretches between triggers"
+NOISE_RULE = ("windows of the burst windows' length, non-overlapping, at a stride of one window from "
+              "the start of each stretch free of every trigger interval widened by one window on each "
+              "side ([on − window, off + window]), of the taper at the segment ends and of the STA/LTA "
+              "warm-up (the first LTA of each segment, where nothing can trigger)")
+NO_NOISE = {
+    "whole": "'whole' windows are event files: no quiet stretches between triggers; the search takes "
+             "each window's own level over time as its noise floor",
+    "sliding": "'sliding' windows tile the records without triggers: no quiet stretches between "
+               "triggers are known; the search takes each window's own level over time as its noise floor",
+}
 
 
 def given_window(window_s: float, fs: float) -> int:
@@ -51,7 +72,8 @@ def whole_windows(segments, layouts, passes, opts, defaults) -> dict:
         n, how = lengths[0], "trace length"
     else:
         n, how = int(np.median(lengths)), "median trace length"
-    defaults.update(window_samples=n, window_s=n / fs, window_source=how, pre_trigger=opts["pre_trigger"])
+    defaults.update(window_samples=n, window_s=n / fs, window_source=how, pre_trigger=opts["pre_trigger"],
+                    noise={"source": None, "reason": NO_NOISE["whole"]})
     longer = frozenset(s.index for s in segments if layouts[s.index].n > n)
     peaks = passes.run("preprocessing", energy_peaks, _union, width=max(1, n // 16), indices=longer)
     plans = {}
@@ -86,7 +108,8 @@ def scan_windows(segments, layouts, passes, files, opts, defaults) -> dict:
             n = int(np.clip(windowing.fast_length(SLIDING_PERIODS * fs / f_dom, "nearest"), MIN_WINDOW, MAX_WINDOW))
             how = f"{SLIDING_PERIODS:g} dominant periods, rounded to a power of two samples"
         hop = int(round(opts["hop_s"] * fs)) if opts["hop_s"] is not None else max(1, n // 2)
-        defaults.update(window_samples=n, window_s=n / fs, window_source=how, hop_samples=hop, hop_s=hop / fs)
+        defaults.update(window_samples=n, window_s=n / fs, window_source=how, hop_samples=hop, hop_s=hop / fs,
+                        noise={"source": None, "reason": NO_NOISE["sliding"]})
         plans = {}
         for seg in segments:
             layout = layouts[seg.index]
@@ -151,7 +174,73 @@ def scan_windows(segments, layouts, passes, files, opts, defaults) -> dict:
         first = o[np.searchsorted(o[:, 0], starts), 0] if starts else []
         plan += [Placement(s, n, c, int(f) - s) for s, c, f in zip(starts, counts, first, strict=True)]
         plans[seg.index] = plan
+    noise, placed = noise_candidates(segments, layouts, found, n, nlta, opts["seed"])
+    defaults["noise"] = {"source": NOISE_SOURCE, "rule": NOISE_RULE, "windows_found": placed}
+    for index, extra in noise.items():
+        plans[index] = sorted(plans[index] + extra, key=lambda p: p.start)
     return plans
+
+
+def noise_starts(intervals: np.ndarray, window: int, lo: int, hi: int) -> np.ndarray:
+    """Start samples of the noise windows of one segment, shape (K,) int64, increasing.
+
+    ``intervals``: the segment's trigger (on, off) pairs, output samples, both inclusive, shape
+    (T, 2), sorted and disjoint (``trigger_intervals``). The free stretches are ``[lo, hi)`` less
+    every interval widened by ``window`` samples on each side, ``[on − window, off + window]``;
+    each free stretch ``[a, b)`` holds the windows starting at a, a + window, … that end by b
+    (non-overlapping, a stride of one window). So a noise window keeps at least one window
+    length from every trigger, hence never overlaps a burst window placed around it.
+    """
+    tiling = _NoiseTiling(intervals, window, lo, hi)
+    return tiling.starts(np.arange(tiling.count))
+
+
+class _NoiseTiling:
+    """The noise windows of one segment (:func:`noise_starts`) numbered 0 … count − 1 in start
+    order, so that a long quiet trace's starts can be made a block at a time: per free stretch
+    its first start and the number of the first window in it, shape (T + 1,) each."""
+
+    def __init__(self, intervals: np.ndarray, window: int, lo: int, hi: int):
+        self.window = window
+        self.first = np.maximum.accumulate(np.concatenate(([lo], intervals[:, 1] + window + 1)))
+        free_to = np.minimum(np.concatenate((intervals[:, 0] - window, [hi])), hi)
+        counts = np.maximum(free_to - self.first, 0) // window
+        self.through = np.cumsum(counts)
+        self.before = self.through - counts
+        self.count = int(self.through[-1])
+
+    def starts(self, k: np.ndarray) -> np.ndarray:
+        """Start samples of the windows numbered ``k`` (shape (K,), each in [0, count)), int64."""
+        j = np.searchsorted(self.through, k, side="right")
+        return (self.first[j] + (k - self.before[j]) * self.window).astype(np.int64)
+
+
+def noise_candidates(segments, layouts, intervals: dict, n: int, warmup: int, seed: int) -> tuple[dict, int]:
+    """(segment index → noise :class:`Placement` s in start order, noise windows placed).
+
+    Every segment's noise windows (:func:`noise_starts` between the taper guards, after the
+    first ``warmup`` samples, with its trigger intervals from ``intervals``) are placed, and of
+    them the ``NOISE_CANDIDATES`` with the smallest keys (``window_keys`` salted ``NOISE_SALT``;
+    ties by corpus order) are returned for cutting: the same whatever the order or split of the
+    files. Memory: the trigger intervals and ``NOISE_BLOCK`` starts at a time, whatever the
+    length of the records.
+    """
+    none = np.empty((0, 2), dtype=np.int64)
+    best: list[tuple] = []
+    placed = 0
+    for seg in segments:
+        layout = layouts[seg.index]
+        tiling = _NoiseTiling(intervals.get(seg.index, none), n, max(layout.taper, warmup), layout.n - layout.taper)
+        placed += tiling.count
+        for k0 in range(0, tiling.count, NOISE_BLOCK):
+            starts = tiling.starts(np.arange(k0, min(k0 + NOISE_BLOCK, tiling.count)))
+            keys = window_keys(seed, seg, starts, NOISE_SALT)
+            take = np.argsort(keys, kind="stable")[:NOISE_CANDIDATES]
+            best = sorted(best + [(int(keys[i]), seg.index, int(starts[i])) for i in take])[:NOISE_CANDIDATES]
+    plans: dict[int, list] = {}
+    for _, index, start in sorted(best, key=lambda c: c[1:]):
+        plans.setdefault(index, []).append(Placement(start, n, noise=True))
+    return plans, placed
 
 
 # --- passes: each takes the pieces (of the whole corpus, or of one group on a cluster worker) ---

@@ -3,17 +3,20 @@
 The best constant-window spectrogram (a = 1, β = 0, one σ_t for all channels, scored on its own
 FFT grid over the stage-1 subset: ``search.spectrogram``) and the best constant-Q Gaussian
 scalogram (σ_t ∝ 1/f_c, a = 1, on the channel grid, over all fit windows), each by a 1-D search
-over log σ_t (``search.diagnostics.search_1d``). Both seed stage 1. The pseudo-WVD has nothing
+over log σ_t (``search.diagnostics.search_1d``) of the criterion (for the detection criterion,
+of the detection threshold on the subset: ``search.fit.detect``). Both seed stage 1. The pseudo-WVD has nothing
 to fit: the judgement scores it. Units: s, Hz; parameter tuples ``(centers, sigma, area,
 beta)``, each (C,).
 """
 from __future__ import annotations
 
 import math
+import time
 
 import numpy as np
 
 from burstlens.search import diagnostics as dg
+from burstlens.search.fit import detect
 
 # 1-D baseline searches: (grid points over log σ_t, then bounded Brent steps between the best
 # point's neighbours). The spectrogram gets the finer search: the gain is measured against it.
@@ -48,17 +51,21 @@ def run(ctx) -> None:
     def search(kind, score):
         def objective(x):
             ctx.check_cancel()
+            t0 = time.perf_counter()
             r = score(math.exp(x))
-            y = ctx.ceiling(r.scores, r.shares)
-            log.add(f"baseline:{kind}", 0, {"time_spread_s": math.exp(x)}, y, r.seconds)
+            y = r if isinstance(r, float) else ctx.ceiling(r.scores, r.shares)
+            log.add(f"baseline:{kind}", 0, {"time_spread_s": math.exp(x)}, y,
+                    time.perf_counter() - t0)
             return y
         grid, maxiter = BASELINE_SEARCH[kind]
         x, y, tried = dg.search_1d(objective, lo, hi, grid=grid, maxiter=maxiter, xatol=0.01)
         return math.exp(x), y, len(tried)
 
+    by_detection = detect.applies(ctx)
     if "spectrogram" not in base:
         sub, band = ctx.evaluator("subset"), ctx.s["band_hz"]
-        sigma, y, n = search("spectrogram", lambda s: sub.spectrogram(s, band))
+        sigma, y, n = search("spectrogram", (lambda s: detect.spectrogram_threshold(ctx, s))
+                             if by_detection else (lambda s: sub.spectrogram(s, band)))
         from burstlens.search.spectrogram import grid_description
 
         base["spectrogram"] = {"objective": y, "evaluations": n,
@@ -69,7 +76,9 @@ def run(ctx) -> None:
                                                                  ctx.s["eps"])}}
         ctx.report("baselines", 0.5)
     if "scalogram" not in base:
-        sigma, y, n = search("scalogram", lambda s: full.score([scalogram(space, s)])[0])
+        sigma, y, n = search("scalogram", (
+            lambda s: detect.filterbank_threshold(ctx, scalogram(space, s))) if by_detection
+            else (lambda s: full.score([scalogram(space, s)])[0]))
         base["scalogram"] = {"objective": y, "evaluations": n,
                              "parameters": {"cycles": sigma * space.f_ref_hz,
                                             "time_spread_at_reference_s": sigma,

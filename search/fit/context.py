@@ -1,9 +1,11 @@
 """One run of ``FilterbankSearch.fit``: what every stage shares.
 
 :class:`RunContext` holds the resolved settings ``s``, the :class:`~search.fit.space.SearchSpace`,
-the held-out split, the windows (``all_windows`` (M, N) float64; ``windows``, the fit windows
-stages 0–2 see), the criterion, the evaluators (created on first use, closed by :meth:`close`)
-and the resumable ``state`` dict that is checkpointed after every round. Each stage module
+the held-out split, the site's steady lines (``lines``, search.noise) and the windows with them
+removed (``all_windows`` (M, N) float64; ``windows``, the fit windows stages 0–2 see;
+``noise_windows`` (K, N), the corpus's noise sample), the criterion, the evaluators
+(created on first use, closed by :meth:`close`) and the resumable ``state`` dict that is
+checkpointed after every round. Each stage module
 (baselines, family, refine, judge) is a function of it.
 
 The state is plain data plus the scikit-optimize ``Optimizer`` and a
@@ -21,6 +23,7 @@ import numpy as np
 from burstlens.search import diagnostics as dg
 from burstlens.search.criteria import ceiling_objective
 from burstlens.search.fit.evaluate import Evaluator, make_criterion
+from burstlens.search.noise import site_lines
 from burstlens.search.safe_io import finite_or_none
 
 STATE_FORMAT = "burstlens-search-state"
@@ -40,13 +43,24 @@ class RunContext:
     STAGE_SPAN = {"baselines": (0.0, 0.1), "family": (0.1, 0.55), "refine": (0.55, 0.9),
                   "judge": (0.9, 1.0)}
 
-    def __init__(self, corpus, settings, space, split, progress, checkpoint, should_stop):
+    def __init__(self, corpus, settings, space, split, progress, checkpoint, should_stop,
+                 lines=None):
         self.corpus, self.s, self.space, self.split = corpus, settings, space, split
         self.progress_cb, self.checkpoint_cb, self.should_stop = progress, checkpoint, should_stop
-        self.all_windows = np.ascontiguousarray(np.asarray(corpus.windows, dtype=np.float64))
+        # the site's steady lines leave every window before anything is scored (search.noise)
+        self.lines = site_lines(corpus) if lines is None else lines
+        fs = corpus.sampling_rate_hz
+        self.all_windows = np.ascontiguousarray(self.lines.remove(corpus.windows, fs))
+        noise = getattr(corpus, "noise_windows", None)
+        self.noise_windows = np.ascontiguousarray(self.lines.remove(
+            np.zeros((0, self.all_windows.shape[1])) if noise is None else noise, fs))
         # stages 0–2 see only the fit windows; the judgement sees only the held-out ones
         self.windows = self.all_windows[self.split.fit]
         self.spec = settings["criterion"]
+        if self.spec["name"] == "detection" and len(self.noise_windows) == 0:
+            raise ValueError("criterion 'detection' needs the site's noise windows (quiet "
+                             "stretches between triggers), and this corpus has none ('whole' or "
+                             "'sliding' windows, or no trigger-free stretch): use 'renyi'")
         self.how = self.spec["reduce"]
         self.criterion = make_criterion(self.spec)
         self.t_start = time.perf_counter()

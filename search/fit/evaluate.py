@@ -65,19 +65,27 @@ def _forget(token: str) -> None:
             del _PREPARED[key]
 
 
-def make_filterbank(centers_hz, sigma_s, area, beta, fs, provenance=None):
-    """Filterbank from per-channel arrays (Hz, s, dimensionless, Hz/s) at sampling rate fs (Hz)."""
+def make_filterbank(centers_hz, sigma_s, area, beta, fs, provenance=None, steady_lines_hz=()):
+    """Filterbank from per-channel arrays (Hz, s, dimensionless, Hz/s) at sampling rate fs (Hz)
+    (``steady_lines_hz``: the lines its transform removes first; the search's own scoring
+    filterbanks have none, their windows are already clean)."""
     from burstlens.search.filterbank import Channel, Filterbank
 
     channels = [Channel(float(f), float(s), float(a), float(b))
                 for f, s, a, b in zip(centers_hz, sigma_s, area, beta, strict=True)]
-    return Filterbank(channels, float(fs), provenance=provenance)
+    return Filterbank(channels, float(fs), provenance=provenance, steady_lines_hz=steady_lines_hz)
 
 
 def make_criterion(spec: dict) -> Criterion:
-    """The Criterion of a resolved settings ``criterion`` dict (its ``reduce`` is the reducer's)."""
+    """The Criterion of a resolved settings ``criterion`` dict (its ``reduce`` is the reducer's).
+    The detection criterion scores a corpus, not an image (``search.fit.detect``): its runs
+    score sharpness (the ceiling, the refinement's rows, the judgement's bits) by the Rényi
+    entropy of the bursts' excess."""
+    if spec["name"] == "detection":
+        return Criterion(name="renyi", alpha=3.0, excess=True)
     return Criterion(name=spec["name"], alpha=spec["alpha"], p=spec["p"], measure=spec["measure"],
-                     negative_mass_penalty=spec["negative_mass_penalty"])
+                     negative_mass_penalty=spec["negative_mass_penalty"],
+                     excess=spec.get("excess", False))
 
 
 def row_stats(images: np.ndarray, criterion: Criterion, cell: np.ndarray) -> np.ndarray:

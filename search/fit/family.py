@@ -5,7 +5,8 @@ points per round, a maximin Latin-hypercube initial design, expected improvement
 random candidates) in the coordinates (log σ_ref, q ∈ [−1, 0.5], log a0, β0) of
 :class:`~search.fit.space.SearchSpace` (the a0 dimension is dropped when the cell-area bounds
 are equal and β0 when chirps are off). The first two points are the fitted spectrogram and
-scalogram. Each point is scored on the fixed seeded subset of the fit windows. Stops on the
+scalogram. Each point is scored on the fixed seeded subset of the fit windows (by the
+criterion, or for the detection criterion by its threshold: ``search.fit.detect``). Stops on the
 evaluation budget, the time limit, a stall (no relative improvement above ``stall_tol`` over
 ``stall_rounds`` rounds after the initial design) or a cancel. The optimizer lives in the
 state, so a checkpoint resumes it exactly.
@@ -16,6 +17,7 @@ import math
 
 import numpy as np
 
+from burstlens.search.fit import detect
 from burstlens.search.fit.context import Cancelled
 
 
@@ -79,8 +81,10 @@ def run(ctx) -> None:
             with threadpool_limits(1):
                 xs = opt.ask(n_points=n) if n > 1 else [opt.ask()]
         xs = [[float(v) for v in x] for x in xs]
-        results = sub.score([space.family(x) for x in xs])
-        ys = [ctx.ceiling(r.scores, r.shares) for r in results]
+        params = [space.family(x) for x in xs]
+        results = sub.score(params)
+        ys = detect.objectives(ctx, params, results) if detect.applies(ctx) \
+            else [ctx.ceiling(r.scores, r.shares) for r in results]
         for x, y, r in zip(xs, ys, results, strict=True):
             log.add("family", fam["round"], space.describe(x), y, r.seconds)
         worst = max([y for y in (e["objective"] for e in log.evaluations if e["stage"] == "family")

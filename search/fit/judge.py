@@ -22,6 +22,12 @@ from burstlens.search.fit.baselines import pseudo_wvd, scalogram
 from burstlens.search.fit.evaluate import CHUNK, Scored, make_filterbank, scores_from_stats
 from burstlens.search.safe_io import finite_or_none
 
+RESAMPLES = 2000               # the scorecard's paired bootstrap (held-out windows)
+GUARD_WINDOWS = 64             # fit windows the pipeline guard measures on
+GUARD_RESAMPLES = 200          # its paired bootstrap
+DETECTION_TOLERANCE_DB = 0.5   # half the 1 dB step of the injected gains
+ONSET_TOLERANCE_SAMPLES = 2.0  # AIC onsets of two images differ by this much on one burst
+
 
 def _result_params(ctx) -> tuple:
     """(per-channel parameters, origin) of the run's result before the judgement."""
@@ -79,6 +85,7 @@ def run(ctx) -> tuple:
         "channels_refined": len(ref["active"] or []),
         "changed_channels": sorted(int(k) for k, r in ref["records"].items()
                                    if r["status"] == "improved")}
+    d["noise"] = noise_record(ctx)
     d["subset"] = [int(i) for i in ctx.split.fit[np.asarray(st["subset"], dtype=np.int64)]]
     d["split"] = ctx.split.to_json()
     rejections = list(getattr(ctx.corpus, "rejections", []) or [])
@@ -94,7 +101,7 @@ def run(ctx) -> tuple:
     st["phase"] = "done"
     objective = None if result is None else float(result)
     filterbank = make_filterbank(
-        *p, space.fs, provenance={
+        *p, space.fs, steady_lines_hz=ctx.lines.lines_hz, provenance={
             "window_samples": int(ctx.windows.shape[1]),
             "criterion": {k: v for k, v in ctx.spec.items()},
             "objective": finite_or_none(result), "gain_bits": d["gain_bits"],
@@ -111,6 +118,19 @@ def run(ctx) -> tuple:
                                                           else st["best"]),
                          "fraction": 1.0})
     return filterbank, d, objective
+
+
+def noise_record(ctx) -> dict:
+    """The site's noise model as the run used it: the steady lines removed from every window
+    (search.noise), the noise windows (count and duration, and the reader's record of them)
+    and the floor the criterion scores each burst against."""
+    k, n = ctx.noise_windows.shape
+    read = (getattr(ctx.corpus, "defaults", None) or {}).get("noise")
+    floor = ("each channel's level over time in each window (its time median); the criterion "
+             "scores the bursts' excess over it" if ctx.criterion.excess
+             else "none: windows scored whole (criterion excess off)")
+    return {"lines": ctx.lines.to_json(), "noise_windows": int(k),
+            "noise_duration_s": float(k * n / ctx.space.fs), "reader": read, "floor": floor}
 
 
 def held_out_judgement(ctx, p, origin):
@@ -137,7 +157,8 @@ def held_out_judgement(ctx, p, origin):
 
     fallback = None
     mine, grid_spec = (ctx.ceiling(x.scores, x.shares) for x in (r, refs["spectrogram_on_grid"]))
-    if space.spectrogram_in_space() and not mine <= grid_spec:
+    by_sharpness = ctx.spec["name"] != "detection"   # the detection criterion is its own judge
+    if space.spectrogram_in_space() and by_sharpness and not mine <= grid_spec:
         where = "the fitted windows" if in_sample else "the held-out windows"
         fallback = {"to": "spectrogram", "from": origin,
                     "objective_before": finite_or_none(mine),
@@ -145,6 +166,9 @@ def held_out_judgement(ctx, p, origin):
                                                   draws(), ctx.how),
                     "reason": f"the searched filterbank scored worse than the best "
                               f"spectrogram window on the channel grid on {where}"}
+    elif space.spectrogram_in_space() and by_sharpness and s["guard"] and origin != "spectrogram":
+        fallback = pipeline_guard(ctx, p, sigma, origin)
+    if fallback is not None:
         p, r, origin = on_grid, refs["spectrogram_on_grid"], "spectrogram"
     gain = dg.paired_gain(r.scores, refs["spectrogram"].scores, draws(), ctx.how)
     # per baseline: its parameters, and how it was fitted (None: not fitted, only judged)
@@ -179,11 +203,77 @@ def held_out_judgement(ctx, p, origin):
         "spectrogram": {k: baselines["spectrogram"][k] for k in ("objective", "low", "high")},
         "negative_share": negative_shares(ctx, r),
         **bounds_hit(ctx, p, float(np.mean(r.shares))),
-        "onset": onset_timing(ctx, judged, p, space.centers_hz, sigma)}
+        "onset": onset_timing(ctx, judged, p, space.centers_hz, sigma),
+        "scorecard": scorecard(ctx, ctx.all_windows[judged], p, sigma, resamples=RESAMPLES)}
     per_window = {"result": [finite_or_none(v) for v in r.scores],
                   "spectrogram": [finite_or_none(v) for v in refs["spectrogram"].scores],
                   "windows": [int(i) for i in judged]}
     return p, origin, fallback, judgement, {"baselines": baselines, "per_window": per_window}
+
+
+def representations(ctx, p, sigma: float, envelope: bool = True) -> dict:
+    """The scorecard's representations (``search.representation``): the result (filterbank of
+    ``p``, on the windows the lines already left), the best plain spectrogram (time spread
+    ``sigma`` on its own FFT grid, as the gain is measured), the user's own spectrogram
+    (``compare_to``) and the raw envelope."""
+    from burstlens.search.scorecard import envelope_representation, filterbank_representation
+    from burstlens.search.spectrogram import spectrogram_representation
+
+    s, fs = ctx.s, ctx.space.fs
+    out = {"result": filterbank_representation("result", make_filterbank(*p, fs), s["eps"]),
+           "spectrogram": spectrogram_representation(sigma, fs, s["band_hz"],
+                                                     ctx.all_windows.shape[1], s["eps"])}
+    if s.get("compare_to"):
+        from burstlens.search.compare import parse_compare_to
+
+        out["yours"] = parse_compare_to(s["compare_to"]).representation(fs, s["band_hz"])
+    if envelope:
+        out["envelope"] = envelope_representation(fs)
+    return out
+
+
+def scorecard(ctx, bursts, p, sigma: float, *, resamples: int, envelope: bool = True) -> dict:
+    """``search.scorecard.scorecard`` of the result, the best plain spectrogram, the user's own
+    and the raw envelope on ``bursts`` (M, N) and the corpus's noise windows."""
+    from burstlens.search.scorecard import scorecard as card
+
+    return card(representations(ctx, p, sigma, envelope), bursts, ctx.noise_windows, ctx.space.fs,
+                ctx.criterion, resamples=resamples, seed=ctx.s["seed"])
+
+
+def pipeline_guard(ctx, p, sigma: float, origin: str) -> dict | None:
+    """The fallback that keeps a sharpness fit from making the pipeline worse: on (up to
+    ``GUARD_WINDOWS`` of) the fit windows, the result's detection threshold and median onset
+    error are compared with the best plain spectrogram's (``search.scorecard``, paired bootstrap
+    of ``GUARD_RESAMPLES``); the result is not kept when one of them is worse beyond the
+    measurements' resolution (``DETECTION_TOLERANCE_DB``, ``ONSET_TOLERANCE_SAMPLES``) and its
+    whole interval lies on the worse side of zero. Returns the fallback record, or None when
+    the result passes."""
+    fit = ctx.windows[:GUARD_WINDOWS]
+    card = scorecard(ctx, fit, p, sigma, resamples=GUARD_RESAMPLES, envelope=False)
+    rows = card["rows"]
+
+    def worse(row: str, tolerance: float) -> float | None:
+        entry = (rows.get(row) or {}).get("result") or {}
+        estimate, high = entry.get("estimate"), entry.get("high")
+        surely = high is None or high < 0   # one window gives no interval: take the estimate
+        return -estimate if estimate is not None and estimate < -tolerance and surely else None
+
+    reasons = []
+    db = worse("detection_db", DETECTION_TOLERANCE_DB)
+    if db is not None:
+        reasons.append(f"it needs bursts {db:.1f} dB stronger than the best plain spectrogram "
+                       "does to find them")
+    ms = worse("onset_ms", 1e3 * ONSET_TOLERANCE_SAMPLES / ctx.space.fs)
+    if ms is not None:
+        reasons.append(f"its onsets lie {ms:.1f} ms further from the waveform's than the best "
+                       "plain spectrogram's")
+    if not reasons:
+        return None
+    return {"to": "spectrogram", "from": origin, "fit_windows_checked": int(len(fit)),
+            "scorecard_on_fit_windows": card,
+            "reason": "on the fitted windows " + " and ".join(reasons)
+                      + ": a sharper image that serves detection or picking worse is not kept"}
 
 
 def negative_shares(ctx, r: Scored) -> dict:

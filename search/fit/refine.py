@@ -21,7 +21,7 @@ import time
 
 import numpy as np
 
-from burstlens.search.criteria import L1, shares_from_totals
+from burstlens.search.criteria import L1, TOTAL, shares_from_totals
 from burstlens.search.fit.context import Cancelled
 from burstlens.search.fit.evaluate import scores_from_stats
 
@@ -162,9 +162,12 @@ def one_changed_scores(ctx, stats, channels, trial_stats) -> tuple:
 
 
 def channel_shares(ctx, stats) -> np.ndarray:
-    """Mean over windows of each channel's share of the image's absolute mass, (C,)."""
-    mass = stats[:, :, L1] if ctx.criterion.separable \
-        else np.abs(np.asarray(stats, dtype=np.float64)).sum(-1)
+    """Mean over windows of each channel's share of the image's absolute mass (of the bursts'
+    excess when the criterion scores it: where the bursts are, not the steady sound), (C,)."""
+    if ctx.criterion.separable:
+        mass = stats[:, :, TOTAL if ctx.criterion.excess else L1]
+    else:
+        mass = np.abs(np.asarray(stats, dtype=np.float64)).sum(-1)
     total = mass.sum(axis=1, keepdims=True)
     return np.mean(np.where(total > 0, mass / np.where(total > 0, total, 1.0), 0.0), axis=0)
 
@@ -250,6 +253,11 @@ def run(ctx) -> None:
     objective (criterion + penalty) still decreases, so every round lowers the objective.
     """
     st, s = ctx.state, ctx.s
+    if ctx.spec["name"] == "detection":
+        # a corpus-level objective has no per-row statistics to refine by: the family's best
+        # is the result
+        st["phase"] = "judge"
+        return
     if st["refine"] is None:
         st["refine"] = _new_refine(ctx)
     ref = st["refine"]

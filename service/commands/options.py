@@ -117,6 +117,9 @@ JOB_FLAGS = (
                                          "help": "cell area bounds (1 = Heisenberg minimum)"}),
     JobFlag("--no-chirp", "chirp", {"help": "chirp rate fixed at 0"}, off=True),
     JobFlag("--no-refine", "refine", {"help": "skip per-channel refinement"}, off=True),
+    JobFlag("--no-guard", "guard", {"help": "keep the sharpest filterbank even where it finds "
+                                            "bursts or onsets worse than the best plain "
+                                            "spectrogram on the fit windows"}, off=True),
     JobFlag("--evaluations", "evaluations", {"type": int, "help": "evaluation budget"}),
     JobFlag("--time-limit", "time_limit_s", {"type": float, "metavar": "S",
                                               "help": "time budget, s"}),
@@ -129,6 +132,11 @@ JOB_FLAGS = (
         "type": _share(1.0), "metavar": "SHARE",
         "help": "largest share of the image's absolute mass that may be negative (0 to 1, "
                 f"default {SETTINGS_DEFAULTS['max_negative_share']:g})"}),
+    JobFlag("--compare-to", "compare_to", {
+        "metavar": "KIND:LENGTH[:OVERLAP]",
+        "help": "your own spectrogram, scored beside the result: window hann or gaussian, "
+                "length and overlap in samples (default overlap half the length), e.g. "
+                "hann:256:192"}),
     JobFlag("--jobs", "jobs", {"type": int, "help": "parallel evaluations on the worker "
                                                     "(capped there); tune also reads on this many processes"}),
 )

@@ -127,7 +127,9 @@ def _examples(filterbank_json: Mapping, diagnostics: Mapping, windows, fs: float
         note = omitted + str(exc)
         return Plot("examples", None, note, note)
     chosen = windows[[index for _, index, _ in picks]]
-    baseline = Filterbank.constant_window(filterbank.center_hz, spread, fs)
+    # the site's steady lines leave both panels, as they left every window the search scored
+    baseline = Filterbank(Filterbank.constant_window(filterbank.center_hz, spread, fs).channels,
+                          fs, steady_lines_hz=filterbank.steady_lines_hz)
     spectrograms = transform(chosen, baseline)
     learned = transform(chosen, filterbank)
     meta = (diagnostics.get("corpus") or {}).get("window_meta")

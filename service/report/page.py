@@ -23,7 +23,8 @@ from burstlens.service import palette
 from burstlens.service.report.figures import build_plots
 from burstlens.service.report.inputs import channel_rows, window_counts
 from burstlens.service.report.sections import (channel_table, corpus_summary, esc, figure_html, headline,
-                                               judgement_table, kv_table, rejections, setting_cells,
+                                               judgement_table, kv_table, rejections, scorecard_table,
+                                               setting_cells,
                                                settings_section, trace_table, verdict_lead, what_was_tuned)
 from burstlens.service.report.wording import people_items
 
@@ -138,6 +139,7 @@ resampled windows.</p>
 <section id="tiling"><h2>Tiling and convergence</h2>
 {figure_html(figures["tiling"])}{figure_html(figures["convergence"])}</section>
 <section id="judgement"><h2>Judgement in numbers</h2>
+{scorecard_table(diagnostics)}
 {headline(filterbank_json, diagnostics, channels)}
 <div class="columns">
 <div><h3>On held-out windows</h3>{judgement_table(diagnostics)}</div>

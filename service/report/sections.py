@@ -137,11 +137,15 @@ def headline(filterbank_json: Mapping, diagnostics: Mapping, channels: list[dict
 
 
 def verdict_lead(diagnostics: Mapping) -> str:
-    """The lead under the title: the held-out gain sentence, how it was measured, and a warnings
-    box only when some warning applies."""
+    """The lead under the title: the scorecard (detection margin and onset fidelity against the
+    best plain spectrogram, and the user's own spectrogram), the held-out sharpness gain
+    sentence, how it was measured, and a warnings box only when some warning applies."""
     judged = verdict.judgement(diagnostics)
     kind = "lead note" if judged is None else "lead"
-    lead = f'<p class="{kind}" id="gain">{esc(verdict.gain_words(diagnostics))}</p>'
+    rows = verdict.scorecard_rows(diagnostics, result_sharpness=False)
+    lead = ('<ul class="lead" id="scorecard">' + "".join(f"<li>{esc(r)}</li>" for r in rows)
+            + "</ul>") if rows else ""
+    lead += f'<p class="{kind}" id="gain">{esc(verdict.gain_words(diagnostics))}</p>'
     if judged is not None:
         gain = judged.get("gain_bits")
         gain = gain if isinstance(gain, Mapping) else {}
@@ -162,6 +166,39 @@ def verdict_lead(diagnostics: Mapping) -> str:
         lead += (f'<div class="warnings" id="warnings" role="note"><h2>Warnings</h2>'
                  f"<ul>{items}</ul></div>")
     return f'<section id="verdict">{lead}</section>'
+
+
+SCORECARD_NAMES = {"result": "tuned filterbank", "spectrogram": "best plain spectrogram",
+                   "yours": "your spectrogram", "envelope": "raw envelope"}
+
+
+def scorecard_table(diagnostics: Mapping) -> str:
+    """The scorecard per representation: the burst gain an energy detector needs (dB, lower
+    finds weaker bursts), onset error against the waveform's envelope (median / 90th
+    percentile, ms) and burst sharpness (bits, lower is sharper); then how each was measured."""
+    card = verdict.scorecard(diagnostics)
+    if card is None:
+        return ""
+    reps = card.get("representations") if isinstance(card.get("representations"), Mapping) else {}
+
+    def number(value, spec: str) -> str:
+        value = finite_or_none(value)
+        return "—" if value is None else format(value, spec)
+
+    rows = "".join(
+        f'<tr><th scope="row">{esc(SCORECARD_NAMES.get(name, name))}</th>'
+        f'<td>{esc(number(r.get("detection_threshold_db"), "+.1f"))}</td>'
+        f'<td>{esc(number(r.get("onset_median_ms"), ".1f"))} / '
+        f'{esc(number(r.get("onset_p90_ms"), ".1f"))}</td>'
+        f'<td>{esc(number(r.get("sharpness_bits"), ".3f"))}</td></tr>'
+        for name, r in reps.items() if isinstance(r, Mapping))
+    method = card.get("method") if isinstance(card.get("method"), Mapping) else {}
+    notes = "".join(f"<li>{esc(str(text))}</li>" for text in method.values())
+    return ('<table class="scorecard" id="scorecard-table"><thead><tr><th scope="col"></th>'
+            '<th scope="col">detected at gain, dB</th><th scope="col">onset error, median / '
+            'p90 ms</th><th scope="col">burst sharpness, bits</th></tr></thead>'
+            f"<tbody>{rows}</tbody></table>"
+            + (f'<ul class="muted">{notes}</ul>' if notes else ""))
 
 
 def judgement_table(diagnostics: Mapping) -> str:

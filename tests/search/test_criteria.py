@@ -284,12 +284,13 @@ def test_criterion_validation_names_field_and_value(kwargs, message):
 
 
 def test_criterion_json_round_trip_and_errors():
-    """to_json gives the five documented fields and from_json inverts it; unknown fields and
+    """to_json gives the six documented fields and from_json inverts it; unknown fields and
     non-objects are refused with their names (DEVELOPERS.md contract)."""
-    crit = Criterion(name="sparsity", alpha=2, p=3, measure="hoyer", negative_mass_penalty=0.5)
+    crit = Criterion(name="sparsity", alpha=2, p=3, measure="hoyer", negative_mass_penalty=0.5,
+                     excess=True)
     obj = json.loads(json.dumps(crit.to_json()))
     assert obj == {"name": "sparsity", "alpha": 2.0, "p": 3.0, "measure": "hoyer",
-                   "negative_mass_penalty": 0.5}
+                   "negative_mass_penalty": 0.5, "excess": True}
     assert Criterion.from_json(obj) == crit
     assert Criterion.from_json({"alpha": 5}) == Criterion(alpha=5.0)
     with pytest.raises(ValueError, match="unknown criterion field.*beta"):

@@ -44,7 +44,7 @@ def test_read_document_gives_the_recorded_facts():
     settings as submitted; the filterbank equals the one written (DESIGN §8)."""
     fb = _filterbank()
     document = FilterbankDocument.read(json.loads(FilterbankDocument.of(fb, JOB).encode()))
-    assert document.filterbank == fb and document.version == 2
+    assert document.filterbank == fb and document.version == 3
     assert (document.sampling_rate_hz, document.window_samples) == (FS, 256)
     assert document.window_s == 256 / FS
     assert document.criterion == {"name": "renyi", "alpha": 3.0}

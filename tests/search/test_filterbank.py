@@ -113,7 +113,8 @@ def test_json_round_trip():
     assert back == fb and hash(back) == hash(fb)
     assert back.provenance == {"window_samples": 1024,
                                "criterion": {"name": "renyi", "alpha": 3.0}, "objective": 7.25}
-    assert doc["format"] == "burstlens-filterbank" and doc["version"] == 2
+    assert doc["format"] == "burstlens-filterbank" and doc["version"] == 3
+    assert doc["steady_lines_hz"] == []
     assert "converted_from_version" not in back.provenance
     assert doc["sampling_rate_hz"] == FS
     assert doc["channels"][1]["correlation"] == pytest.approx(fb[1].correlation)
@@ -143,7 +144,7 @@ def test_version_1_loads_with_chirp_signs_negated():
     the opposite sign) loads with chirp_hz_per_s and correlation negated, into the filterbank
     that sharpens the same arrivals; its provenance keeps the file's facts and adds
     converted_from_version = 1 and a note saying what was done; saving it again writes
-    version 2, which reads back unchanged (no second negation). Channels given only by their
+    the current version, which reads back unchanged (no second negation). Channels given only by their
     spreads (freq_spread_hz, correlation) are converted too. Source: DESIGN §3 and §8 (file
     versions); common practice for format migration."""
     fb = Filterbank([Channel(30.0, 0.02, 1.0), Channel(300.0, 0.004, 0.4, 1234.5),
@@ -161,7 +162,7 @@ def test_version_1_loads_with_chirp_signs_negated():
     note = back.provenance["conversion_note"]
     assert "version 1" in note and "negated" in note and "chirp_hz_per_s" in note
     again = back.to_json()
-    assert again["version"] == 2 and again["converted_from_version"] == 1
+    assert again["version"] == 3 and again["converted_from_version"] == 1
     assert again["channels"][1]["equivalent"]["matched_sweep_hz_per_s"] == 1234.5
     assert Filterbank.from_json(json.loads(json.dumps(again))) == fb
     spreads_only = {**old, "channels": [{k: old["channels"][1][k] for k in
@@ -175,13 +176,13 @@ def test_version_1_loads_with_chirp_signs_negated():
         Filterbank.from_json(bad)
 
 
-def test_version_2_round_trips_chirp_signs():
-    """Version 2 is what to_json writes, and from_json reads it back with the same signs:
+def test_version_3_round_trips_chirp_signs():
+    """Version 3 is what to_json writes, and from_json reads it back with the same signs:
     chirp_hz_per_s, correlation and matched_sweep_hz_per_s all positive for an upward-matching
     channel, nothing converted. Source: DESIGN §3 and §8; common practice."""
     fb = Filterbank([Channel(300.0, 0.004, 0.4, 1234.5), Channel(700.0, 0.01, 1.0, -300.0)], FS)
     doc = json.loads(json.dumps(fb.to_json()))
-    assert doc["version"] == 2
+    assert doc["version"] == 3
     up, down = doc["channels"]
     assert up["chirp_hz_per_s"] == 1234.5 and up["correlation"] > 0.0
     assert up["equivalent"]["matched_sweep_hz_per_s"] == 1234.5
@@ -195,7 +196,9 @@ def test_version_2_round_trips_chirp_signs():
     "change, message",
     [
         (lambda d: d.update(format="other"), "format='other'"),
-        (lambda d: d.update(version=3), "version=3"),
+        (lambda d: d.update(version=4), "version=4"),
+        (lambda d: d.update(steady_lines_hz=[50.0, FS]), r"steady_lines_hz\[1\]"),
+        (lambda d: d.update(steady_lines_hz="50"), "steady_lines_hz must be a list"),
         (lambda d: d.update(version=True), "version=True"),
         (lambda d: d.pop("version"), "version=None"),
         (lambda d: d.pop("sampling_rate_hz"), "sampling_rate_hz is missing"),
@@ -257,3 +260,31 @@ def test_center_grid():
         center_grid((10.0, 100.0), 0)
     with pytest.raises(ValueError, match="spacing='mel'"):
         center_grid((10.0, 100.0), 5, "mel")
+
+
+def test_steady_lines_travel_with_the_filterbank_and_leave_before_the_transform():
+    """A version-3 filterbank carries the site's steady lines and transform removes them first:
+    a window holding a line and a burst transforms as the burst alone does (the line's fit is
+    subtracted: D. E. Butler, R. D. Russell, Geophysics 58(6), 1993, from memory); the lines
+    round-trip through JSON and take part in equality; a version-2 file loads with none
+    (DESIGN §8, file versions; common practice for format migration)."""
+    from burstlens.search.transform import prepare, transform
+
+    fs, n = 2000.0, 1024
+    t = np.arange(n) / fs
+    burst = np.exp(-((t - 0.25) ** 2) / (4 * 0.006 ** 2)) * np.cos(2 * np.pi * 300.0 * t)
+    line = 2.0 * np.cos(2 * np.pi * 50.0 * t + 0.3)
+    channels = [Channel(f, 0.006) for f in np.linspace(40.0, 400.0, 12)]
+    plain = Filterbank(channels, fs)
+    cleaning = Filterbank(channels, fs, steady_lines_hz=[50.0])
+    assert cleaning != plain
+    clean = transform(burst[None] + line[None], cleaning)[0]
+    alone = transform(burst[None], plain)[0]
+    dirty = transform(burst[None] + line[None], plain)[0]
+    assert np.abs(clean - alone).max() < 0.02 * alone.max() < np.abs(dirty - alone).max()
+    doc = json.loads(json.dumps(cleaning.to_json()))
+    assert doc["steady_lines_hz"] == [50.0]
+    assert Filterbank.from_json(doc) == cleaning
+    assert Filterbank.from_json({**doc, "version": 2}).steady_lines_hz == ()
+    with pytest.raises(ValueError, match="steady lines"):
+        transform(prepare(burst), cleaning)

@@ -55,7 +55,7 @@ def test_tune_writes_the_results(tuned, capsys):
     code, out = tuned
     assert code == 0
     fb_json = json.loads((out / "filterbank.json").read_text())
-    assert fb_json["format"] == "burstlens-filterbank" and fb_json["version"] == 2
+    assert fb_json["format"] == "burstlens-filterbank" and fb_json["version"] == 3
     fb = Filterbank.from_json(fb_json)
     assert len(fb) == 8 and fb.sampling_rate_hz == 1000.0
     diag = json.loads((out / "diagnostics.json").read_text())
@@ -70,11 +70,12 @@ def test_tune_writes_the_results(tuned, capsys):
 
 
 def test_tune_prints_a_summary(wav_dir, tmp_path, capsys):
-    """The summary opens with the gain on held-out windows, then names windows used, stop reason,
-    objective, gain over the best spectrogram and the channels with wide stability intervals."""
+    """The summary opens with the scorecard on held-out windows (the tuned filterbank against the
+    best plain spectrogram), then names windows used, stop reason, objective, gain over the best
+    spectrogram and the channels with wide stability intervals."""
     assert main(["tune", str(wav_dir), "--out", str(tmp_path), "--quiet", *FAST, "--no-refine"]) == 0
     text = capsys.readouterr().out
-    assert text.startswith("gain on windows the fit never saw: ")
+    assert text.startswith("The tuned filterbank")
     for phrase in ("windows used: 6", "stop reason:", "objective:", "gain", "wide stability intervals"):
         assert phrase in text, phrase
 
@@ -266,8 +267,9 @@ def test_job_flags_set_the_engines_settings_with_its_choices():
             parser.parse_args([*head, flag, "none-of-them"])
     argv = [*head, "--channels", "12", "--band", "5", "40", "--spacing", SPACINGS[-1],
             "--criterion", CRITERIA[-1], "--alpha", "2", "--cell-area", "0.5", "2",
-            "--no-chirp", "--no-refine", "--evaluations", "3", "--time-limit", "9",
-            "--bootstrap", "0", "--held-out", "0.2", "--max-negative-share", "0.05", "--jobs", "2"]
+            "--no-chirp", "--no-refine", "--no-guard", "--evaluations", "3", "--time-limit", "9",
+            "--bootstrap", "0", "--held-out", "0.2", "--max-negative-share", "0.05", "--jobs", "2",
+            "--compare-to", "hann:8:4"]
     settings = settings_from_args(parser.parse_args(argv))
     assert set(settings) == {flag.setting.split(".")[0] for flag in JOB_FLAGS}
     checked = validate_settings(settings)

@@ -56,8 +56,11 @@ def test_job_full_life(shared):
     done = client.get(f"/v1/jobs/{job['id']}").json()
     assert (done["state"], done["attempts"], done["error"]) == ("succeeded", 1, None)
     assert done["progress"]["fraction"] == 1.0 and done["progress"]["stage"] == "judge"
+    # the job leads with the scorecard, in words and in numbers (DESIGN §7: what a pipeline gains)
+    assert list(done["summary"])[:2] == ["scorecard", "scorecard_rows"]
+    assert done["summary"]["scorecard"][0].startswith("The tuned filterbank")
     filterbank = client.get(f"/v1/jobs/{job['id']}/filterbank").json()
-    assert (filterbank["format"], filterbank["version"]) == ("burstlens-filterbank", 2)
+    assert (filterbank["format"], filterbank["version"]) == ("burstlens-filterbank", 3)
     assert len(filterbank["channels"]) == TINY["channels"]
     assert filterbank["window_samples"] == 256
     assert filterbank["job"] == {"id": job["id"], "settings": TINY}
