@@ -107,6 +107,16 @@ def _hours(hours: float) -> str:
     return f"{hours:.3g}" if hours < 100 else f"{hours:.0f}"
 
 
+def noise_line(noise) -> str:
+    """One line on the site's noise sample (``Corpus.defaults["noise"]``): how many windows and
+    seconds, from where, or why there is none."""
+    noise = noise if isinstance(noise, dict) else {}
+    if not noise.get("source"):
+        return f"noise sample: none ({noise.get('reason') or 'not recorded'})"
+    return (f"noise sample: {noise.get('windows_kept', 0)} windows ({noise.get('duration_s', 0):g} s) "
+            f"from {noise['source']} ({noise.get('windows_found', 0)} found)")
+
+
 def render(corpus, limit: int | None = 20) -> str:
     """Plain-text report of a corpus for a person."""
     out = []
@@ -114,6 +124,7 @@ def render(corpus, limit: int | None = 20) -> str:
     w(f"corpus: {corpus.n_windows} windows of {corpus.window_samples} samples "
       f"({corpus.window_s * 1000:g} ms) at {corpus.sampling_rate_hz:g} Hz, from {len(corpus.files)} files")
     w(f"source sha256: {corpus.source_hash}")
+    w(noise_line(corpus.defaults.get("noise")))
     if corpus.skipped:
         w(f"skipped (not waveform files): {', '.join(s['file'] for s in corpus.skipped)}")
     w("")

@@ -84,6 +84,8 @@ def test_tune_prints_a_summary(wav_dir, tmp_path, capsys):
     (["--cell-area", "4", "1"], "cell_area"),
     (["--band", "100", "700"], "band_hz"),
     (["--evaluations", "0"], "evaluations"),
+    (["--compare-to", "box:64"], "compare_to='box:64'"),
+    (["--compare-to", "hann:99999"], "compare_to='hann:99999"),
 ])
 def test_tune_bad_settings_exit_2_naming_them(wav_dir, tmp_path, capsys, extra, needle):
     """Bad settings exit 2 with a message naming the setting (DEVELOPERS.md: 2 = bad input)."""
