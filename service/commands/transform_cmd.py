@@ -1,5 +1,10 @@
 """``burstlens transform --filterbank FILE PATH... --out FILE.npz``: apply a tuned filterbank.
 
+``--continuous`` (with ``--out OUT.zarr``) transforms every trace whole instead, read as the
+tuning read its corpus, into a Zarr v3 store with UTC times (``search.continuous``), sampled at
+the step the kernels allow (``search.timestep``) or ``--time-step S``; a run over a store resumes
+it (after a failure, or with later files of the same traces); the bar counts the chunks.
+
 The files are cut into windows as the filterbank's tuning cut its corpus: its rate and window
 length, and the corpus options its job recorded (``FilterbankDocument.reading_options``);
 ``--windowing`` and ``--max-windows`` override. The NPZ (DESIGN §8) has the members of
@@ -25,6 +30,11 @@ def register(subparsers) -> None:
                         "else the reader's)")
     p.add_argument("--max-windows", type=int, help="cap on the number of windows")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--continuous", action="store_true",
+                   help="transform every trace whole into a Zarr v3 store (--out OUT.zarr) with UTC times")
+    p.add_argument("--time-step", type=float, metavar="S",
+                   help="with --continuous: output step in seconds (default: the finest step the "
+                        "kernels need, see the store's time_step attribute)")
     p.set_defaults(func=run)
 
 
@@ -56,6 +66,10 @@ def run(args: argparse.Namespace) -> int:
     if missing:
         return fail(f"{missing[0]}: no such file or folder")
     fs = filterbank.sampling_rate_hz
+    if args.continuous:
+        return _run_continuous(args, document, options, fail)
+    if args.time_step is not None:
+        return fail(f"--time-step {args.time_step:g}: only with --continuous")
     for key in ("windowing", "max_windows"):
         if getattr(args, key) is not None:
             options[key] = getattr(args, key)
@@ -84,4 +98,48 @@ def run(args: argparse.Namespace) -> int:
         if bar is not None:
             bar.close()
     print(f"wrote {out}: {m} windows x {c} channels x {n} samples at {fs:g} Hz")
+    return 0
+
+
+def _run_continuous(args, document, options, fail) -> int:
+    import os
+    import sys
+
+    from burstlens.search.continuous import transform_continuous
+    from burstlens.search.corpus import CorpusError
+
+    if not args.out.endswith(".zarr"):
+        return fail(f"--out {args.out}: with --continuous the output is a Zarr store named *.zarr")
+    folder = os.path.dirname(os.path.abspath(args.out))
+    if not os.path.isdir(folder):
+        return fail(f"--out {args.out}: folder {folder} does not exist")
+    if args.windowing is not None or args.max_windows is not None:
+        return fail("--windowing and --max-windows cut windows; --continuous transforms whole traces")
+    bar = None
+    if not args.quiet:
+        from tqdm import tqdm
+
+        bar = tqdm(total=0, desc="transform", unit="chunk", file=sys.stderr)
+
+    def plan(total):
+        if bar is not None:
+            bar.reset(total=total)
+
+    def progress(done):
+        if bar is not None:
+            bar.update(done - bar.n)
+
+    try:
+        result = transform_continuous(args.paths, document, args.out, step_s=args.time_step,
+                                      reading=options, progress=progress, on_plan=plan)
+    except (CorpusError, ValueError) as exc:
+        return fail(str(exc))
+    except OSError as exc:
+        return fail(f"--out {args.out}: {exc.strerror or exc}")
+    finally:
+        if bar is not None:
+            bar.close()
+    step = result.step
+    print(f"wrote {args.out}: {len(result.parts)} part(s), {len(document.filterbank)} channels, "
+          f"time step {step.seconds:g} s ({step.samples} samples, aliasing ≤ {step.aliasing:.1e})")
     return 0
