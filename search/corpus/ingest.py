@@ -37,6 +37,12 @@ DEFAULT_TRIGGER_OFF = 1.5  # common practice (Trnkoczy 2012: 1–1.5)
 DEFAULT_PRE_TRIGGER = 0.25
 DEFAULT_MAX_WINDOWS = 1000
 DEFAULT_SEED = 0
+# Largest |sample| read, raw and after preprocessing. A sum of squares of up to 2^64 samples of
+# |x| ≤ 2^464 stays below 2^992 < 2^1024 (the float64 range), so every energy the passes form
+# (survey frames, STA/LTA sums, windows) is finite; raw 2^448 leaves 2^16 for the gain of detrend,
+# resampling and band-pass, far above theirs. Only float64 files reach it (float32 < 2^128).
+MAX_ABS_SAMPLE = 2.0 ** 448
+MAX_ABS_PROCESSED = 2.0 ** 464
 READ_STAGES = ("reading", "preprocessing", "triggering", "cutting")
 
 
@@ -159,6 +165,13 @@ def read_corpus(
         ``noise_windows`` (K, N) float64, K ≤ ``placement.NOISE_WINDOWS``: the site's noise
         sample from the quiet stretches between triggers ('bursts'; (0, N) otherwise), with
         ``noise_meta`` and ``defaults["noise"]``.
+
+    Raises
+    ------
+    CorpusError
+        Naming the file (or files) and the cause, for any input it cannot read; among them
+        samples beyond ±``MAX_ABS_SAMPLE`` (2^448 ≈ 7.3e134), so large that their energy
+        overflows float64 (the message gives the trace and the largest |x|).
     """
     opts = _validate_options(
         windowing=windowing, window_s=window_s, max_windows=max_windows, seed=seed,
@@ -253,7 +266,7 @@ class _Passes:
         if stage is not None:
             self.stage.begin(stage)
         if self.mapper is None:
-            pieces = stream.pieces(self.files, self.scan.segments, **self.reading)
+            pieces = checked_pieces(self.files, self.scan.segments, **self.reading)
             return fn(pieces, **options, on_segment=self.stage.done if stage is not None else None)
         task = partial(_group_pass, fn, self.reading, options)
         results = []
@@ -273,7 +286,7 @@ class _Passes:
         common = {"mode": opts["windowing"], "seed": opts["seed"]}
         if self.mapper is None:
             self.stage.begin("cutting")
-            return cutting.cut_windows(stream.pieces(self.files, self.scan.segments, **self.reading), plans=plans,
+            return cutting.cut_windows(checked_pieces(self.files, self.scan.segments, **self.reading), plans=plans,
                                        collector=sample, noise=noise, **common,
                                        on_segment=lambda: self.stage.done(windows_found=sample.found))
         cut = cutting.Cut(sample, noise)
@@ -296,7 +309,46 @@ class _Passes:
 
 def _group_pass(fn, reading: dict, options: dict, group: stream.Group):
     """One cluster task: ``fn`` over the pieces of one group's files."""
-    return fn(stream.pieces(group.files, group.segments, **reading), **options)
+    return fn(checked_pieces(group.files, group.segments, **reading), **options)
+
+
+def checked_pieces(files, segments, **reading):
+    """``stream.pieces`` (same arguments), each piece checked by :func:`check_magnitude` before a
+    pass sees it. The check reads only the piece's own samples, whose layout does not depend on
+    how the files split the traces, so any split fails alike."""
+    for piece in stream.pieces(files, segments, **reading):
+        check_magnitude(piece)
+        yield piece
+
+
+def check_magnitude(piece: stream.Piece) -> None:
+    """Raise :class:`CorpusError` when the piece's samples are too large for their energy to fit
+    in float64: a raw sample of its core above ``MAX_ABS_SAMPLE`` in magnitude (the message names
+    the file holding it, the trace, where and |x|), or a processed sample of its core non-finite or
+    above ``MAX_ABS_PROCESSED``, which only a raw sample beyond the limit in the piece's overlap
+    with the next core can cause (the message names the files of the piece's extended range)."""
+    seg, raw = piece.segment, piece.raw
+    limit = f"the reader takes |x| ≤ 2^448 ≈ {MAX_ABS_SAMPLE:.2g}"
+    # max and −min: no temporary the size of the piece; NaN cannot occur (segments are finite);
+    # compared as Python floats, since the limit does not fit a float32 or float16
+    if raw.dtype.kind == "f" and raw.size and float(max(raw.max(), -raw.min())) > MAX_ABS_SAMPLE:
+        i = int(np.argmax(np.abs(raw)))
+        where = seg.first_sample + piece.raw_start + i
+        raise CorpusError(
+            f"{seg.file_at(piece.raw_start + i)}: trace {seg.trace_id}: samples so large that their energy "
+            f"overflows float64 (largest |x| = {abs(float(raw[i])):.4g} at {where / seg.native_rate_hz:.6g} s "
+            f"into the trace; {limit})")
+    x = piece.samples
+    top = np.maximum(x.max(), -x.min()) if x.size else 0.0  # np.maximum: a NaN stays NaN
+    if not top <= MAX_ABS_PROCESSED:  # NaN too
+        e0, e1 = piece.layout.extended(piece.k)
+        inside = {f for first, f in seg.trace.parts if seg.first_sample + e0 <= first < seg.first_sample + e1}
+        files = sorted({seg.file_at(e0), seg.file_at(e1 - 1)} | inside)
+        fs = seg.native_rate_hz
+        raise CorpusError(
+            f"{', '.join(files)}: trace {seg.trace_id}: samples so large that their energy overflows float64 "
+            f"(after preprocessing |x| reaches {float(top):.4g} from samples between "
+            f"{(seg.first_sample + e0) / fs:.6g} and {(seg.first_sample + e1) / fs:.6g} s into the trace; {limit})")
 
 
 def _validate_options(**o) -> dict:
