@@ -15,6 +15,7 @@ COMMANDS = {
     "tokens": "tokens",
     "tune": "tune",
     "transform": "transform_cmd",
+    "check": "check",
 }
 
 

@@ -122,15 +122,19 @@ def run(ctx) -> tuple:
 
 def noise_record(ctx) -> dict:
     """The site's noise model as the run used it: the steady lines removed from every window
-    (search.noise), the noise windows (count and duration, and the reader's record of them)
-    and the floor the criterion scores each burst against."""
+    (search.noise), the noise windows (count, duration, rms level with the lines removed, and
+    the reader's record of them) and the floor the criterion scores each burst against."""
     k, n = ctx.noise_windows.shape
     read = (getattr(ctx.corpus, "defaults", None) or {}).get("noise")
     floor = ("each channel's level over time in each window (its time median); the criterion "
              "scores the bursts' excess over it" if ctx.criterion.excess
              else "none: windows scored whole (criterion excess off)")
+    # the noise windows' level, lines removed, in the input's units: what a later drift check
+    # compares (search.drift)
+    rms = float(np.sqrt(np.mean(ctx.noise_windows ** 2))) if k else None
     return {"lines": ctx.lines.to_json(), "noise_windows": int(k),
-            "noise_duration_s": float(k * n / ctx.space.fs), "reader": read, "floor": floor}
+            "noise_duration_s": float(k * n / ctx.space.fs), "rms": rms, "reader": read,
+            "floor": floor}
 
 
 def held_out_judgement(ctx, p, origin):
