@@ -2,7 +2,7 @@
 
 The client's file names are kept for display only; on disk a part is ``NNNN.ext`` inside a
 folder the server chose, where ``ext`` is the client's extension only if it is short and
-alphanumeric (the corpus readers pick the format by extension).
+alphanumeric (the corpus readers recognise the format from the content, not the name).
 """
 from __future__ import annotations
 

@@ -118,7 +118,7 @@ _JSON_OBJECT = {"content": {"application/json": {"schema": {"type": "object"}}}}
 
 @router.get("/{job_id}/filterbank", response_class=FileResponse,
             responses={200: {**_JSON_OBJECT, "description": "Filterbank JSON (burstlens-filterbank, "
-                             "version 2)"}, **errors(*COMMON, 404, 409, explicit=True)})
+                             "version 3)"}, **errors(*COMMON, 404, 409, explicit=True)})
 def get_filterbank(job_id: str, store: StoreDep, tenant: str = Depends(require_tenant)):
     """The tuned filterbank JSON itself (DESIGN §8), ready for POST /v1/transform or the CLI."""
     return FileResponse(_result(store, job_id, tenant, "filterbank"), media_type="application/json")
