@@ -18,6 +18,13 @@ Steady lines (``Filterbank.steady_lines_hz``) are removed per piece, by the same
 ``transform`` (:func:`search.noise.remove_lines` over the piece's input range), before the
 kernels see the samples: their fit, so the image, depends on the piece (measured in the tests).
 
+Each chunk is computed at its output samples only (:func:`search.transform.transform_decimated`,
+equal to the hop-1 image sampled every Δ). Chunks run in this process (``n_jobs=1``), on a local
+process pool (joblib, ``n_jobs`` workers), or on a Dask cluster when joblib's Dask backend is in
+force (``joblib.parallel_config(backend="dask")``, or ``service.dask_backend.evaluations_on``):
+the reader stays in this process, hands out batches of chunks (input samples, offset, step) and
+writes their images in order, so the store's bytes do not depend on where the chunks ran.
+
 Store layout (Zarr v3, readable with ``xarray.open_zarr(store, group=..., consolidated=False)``
 and no burstlens): one group per SEED id, one sub-group per part (a gap or a non-finite run
 splits a trace), named by its first sample's UTC time ``YYYYmmddTHHMMSS.ffffffZ``; in it
@@ -45,12 +52,13 @@ from burstlens.search.corpus.model import CorpusError
 from burstlens.search.documents import FilterbankDocument
 from burstlens.search.filterbank import Filterbank
 from burstlens.search.timestep import TimeStep, time_step
-from burstlens.search.transform import transform
+from burstlens.search.transform import transform_decimated
 from burstlens.search.wvd import lag_count, truncation_width
 
 FORMAT = "burstlens-continuous"
 VERSION = 1
 PIECE_SAMPLES = 1 << 16  # target output samples per piece (one Zarr chunk of T = this // Δ steps)
+BATCH_PER_WORKER = 4  # chunks handed to the pool per worker at a time (bounds the samples held)
 _NO_CAP = 1 << 62
 
 
@@ -101,7 +109,7 @@ def transform_continuous(paths, document: FilterbankDocument, out: str, *, step_
                          reading: dict | None = None, piece_samples: int = PIECE_SAMPLES, eps: float = 1e-6,
                          progress: Callable[[int], None] | None = None,
                          on_chunk: Callable[[str, int], None] | None = None,
-                         on_plan: Callable[[int], None] | None = None) -> ContinuousResult:
+                         on_plan: Callable[[int], None] | None = None, n_jobs: int = 1) -> ContinuousResult:
     """Transform every trace of ``paths`` whole and write the images to the Zarr store ``out``.
 
     ``document``: the tuned filterbank; ``reading``: its ``reading_options()`` (rate,
@@ -110,12 +118,16 @@ def transform_continuous(paths, document: FilterbankDocument, out: str, *, step_
     ``piece_samples``: output samples per piece (about; a whole number of steps, one chunk).
     ``progress(n)`` after each chunk written (n chunks); ``on_plan(total)`` once the chunks
     to write are known; ``on_chunk(group, steps_complete)`` after each chunk's marker is updated
-    (what it raises stops the run, the store stays resumable). Raises ``CorpusError`` naming the
+    (what it raises stops the run, the store stays resumable). ``n_jobs``: processes computing
+    chunks (joblib; 1 = this process, −1 = all CPUs); under joblib's Dask backend the cluster's
+    workers, whatever ``n_jobs`` says. Raises ``CorpusError`` naming the
     file for unreadable input, ``ValueError`` for a store written with another filterbank,
     reading or step.
     """
     import zarr
 
+    if isinstance(n_jobs, bool) or not isinstance(n_jobs, int) or n_jobs == 0 or n_jobs < -1:
+        raise ValueError(f"n_jobs={n_jobs!r} must be a whole number ≥ 1, or −1 for all CPUs")
     filterbank = document.filterbank
     fs = filterbank.sampling_rate_hz
     reading = dict(reading if reading is not None else document.reading_options())
@@ -154,18 +166,23 @@ def transform_continuous(paths, document: FilterbankDocument, out: str, *, step_
         writers[seg.index] = writer
     if on_plan is not None:
         on_plan(sum(w.chunks_to_write for w in writers.values()))
+    runner = _Runner(n_jobs)
     done = 0
     try:
+        pending: list[_Chunk] = []
         for piece in stream.pieces(files, scan.segments, fs, sos, csv_rate=csv_rate,
                                    assignment=scan.assignment):
-            wrote = writers[piece.segment.index].feed(piece)
-            if wrote and progress is not None:
-                done += wrote
-                progress(done)
+            pending.extend(writers[piece.segment.index].feed(piece))
+            if len(pending) >= runner.batch:
+                done = runner.run(pending, done, progress)
+                pending = []
+        done = runner.run(pending, done, progress)
     except (ValueError, OSError) as exc:
         if isinstance(exc, CorpusError):
             raise
         raise CorpusError(f"{stream.describe(files)}: {exc}") from None
+    finally:
+        runner.close()
     result = ContinuousResult(step, overlap)
     for writer in writers.values():
         if not writer.finished:
@@ -194,6 +211,66 @@ def _open_root(zarr, out: str, attrs: dict):
     return root
 
 
+def chunk_image(x: np.ndarray, filterbank: Filterbank, eps: float, step: int, offset: int,
+                n_steps: int) -> np.ndarray:
+    """One chunk's steps: (n_steps, C) float32, rows the samples offset + k·step of the
+    transform of the input samples ``x`` (N,) (module level: joblib and Dask workers import it)."""
+    return transform_decimated(x, filterbank, step, offset=offset, eps=eps)[:, :n_steps].T
+
+
+@dataclass
+class _Chunk:
+    """One chunk to compute: its part, its index, input samples and where its steps start."""
+
+    writer: _PartWriter
+    index: int
+    x: np.ndarray
+    offset: int
+    n_steps: int
+
+
+class _Runner:
+    """Computes batches of chunks in this process, on joblib's pool, or on the Dask cluster of
+    joblib's Dask backend, and has each part write its chunks in order."""
+
+    def __init__(self, n_jobs: int):
+        from joblib import Parallel, effective_n_jobs
+        from joblib.parallel import get_active_backend
+
+        kind = type(get_active_backend()[0]).__name__
+        self.parallel = None
+        self.batch = 1
+        if kind == "DaskDistributedBackend":  # the cluster's workers, whatever n_jobs says
+            self.parallel = Parallel(n_jobs=-1)
+        elif n_jobs != 1 and kind != "SequentialBackend":
+            self.parallel = Parallel(n_jobs=n_jobs)
+        if self.parallel is not None:
+            self.parallel.__enter__()
+            self.batch = BATCH_PER_WORKER * max(1, effective_n_jobs(self.parallel.n_jobs))
+
+    def run(self, chunks: list[_Chunk], done: int, progress) -> int:
+        if not chunks:
+            return done
+        args = [(c.x, c.writer.filterbank, c.writer.eps, c.writer.step, c.offset, c.n_steps) for c in chunks]
+        if self.parallel is None:
+            images = [chunk_image(*a) for a in args]
+        else:
+            from joblib import delayed
+
+            images = self.parallel(delayed(chunk_image)(*a) for a in args)
+        for chunk, image in zip(chunks, images, strict=True):
+            chunk.writer.write(chunk, image)
+            done += 1
+            if progress is not None:
+                progress(done)
+        return done
+
+    def close(self) -> None:
+        if self.parallel is not None:
+            self.parallel.__exit__(None, None, None)
+            self.parallel = None
+
+
 class _PartWriter:
     """One segment: gathers its processed samples and writes each chunk once its input is held."""
 
@@ -214,7 +291,8 @@ class _PartWriter:
         self.final_until = min(self.n_steps, final_chunks * chunk_steps)
         self.group_path = f"{seg.trace_id}/{part_name(self.start_ns)}"
         self.image, self.group, first = self._prepare(root, attrs)
-        self.next_chunk = self.resumed_chunk = first
+        self.next_chunk = self.resumed_chunk = first  # the next chunk to write
+        self.planned = first  # the next chunk to hand out
         self.chunks_to_write = self.n_chunks - first
         self.buffer = np.zeros(0)
         self.buffer_start = 0  # output index of buffer[0]
@@ -275,10 +353,10 @@ class _PartWriter:
     def finished(self) -> bool:
         return self.next_chunk >= self.n_chunks
 
-    def feed(self, piece: stream.Piece) -> int:
-        """Take a reader piece's core samples; write every chunk now computable; return how many."""
+    def feed(self, piece: stream.Piece) -> list[_Chunk]:
+        """Take a reader piece's core samples; return the chunks whose input is now held."""
         samples = piece.samples
-        keep_from = max(0, self.next_chunk * self.span - self.overlap)
+        keep_from = max(0, self.planned * self.span - self.overlap)
         if piece.start + samples.size > keep_from:
             cut = max(0, keep_from - piece.start)
             if self.buffer.size == 0:
@@ -287,31 +365,34 @@ class _PartWriter:
             else:
                 self.buffer = np.concatenate((self.buffer, samples[cut:]))
         self.received = piece.start + samples.size
-        wrote = 0
-        while not self.finished:
-            a = self.next_chunk * self.span
+        chunks = []
+        while self.planned < self.n_chunks:
+            a = self.planned * self.span
             b = min(self.n, a + self.span)
             hi = min(self.n, b + self.overlap)
             if self.received < hi:
                 break
             lo = max(0, a - self.overlap)
+            # a view: the buffer is only ever replaced, never written, so it stays valid
             x = self.buffer[lo - self.buffer_start: hi - self.buffer_start]
-            image = transform(x, self.filterbank, eps=self.eps)  # (C, hi − lo); lines removed here
-            steps = image[:, a - lo: b - lo: self.step]
-            s0 = self.next_chunk * self.chunk_steps
-            self.image[s0: s0 + steps.shape[1]] = steps.T
-            self.next_chunk += 1
-            self.steps_written += steps.shape[1]
-            complete = min(self.n_steps, self.next_chunk * self.chunk_steps)
-            self.group.attrs["complete_until"] = complete  # after the chunk: never claims more
-            wrote += 1
-            drop = max(0, self.next_chunk * self.span - self.overlap) - self.buffer_start
+            chunks.append(_Chunk(self, self.planned, x, a - lo, -(-(b - a) // self.step)))
+            self.planned += 1
+            drop = max(0, self.planned * self.span - self.overlap) - self.buffer_start
             if drop > 0:
                 self.buffer = self.buffer[drop:]
                 self.buffer_start += drop
-            if self.on_chunk is not None:
-                self.on_chunk(self.group_path, complete)
-        return wrote
+        return chunks
+
+    def write(self, chunk: _Chunk, steps: np.ndarray) -> None:
+        """Store a computed chunk ((n_steps, C) float32), then advance the part's marker."""
+        s0 = chunk.index * self.chunk_steps
+        self.image[s0: s0 + steps.shape[0]] = steps
+        self.next_chunk += 1
+        self.steps_written += steps.shape[0]
+        complete = min(self.n_steps, self.next_chunk * self.chunk_steps)
+        self.group.attrs["complete_until"] = complete  # after the chunk: never claims more
+        if self.on_chunk is not None:
+            self.on_chunk(self.group_path, complete)
 
     def result(self) -> PartResult:
         return PartResult(self.seg.trace_id, self.group_path, self.start_ns, self.n_steps, self.steps_written,

@@ -147,6 +147,66 @@ def transform(windows, filterbank: Filterbank, *, eps: float = 1e-6, dtype=np.fl
     return out[0] if prepared.single else out
 
 
+def transform_decimated(windows, filterbank: Filterbank, step: int, *, offset: int = 0, eps: float = 1e-6,
+                        dtype=np.float32, workers: int | None = None, chirp_method: str = "auto") -> np.ndarray:
+    """Filterbank image of each window at every ``step``-th sample from ``offset`` on:
+    ``transform(windows, ...)[..., offset::step]`` to round-off, with less work.
+
+    windows, filterbank, eps, dtype, workers, chirp_method: as :func:`transform`. ``step``
+    (samples, ≥ 1) and ``offset`` (samples, 0 ≤ offset < N): output sample k is input sample
+    offset + k·step. Returns (M, C, K) (or (C, K) for one 1-D window), K = ⌈(N − offset)/step⌉.
+
+    Unchirped channels (the fast path): the lag products and the forward FFT are those of
+    :func:`transform` (every input sample enters the time convolution); the inverse FFT is
+    evaluated at the output samples only. With P = step·K′ and Y the P-point spectrum of the
+    smoothed row, sampling every step-th point of IDFT_P(Y) is the K′-point IDFT of Y folded:
+
+        y[k·step] = (1/step) · IDFT_K′[F](k),   F[q] = Σ_{l=0}^{step−1} Y[q + l·K′]
+
+    (DFT decimation in time; e.g. Oppenheim & Schafer, Discrete-Time Signal Processing, 3rd
+    ed., 2010, §4.6), so the inverse costs K′·log K′ instead of P·log P; ``offset`` shifts the
+    sampled kernel by −offset samples (no extra work). Chirped channels (β ≠ 0) are computed at
+    every sample and then sampled (no saving).
+    """
+    if isinstance(step, bool) or not isinstance(step, (int, np.integer)) or step < 1:
+        raise ValueError(f"step={step!r} must be a whole number of samples ≥ 1")
+    if isinstance(offset, bool) or not isinstance(offset, (int, np.integer)) or offset < 0:
+        raise ValueError(f"offset={offset!r} must be a whole number of samples ≥ 0")
+    step, offset = int(step), int(offset)
+    if not isinstance(filterbank, Filterbank):
+        raise ValueError(f"filterbank must be a Filterbank, got {type(filterbank).__name__}")
+    truncation_width(eps)  # validates eps
+    if filterbank.steady_lines_hz:
+        if isinstance(windows, PreparedWindows):
+            raise ValueError("the filterbank removes steady lines from the samples: pass the "
+                             "windows themselves, not prepare()'s analytic signals")
+        from burstlens.search.noise import remove_lines
+
+        windows = remove_lines(windows, filterbank.sampling_rate_hz, filterbank.steady_lines_hz)
+    prepared = prepare(windows)
+    z = prepared.analytic
+    n_windows, n_samples = z.shape
+    if offset >= n_samples:
+        raise ValueError(f"offset={offset} must be below the window length N = {n_samples}")
+    workers = _default_workers() if workers is None else int(workers)
+    if workers < 1:
+        raise ValueError(f"workers={workers!r} must be ≥ 1")
+    _check_chirp_method(chirp_method)
+    n_out = -(-(n_samples - offset) // step)
+    plan = _plan(filterbank, n_samples, float(eps), chirp_method)
+    out = np.empty((n_windows, len(filterbank), n_out), dtype=dtype)
+    if plan.fast is not None:
+        fast = plan.fast if step == 1 and offset == 0 else _decimated_fast_plan(
+            filterbank, n_samples, float(eps), chirp_method, step, offset)
+        _run_fast(fast, z, out, workers)
+    if plan.chirped is not None:
+        full = np.empty((n_windows, len(filterbank), n_samples), dtype=dtype)
+        _run_chirped(plan.chirped, z, full, workers)
+        channels = plan.chirped.channels
+        out[:, channels, :] = full[:, channels, offset::step]
+    return out[0] if prepared.single else out
+
+
 def auto_chirp_method(filterbank: Filterbank, n_samples: int, *, eps: float = 1e-6) -> str | None:
     """The way ``transform(..., chirp_method="auto")`` forms the chirped channels of
     ``filterbank`` on windows of ``n_samples`` samples: ``"lag"`` or ``"doppler"``, None when
@@ -185,6 +245,7 @@ class _FastPlan:
     fft_size: int  # the largest P_g
     convolutions: list  # (first, last + 1, P_g, rfft of the sampled time kernels (n_g, P_g//2+1))
     nbytes: int = 0
+    step: int = 1  # output every step-th sample (transform_decimated); P_g then a multiple of it
 
 
 @dataclass
@@ -300,6 +361,69 @@ def _fast_plan(filterbank, idx, n_samples, eps) -> _FastPlan:
     plan = _FastPlan(idx, groups, int(lags.max()), int(sizes.max()), convolutions)
     plan.nbytes = sum(c[3].nbytes for c in convolutions) + sum(g[3].nbytes for g in groups)
     return plan
+
+
+def _decimated_fast_plan(filterbank, n_samples, eps, chirp_method, step, offset) -> _FastPlan:
+    """The fast plan of ``transform_decimated``: the lag weights and channel runs of the hop-1
+    plan, each run's FFT size P′ = step·K′ (K′ 5-smooth, P′ ≥ N + half width, so the circular
+    convolution is linear over the window) and its kernel placed at (d − offset) mod P′, so the
+    convolution's sample j is the linear one's j + offset. Cached with the hop-1 plans."""
+    key = (filterbank.key(), n_samples, eps, chirp_method, "decimated", step, offset)
+    with _PLANS_LOCK:
+        plan = _PLANS.get(key)
+        if plan is not None:
+            _PLANS.move_to_end(key)
+            return plan.fast
+    base = _plan(filterbank, n_samples, eps, chirp_method).fast
+    fs = filterbank.sampling_rate_hz
+    sigma = filterbank.time_spread_s[base.channels]
+    half = _kernel_half_widths(sigma, fs, n_samples, eps)
+    convolutions = []
+    for start, stop, _, _ in base.convolutions:
+        top = int(half[start:stop].max())
+        size = step * sfft.next_fast_len(-(-(n_samples + top) // step), real=True)
+        d = np.arange(-top, top + 1)
+        s_fs = sigma[start:stop, None] * fs
+        kernel = np.exp(-0.5 * (d[None, :] / s_fs) ** 2) / (math.sqrt(2.0 * math.pi) * s_fs)
+        kernel[np.abs(d)[None, :] > half[start:stop, None]] = 0.0  # as in _fast_plan
+        circular = np.zeros((stop - start, size))
+        circular[:, (d - offset) % size] = kernel
+        convolutions.append((start, stop, size, sfft.rfft(circular, axis=1)))
+    fast = _FastPlan(base.channels, base.groups, base.max_lag, max(c[2] for c in convolutions),
+                     convolutions, step=step)
+    fast.nbytes = sum(c[3].nbytes for c in convolutions)
+    with _PLANS_LOCK:
+        _PLANS[key] = _Plan(fast, None)
+        while len(_PLANS) > _PLAN_CACHE_ENTRIES or (
+            len(_PLANS) > 1 and sum(p.nbytes for p in _PLANS.values()) > _PLAN_CACHE_BYTES
+        ):
+            _PLANS.popitem(last=False)
+    return fast
+
+
+def _folded_irfft(half_spectrum: np.ndarray, size: int, step: int, workers: int) -> np.ndarray:
+    """Every step-th sample of irfft(half_spectrum, n=size) (size P = step·K′, last axis): the
+    K′-point inverse of F[q] = Σ_l Y[q + l·K′] divided by step (see :func:`transform_decimated`).
+
+    Y is Hermitian (Y[P − i] = Y*[i]), so F is formed from the half spectrum H = Y[0..⌊P/2⌋]
+    in one pass: with G[j] = Σ_l H[j + l·K′] (H zero beyond ⌊P/2⌋) and G′ the same without
+    Y[P/2] (P even), F[q] = G[q] + (G′[(−q) mod K′] − δ_q0·H[0])*. (..., K′) float64."""
+    reduced = size // step
+    n_half = half_spectrum.shape[-1]
+    rows, rest = divmod(n_half, reduced)
+    folded = half_spectrum[..., : rows * reduced].reshape(half_spectrum.shape[:-1] + (rows, reduced)).sum(axis=-2)
+    folded[..., :rest] += half_spectrum[..., rows * reduced:]
+    mirror = folded[..., (-np.arange(reduced // 2 + 1)) % reduced]  # G[(−q) mod K′], a copy
+    mirror[..., 0] -= half_spectrum[..., 0]
+    if size % 2 == 0:  # Y[P/2] is its own mirror: counted once, in G
+        q = (reduced - (size // 2) % reduced) % reduced
+        if q <= reduced // 2:
+            mirror[..., q] -= half_spectrum[..., size // 2]
+    spectrum = folded[..., : reduced // 2 + 1]
+    spectrum += np.conjugate(mirror)
+    samples = sfft.irfft(spectrum, n=reduced, axis=-1, workers=workers)
+    samples /= step
+    return samples
 
 
 def _group_by_size(sizes: np.ndarray) -> list[tuple[int, int]]:
@@ -562,8 +686,11 @@ def _run_fast(plan: _FastPlan, z: np.ndarray, out: np.ndarray, workers: int) -> 
                     spectrum = sfft.rfft(lagged[:, start:stop, :fft_size], axis=2,
                                          workers=workers)
                     spectrum *= kernels
-                    smoothed = sfft.irfft(spectrum, n=fft_size, axis=2, workers=workers)
-                    out[w0:w1, plan.channels[start:stop], :] = smoothed[:, :, :n_samples]
+                    if plan.step == 1:
+                        smoothed = sfft.irfft(spectrum, n=fft_size, axis=2, workers=workers)
+                    else:
+                        smoothed = _folded_irfft(spectrum, fft_size, plan.step, workers)
+                    out[w0:w1, plan.channels[start:stop], :] = smoothed[:, :, :out.shape[2]]
     finally:
         if pool is not None:
             pool.shutdown()

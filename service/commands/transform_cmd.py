@@ -35,6 +35,8 @@ def register(subparsers) -> None:
     p.add_argument("--time-step", type=float, metavar="S",
                    help="with --continuous: output step in seconds (default: the finest step the "
                         "kernels need, see the store's time_step attribute)")
+    p.add_argument("--jobs", type=int, metavar="N",
+                   help="with --continuous: processes computing the chunks (default 1; -1 all CPUs)")
     p.set_defaults(func=run)
 
 
@@ -70,6 +72,8 @@ def run(args: argparse.Namespace) -> int:
         return _run_continuous(args, document, options, fail)
     if args.time_step is not None:
         return fail(f"--time-step {args.time_step:g}: only with --continuous")
+    if args.jobs is not None:
+        return fail(f"--jobs {args.jobs}: only with --continuous")
     for key in ("windowing", "max_windows"):
         if getattr(args, key) is not None:
             options[key] = getattr(args, key)
@@ -115,6 +119,9 @@ def _run_continuous(args, document, options, fail) -> int:
         return fail(f"--out {args.out}: folder {folder} does not exist")
     if args.windowing is not None or args.max_windows is not None:
         return fail("--windowing and --max-windows cut windows; --continuous transforms whole traces")
+    jobs = 1 if args.jobs is None else args.jobs
+    if jobs == 0 or jobs < -1:
+        return fail(f"--jobs {jobs}: must be at least 1, or -1 for all CPUs")
     bar = None
     if not args.quiet:
         from tqdm import tqdm
@@ -131,7 +138,7 @@ def _run_continuous(args, document, options, fail) -> int:
 
     try:
         result = transform_continuous(args.paths, document, args.out, step_s=args.time_step,
-                                      reading=options, progress=progress, on_plan=plan)
+                                      reading=options, progress=progress, on_plan=plan, n_jobs=jobs)
     except (CorpusError, ValueError) as exc:
         return fail(str(exc))
     except OSError as exc:

@@ -25,7 +25,7 @@ from burstlens.search.corpus import read_corpus, stream
 from burstlens.search.documents import FilterbankDocument
 from burstlens.search.filterbank import Channel, Filterbank, center_grid
 from burstlens.search.timestep import aliasing_at, interpolation_bound, time_step
-from burstlens.search.transform import transform
+from burstlens.search.transform import transform, transform_decimated
 
 FS = 100.0
 START = obspy.UTCDateTime(2024, 3, 1, 0, 0, 0)
@@ -309,3 +309,126 @@ def test_other_filterbank_refused(tmp_path):
     other = Filterbank.constant_q(center_grid((4.0, 40.0), 8), 5.0, FS)
     with pytest.raises(ValueError, match="another filterbank"):
         transform_continuous([path], FilterbankDocument.of(other), out)
+
+
+# --- the output at the step only, and where the chunks run ------------------------------------
+
+@pytest.mark.parametrize("step, offset", [(1, 0), (5, 0), (5, 3), (7, 1234), (16, 15)])
+def test_decimated_equals_sampled_transform(step, offset):
+    """Property: transform_decimated is the hop-1 transform sampled at offset + k·step, to
+    round-off (1e-12 of the peak), for unchirped and chirped channels and several windows: the
+    folded inverse DFT (DFT decimation in time, Oppenheim & Schafer, "Discrete-Time Signal
+    Processing", 3rd ed., 2010, §4.6) and the kernel shifted by the offset change nothing but
+    which samples are made. The same check against a sampling one sample later fails."""
+    fb = Filterbank([Channel(10.0, 0.2, 1.0, 8.0), Channel(20.0, 0.1, 2.0), Channel(30.0, 0.05),
+                     Channel(40.0, 0.3, 0.5)], FS)
+    windows = np.stack([_samples(3001, seed=s) for s in (11, 12)])
+    full = transform(windows, fb, dtype=np.float64)
+    got = transform_decimated(windows, fb, step, offset=offset, dtype=np.float64)
+    expected = full[..., offset::step]
+    assert got.shape == expected.shape == (2, len(fb), -(-(3001 - offset) // step))
+    assert np.abs(got - expected).max() / np.abs(full).max() < 1e-12
+    later = full[..., offset + 1::step][..., : got.shape[-1] - 1]
+    assert np.abs(got[..., : later.shape[-1]] - later).max() / np.abs(full).max() > 1e-3
+
+
+def test_decimated_with_steady_lines_and_one_window():
+    """Property: with steady lines (removed from the samples first) and one 1-D window the
+    decimated image is the hop-1 one sampled (1e-12), shape (C, K)."""
+    fb = _filterbank((25.0,))
+    x = _samples(5000, seed=13, line_hz=25.0)
+    full = transform(x, fb, dtype=np.float64)
+    got = transform_decimated(x, fb, 9, offset=4, dtype=np.float64)
+    assert got.shape == full[:, 4::9].shape
+    assert np.abs(got - full[:, 4::9]).max() / np.abs(full).max() < 1e-12
+
+
+@pytest.mark.parametrize("kwargs, needle", [({"step": 0}, "step"), ({"step": 2.5}, "step"),
+                                            ({"step": 2, "offset": -1}, "offset"),
+                                            ({"step": 2, "offset": 500}, "offset")])
+def test_decimated_bad_input(kwargs, needle):
+    """Property: a bad step or offset is a ValueError naming it."""
+    with pytest.raises(ValueError, match=needle):
+        transform_decimated(np.zeros(500), _filterbank(), **kwargs)
+
+
+def _two_traces(tmp_path):
+    """Two SEED ids in two files each (consecutive hours at 100 Hz, shortened)."""
+    paths = []
+    for k, trace_id in enumerate(("XX.STA.00.HHZ", "XX.STA.00.HHN")):
+        x = _samples(30_000, seed=20 + k)
+        paths.append(_write(tmp_path / f"{k}a.mseed", x[:15_000], trace_id=trace_id))
+        paths.append(_write(tmp_path / f"{k}b.mseed", x[15_000:], start=START + 150.0, trace_id=trace_id))
+    return paths
+
+
+def _all_images(store):
+    import zarr
+
+    root = zarr.open_group(store, mode="r")
+    return {f"{t}/{p}": (part["image"][:], dict(part.attrs)["complete_until"])
+            for t, trace in root.groups() for p, part in trace.groups()}
+
+
+def test_pool_writes_the_same_bytes(tmp_path):
+    """Property: chunks computed on joblib's process pool (2 workers) give a store equal bit for
+    bit to the serial run, over two SEED ids in two files each, every step complete."""
+    paths = _two_traces(tmp_path)
+    doc = FilterbankDocument.of(_filterbank())
+    serial, pool = str(tmp_path / "serial.zarr"), str(tmp_path / "pool.zarr")
+    one = transform_continuous(paths, doc, serial, piece_samples=2048)
+    two = transform_continuous(paths, doc, pool, piece_samples=2048, n_jobs=2)
+    a, b = _all_images(serial), _all_images(pool)
+    assert len(a) == 2 and a.keys() == b.keys()
+    for key in a:
+        assert a[key][1] == b[key][1] == a[key][0].shape[0]
+        assert np.array_equal(a[key][0], b[key][0]), key
+    assert [p.steps_written for p in one.parts] == [p.steps_written for p in two.parts]
+
+
+def test_dask_backend_writes_the_same_bytes(tmp_path):
+    """Property: under joblib's Dask backend (an in-process LocalCluster) the store equals the
+    serial one bit for bit."""
+    distributed = pytest.importorskip("distributed")
+    import joblib
+
+    paths = _two_traces(tmp_path)[:2]
+    doc = FilterbankDocument.of(_filterbank())
+    serial, cluster = str(tmp_path / "serial.zarr"), str(tmp_path / "dask.zarr")
+    transform_continuous(paths, doc, serial, piece_samples=2048)
+    with (distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
+                                   dashboard_address=None) as lc, distributed.Client(lc) as client,
+          joblib.parallel_config(backend="dask", client=client)):
+        transform_continuous(paths, doc, cluster, piece_samples=2048)
+    a, b = _all_images(serial), _all_images(cluster)
+    assert a.keys() == b.keys() and all(np.array_equal(a[k][0], b[k][0]) for k in a)
+
+
+def test_bad_n_jobs(tmp_path):
+    """Property: n_jobs 0 or below −1 is a ValueError naming n_jobs."""
+    path = _write(tmp_path / "a.mseed", _samples(3000))
+    with pytest.raises(ValueError, match="n_jobs"):
+        transform_continuous([path], FilterbankDocument.of(_filterbank()), str(tmp_path / "o.zarr"), n_jobs=0)
+
+
+def test_cli_jobs_flag(tmp_path, capsys):
+    """Property: `transform --continuous --jobs 2` writes the serial run's bytes; --jobs
+    without --continuous, or 0, exits 2 naming --jobs."""
+    from burstlens.service.cli import main
+
+    paths = _two_traces(tmp_path)[:2]
+    fb = _filterbank()
+    fb_path = tmp_path / "filterbank.json"
+    fb_path.write_text(json.dumps(fb.to_json()))
+    out = str(tmp_path / "cli.zarr")
+    assert main(["transform", "--continuous", *paths, "--filterbank", str(fb_path), "--out", out,
+                 "--quiet", "--jobs", "2"]) == 0
+    ref = str(tmp_path / "ref.zarr")
+    transform_continuous(paths, FilterbankDocument.read(json.loads(fb_path.read_text())), ref)
+    a, b = _all_images(out), _all_images(ref)
+    assert a.keys() == b.keys() and all(np.array_equal(a[k][0], b[k][0]) for k in a)
+    capsys.readouterr()
+    for extra in (["--jobs", "2"], ["--continuous", "--jobs", "0"]):
+        code = main(["transform", *paths, "--filterbank", str(fb_path), "--out", str(tmp_path / "x.zarr"),
+                     "--quiet", *extra])
+        assert code == 2 and "--jobs" in capsys.readouterr().err
