@@ -104,6 +104,26 @@ def prepare(windows) -> PreparedWindows:
     return PreparedWindows(z, single=x.ndim == 1)
 
 
+def _checked_input(windows, filterbank, eps, workers, chirp_method) -> tuple:
+    """(prepared windows, worker count) after checking the arguments both transforms share;
+    the filterbank's steady lines leave the samples first (``search.noise.remove_lines``)."""
+    if not isinstance(filterbank, Filterbank):
+        raise ValueError(f"filterbank must be a Filterbank, got {type(filterbank).__name__}")
+    truncation_width(eps)  # validates eps
+    if filterbank.steady_lines_hz:
+        if isinstance(windows, PreparedWindows):
+            raise ValueError("the filterbank removes steady lines from the samples: pass the "
+                             "windows themselves, not prepare()'s analytic signals")
+        from burstlens.search.noise import remove_lines
+
+        windows = remove_lines(windows, filterbank.sampling_rate_hz, filterbank.steady_lines_hz)
+    workers = _default_workers() if workers is None else int(workers)
+    if workers < 1:
+        raise ValueError(f"workers={workers!r} must be ≥ 1")
+    _check_chirp_method(chirp_method)
+    return prepare(windows), workers
+
+
 def transform(windows, filterbank: Filterbank, *, eps: float = 1e-6, dtype=np.float32,
               workers: int | None = None, chirp_method: str = "auto") -> np.ndarray:
     """Filterbank image of each window.
@@ -121,23 +141,9 @@ def transform(windows, filterbank: Filterbank, *, eps: float = 1e-6, dtype=np.fl
     ``"doppler"`` only at the θ bins their bands reach (Doppler rows); all are exact and agree to
     round-off. Unchirped channels ignore it.
     """
-    if not isinstance(filterbank, Filterbank):
-        raise ValueError(f"filterbank must be a Filterbank, got {type(filterbank).__name__}")
-    truncation_width(eps)  # validates eps
-    if filterbank.steady_lines_hz:
-        if isinstance(windows, PreparedWindows):
-            raise ValueError("the filterbank removes steady lines from the samples: pass the "
-                             "windows themselves, not prepare()'s analytic signals")
-        from burstlens.search.noise import remove_lines
-
-        windows = remove_lines(windows, filterbank.sampling_rate_hz, filterbank.steady_lines_hz)
-    prepared = prepare(windows)
+    prepared, workers = _checked_input(windows, filterbank, eps, workers, chirp_method)
     z = prepared.analytic
     n_windows, n_samples = z.shape
-    workers = _default_workers() if workers is None else int(workers)
-    if workers < 1:
-        raise ValueError(f"workers={workers!r} must be ≥ 1")
-    _check_chirp_method(chirp_method)
     plan = _plan(filterbank, n_samples, float(eps), chirp_method)
     out = np.empty((n_windows, len(filterbank), n_samples), dtype=dtype)
     if plan.fast is not None:
@@ -173,25 +179,11 @@ def transform_decimated(windows, filterbank: Filterbank, step: int, *, offset: i
     if isinstance(offset, bool) or not isinstance(offset, (int, np.integer)) or offset < 0:
         raise ValueError(f"offset={offset!r} must be a whole number of samples ≥ 0")
     step, offset = int(step), int(offset)
-    if not isinstance(filterbank, Filterbank):
-        raise ValueError(f"filterbank must be a Filterbank, got {type(filterbank).__name__}")
-    truncation_width(eps)  # validates eps
-    if filterbank.steady_lines_hz:
-        if isinstance(windows, PreparedWindows):
-            raise ValueError("the filterbank removes steady lines from the samples: pass the "
-                             "windows themselves, not prepare()'s analytic signals")
-        from burstlens.search.noise import remove_lines
-
-        windows = remove_lines(windows, filterbank.sampling_rate_hz, filterbank.steady_lines_hz)
-    prepared = prepare(windows)
+    prepared, workers = _checked_input(windows, filterbank, eps, workers, chirp_method)
     z = prepared.analytic
     n_windows, n_samples = z.shape
     if offset >= n_samples:
         raise ValueError(f"offset={offset} must be below the window length N = {n_samples}")
-    workers = _default_workers() if workers is None else int(workers)
-    if workers < 1:
-        raise ValueError(f"workers={workers!r} must be ≥ 1")
-    _check_chirp_method(chirp_method)
     n_out = -(-(n_samples - offset) // step)
     plan = _plan(filterbank, n_samples, float(eps), chirp_method)
     out = np.empty((n_windows, len(filterbank), n_out), dtype=dtype)
