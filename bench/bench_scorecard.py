@@ -2,31 +2,220 @@
 
 Prints, from one run on this machine:
 
-- the demo site (demo_corpus/, 128 windows, the demo's settings): fit time, the time of each stage
-  and the judgement's share of it, the steady lines found, the scorecard rows in numbers
-  (estimate [low, high] of the result and each other representation against the best plain
-  spectrogram) and in words (``service.verdict.scorecard_rows``);
-- a generated site with known answers (Gaussian bursts of time spread 6.1 ms at 300 Hz, a red
-  background and steady lines carrying more than 90 % of the energy; the generator of
-  tests/search/test_site_noise.py), fitted with the default criterion and with the detection
-  criterion: the same figures, the best-spectrogram window against the matched 6.1 ms, and the
-  time ratio of the detection criterion's fit to the default's.
+- the demo site (demo_corpus/ read with ``max_windows`` 128 and ``seed`` 7, fitted with the demo's
+  settings, ``service.demo.DEMO_SETTINGS``, split as the service splits them, and a user's own
+  64 ms Hann spectrogram as ``compare_to``, so the card has its "yours" rows): the fit's wall
+  time, each stage's seconds (``diagnostics_["stage_seconds"]``) and the judgement's share of the
+  fit, broken down into its parts (held-out scoring, the scorecard and its 2000-resample
+  bootstrap, the pipeline guard, the parameter stability refits); the steady lines found; the
+  scorecard in numbers (each row's estimate [low, high], reference − representation, positive:
+  better than the best plain spectrogram; each representation's absolute figures) and in words
+  (``service.verdict.scorecard_rows``), then anything in it that was not measured;
+- a generated site with known answers (the generator of tests/search/test_site_noise.py:
+  Gaussian bursts of time spread σ0 = 6.1 ms at 300 Hz, a red background, steady lines at 50,
+  150, 250 and 420 Hz carrying more than 90 % of the energy), fitted with the default criterion
+  and with ``{"name": "detection"}`` (both with a 64 ms Hann ``compare_to``): the same figures,
+  the lines found against the lines put in, the best spectrogram window and the result's time
+  spread at 300 Hz against σ0, and the ratio of the detection criterion's fit time to the
+  default's.
+
+Times are wall seconds, each with the load average before it: on a shared machine they move with
+the other work, so compare the ratios printed within one run.
 
 Usage: ``python bench/bench_scorecard.py``.
 """
 from __future__ import annotations
 
+import functools
 import importlib.util
 import os
 import sys
 import time
 
+import numpy as np
+
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 sys.path.insert(0, ROOT)
 
+GENERATED_BURSTS, GENERATED_NOISE = 128, 64   # a held-out quarter of 32 bursts, as in the demo
+# a user's own spectrogram scored beside the result (compare_to): 64 ms Hann windows, 75 % overlap
+DEMO_COMPARE_TO, GENERATED_COMPARE_TO = "hann:256:192", "hann:128:96"
+ROWS = (("detection_db", "dB"), ("onset_ms", "ms"), ("sharpness_bits", "bits"))
 
-def _generated_site():
-    """The site generator of tests/search/test_site_noise.py, loaded by path."""
+
+class Stopwatch:
+    """Wall seconds and calls of module functions, wrapped for the duration of a ``with`` block.
+
+    ``targets``: (module, function name) pairs. A call of ``scorecard`` is filed under its
+    ``resamples`` keyword (the held-out card and the guard's card differ by it). Nested calls
+    are timed each on their own, so a caller's seconds include its callees'.
+    """
+
+    def __init__(self, targets):
+        self.targets = list(targets)
+        self.seconds: dict[str, float] = {}
+        self.calls: dict[str, int] = {}
+        self._saved = []
+
+    def _wrap(self, name, fn):
+        @functools.wraps(fn)
+        def timed(*args, **kwargs):
+            key = f"{name}[{kwargs['resamples']}]" if "resamples" in kwargs else name
+            t0 = time.perf_counter()
+            try:
+                return fn(*args, **kwargs)
+            finally:
+                self.seconds[key] = self.seconds.get(key, 0.0) + time.perf_counter() - t0
+                self.calls[key] = self.calls.get(key, 0) + 1
+        return timed
+
+    def order(self, key: str) -> int:
+        """Rank of ``key`` (a function name, with its resamples for a scorecard) in ``targets``."""
+        return [name for _, name in self.targets].index(key.split("[")[0])
+
+    def __enter__(self):
+        for module, name in self.targets:
+            fn = getattr(module, name)
+            self._saved.append((module, name, fn))
+            setattr(module, name, self._wrap(name, fn))
+        return self
+
+    def __exit__(self, *exc):
+        for module, name, fn in reversed(self._saved):
+            setattr(module, name, fn)
+        self._saved.clear()
+        return False
+
+
+def timed_fit(options: dict, corpus):
+    """(fitted FilterbankSearch, wall s, load average before, Stopwatch of the judgement's parts)."""
+    from burstlens.search.fit import detect, judge
+    from burstlens.search.optimize import FilterbankSearch
+
+    parts = [(judge, n) for n in ("held_out_judgement", "pipeline_guard", "scorecard",
+                                  "onset_timing", "stability")] + [(detect, "threshold")]
+    load = os.getloadavg()[0]
+    with Stopwatch(parts) as watch:
+        t0 = time.perf_counter()
+        est = FilterbankSearch(**options).fit(corpus)
+        wall = time.perf_counter() - t0
+    return est, wall, load, watch
+
+
+def _num(value, spec: str) -> str:
+    return "None" if value is None else format(value, spec)
+
+
+def _entry(entry) -> str:
+    """'estimate [low, high]' of a scorecard row entry (None where not measured)."""
+    if entry is None:
+        return "None"
+    text = f"{_num(entry.get('estimate'), '+.3f')} [{_num(entry.get('low'), '+.3f')}, " \
+           f"{_num(entry.get('high'), '+.3f')}]"
+    if entry.get("unreached_resamples"):
+        text += f" (target not reached in {entry['unreached_resamples']} resamples)"
+    return text
+
+
+def unmeasured(card: dict) -> list[str]:
+    """What the scorecard left out or could not bound: rows None, entries without an estimate
+    or an interval, detection thresholds never reached, resamples where the target was not."""
+    out = []
+    for row, _ in ROWS:
+        entries = card["rows"].get(row)
+        if entries is None:
+            out.append(f"row {row} is None")
+            continue
+        for rep, entry in entries.items():
+            if entry.get("estimate") is None:
+                out.append(f"{row} {rep}: no estimate")
+            elif entry.get("low") is None or entry.get("high") is None:
+                out.append(f"{row} {rep}: no interval")
+            if entry.get("unreached_resamples"):
+                out.append(f"{row} {rep}: target AUC not reached in "
+                           f"{entry['unreached_resamples']} of {card['resamples']} resamples")
+    for rep, figures in card["representations"].items():
+        if figures.get("detection_threshold_db") is None and (
+                rep in (card["rows"].get("detection_db") or {}) or rep == card["reference"]):
+            out.append(f"{rep}: detection threshold never reached on the gain grid")
+    return out
+
+
+def report(name: str, est, wall: float, load: float, watch: Stopwatch) -> None:
+    """Print one fit's times, lines, scorecard in numbers and in words, and what it left out."""
+    from burstlens.service import verdict
+
+    d = est.diagnostics_
+    stages = d["stage_seconds"]
+    judge_s = stages.get("judge", 0.0)
+    print(f"{name}: fit {wall:.1f} s [load {load:.1f}]; stages "
+          + ", ".join(f"{k} {v:.1f} s" for k, v in stages.items()))
+    print(f"  RATIO judgement / fit: {judge_s / wall:.2f} ({judge_s:.1f} s of {wall:.1f} s)")
+    parts = {k: v for k, v in watch.seconds.items() if k != "threshold"}
+    print("  judgement parts (a caller's seconds include its callees'; scorecard[B]: B resamples): "
+          + ", ".join(f"{k} {parts[k]:.1f} s" + (f" x{watch.calls[k]}" if watch.calls[k] > 1 else "")
+                      for k in sorted(parts, key=watch.order)))
+    cards = sum(v for k, v in parts.items() if k.startswith("scorecard"))
+    print(f"  RATIO scorecards / judgement: {cards / judge_s:.2f} ({cards:.1f} s; the rest: held-out "
+          f"scoring, onsets, stability refits, the record)")
+    if "threshold" in watch.seconds:
+        print(f"  detection criterion: {watch.calls['threshold']} detection thresholds, "
+              f"{watch.seconds['threshold']:.1f} s; RATIO thresholds / fit "
+              f"{watch.seconds['threshold'] / wall:.2f}")
+    lines = d["noise"]["lines"]
+    print(f"  steady lines removed (found in {lines['found_in']}): "
+          f"{[round(f, 2) for f in lines['lines_hz']]} Hz, levels {lines['levels_db']} dB; "
+          f"{d['noise']['noise_windows']} noise windows")
+    sigma = d["baselines"]["spectrogram"]["parameters"]["time_spread_s"]
+    fallback = d.get("fallback")
+    print(f"  best plain spectrogram: time spread {1e3 * sigma:.3f} ms; result from {d['origin']}"
+          + (f" (fallback: {fallback['reason']})" if fallback else "")
+          + f"; held-out gain {_num(d['gain_bits'], '+.3f')} bits; stop {d['stop_reason']}")
+    card = d["judgement"]["scorecard"]
+    print(f"  scorecard on {card['bursts']} held-out bursts, {card['noise_windows']} noise windows, "
+          f"{card['resamples']} resamples, level {card['level']}, reference {card['reference']}, "
+          f"target AUC {card['target_auc']}")
+    for row, unit in ROWS:
+        entries = card["rows"].get(row)
+        if entries is None:
+            print(f"    {row:15s} None")
+            continue
+        for rep, entry in entries.items():
+            print(f"    {row:15s} {rep:12s} {_entry(entry)} {unit}")
+    for rep, x in card["representations"].items():
+        print(f"    {rep:12s} detection threshold {_num(x['detection_threshold_db'], '+.1f')} dB, "
+              f"onset median {_num(x['onset_median_ms'], '.3f')} ms, p90 "
+              f"{_num(x['onset_p90_ms'], '.3f')} ms, sharpness {_num(x['sharpness_bits'], '.3f')} bits")
+    for sentence in verdict.scorecard_rows(d):
+        print(f"    | {sentence}")
+    for warning in verdict.warnings(d):
+        print(f"    | warning: {warning}")
+    missing = unmeasured(card)
+    print("  not measured: " + ("; ".join(missing) if missing else "nothing"))
+
+
+def demo() -> None:
+    from burstlens.search.corpus import read_corpus
+    from burstlens.search.settings import split_settings
+    from burstlens.service.demo import DEMO_SETTINGS
+
+    corpus_options, options = split_settings(dict(DEMO_SETTINGS))
+    # the service's rule (service.worker): no more jobs than the machine has cores
+    options["n_jobs"] = min(int(options["n_jobs"]), os.cpu_count() or 1)
+    options["compare_to"] = DEMO_COMPARE_TO
+    t0 = time.perf_counter()
+    corpus = read_corpus([os.path.join(ROOT, "demo_corpus")], **corpus_options)
+    read_s = time.perf_counter() - t0
+    m, n = corpus.windows.shape
+    print(f"demo site: {m} windows x {n} samples at {corpus.sampling_rate_hz:g} Hz read in "
+          f"{read_s:.1f} s ({corpus_options}); channels {options['channels']}, evaluations "
+          f"{options['evaluations']}, bootstrap {options['bootstrap']}, jobs {options['n_jobs']}, "
+          f"compare_to {DEMO_COMPARE_TO}")
+    report("demo site", *timed_fit(options, corpus))
+
+
+def generator():
+    """tests/search/test_site_noise.py, loaded by path: ``site``, ``corpus`` and the constants."""
     path = os.path.join(ROOT, "tests", "search", "test_site_noise.py")
     spec = importlib.util.spec_from_file_location("site_noise", path)
     module = importlib.util.module_from_spec(spec)
@@ -34,65 +223,40 @@ def _generated_site():
     return module
 
 
-def _interval(entry) -> str:
-    if not entry or entry.get("estimate") is None:
-        return "not measured"
-    low, high = entry.get("low"), entry.get("high")
-    span = f" [{low:+.2f}, {high:+.2f}]" if low is not None and high is not None else " [no interval]"
-    return f"{entry['estimate']:+.2f}{span}"
-
-
-def report(name: str, est, seconds: float) -> None:
-    from burstlens.service import verdict
-
-    d = est.diagnostics_
-    card = d["judgement"]["scorecard"]
-    stages = d.get("stage_seconds", {})
-    print(f"{name}: fit {seconds:.1f} s; stages "
-          + ", ".join(f"{k} {v:.1f} s" for k, v in stages.items())
-          + f"; judgement {stages.get('judge', 0.0) / max(seconds, 1e-9):.0%} of the fit")
-    print(f"  steady lines removed: {[round(f, 2) for f in d['noise']['lines']['lines_hz']]}")
-    sigma = d["baselines"]["spectrogram"]["parameters"]["time_spread_s"]
-    print(f"  best plain spectrogram: time spread {1e3 * sigma:.2f} ms; origin of the result: "
-          f"{d['origin']}" + (f" (fallback: {d['fallback']['reason']})" if d["fallback"] else ""))
-    for row, unit in (("detection_db", "dB"), ("onset_ms", "ms"), ("sharpness_bits", "bits")):
-        entries = card["rows"].get(row) or {}
-        for rep, entry in entries.items():
-            print(f"  {row:15s} {rep:9s} {_interval(entry)} {unit} (positive: better than the "
-                  "best plain spectrogram)")
-    def num(value, spec: str) -> str:
-        return "—" if value is None else format(value, spec)
-
-    for rep, figures in card["representations"].items():
-        print(f"  {rep:11s} threshold {num(figures['detection_threshold_db'], '+.2f')} dB, onset "
-              f"median {num(figures['onset_median_ms'], '.2f')} ms, p90 "
-              f"{num(figures['onset_p90_ms'], '.2f')} ms, sharpness "
-              f"{num(figures['sharpness_bits'], '.3f')} bits")
-    for line in verdict.scorecard_rows(d):
-        print(f"  | {line}")
+def generated() -> None:
+    gen = generator()
+    windows, noise, share = gen.site(True, m=GENERATED_BURSTS, k=GENERATED_NOISE)
+    jobs = min(2, os.cpu_count() or 1)
+    print(f"generated site: {len(windows)} burst windows, {len(noise)} noise windows, "
+          f"{gen.N} samples at {gen.FS:g} Hz; bursts sigma0 {1e3 * gen.SIGMA0:.2f} ms at "
+          f"{gen.F0:g} Hz; lines {[f for f, _ in gen.LINES]} Hz carry {share:.1%} of the energy; "
+          f"settings {gen.SETTINGS}, jobs {jobs}, compare_to {GENERATED_COMPARE_TO}")
+    walls = {}
+    for label, criterion in (("default criterion", None), ("criterion detection", {"name": "detection"})):
+        est, wall, load, watch = timed_fit({**gen.SETTINGS, "criterion": criterion, "n_jobs": jobs,
+                                            "compare_to": GENERATED_COMPARE_TO},
+                                           gen.corpus(windows, noise))
+        walls[label] = wall
+        report(f"generated site, {label}", est, wall, load, watch)
+        d, fb = est.diagnostics_, est.filterbank_
+        found = np.asarray(d["noise"]["lines"]["lines_hz"], dtype=np.float64)
+        put = np.array([f for f, _ in gen.LINES])
+        miss = [float(f) for f in put if found.size == 0 or np.min(np.abs(found - f)) > 1.0]
+        extra = [float(f) for f in found if np.min(np.abs(put - f)) > 1.0]
+        sigma = d["baselines"]["spectrogram"]["parameters"]["time_spread_s"]
+        at_f0 = float(fb.time_spread_s[int(np.argmin(np.abs(fb.center_hz - gen.F0)))])
+        print(f"  known answers: lines put in {put.tolist()} Hz, missed {miss}, extra {extra}; "
+              f"best spectrogram {1e3 * sigma:.3f} ms = {sigma / gen.SIGMA0:.3f} sigma0; result at "
+              f"{gen.F0:g} Hz {1e3 * at_f0:.3f} ms = {at_f0 / gen.SIGMA0:.3f} sigma0")
+    print(f"  RATIO detection / default criterion fit time: "
+          f"{walls['criterion detection'] / walls['default criterion']:.2f}")
 
 
 def main() -> int:
-    from burstlens.search.corpus import read_corpus
-    from burstlens.search.optimize import FilterbankSearch
-
-    corpus = read_corpus(os.path.join(ROOT, "demo_corpus"), max_windows=128, seed=7)
-    t0 = time.perf_counter()
-    est = FilterbankSearch(channels=96, evaluations=16, bootstrap=4, seed=7,
-                           compare_to="hann:256:192").fit(corpus)
-    report("demo site", est, time.perf_counter() - t0)
-
-    site = _generated_site()
-    windows, noise, share = site.site(True)
-    print(f"generated site: {len(windows)} bursts, {len(noise)} noise windows, the lines carry "
-          f"{share:.1%} of the energy; matched window {1e3 * site.SIGMA0:.2f} ms")
-    times = {}
-    for criterion in ("renyi", "detection"):
-        t0 = time.perf_counter()
-        est = FilterbankSearch(**site.SETTINGS, criterion=criterion).fit(site.corpus(windows, noise))
-        times[criterion] = time.perf_counter() - t0
-        report(f"generated site, criterion {criterion}", est, times[criterion])
-    print(f"detection criterion / default fit time: {times['detection'] / times['renyi']:.2f}")
+    sys.stdout.reconfigure(line_buffering=True)      # each figure shows as soon as it is measured
+    print(f"scorecard bench: {os.cpu_count()} CPUs, load average {os.getloadavg()[0]:.1f}")
+    demo()
+    generated()
     return 0
 
 

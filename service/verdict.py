@@ -217,7 +217,9 @@ def warnings(diagnostics) -> list[str]:
                        "larger corpus or a larger held_out share.")
     gain = _mapping(judged.get("gain_bits"))
     estimate, high = _number(gain.get("estimate")), _number(gain.get("high"))
-    if estimate is not None and round(estimate, 2) < 0:
+    by_detection = _mapping(_mapping(_mapping(diagnostics).get("settings")).get("criterion")) \
+        .get("name") == "detection"   # tuned for detection, not sharpness: no grid to blame
+    if estimate is not None and round(estimate, 2) < 0 and not by_detection:
         surely = high is not None and high < 0
         out.append("The tuned filterbank is less sharp than the best plain spectrogram on windows "
                    "the fit never saw" + (" (the whole interval is below 0)" if surely else "")
@@ -323,7 +325,12 @@ def scorecard_rows(diagnostics, result_sharpness: bool = True) -> list[str]:
     spectrogram = spectrogram_words(diagnostics)
     out = []
     compare = _mapping(_mapping(diagnostics).get("settings")).get("compare_to")
-    for name, who in (("result", "the tuned filterbank"),
+    fell_back = isinstance(_mapping(diagnostics).get("fallback"), Mapping)
+    # after a fallback the result is the best plain spectrogram on the channel grid, not a
+    # learned filterbank: say so, not "the tuned filterbank"
+    result = ("the returned spectrogram (the fallback, on the channel grid)" if fell_back
+              else "the tuned filterbank")
+    for name, who in (("result", result),
                       ("yours", f"your spectrogram ({compare})")):
         if name not in _mapping(card.get("representations")):
             continue

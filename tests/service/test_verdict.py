@@ -274,3 +274,24 @@ def test_energy_channels_ignore_a_loud_hum_when_the_trigger_is_known():
     lines = energy_channels.lines_or_note(fb, corpus)
     strongest = float(lines[1].split("Hz")[0].split()[-1])
     assert abs(strongest - 300) < 60
+
+
+def test_scorecard_words_name_what_was_returned_and_skip_the_grid_warning_for_detection():
+    """After a fallback the scorecard's sentences speak of the returned spectrogram, not of a
+    tuned filterbank; a run tuned for detection is not told its sharpness loss comes from the
+    channel grid (project rules: say what was measured, in words a seismologist reads)."""
+    card = {"representations": {"result": {"onset_median_ms": 2.0},
+                                 "spectrogram": {"onset_median_ms": 1.5}},
+            "rows": {"detection_db": {"result": {"estimate": 0.3, "low": -0.2, "high": 0.9}},
+                     "onset_ms": {"result": {"estimate": -0.5, "low": -1.0, "high": 0.2}},
+                     "sharpness_bits": {"result": {"estimate": -1.1, "low": -1.2, "high": -1.0}}}}
+    diag = {"judgement": {"in_sample": False, "held_out_windows": 40, "scorecard": card,
+                          "gain_bits": {"estimate": -1.1, "low": -1.2, "high": -1.0}},
+            "settings": {"criterion": {"name": "renyi"}}}
+    assert verdict.scorecard_rows(diag)[0].startswith("The tuned filterbank finds")
+    assert any("less sharp than the best plain spectrogram on windows" in w
+               for w in verdict.warnings(diag))
+    fell = {**diag, "fallback": {"to": "spectrogram", "reason": "guard"}}
+    assert all(r.startswith("The returned spectrogram") for r in verdict.scorecard_rows(fell))
+    tuned_for_detection = {**diag, "settings": {"criterion": {"name": "detection"}}}
+    assert not any("channel grid" in w for w in verdict.warnings(tuned_for_detection))
