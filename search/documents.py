@@ -4,7 +4,7 @@ Every writer (``burstlens tune``, the service's worker) and every reader (the tr
 command, the report, the result routes) goes through this module, so they agree on the keys.
 
 - :class:`FilterbankDocument`: ``filterbank.json``, ``format`` "burstlens-filterbank",
-  ``version`` 3 (DESIGN §8). Top level: ``sampling_rate_hz``, ``steady_lines_hz``, what the engine recorded
+  ``version`` 3 (docs/design.md §8). Top level: ``sampling_rate_hz``, ``steady_lines_hz``, what the engine recorded
   (``window_samples``, ``criterion``, ``objective``, ``gain_bits``, ``judged_on``,
   ``corpus_hash``, ``settings`` as the engine resolved them, ``burstlens_version``), from the
   service ``job`` {``id``, ``settings`` as submitted}, and ``channels``. Version 1 files are read

@@ -56,7 +56,7 @@ def test_job_full_life(shared):
     done = client.get(f"/v1/jobs/{job['id']}").json()
     assert (done["state"], done["attempts"], done["error"]) == ("succeeded", 1, None)
     assert done["progress"]["fraction"] == 1.0 and done["progress"]["stage"] == "judge"
-    # the job leads with the scorecard, in words and in numbers (DESIGN §7: what a pipeline gains)
+    # the job leads with the scorecard, in words and in numbers (docs/design.md §7)
     assert list(done["summary"])[:2] == ["scorecard", "scorecard_rows"]
     assert done["summary"]["scorecard"][0].startswith(("The tuned filterbank", "The returned spectrogram"))
     filterbank = client.get(f"/v1/jobs/{job['id']}/filterbank").json()

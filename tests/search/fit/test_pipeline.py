@@ -76,7 +76,7 @@ def test_detection_criterion_finds_bursts_at_least_as_weak(fits):
 def test_your_spectrogram_is_scored_beside_the_result():
     """compare_to puts the user's own spectrogram in the same scorecard, as a row against the
     best plain spectrogram; a window longer than the burst windows is refused naming both
-    lengths (DESIGN: bad settings get a clear error)."""
+    lengths (docs/design.md §7: bad settings get a clear error)."""
     corpus = site(m=24, k=12)
     est = FilterbankSearch(**{**SETTINGS, "evaluations": 4}, refine=False,
                            compare_to="hann:128:96").fit(corpus)
