@@ -7,16 +7,29 @@ from garbage.
 
 Method: ``serve --workers 0`` gives the API; each job is run by a worker started here. A
 reference job runs uninterrupted (twice, to show the run is reproducible at all). Then, for each
-seeded fault, a job on the same corpus and settings is claimed by a :mod:`faulty_worker` that
-SIGKILLs itself during a round, inside a checkpoint write, or inside a heartbeat's transaction; a
-plain ``burstlens worker`` then reclaims the job once its lease expires. The job must end
-``succeeded`` with a filterbank identical to the reference (only ``provenance.job_id`` differs).
+seeded fault (100 in a full run), a job on the same corpus and settings is claimed by a
+:mod:`faulty_worker` that SIGKILLs itself during a round, inside a checkpoint write, inside a
+heartbeat's transaction before its COMMIT, or — every fifth fault — inside SQLite's own COMMIT of
+one of the job thread's write transactions (the claim, a progress report, a checkpoint record,
+the finish): mostly between the WAL write and the commit's completion, some at the COMMIT's
+start and some once the wal-index shows it. Right after such a kill, before any other process
+writes to the store, :func:`faulty_worker.commit_moment` reads ``-wal`` and ``-shm`` and says
+where it landed (no frame on file; the transaction's frames complete, checksums valid, not yet
+published; published); the row counts each, and at least one must have landed after the frames
+were written. A plain ``burstlens worker`` then reclaims the job once its lease expires. The job
+must end ``done`` with a filterbank identical to the reference (only ``provenance.job_id``
+differs), leaving no file in ``blobs/checkpoints``.
 Deliberate corruptions: the job's recorded checkpoint is truncated, bit-flipped, overwritten,
 deleted, or replaced by a well-formed pickle of the wrong state with a digest that matches (the
 store row updated too); the job must then start over (``progress.resumed`` false) and still end
 identical.
-Attempt limit: every attempt of one job is killed; past the limit the job must end ``failed``
+Attempt limit: every attempt of one job is killed; past the limit the job must end ``error``
 with its last error kept. Two lanes (servers with their own data dirs) share the plan.
+
+Cost: one fault is a faulty worker's start and partial run, the lease (2 s), and a plain
+worker's start and the rest of the run with its report; the job (``SMALL``: 10 progress
+reports, 8 checkpoints, 20 commits of the job's thread) is the smallest that runs every stage of
+the search. Most of a fault's time is process start and the report's figures, not the search.
 """
 from __future__ import annotations
 
@@ -33,23 +46,40 @@ from pathlib import Path
 
 import httpx
 
+from reliability.faulty_worker import commit_moment
 from reliability.harness import (FINAL, SMALL, LiveServer, Row, Workers, comparable, corpus_files,
                                  db_rows, remove_tree, wait_until)
 
 LEASE_S = 2.0
 MAX_ATTEMPTS = 3  # service_helpers.service_env sets BURSTLENS_MAX_ATTEMPTS=3
 CORRUPTIONS = ("truncated", "forged-digest", "bit-flip", "overwritten", "deleted")
+# where a kill inside a COMMIT landed (faulty_worker.commit_moment), in the table's words
+COMMIT_MOMENTS = (("before-frames", "before its WAL frames"),
+                  ("frames-unpublished", "with its frames written and not yet published"),
+                  ("published", "published but COMMIT not returned"))
 
 
 def make_plan(rng: random.Random, stats: dict, faults: int) -> list[str]:
-    """``faults`` fault specs for :mod:`reliability.faulty_worker`, the three kinds in turn,
-    moments drawn from ``rng`` within the reference run's counts."""
+    """``faults`` fault specs for :mod:`reliability.faulty_worker`, moments drawn from ``rng``
+    within the reference run's counts: every fifth (from the second) inside SQLite's COMMIT of
+    one of the job thread's write transactions, the others during a round, a checkpoint or a
+    heartbeat in turn."""
     rounds, beats = max(2, stats["progress"]), max(2, stats["heartbeat"])
     checkpoints = max(1, stats["checkpoint"])
+    commits = max(1, stats["commit"])
     round_s = stats["seconds"] / rounds
     plan = []
+    others = 0
     for i in range(faults):
-        kind = ("round", "checkpoint", "heartbeat")[i % 3]
+        if i % 5 == 1:
+            # mostly aimed between the WAL write and the commit's completion; some at the
+            # COMMIT's start and some right after the wal-index shows it, for the edges
+            phase = rng.choice(("frames", "frames", "frames", "begin", "published"))
+            spec = f"commit:{rng.randint(1, commits)}:{phase}"
+            plan.append(spec + (f":{rng.uniform(0.0, 300.0):.0f}" if phase == "frames" else ""))
+            continue
+        kind = ("round", "checkpoint", "heartbeat")[others % 3]
+        others += 1
         if kind == "round":
             plan.append(f"round:{rng.randint(1, rounds - 1)}:{rng.uniform(0.0, round_s):.3f}")
         elif kind == "checkpoint":
@@ -119,7 +149,7 @@ class _Campaign:
         row = db_rows(self.data, "SELECT checkpoint_path FROM jobs WHERE id = ?", (job_id,))[0]
         if not row["checkpoint_path"]:
             return False
-        path = Path(row["checkpoint_path"])
+        path = self.data / row["checkpoint_path"]
         data = path.read_bytes()
         if how == "truncated":
             path.write_bytes(data[: len(data) // 2])
@@ -152,6 +182,7 @@ class _Tally:
         self.details: list[str] = []
         self.fired = self.identical = self.leftover_jobs = 0
         self.by_kind: dict[str, list[int]] = {}
+        self.commit_moments: dict[str, int] = {}  # where the kills inside a COMMIT landed
         self.corrupt_done = self.corrupt_ok = self.resumed_garbage = 0
         self.references: list[str] = []
         self.exhausted: dict | None = None
@@ -196,13 +227,20 @@ def _lane(tmp: Path, settings: dict, specs: list[str], corruptions: list[str], s
                 tally.note(f"time budget reached before fault {spec}")
                 break
             job_id = campaign.submit()
-            code, _ = campaign.run_faulty(spec)
+            code, noted = campaign.run_faulty(spec)
             killed = code == -9
+            kind = spec.split(":")[0]
+            if kind == "commit" and killed:
+                # read the WAL before any other process writes to the store again
+                moment = commit_moment(campaign.data / "burstlens.sqlite3",
+                                       noted["commit_before"]) if "commit_before" in noted \
+                    else "not noted"
+                with tally.lock:
+                    tally.commit_moments[moment] = tally.commit_moments.get(moment, 0) + 1
             done = campaign.recover(job_id)
-            same = done["state"] == "succeeded" and \
+            same = done["state"] == "done" and \
                 comparable(campaign.filterbank(job_id), job_id) == reference
             left = campaign.leftovers(job_id)
-            kind = spec.split(":")[0]
             with tally.lock:
                 tally.fired += killed
                 tally.identical += same and killed
@@ -215,7 +253,7 @@ def _lane(tmp: Path, settings: dict, specs: list[str], corruptions: list[str], s
             if not same:
                 tally.note(f"fault {spec}: job ended {done['state']} (attempts {done['attempts']}, "
                            f"error {done['error']!r}), filterbank "
-                           f"{'differs from' if done['state'] == 'succeeded' else 'missing vs'} "
+                           f"{'differs from' if done['state'] == 'done' else 'missing vs'} "
                            "the uninterrupted run")
             if left:
                 tally.note(f"fault {spec}: files left in blobs/checkpoints after the job ended "
@@ -234,13 +272,13 @@ def _lane(tmp: Path, settings: dict, specs: list[str], corruptions: list[str], s
                 continue
             done = campaign.recover(job_id)
             progress = done.get("progress") or {}
-            same = done["state"] == "succeeded" and \
+            same = done["state"] == "done" and \
                 comparable(campaign.filterbank(job_id), job_id) == reference
             clean = progress.get("resumed") is False
             left = campaign.leftovers(job_id)
             with tally.lock:
                 tally.corrupt_done += 1
-                tally.resumed_garbage += done["state"] == "succeeded" and not clean
+                tally.resumed_garbage += done["state"] == "done" and not clean
                 tally.corrupt_ok += same and clean
                 tally.leftover_jobs += bool(left)
             if not (same and clean):
@@ -257,8 +295,8 @@ def _lane(tmp: Path, settings: dict, specs: list[str], corruptions: list[str], s
             campaign.close()
 
 
-def run(faults: int = 20, corruptions: int = len(CORRUPTIONS), seed: int = 20261202,
-        settings: dict | None = None, lanes: int = 2, time_budget_s: float = 600.0) -> list[Row]:
+def run(faults: int = 100, corruptions: int = len(CORRUPTIONS), seed: int = 20261202,
+        settings: dict | None = None, lanes: int = 2, time_budget_s: float = 2400.0) -> list[Row]:
     """Run the experiment on ``lanes`` servers in parallel; returns its two table rows."""
     settings = dict(settings or SMALL)
     tmp = Path(tempfile.mkdtemp(prefix="bl-crash-"))
@@ -295,15 +333,22 @@ def run(faults: int = 20, corruptions: int = len(CORRUPTIONS), seed: int = 20261
         tally.details.append(f"the {len(tally.references)} uninterrupted reference runs gave "
                              f"{len(set(tally.references))} different filterbanks")
     kinds = ", ".join(f"{k} {v[1]}/{v[0]}" for k, v in sorted(tally.by_kind.items()))
+    commit_kills = tally.by_kind.get("commit", [0, 0])[0]
+    moments = ", ".join(f"{tally.commit_moments.get(m, 0)} {words}" for m, words in COMMIT_MOMENTS)
+    after_frames = sum(tally.commit_moments.get(m, 0) for m in ("frames-unpublished", "published"))
     elapsed = time.monotonic() - started
     return [
         Row("1 crash faults (kill -9 worker)",
-            f"{tally.fired}/{faults} kills fired ({kinds}); {lanes} uninterrupted references "
-            f"identical: {'yes' if reproducible else 'NO'}; jobs leaving checkpoint files: "
+            f"{tally.fired}/{faults} kills fired ({kinds}); the {commit_kills} inside SQLite's "
+            f"COMMIT landed: {moments}; {lanes} uninterrupted references identical: "
+            f"{'yes' if reproducible else 'NO'}; jobs leaving checkpoint files: "
             f"{tally.leftover_jobs}",
             f"{tally.identical}/{faults} succeeded with the identical filterbank ({elapsed:.0f} s)",
-            f"{faults}/{faults} identical",
-            tally.identical == faults and tally.fired == faults and reproducible, tally.details),
+            f"{faults}/{faults} identical, no checkpoint file left, a COMMIT killed after its WAL "
+            "frames were written",
+            tally.identical == faults and tally.fired == faults and reproducible
+            and tally.leftover_jobs == 0 and (after_frames > 0 or commit_kills == 0),
+            tally.details),
         Row("1 corrupt checkpoint",
             f"{tally.corrupt_done}/{corruptions} damaged ({', '.join(CORRUPTIONS[:corruptions])})",
             f"{tally.corrupt_ok}/{corruptions} restarted clean and identical; resumed from "
@@ -318,7 +363,7 @@ def _exhausted_row(outcome: dict | None) -> Row:
     goal = f"failed after {MAX_ATTEMPTS} attempts, last error kept"
     if outcome is None:
         return Row("1 attempt limit", "-", "not run (time budget)", goal, False)
-    ok = outcome["state"] == "failed" and f"{MAX_ATTEMPTS} attempts" in outcome["error"]
+    ok = outcome["state"] == "error" and f"{MAX_ATTEMPTS} attempts" in outcome["error"]
     details = [] if ok else [f"attempt limit: job ended {outcome['state']}, error "
                              f"{outcome['error']!r}"]
     if outcome["left"]:

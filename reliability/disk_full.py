@@ -73,7 +73,7 @@ def _fill(path: Path) -> int:
 
 def _message(response: httpx.Response) -> str:
     try:
-        return str(response.json()["error"]["message"])
+        return str(response.json()["detail"])
     except (ValueError, KeyError, TypeError):
         return ""
 
@@ -140,7 +140,7 @@ def run(size_mb: int = 4, uploads: int = 5, job_wait_s: float = 90.0,
                                                  "settings": LONG_JOB}).json()
         wait_until(lambda: (client.get(f"/v1/jobs/{long_job['id']}").json()["progress"]
                             .get("round") or 0) >= 2, 120)
-        if client.get(f"/v1/jobs/{long_job['id']}").json()["state"] != "running":
+        if client.get(f"/v1/jobs/{long_job['id']}").json()["state"] != "working":
             details.append("the long job was not running when the disk filled")
 
         # fill the disk
@@ -164,7 +164,7 @@ def run(size_mb: int = 4, uploads: int = 5, job_wait_s: float = 90.0,
         if response is not None and response.status_code == 201:
             submitted_full = response.json()["id"]
         for url in (f"/v1/corpora/{corpus['id']}", f"/v1/jobs/{job1['id']}",
-                    f"/v1/jobs/{job1['id']}/filterbank", "/healthz"):
+                    f"/v1/jobs/{job1['id']}/filterbank", "/v1/health"):
             response = call("GET", url)
             if response is not None and response.status_code != 200:
                 details.append(f"GET {url} while full: {response.status_code}")
@@ -173,7 +173,7 @@ def run(size_mb: int = 4, uploads: int = 5, job_wait_s: float = 90.0,
                    min(job_wait_s, max(10.0, left_s)), interval=0.5)
         long_done = state_of(long_job["id"])
         reason = long_done.get("error") or ""
-        job_failed_ok = long_done["state"] == "failed" and any(w in reason.lower() for w in SPACE_WORDS)
+        job_failed_ok = long_done["state"] == "error" and any(w in reason.lower() for w in SPACE_WORDS)
         if not job_failed_ok:
             details.append(f"running job while full: state {long_done['state']}, error {reason!r}")
         server_alive = server.proc.poll() is None

@@ -27,7 +27,7 @@ __all__ = ["ROOT", "TINY", "LiveServer", "burst_npz", "corpus_files", "service_e
            "Workers", "DataDirAudit", "integrity_check", "db_rows", "wait_until", "FINAL",
            "percentile", "cli_token", "SMALL", "comparable", "remove_tree"]
 
-FINAL = ("succeeded", "failed", "cancelled")
+FINAL = ("done", "error", "withdrawn")
 # The smallest job that still runs every stage of the search (family, refinement, judgement):
 # about 10 rounds, a few seconds of compute, on one 12 s corpus file.
 SMALL = {"channels": 4, "evaluations": 6, "bootstrap": 2, "seed": 3, "window_s": 0.128}

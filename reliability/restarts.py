@@ -92,7 +92,7 @@ def run(cycles: int = 2, batch: int = 3, burst: int = 3, seed: int = 20261202,
                 break
             for i in range(batch):
                 submit(client, f"c{cycle}-queued-{i}")
-            wait_until(lambda: db_rows(data, "SELECT 1 FROM jobs WHERE state = 'running'"), 60)
+            wait_until(lambda: db_rows(data, "SELECT 1 FROM jobs WHERE state = 'working'"), 60)
             flight = [threading.Thread(target=submit, args=(client, f"c{cycle}-inflight-{i}"))
                       for i in range(burst)]
             flight.append(threading.Thread(target=upload, args=(client, 100 + cycle)))
@@ -123,7 +123,7 @@ def run(cycles: int = 2, batch: int = 3, burst: int = 3, seed: int = 20261202,
                     submit(client, key)
         keys = set(answers)
         wait_until(lambda: not db_rows(data, "SELECT 1 FROM jobs WHERE state NOT IN "
-                                             "('succeeded', 'failed', 'cancelled')"),
+                                             "('done', 'error', 'withdrawn')"),
                    max(60.0, time_budget_s - (time.monotonic() - started)), interval=0.5)
         jobs = db_rows(data, "SELECT id, idempotency_key, state, attempts, error FROM jobs")
         by_key: dict[str, list[dict]] = {}
@@ -135,7 +135,7 @@ def run(cycles: int = 2, batch: int = 3, burst: int = 3, seed: int = 20261202,
             if key in acked and not rows:
                 lost += 1
                 details.append(f"key {key}: acknowledged as {acked[key]} but no job in the store")
-            elif rows and rows[0]["state"] != "succeeded":
+            elif rows and rows[0]["state"] != "done":
                 lost += 1
                 details.append(f"key {key}: job {rows[0]['id']} ended {rows[0]['state']} "
                                f"(attempts {rows[0]['attempts']}, error {rows[0]['error']!r})")
@@ -152,7 +152,7 @@ def run(cycles: int = 2, batch: int = 3, burst: int = 3, seed: int = 20261202,
         duplicated += len(strangers)
         reference, different = None, 0
         for job in jobs:
-            if job["state"] != "succeeded":
+            if job["state"] != "done":
                 continue
             response = client.get(f"/v1/jobs/{job['id']}/filterbank")
             text = comparable(response.json() if response.status_code == 200 else None, job["id"])

@@ -14,7 +14,8 @@ import sys
 import tempfile
 import time
 
-EXPERIMENTS = ("crash_faults", "restarts", "disk_full", "bad_input", "tenants", "load")
+EXPERIMENTS = ("crash_faults", "restarts", "disk_full", "bad_input", "tenants", "load",
+               "token_guessing")
 
 
 def table(rows) -> str:

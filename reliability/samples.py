@@ -124,3 +124,80 @@ def mutate(blob: bytes, ops: list[tuple]) -> bytes:
             packed = struct.pack(op[3] + ("i" if kind == "int32" else "d"), op[2])
             data[i:i + len(packed)] = packed
     return bytes(data)
+
+
+def mseed_sources() -> dict[str, bytes]:
+    """Real multi-record miniSEED files for the truncation and garbage sweeps, keyed by a short
+    name: test data that ObsPy ships (``obspy/io/mseed/tests/data``: Steim-1 512-byte records;
+    two interleaved channels; a little-endian header), ``obspy.read()``'s example written with
+    ``Stream.write(format="MSEED")`` (4096-byte float32 records), and this module's Steim-2 file."""
+    import os
+
+    import obspy
+
+    data = os.path.join(os.path.dirname(obspy.__file__), "io", "mseed", "tests", "data")
+    out = {}
+    for name in ("BW.BGLD.__.EHE.D.2008.001.first_10_records", "timingquality.mseed",
+                 "two_channels.mseed", "bizarre/endiantest.le-header.le-data.mseed"):
+        with open(os.path.join(data, name), "rb") as fh:
+            out["obspy:" + name] = fh.read()
+    buf = io.BytesIO()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        obspy.read().write(buf, format="MSEED")
+    out["obspy.read() example"] = buf.getvalue()
+    out["mseed-steim2"] = valid_files()["mseed-steim2"]
+    return out
+
+
+def _header_order(record: bytes) -> str:
+    """Byte order of a valid record's fixed header: the one with a plausible year."""
+    return ">" if 1900 <= struct.unpack_from(">H", record, 20)[0] <= 2100 else "<"
+
+
+def _blockette_1000_at(record: bytes) -> int:
+    """Offset of blockette 1000 in a valid record, following the blockette chain from byte 46."""
+    order = _header_order(record)
+    at, = struct.unpack_from(order + "H", record, 46)
+    while at:
+        kind, following = struct.unpack_from(order + "HH", record, at)
+        if kind == 1000:
+            return at
+        at = following
+    raise ValueError("the record holds no blockette 1000")
+
+
+GARBAGE_KINDS = ("random", "zeros", "spaces", "text", "shifted", "quality", "hour", "day",
+                 "blockette-offset", "reclen-exponent")
+
+
+def garbage_record(record: bytes, kind: str, rng: np.random.Generator) -> bytes:
+    """``record`` (one whole miniSEED record) made into garbage of one kind, same length:
+    random bytes, zeros, spaces after byte 6, text, the record rotated by 100 bytes, or its
+    fixed header broken in one field (quality indicator, hour, day of year in both byte orders,
+    first-blockette offset inside the header, blockette 1000 exponent); SEED Reference Manual
+    v2.4 ch. 8 names the fields."""
+    out = bytearray(record)
+    if kind == "random":
+        return rng.integers(0, 256, len(record), dtype=np.uint8).tobytes()
+    if kind == "zeros":
+        return bytes(len(record))
+    if kind == "spaces":
+        out[6:] = b"X" + b" " * (len(record) - 7)  # not a noise record: byte 6 is not a space
+    elif kind == "text":
+        return (b"this is not a record " * (len(record) // 21 + 1))[:len(record)]
+    elif kind == "shifted":
+        return record[100:] + record[:100]
+    elif kind == "quality":
+        out[6] = ord("V")
+    elif kind == "hour":
+        out[24] = 24 + int(rng.integers(0, 200))
+    elif kind == "day":
+        out[22:24] = b"\x00\x00"
+    elif kind == "blockette-offset":
+        struct.pack_into(_header_order(record) + "H", out, 46, int(rng.integers(1, 48)))
+    elif kind == "reclen-exponent":
+        out[_blockette_1000_at(record) + 6] = int(rng.choice([0, 6, 21, 40, 255]))
+    else:
+        raise ValueError(f"garbage kind {kind!r} is not one of {GARBAGE_KINDS}")
+    return bytes(out)

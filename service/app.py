@@ -1,7 +1,9 @@
 """The FastAPI application: ``create_app(settings)`` wires store, auth, limits, routers and errors.
 
-Every error leaves as JSON ``{"error": {"status": N, "message": "..."}}`` (422s add ``fields``);
-a 500 names no internals and carries no stack trace (the log has it, under the same reference).
+Every error leaves as a problem document (RFC 9457, "Problem Details for HTTP APIs", 2023):
+``application/problem+json`` with ``type``, ``title``, ``status``, ``detail`` and ``instance``
+(422s add ``errors``, one entry per invalid field). A 500 names no internals and carries no stack
+trace (the log has it, under the same reference).
 """
 from __future__ import annotations
 
@@ -9,38 +11,55 @@ import logging
 import sqlite3
 import uuid
 
+from http import HTTPStatus
+
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
+from fastapi.openapi.utils import get_openapi
 from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.routing import Match
 
 from burstlens.service.config import ServiceSettings
+from burstlens.service.corpus_check import CorpusRejected, CorpusTooLarge
 from burstlens.service.limits import BodySizeLimit
+from burstlens.service.models import Problem
+from burstlens.service.routers import PROBLEM_MEDIA_TYPE
 from burstlens.service.store import Conflict, IdempotencyMismatch, LeaseLost, NotFound, QueueFull, Store
 
 log = logging.getLogger("burstlens.api")
 
-_STORE_STATUS = {NotFound: 404, Conflict: 409, LeaseLost: 409, QueueFull: 429,
-                 IdempotencyMismatch: 422}
+# the domain's errors and the status each answers with (routes raise them as they are)
+_DOMAIN_STATUS = {NotFound: 404, Conflict: 409, LeaseLost: 409, QueueFull: 429,
+                 IdempotencyMismatch: 422, CorpusRejected: 422, CorpusTooLarge: 413}
 
 DESCRIPTION = """\
 Tune a Gaussian-smoothed Wigner–Ville filterbank to a site's unlabeled microseismic corpus, then
 apply it to new data.
 
 Typical use: `POST /v1/corpora` (multipart `files`) → `POST /v1/jobs` with the corpus id and
-settings → poll `GET /v1/jobs/{id}` until `succeeded` → `GET /v1/jobs/{id}/filterbank`.
+settings → poll `GET /v1/jobs/{id}` until its state is `done` → `GET /v1/jobs/{id}/filterbank`.
+Later: `POST /v1/jobs/{id}/checks` (does the filterbank still fit new data?) and
+`POST /v1/jobs/{id}/transforms` (the filterbank over continuous records, into a Zarr store).
 Authenticate with `Authorization: Bearer TOKEN` (tokens come from `burstlens tokens add NAME`).
-Errors are JSON `{"error": {"status", "message"}}`.
+Errors are problem documents (RFC 9457, `application/problem+json`: `type`, `title`, `status`,
+`detail`).
 """
 
 
-def error_response(status: int, message: str, headers: dict | None = None,
-                   fields: list | None = None) -> JSONResponse:
-    body: dict = {"status": status, "message": message}
-    if fields is not None:
-        body["fields"] = fields
-    return JSONResponse({"error": body}, status_code=status, headers=headers)
+def problem_response(status: int, detail: str, request: Request | None = None,
+                     headers: dict | None = None, errors: list | None = None) -> JSONResponse:
+    """A problem document (RFC 9457) for ``status``, its title the status's reason phrase."""
+    try:
+        title = HTTPStatus(status).phrase
+    except ValueError:
+        title = "Error"
+    body: dict = {"type": "about:blank", "title": title, "status": status, "detail": detail}
+    if request is not None:
+        body["instance"] = request.url.path
+    if errors is not None:
+        body["errors"] = errors
+    return JSONResponse(body, status_code=status, headers=headers, media_type=PROBLEM_MEDIA_TYPE)
 
 
 def _field_errors(exc: RequestValidationError) -> tuple[str, list[dict]]:
@@ -79,17 +98,17 @@ def install_error_handlers(app: FastAPI) -> None:
         headers = dict(getattr(exc, "headers", None) or {})
         if exc.status_code == 405:
             headers["Allow"] = _allowed_methods(request)
-        return error_response(exc.status_code, str(exc.detail), headers=headers or None)
+        return problem_response(exc.status_code, str(exc.detail), request, headers=headers or None)
 
     @app.exception_handler(RequestValidationError)
     async def _validation(request: Request, exc: RequestValidationError):
         message, fields = _field_errors(exc)
-        return error_response(422, message, fields=fields)
+        return problem_response(422, message, request, errors=fields)
 
-    for cls, status in _STORE_STATUS.items():
+    for cls, status in _DOMAIN_STATUS.items():
         def make(status):
             async def _store(request: Request, exc: Exception):
-                return error_response(status, str(exc))
+                return problem_response(status, str(exc), request)
             return _store
         app.add_exception_handler(cls, make(status))
 
@@ -97,17 +116,18 @@ def install_error_handlers(app: FastAPI) -> None:
     async def _store_unavailable(request: Request, exc: sqlite3.OperationalError):
         text = str(exc).lower()
         if "full" in text:
-            return error_response(507, "the server's disk is full; nothing was stored")
+            return problem_response(507, "the server's disk is full; nothing was stored", request)
         if "locked" in text or "busy" in text:
-            return error_response(503, "the job store is busy; retry shortly",
-                                  headers={"Retry-After": "1"})
+            return problem_response(503, "the job store is busy; retry shortly", request,
+                                    headers={"Retry-After": "1"})
         return await _internal(request, exc)
 
     @app.exception_handler(Exception)
     async def _internal(request: Request, exc: Exception):
         ref = uuid.uuid4().hex[:12]
         log.exception("internal error %s on %s %s", ref, request.method, request.url.path)
-        return error_response(500, f"internal server error (reference {ref} in the server log)")
+        return problem_response(500, f"internal server error (reference {ref} in the server log)",
+                                request)
 
 
 def create_app(settings: ServiceSettings | None = None) -> FastAPI:
@@ -131,5 +151,19 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
     app.include_router(jobs.router)
     app.include_router(transform.router)
     app.add_middleware(BodySizeLimit, max_body_bytes=settings.max_body_bytes)
+    app.openapi = lambda: _openapi(app)
     return app
+
+
+def _openapi(app: FastAPI) -> dict:
+    """The OpenAPI document, built once, with the ``Problem`` schema every error refers to."""
+    if app.openapi_schema is None:
+        document = get_openapi(title=app.title, version=app.version,
+                               description=app.description, routes=app.routes)
+        schemas = document.setdefault("components", {}).setdefault("schemas", {})
+        problem = Problem.model_json_schema(ref_template="#/components/schemas/{model}")
+        schemas.update(problem.pop("$defs", {}))
+        schemas["Problem"] = problem
+        app.openapi_schema = document
+    return app.openapi_schema
 

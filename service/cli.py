@@ -16,6 +16,8 @@ COMMANDS = {
     "tune": "tune",
     "transform": "transform_cmd",
     "check": "check",
+    "backup": "backup",
+    "restore": "restore",
 }
 
 

@@ -20,13 +20,14 @@ from typing import Any
 
 import httpx
 
-FINAL_STATES = ("succeeded", "failed", "cancelled")
+FINAL_STATES = ("done", "error", "withdrawn")
 RESULTS = {"filterbank": "filterbank.json", "diagnostics": "diagnostics.json",
            "report": "report.html"}
 
 
 class ServiceError(RuntimeError):
-    """An error answer of the API: ``status`` and the server's ``message``."""
+    """An error answer of the API: ``status`` and the server's ``message`` (the problem
+    document's ``detail``, RFC 9457)."""
 
     def __init__(self, status: int, message: str):
         super().__init__(f"HTTP {status}: {message}")
@@ -39,12 +40,8 @@ def _message(response: httpx.Response) -> str:
         body = response.json()
     except ValueError:
         return response.text[:500] or response.reason_phrase
-    if isinstance(body, dict):
-        error = body.get("error")
-        if isinstance(error, dict) and "message" in error:
-            return str(error["message"])
-        if "detail" in body:
-            return str(body["detail"])
+    if isinstance(body, dict) and "detail" in body:
+        return str(body["detail"])
     return str(body)[:500]
 
 
@@ -71,7 +68,7 @@ class Client:
 
     # -- resources --------------------------------------------------------------------------
     def health(self) -> dict:
-        return self._check(self.http.get("/healthz")).json()
+        return self._check(self.http.get("/v1/health")).json()
 
     def upload_corpus(self, paths: Iterable[str | Path], **read_options: Any) -> dict:
         """Upload waveform files (streamed from disk) as one corpus; returns the corpus record."""
@@ -88,14 +85,27 @@ class Client:
 
     def submit_job(self, corpus_id: str, settings: dict | None = None,
                    idempotency_key: str | None = None) -> dict:
-        """Queue a job. A retry after a network error reuses the same Idempotency-Key, so the
-        server never creates two jobs for one submission."""
+        """Queue a search. A retry after a network error reuses the same Idempotency-Key, so
+        the server never creates two jobs for one submission."""
+        return self._submit("/v1/jobs", {"corpus_id": corpus_id, "settings": settings or {}},
+                            idempotency_key)
+
+    def submit_check(self, job_id: str, corpus_id: str, idempotency_key: str | None = None) -> dict:
+        """Queue a check of search ``job_id``'s filterbank on the corpus ``corpus_id``."""
+        return self._submit(f"/v1/jobs/{job_id}/checks", {"corpus_id": corpus_id}, idempotency_key)
+
+    def submit_transform(self, job_id: str, corpus_id: str, time_step_s: float | None = None,
+                         idempotency_key: str | None = None) -> dict:
+        """Queue search ``job_id``'s filterbank over the continuous records of ``corpus_id``."""
+        return self._submit(f"/v1/jobs/{job_id}/transforms",
+                            {"corpus_id": corpus_id, "time_step_s": time_step_s}, idempotency_key)
+
+    def _submit(self, route: str, body: dict, idempotency_key: str | None) -> dict:
         key = idempotency_key or uuid.uuid4().hex
-        body = {"corpus_id": corpus_id, "settings": settings or {}}
         last: Exception | None = None
         for attempt in range(3):
             try:
-                response = self.http.post("/v1/jobs", json=body, headers={"Idempotency-Key": key})
+                response = self.http.post(route, json=body, headers={"Idempotency-Key": key})
                 return self._check(response).json()
             except httpx.TransportError as exc:
                 last = exc
@@ -109,8 +119,28 @@ class Client:
         params = {"state": state} if state else {}
         return self._check(self.http.get("/v1/jobs", params=params)).json()["jobs"]
 
-    def cancel(self, job_id: str) -> dict:
-        return self._check(self.http.post(f"/v1/jobs/{job_id}/cancel")).json()
+    def withdraw(self, job_id: str) -> dict:
+        return self._check(self.http.post(f"/v1/jobs/{job_id}/withdraw")).json()
+
+    def check_answer(self, check_id: str) -> dict:
+        """The answer of a check that is done (as ``burstlens check --json`` prints it)."""
+        return self._check(self.http.get(f"/v1/jobs/{check_id}/check")).json()
+
+    def download_store(self, transform_id: str, out: str | Path) -> Path:
+        """Save a transform's Zarr store as a zip at ``out`` (streamed; written whole or not
+        at all)."""
+        out = Path(out)
+        part = out.with_name(out.name + ".part")
+        with self.http.stream("GET", f"/v1/jobs/{transform_id}/store.zip",
+                              timeout=httpx.Timeout(None, connect=10.0)) as response:
+            if response.status_code >= 400:
+                response.read()
+                self._check(response)
+            with open(part, "wb") as fh:
+                for piece in response.iter_bytes():
+                    fh.write(piece)
+        part.replace(out)
+        return out
 
     def wait(self, job_id: str, *, on_progress: Callable[[dict], None] | None = None,
              poll_s: float = 1.0, timeout_s: float | None = None) -> dict:

@@ -33,6 +33,18 @@ class ServiceSettings(BaseSettings):
     max_transform_values: int = Field(64 * 1024**2, ge=1,
                                       description="Largest transform output (windows×channels×samples).")
     tokens_required: bool = Field(False, description="Require a bearer token even with none stored.")
+    worker_niceness: int = Field(10, ge=0, le=19, description="Niceness added to job worker "
+                                 "processes, so the API on the same host keeps answering while "
+                                 "they compute (0: the same priority).")
+    # token guessing (service/guessing.py has the rule)
+    auth_failures_allowed: int = Field(10, ge=1, description="Failed authentications per client "
+                                       "address in the window before answers become 429.")
+    auth_failure_window_s: float = Field(600.0, gt=0, description="Sliding window of counted "
+                                         "failures; also the longest Retry-After.")
+    auth_clients_tracked: int = Field(10_000, ge=1, description="Client addresses the limiter "
+                                      "keeps (oldest dropped past this).")
+    auth_slow_answer_s: float = Field(1.0, ge=0, description="Delay before each 429 to a slowed "
+                                      "client (at most its Retry-After).")
 
     @property
     def db_path(self) -> Path:

@@ -10,28 +10,28 @@ import math
 from pathlib import Path
 from typing import Any
 
-from fastapi import HTTPException
-
 log = logging.getLogger("burstlens.corpus")
 
 class CorpusRejected(ValueError):
-    """The files cannot be read as a corpus (message names the client's file and the cause)."""
+    """The files cannot be read as a corpus, or the reading options are wrong (the message names
+    the client's file or the option, and the cause). The API answers it with a 422."""
 
 
 class CorpusTooLarge(ValueError):
-    """The corpus passes a server limit (windows or samples)."""
+    """The corpus passes a server limit (windows or samples). The API answers it with a 413."""
 
 
 def parse_read_options(fields: dict[str, str]) -> dict[str, Any]:
     """Form fields of an upload (named as the corpus options, ``search.settings.CORPUS_OPTIONS``,
-    values as text) → checked corpus reader options; a bad one is a 422 naming it."""
+    values as text) → checked corpus reader options; a bad one is a :class:`CorpusRejected`
+    naming it."""
     from burstlens.search.settings import CORPUS_OPTIONS, check_corpus_options
 
     try:
         return check_corpus_options({name: CORPUS_OPTIONS[name].parse(text)
                                      for name, text in fields.items()})
     except ValueError as exc:
-        raise HTTPException(status_code=422, detail=str(exc)) from None
+        raise CorpusRejected(str(exc)) from None
 
 
 def _renamer(paths: list[Path], names: list[str]):
@@ -110,15 +110,11 @@ def enforce_limits(corpus, settings) -> None:
 
 
 def read_for_client(paths: list[Path], names: list[str], options: dict[str, Any], settings):
-    """The corpus of an upload within the service's limits; HTTPException 422 when it cannot be
-    read (the message names the client's file) or 413 when it is over a limit."""
-    try:
-        corpus = load_corpus(paths, names, options)
-        enforce_limits(corpus, settings)
-    except CorpusRejected as exc:
-        raise HTTPException(status_code=422, detail=str(exc)) from None
-    except CorpusTooLarge as exc:
-        raise HTTPException(status_code=413, detail=str(exc)) from None
+    """The corpus of an upload within the service's limits: :class:`CorpusRejected` when it
+    cannot be read (the message names the client's file), :class:`CorpusTooLarge` when it is
+    over a limit."""
+    corpus = load_corpus(paths, names, options)
+    enforce_limits(corpus, settings)
     return corpus
 
 
@@ -126,7 +122,7 @@ def check_corpus(paths: list[Path], files: list[dict], options: dict[str, Any], 
                  ) -> tuple[dict[str, Any], str | None]:
     """Read an upload as the jobs will; returns (summary for the client, source hash).
 
-    Raises HTTPException 422 (unreadable, no windows) or 413 (over a limit).
+    Raises :class:`CorpusRejected` (unreadable, no windows) or :class:`CorpusTooLarge`.
     """
     names = [f["name"] for f in files]
     corpus = read_for_client(paths, names, options, settings)

@@ -15,12 +15,13 @@ from burstlens.service.config import ServiceSettings
 from burstlens.service.store import Store
 
 
-def get_settings(request: Request) -> ServiceSettings:
+# async: a plain attribute read has no reason to take a thread-pool hop per request
+async def get_settings(request: Request) -> ServiceSettings:
     """The settings the app was created with (limits, data dir, auth policy)."""
     return request.app.state.settings
 
 
-def get_store(request: Request) -> Store:
+async def get_store(request: Request) -> Store:
     """The app's job store (SQLite file and blob folder under ``settings.data_dir``)."""
     return request.app.state.store
 

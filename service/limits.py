@@ -63,10 +63,11 @@ class BodySizeLimit:
 
     @staticmethod
     async def _send_413(send, limit: int) -> None:
-        body = json.dumps({"error": {"status": 413, "message":
-                                     f"request body larger than the limit of {limit} bytes"}}).encode()
+        # a problem document (RFC 9457), as service.app answers every other error
+        body = json.dumps({"type": "about:blank", "title": "Content Too Large", "status": 413,
+                           "detail": f"request body larger than the limit of {limit} bytes"}).encode()
         await send({"type": "http.response.start", "status": 413,
-                    "headers": [(b"content-type", b"application/json"),
+                    "headers": [(b"content-type", b"application/problem+json"),
                                 (b"content-length", str(len(body)).encode()),
                                 (b"connection", b"close")]})
         await send({"type": "http.response.body", "body": body})

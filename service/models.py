@@ -14,7 +14,8 @@ from pydantic import BaseModel, ConfigDict, Field, create_model, field_validator
 
 from burstlens.search.settings import CORPUS_OPTIONS
 
-JobState = Literal["queued", "running", "succeeded", "failed", "cancelled"]
+JobState = Literal["waiting", "working", "done", "error", "withdrawn"]
+JobKind = Literal["search", "check", "transform"]
 
 
 class _Strict(BaseModel):
@@ -85,8 +86,8 @@ class _SearchSettings(_Strict):
     max_negative_share: float | None = Field(
         None, ge=0, le=1, description="Largest share of the image's absolute mass that may be "
                                       "negative (default 0.01).")
-    jobs: int | None = Field(None, ge=1, le=256, description="Parallel evaluations (the worker "
-                                                             "caps it at its cores).")
+    jobs: int | None = Field(None, ge=1, le=256, description="Parallel evaluations (at most "
+                                                             "the server's cores are used).")
     compare_to: str | None = Field(
         None, max_length=64, description="Your own spectrogram, scored beside the result: "
                                          "KIND:LENGTH[:OVERLAP] in samples, KIND hann or "
@@ -135,7 +136,7 @@ def _check_corpus_option(cls, value, info):
 
 JobSettings = create_model(
     "JobSettings", __base__=_SearchSettings, __module__=__name__,
-    __doc__="Settings of one tuning job; keys as the CLI flags in snake_case.",
+    __doc__="Settings of one filterbank search; keys as the CLI flags in snake_case.",
     __validators__={"_corpus_options": field_validator(*CORPUS_OPTIONS)(_check_corpus_option)},
     **{name: _corpus_field(option) for name, option in CORPUS_OPTIONS.items()})
 
@@ -164,40 +165,69 @@ class Progress(BaseModel):
 
 class JobView(BaseModel):
     model_config = ConfigDict(json_schema_extra={"examples": [
-        {"id": "8c1d2e3f4a5b6c7d8e9f0a1b2c3d4e5f", "state": "running",
+        {"id": "8c1d2e3f4a5b6c7d8e9f0a1b2c3d4e5f", "kind": "search", "state": "working",
          "progress": {"stage": "family", "round": 3, "evaluations": 24, "budget": 120,
                       "best_objective": 9.81, "fraction": 0.2},
          "attempts": 1, "error": None, "corpus_id": "3f2a0c9e5b8d4e7f9a1b2c3d4e5f6a7b",
-         "settings": {"channels": 48}, "stop_reason": None, "cancel_requested": False,
-         "created_at": 1780000000.0, "started_at": 1780000001.0, "finished_at": None,
-         "summary": None}]})
+         "settings": {"channels": 48}, "stop_reason": None, "withdraw_requested": False,
+         "submitted_at": 1780000000.0, "started_at": 1780000001.0, "ended_at": None,
+         "summary": None, "parent_id": None}]})
 
     id: str
-    state: JobState
+    kind: JobKind = Field(..., description="search: tune a filterbank on a corpus; check: judge "
+                                           "a search's filterbank on new data; transform: a "
+                                           "search's filterbank over continuous records.")
+    state: JobState = Field(..., description="waiting (for a worker) → working → done, error "
+                                             "or withdrawn.")
     progress: Progress
     attempts: int
     error: str | None
     corpus_id: str
     settings: dict[str, Any]
     stop_reason: str | None = None
-    cancel_requested: bool = False
-    created_at: float
-    started_at: float | None = None
-    finished_at: float | None = None
+    withdraw_requested: bool = False
+    submitted_at: float = Field(..., description="UTC, seconds since 1970.")
+    started_at: float | None = Field(None, description="UTC, seconds since 1970.")
+    ended_at: float | None = Field(None, description="UTC, seconds since 1970.")
+    parent_id: str | None = Field(None, description="For a check or a transform: the search "
+                                                    "whose filterbank it uses.")
     summary: dict[str, Any] | None = Field(
-        None, description="Once the job succeeded: scorecard (the detection margin, onset "
-                          "fidelity and burst sharpness against the best plain spectrogram, in "
-                          "words), scorecard_rows (the same in numbers with paired intervals), "
-                          "objective, gain_bits, stop_reason, channels.")
+        None, description="Once the job is done. A search: scorecard (the detection margin, "
+                          "onset fidelity and burst sharpness against the best plain "
+                          "spectrogram, in words), scorecard_rows (the same in numbers with "
+                          "paired intervals), objective, gain_bits, stop_reason, channels. A "
+                          "check: verdict (keep or retune), words, moved, files. A transform: "
+                          "time_step_s, parts (SEED id, group, start, steps), channels, files.")
 
     @classmethod
     def from_job(cls, job: dict[str, Any]) -> JobView:
-        return cls(id=job["id"], state=job["state"], progress=Progress(**job["progress"]),
-                   attempts=job["attempts"], error=job["error"], corpus_id=job["corpus_id"],
-                   settings=job["settings"], stop_reason=job["stop_reason"],
-                   cancel_requested=job["cancel_requested"], created_at=job["created_at"],
-                   started_at=job["started_at"], finished_at=job["finished_at"],
-                   summary=job["summary"])
+        return cls(id=job["id"], kind=job["kind"], state=job["state"],
+                   progress=Progress(**job["progress"]), attempts=job["attempts"],
+                   error=job["error"], corpus_id=job["corpus_id"], settings=job["settings"],
+                   stop_reason=job["stop_reason"], withdraw_requested=job["withdraw_requested"],
+                   submitted_at=job["submitted_at"], started_at=job["started_at"],
+                   ended_at=job["ended_at"], parent_id=job["parent_id"], summary=job["summary"])
+
+
+class CheckRequest(_Strict):
+    model_config = ConfigDict(extra="forbid", allow_inf_nan=False, json_schema_extra={"examples": [
+        {"corpus_id": "5d6e7f8a9b0c1d2e3f4a5b6c7d8e9f0a"}]})
+
+    corpus_id: str = Field(..., min_length=1, max_length=64,
+                           description="New files from POST /v1/corpora, read as the search "
+                                       "read its corpus.")
+
+
+class TransformJobRequest(_Strict):
+    model_config = ConfigDict(extra="forbid", allow_inf_nan=False, json_schema_extra={"examples": [
+        {"corpus_id": "5d6e7f8a9b0c1d2e3f4a5b6c7d8e9f0a", "time_step_s": 0.01}]})
+
+    corpus_id: str = Field(..., min_length=1, max_length=64,
+                           description="Continuous records from POST /v1/corpora (miniSEED, SAC "
+                                       "or SEG-Y: files that carry UTC start times).")
+    time_step_s: float | None = Field(
+        None, gt=0, le=3600, description="Output time step, s (default: the coarsest step the "
+                                         "filterbank's kernels allow within the stated error).")
 
 
 class JobList(BaseModel):
@@ -230,18 +260,28 @@ class CorpusView(BaseModel):
                    summary=corpus["summary"])
 
 
-class ErrorBody(BaseModel):
-    status: int
-    message: str
-    fields: list[dict[str, Any]] | None = Field(
-        None, description="For 422: each invalid field's location and the reason.")
+class FieldProblem(BaseModel):
+    field: str = Field(..., description="Where: a dotted path into the body, or a query or "
+                                        "header name.")
+    reason: str
 
 
-class ErrorResponse(BaseModel):
+class Problem(BaseModel):
+    """An error answer: Problem Details for HTTP APIs (RFC 9457, Nottingham, Wilde and Dalal,
+    2023), served as ``application/problem+json``."""
+
     model_config = ConfigDict(json_schema_extra={"examples": [
-        {"error": {"status": 404, "message": "no job '8c1d2e3f'"}}]})
+        {"type": "about:blank", "title": "Not Found", "status": 404,
+         "detail": "no job '8c1d2e3f'", "instance": "/v1/jobs/8c1d2e3f"}]})
 
-    error: ErrorBody
+    type: str = Field("about:blank", description="A URI naming the kind of problem; "
+                                                 "about:blank: the status says it all.")
+    title: str = Field(..., description="The status's reason phrase.")
+    status: int
+    detail: str = Field(..., description="What went wrong, naming the field, file or value.")
+    instance: str | None = Field(None, description="The path of the request.")
+    errors: list[FieldProblem] | None = Field(
+        None, description="For 422: each invalid field and the reason.")
 
 
 class Health(BaseModel):

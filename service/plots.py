@@ -131,8 +131,9 @@ def tiling_figure(center_hz, time_spread_s, cell_area, chirp_hz_per_s) -> Figure
 
     Inputs are (C,) arrays in Hz, s, dimensionless and Hz/s. Each channel's kernel is centred at
     t = 0 and its centre frequency; the dashed reference to the right is the Heisenberg cell
-    (a = 1, no chirp) at the median channel's time spread and frequency. Channel patches carry
-    gid ``channel-ellipse``, the reference ``heisenberg-reference``.
+    (a = 1, no chirp) at the median channel's time spread and frequency. The frequency axis is
+    log or linear by :func:`frequency_scale`. Channel patches carry gid ``channel-ellipse``, the
+    reference ``heisenberg-reference``.
     """
     fc = _as_1d("center_hz", center_hz)
     count = fc.size
@@ -164,11 +165,17 @@ def tiling_figure(center_hz, time_spread_s, cell_area, chirp_hz_per_s) -> Figure
     reference[:, 0] = reference[:, 0] * 1e3 + 2.4 * t_reach_ms
     ax.add_patch(Polygon(reference, closed=True, fill=False, edgecolor="black", linestyle="--",
                          linewidth=1.3, gid=REFERENCE_GID,
-                         label=f"Heisenberg cell a = 1 (σ_t = {1e3 * ref_st:.3g} ms)"))
+                         label=f"Heisenberg cell a = 1 (window std {1e3 * math.sqrt(2.0) * ref_st:.3g} ms)"))
 
     half_f = np.array([np.sqrt(kernel_covariance(s, a, b)[1, 1]) for s, a, b in zip(st, area, beta, strict=True)])
     ax.set_xlim(-1.4 * t_reach_ms, 2.4 * t_reach_ms + 1.4 * 1e3 * ref_st)
-    ax.set_ylim(max(0.0, float(np.min(fc - 1.3 * half_f))), float(np.max(fc + 1.3 * half_f)))
+    low, high = float(np.min(fc - 1.3 * half_f)), float(np.max(fc + 1.3 * half_f))
+    if frequency_scale(fc) == "log":  # the same frequency axis as the report's other plots
+        ax.set_yscale("log")
+        ax.set_ylim(max(low, 0.5 * float(np.min(fc))), high)
+        _plain_log_ticks(ax.yaxis)
+    else:
+        ax.set_ylim(max(0.0, low), high)
     ax.axvline(0.0, color="#999999", linewidth=0.8, zorder=0)
     ax.set_xlabel("time relative to the kernel centre (ms)")
     ax.set_ylabel("frequency (Hz)")
@@ -195,16 +202,21 @@ def _to_db(image: np.ndarray, peak: float) -> np.ndarray:
 
 
 def example_figure(times_s, waveforms, spectrograms, learned, center_hz,
-                   labels: Sequence[str], spectrogram_label: str = "best spectrogram") -> Figure:
+                   labels: Sequence[str], spectrogram_label: str = "best spectrogram",
+                   trigger_s: Sequence[float | None] | None = None,
+                   amplitude_label: str = "amplitude (as recorded)") -> Figure:
     """K example windows as rows of (waveform, best spectrogram, learned representation).
 
-    ``times_s`` (N,) s; ``waveforms`` (K, N) in the corpus' amplitude units; ``spectrograms`` and
-    ``learned`` (K, C, N) channel outputs at ``center_hz`` (C,) Hz. In each row both images are
-    normalised to unit sum (as the sharpness criteria see them) and drawn in dB re. the larger of
-    the two peaks with one shared 30 dB colour range, on identical time and frequency axes;
-    values below the range, including the negative values of super-resolved channels, take the
-    lowest colour. ``labels`` (K,) name the rows. Image meshes carry gid ``image:spectrogram``
-    and ``image:learned``.
+    ``times_s`` (N,) s; ``waveforms`` (K, N) in the recorded amplitude units, named by
+    ``amplitude_label``; ``spectrograms`` and ``learned`` (K, C, N) channel outputs at
+    ``center_hz`` (C,) Hz. In each row both images are normalised to unit sum (as the sharpness
+    criteria see them) and drawn in dB re. the larger of the two peaks with one 30 dB colour
+    range, on identical time and frequency axes, each panel with its own colour bar; values
+    below the range, including the negative values of super-resolved channels, take the lowest
+    colour. The frequency axis is log or linear by :func:`frequency_scale`, as in every plot
+    of the report. ``labels`` (K,) name the rows; ``trigger_s`` (K,) the trigger onset of each
+    row in s from the window start (None: unknown), drawn on the waveform as a dashed line
+    (gid ``trigger``). Image meshes carry gid ``image:spectrogram`` and ``image:learned``.
     """
     t = _as_1d("times_s", times_s)
     fc = _as_1d("center_hz", center_hz)
@@ -219,17 +231,26 @@ def example_figure(times_s, waveforms, spectrograms, learned, center_hz,
             raise ValueError(f"{name}: expected shape {(rows, fc.size, t.size)}, got {image.shape}")
     if len(labels) != rows or rows == 0:
         raise ValueError(f"labels: expected {rows} row labels, got {len(labels)}")
+    triggers = [None] * rows if trigger_s is None else list(trigger_s)
+    if len(triggers) != rows:
+        raise ValueError(f"trigger_s: expected {rows} onsets (or None), got {len(triggers)}")
 
     fig = _new_figure(10.5, 2.75 * rows)
     rows_of = fig.subfigures(rows, 1, squeeze=False)[:, 0]
     t_ms = 1e3 * t
+    log = frequency_scale(fc) == "log"
     for r, row in enumerate(rows_of):
-        row.suptitle(literal(labels[r]), x=0.01, ha="left", fontsize=10, fontweight="bold")
+        row.suptitle(literal(labels[r]), x=0.01, ha="left", fontsize=9.5, fontweight="bold")
         ax_w, ax_s, ax_l = row.subplots(1, 3, width_ratios=[1.0, 1.2, 1.2])
         ax_w.plot(t_ms, wave[r], color=PALETTE[0], linewidth=0.8)
+        onset = triggers[r]
+        if onset is not None and math.isfinite(float(onset)):
+            ax_w.axvline(1e3 * float(onset), color=PALETTE[5], linestyle="--", linewidth=1.2,
+                         label="trigger", gid="trigger")
+            ax_w.legend(loc="upper right", fontsize=7.5, frameon=False)
         ax_w.set_xlim(t_ms[0], t_ms[-1])
         ax_w.set_title("waveform", fontsize=9.5, loc="left")
-        ax_w.set_ylabel("amplitude (input units)")
+        ax_w.set_ylabel(literal(amplitude_label))
         ax_w.set_xlabel("time in window (ms)")
         _plain(ax_w)
         pair = []
@@ -239,7 +260,6 @@ def example_figure(times_s, waveforms, spectrograms, learned, center_hz,
         peak = max(float(np.max(pair[0])), float(np.max(pair[1])))
         if not peak > 0:
             peak = 1.0
-        mesh = None
         for ax, image, title, kind in zip((ax_s, ax_l), pair,
                                           (literal(spectrogram_label), "learned filterbank"),
                                           ("spectrogram", "learned"), strict=True):
@@ -251,19 +271,21 @@ def example_figure(times_s, waveforms, spectrograms, learned, center_hz,
             ax.set_xlabel("time in window (ms)")
             ax.set_ylabel("frequency (Hz)")
             ax.tick_params(labelsize=8.5)
-            if _log_axis_wanted(fc):
+            if log:
                 ax.set_yscale("log")
                 _plain_log_ticks(ax.yaxis)
+            bar = row.colorbar(mesh, ax=ax, pad=0.01, fraction=0.06)
+            bar.set_label("dB re. row peak", fontsize=8)
+            bar.ax.tick_params(labelsize=7.5)
         ax_l.sharey(ax_s)
-        bar = row.colorbar(mesh, ax=[ax_s, ax_l], pad=0.01, fraction=0.04)
-        bar.set_label("dB re. row peak", fontsize=8.5)
-        bar.ax.tick_params(labelsize=8)
     return fig
 
 
-def _log_axis_wanted(center_hz: np.ndarray) -> bool:
-    """Log frequency axis when the channels span more than a decade (log-spaced grids)."""
-    return bool(np.min(center_hz) > 0 and np.max(center_hz) / np.min(center_hz) > 10.0)
+def frequency_scale(center_hz) -> str:
+    """The frequency axis of every report plot: "log" when the channels span more than a
+    decade (log-spaced grids), else "linear" — one choice for one filterbank."""
+    fc = np.asarray(center_hz, dtype=float)
+    return "log" if np.min(fc) > 0 and np.max(fc) / np.min(fc) > 10.0 else "linear"
 
 
 # ---------------------------------------------------------------------------------------------
@@ -340,9 +362,10 @@ def convergence_figure(evaluations: Sequence[Mapping], best_so_far: Sequence[Map
 
 def channel_parameters_figure(center_hz, time_spread_s, cell_area, chirp_hz_per_s,
                               bands: Mapping[str, np.ndarray] | None = None) -> Figure:
-    """Time spread (ms), cell area and chirp rate (Hz/s) of each channel against frequency (Hz).
+    """Window std (ms), cell area and chirp rate (Hz/s) of each channel against frequency (Hz).
 
-    Arrays are (C,). ``bands`` maps ``time_spread_s`` / ``cell_area`` / ``chirp_hz_per_s`` to a
+    Arrays are (C,); the time spread σ_t (s) is drawn as the Gaussian window's std s = √2·σ_t
+    in ms, bands too. ``bands`` maps ``time_spread_s`` / ``cell_area`` / ``chirp_hz_per_s`` to a
     (C, 2) array of [low, high] bootstrap limits, drawn as a shaded band (gid ``band:<field>``)
     around the fitted line (gid ``value:<field>``) with a bar per channel (gid
     ``interval:<field>``); NaN rows (channels without an interval) leave a gap. Missing bands
@@ -351,7 +374,9 @@ def channel_parameters_figure(center_hz, time_spread_s, cell_area, chirp_hz_per_
     fc = _as_1d("center_hz", center_hz)
     count = fc.size
     fields = (
-        ("time_spread_s", _as_1d("time_spread_s", time_spread_s, count), 1e3, r"time spread $\sigma_t$ (ms)"),
+        # the Gaussian window's std s = √2·σ_t, the one window spread of the report
+        ("time_spread_s", _as_1d("time_spread_s", time_spread_s, count), 1e3 * math.sqrt(2.0),
+         "Gaussian window std s (ms)"),
         ("cell_area", _as_1d("cell_area", cell_area, count), 1.0, "cell area a"),
         ("chirp_hz_per_s", _as_1d("chirp_hz_per_s", chirp_hz_per_s, count), 1.0, r"chirp rate $\beta$ (Hz/s)"),
     )
@@ -392,7 +417,7 @@ def channel_parameters_figure(center_hz, time_spread_s, cell_area, chirp_hz_per_
             ax.legend(*zip(*keep, strict=True), fontsize=8, loc="best", frameon=True, framealpha=0.85,
                       edgecolor="none")
         _plain(ax)
-    if _log_axis_wanted(fc):
+    if frequency_scale(fc) == "log":
         axes[-1].set_xscale("log")
         _plain_log_ticks(axes[-1].xaxis)
     axes[-1].set_xlabel("channel centre frequency (Hz)")
@@ -409,25 +434,33 @@ def baselines_figure(entries: Sequence[Mapping], objective_label: str = "objecti
     """Objective of each baseline and of the result, as a point with its interval.
 
     ``entries``: dicts with ``label``, ``objective`` and optional ``low``/``high`` (same units
-    as the objective) and ``is_result`` (bool, drawn in the highlight colour). One error-bar
-    container per entry, top to bottom in the given order.
+    as the objective), ``is_result`` (bool, drawn in the highlight colour) and ``excluded`` (the
+    reason a baseline was not eligible, e.g. its negative mass: drawn as an open grey marker,
+    labelled "excluded: <reason>", gid ``excluded``). One error-bar container per entry, top to
+    bottom in the given order.
     """
     if not entries:
         raise ValueError("entries: no baselines to plot")
-    fig = _new_figure(7.6, 0.55 * len(entries) + 1.6)
+    fig = _new_figure(8.4, 0.55 * len(entries) + 0.3 * sum(bool(e.get("excluded")) for e in entries)
+                      + 1.6)
     ax = fig.add_subplot()
     rows = np.arange(len(entries))[::-1]
     for y, entry in zip(rows, entries, strict=True):
         value = float(entry["objective"])
         low = entry.get("low")
         high = entry.get("high")
-        colour = PALETTE[5] if entry.get("is_result") else PALETTE[0]
+        excluded = entry.get("excluded")
+        colour = "#767676" if excluded else PALETTE[5] if entry.get("is_result") else PALETTE[0]
         err = None
         if low is not None and high is not None and np.isfinite([low, high]).all():
             err = np.array([[max(value - float(low), 0.0)], [max(float(high) - value, 0.0)]])
         ax.errorbar([value], [y], xerr=err, fmt="D" if entry.get("is_result") else "o",
-                    color=colour, capsize=4, markersize=6, linewidth=1.4)
-    ax.set_yticks(rows, [literal(e["label"]) for e in entries], fontsize=9)
+                    color=colour, capsize=4, markersize=6, linewidth=1.4,
+                    markerfacecolor="white" if excluded else colour,
+                    gid="excluded" if excluded else None)
+    labels = [literal(e["label"]) + (f"\nexcluded: {literal(e['excluded'])}" if e.get("excluded")
+                                     else "") for e in entries]
+    ax.set_yticks(rows, labels, fontsize=8.5)
     ax.set_xlabel(objective_label)
     ax.set_ylim(-0.7, len(entries) - 0.3)
     title = "Baselines scored on the same windows (lower is sharper)"

@@ -116,11 +116,11 @@ def serve(settings: ServiceSettings, log_level: str = "info") -> int:
     import uvicorn
 
     from burstlens.service.app import create_app
-    from burstlens.service.store import Store
+    from burstlens.service.store import DataDirTooNew, Store
 
     try:
         settings = bind_policy(settings, Store(settings.data_dir))
-    except ValueError as exc:
+    except (ValueError, DataDirTooNew) as exc:
         print(f"burstlens serve: {exc}", file=sys.stderr)
         return 2
     if settings.dask:

@@ -8,7 +8,16 @@ Durability rules (DESIGN §7):
 - every worker write names the owner and the attempt it holds; a worker whose lease expired and
   was reclaimed matches no row and gets :class:`LeaseLost`, so it cannot overwrite its successor;
 - blobs are written to a temp file, fsynced, then ``os.replace``d into place (and the folder
-  fsynced), so a reader sees either the old file or the whole new one.
+  fsynced), so a reader sees either the old file or the whole new one;
+- blob paths are kept relative to the data dir, so a data dir can be moved or restored elsewhere.
+
+The schema carries a version (SQLite's ``user_version``, :data:`SCHEMA_VERSION`). Opening an
+older data dir migrates it once, in one transaction; a newer one is refused
+(:class:`DataDirTooNew`) with both versions named.
+
+A job is one of :data:`KINDS` and moves through :data:`STATES`: ``waiting`` → ``working`` →
+``done``, ``error`` or ``withdrawn`` (a lease that expires puts a working job back in reach of
+:meth:`Store.claim`).
 """
 from __future__ import annotations
 
@@ -26,19 +35,28 @@ from typing import Any
 
 from burstlens.search.safe_io import finite_or_none
 
-STATES = ("queued", "running", "succeeded", "failed", "cancelled")
-FINAL_STATES = ("succeeded", "failed", "cancelled")
+STATES = ("waiting", "working", "done", "error", "withdrawn")
+FINAL_STATES = ("done", "error", "withdrawn")
+ACTIVE_STATES = ("waiting", "working")
+# search: tune a filterbank on a corpus; check: judge a done search's filterbank on new data;
+# transform: a done search's filterbank over continuous records into a Zarr store
+KINDS = ("search", "check", "transform")
 
-_SCHEMA = """
-CREATE TABLE IF NOT EXISTS tokens (
+# The data dir's schema version, kept in the SQLite file's header (PRAGMA user_version).
+# 1: the first release (no version written, so it reads as 0); 2: job states and times of our
+# own names, job kinds, blob paths relative to the data dir.
+SCHEMA_VERSION = 2
+
+_SCHEMA = (
+    """CREATE TABLE IF NOT EXISTS tokens (
     id TEXT PRIMARY KEY,
     name TEXT NOT NULL UNIQUE,
     tenant TEXT NOT NULL,
     token_sha256 TEXT NOT NULL,
     created_at REAL NOT NULL,
     revoked_at REAL
-);
-CREATE TABLE IF NOT EXISTS corpora (
+)""",
+    """CREATE TABLE IF NOT EXISTS corpora (
     id TEXT PRIMARY KEY,
     tenant TEXT NOT NULL,
     created_at REAL NOT NULL,
@@ -46,21 +64,21 @@ CREATE TABLE IF NOT EXISTS corpora (
     summary TEXT NOT NULL,
     bytes INTEGER NOT NULL,
     source_hash TEXT
-);
-CREATE TABLE IF NOT EXISTS jobs (
+)""",
+    """CREATE TABLE IF NOT EXISTS jobs (
     id TEXT PRIMARY KEY,
     tenant TEXT NOT NULL,
     corpus_id TEXT NOT NULL,
     settings TEXT NOT NULL,
     state TEXT NOT NULL,
-    created_at REAL NOT NULL,
+    submitted_at REAL NOT NULL,
     updated_at REAL NOT NULL,
     started_at REAL,
-    finished_at REAL,
+    ended_at REAL,
     attempts INTEGER NOT NULL DEFAULT 0,
     owner TEXT,
     lease_until REAL,
-    cancel_requested INTEGER NOT NULL DEFAULT 0,
+    withdraw_requested INTEGER NOT NULL DEFAULT 0,
     progress TEXT NOT NULL DEFAULT '{}',
     error TEXT,
     stop_reason TEXT,
@@ -71,11 +89,14 @@ CREATE TABLE IF NOT EXISTS jobs (
     checkpoint_round INTEGER,
     result_dir TEXT,
     summary TEXT,
+    kind TEXT NOT NULL DEFAULT 'search',
+    parent_id TEXT,
     UNIQUE (tenant, idempotency_key)
-);
-CREATE INDEX IF NOT EXISTS jobs_by_state ON jobs (state, created_at);
-CREATE INDEX IF NOT EXISTS jobs_by_tenant ON jobs (tenant, created_at);
-CREATE TABLE IF NOT EXISTS job_rounds (
+)""",
+    "CREATE INDEX IF NOT EXISTS jobs_by_state ON jobs (state, submitted_at)",
+    "CREATE INDEX IF NOT EXISTS jobs_by_tenant ON jobs (tenant, submitted_at)",
+    "CREATE INDEX IF NOT EXISTS jobs_by_parent ON jobs (parent_id, kind, ended_at)",
+    """CREATE TABLE IF NOT EXISTS job_rounds (
     job_id TEXT NOT NULL,
     attempt INTEGER NOT NULL,
     at REAL NOT NULL,
@@ -84,9 +105,9 @@ CREATE TABLE IF NOT EXISTS job_rounds (
     evaluations INTEGER,
     new_evaluations INTEGER NOT NULL DEFAULT 0,
     best_objective REAL
-);
-CREATE INDEX IF NOT EXISTS job_rounds_by_time ON job_rounds (at);
-CREATE TABLE IF NOT EXISTS evaluations (
+)""",
+    "CREATE INDEX IF NOT EXISTS job_rounds_by_time ON job_rounds (at)",
+    """CREATE TABLE IF NOT EXISTS evaluations (
     job_id TEXT NOT NULL,
     seq INTEGER NOT NULL,
     stage TEXT,
@@ -95,8 +116,34 @@ CREATE TABLE IF NOT EXISTS evaluations (
     objective REAL,
     seconds REAL,
     PRIMARY KEY (job_id, seq)
-);
-"""
+)""",
+)
+
+# schema 1 → 2, in one transaction with the version bump (SQLite's DDL is transactional, so a
+# crash part-way leaves the schema-1 file as it was)
+_STATE_NAMES_1_TO_2 = {"queued": "waiting", "running": "working", "succeeded": "done",
+                       "failed": "error", "cancelled": "withdrawn"}
+_MIGRATE_1_TO_2 = (
+    "ALTER TABLE jobs RENAME COLUMN created_at TO submitted_at",
+    "ALTER TABLE jobs RENAME COLUMN finished_at TO ended_at",
+    "ALTER TABLE jobs RENAME COLUMN cancel_requested TO withdraw_requested",
+    "ALTER TABLE jobs ADD COLUMN kind TEXT NOT NULL DEFAULT 'search'",
+    "ALTER TABLE jobs ADD COLUMN parent_id TEXT",
+    "UPDATE jobs SET state = CASE state "
+    + " ".join(f"WHEN '{a}' THEN '{b}'" for a, b in _STATE_NAMES_1_TO_2.items())
+    + " ELSE state END",
+    "UPDATE jobs SET stop_reason = 'withdrawn' WHERE stop_reason = 'cancelled' AND state = 'withdrawn'",
+    # schema 1 kept a final job's last checkpoint path after deleting the file
+    "UPDATE jobs SET checkpoint_path = NULL, checkpoint_sha256 = NULL "
+    "WHERE state IN ('done', 'error', 'withdrawn')",
+    # schema 1 kept absolute paths, which break when a data dir is moved or restored elsewhere
+    "UPDATE jobs SET result_dir = substr(result_dir, instr(result_dir, '/blobs/') + 1) "
+    "WHERE instr(result_dir, '/blobs/') > 0",
+    "UPDATE jobs SET checkpoint_path = substr(checkpoint_path, instr(checkpoint_path, '/blobs/') + 1) "
+    "WHERE instr(checkpoint_path, '/blobs/') > 0",
+    "CREATE INDEX IF NOT EXISTS jobs_by_parent ON jobs (parent_id, kind, ended_at)",
+)
+MIGRATIONS = {1: _MIGRATE_1_TO_2}
 
 
 class StoreError(Exception):
@@ -121,6 +168,10 @@ class IdempotencyMismatch(StoreError):
 
 class LeaseLost(StoreError):
     """The worker no longer owns this attempt of the job (its lease was reclaimed)."""
+
+
+class DataDirTooNew(StoreError):
+    """The data dir was written by a newer release, whose schema this one cannot read."""
 
 
 def fsync_dir(path: Path) -> None:
@@ -168,7 +219,7 @@ def _job_dict(row: sqlite3.Row) -> dict[str, Any]:
     job["settings"] = json.loads(job["settings"])
     job["progress"] = json.loads(job["progress"] or "{}")
     job["summary"] = json.loads(job["summary"]) if job["summary"] else None
-    job["cancel_requested"] = bool(job["cancel_requested"])
+    job["withdraw_requested"] = bool(job["withdraw_requested"])
     return job
 
 
@@ -187,7 +238,45 @@ class Store:
         self._local = threading.local()
         con = self.connection()
         con.execute("PRAGMA journal_mode=WAL")
-        con.executescript(_SCHEMA)
+        self.schema_version = self._open_schema()
+
+    def _open_schema(self) -> int:
+        """Create the schema in a new data dir, migrate an older one, refuse a newer one.
+
+        Every step runs inside one ``BEGIN IMMEDIATE`` transaction with the version bump, so
+        two processes opening the store at once migrate it once, and a crash part-way leaves
+        the older schema as it was. Returns the version now on disk (:data:`SCHEMA_VERSION`).
+        """
+        with self.transaction() as con:
+            version = con.execute("PRAGMA user_version").fetchone()[0]
+            if version > SCHEMA_VERSION:
+                raise DataDirTooNew(
+                    f"{self.data_dir} holds schema version {version}, written by a newer "
+                    f"burstlens; this release reads schema version {SCHEMA_VERSION} and older. "
+                    f"Run the newer release, or restore a backup made by this one")
+            has_jobs = con.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' AND "
+                                   "name = 'jobs'").fetchone() is not None
+            if version == 0 and has_jobs:
+                version = 1     # the first release wrote no version
+            if version == 0:
+                for statement in _SCHEMA:
+                    con.execute(statement)
+            else:
+                for step in range(version, SCHEMA_VERSION):
+                    for statement in MIGRATIONS[step]:
+                        con.execute(statement)
+            if version != SCHEMA_VERSION:
+                # PRAGMA takes no parameters; the value is our own integer
+                con.execute(f"PRAGMA user_version = {SCHEMA_VERSION:d}")
+        return SCHEMA_VERSION
+
+    def path(self, stored: str | None) -> Path | None:
+        """A blob path as the store keeps it (relative to the data dir) made absolute."""
+        return None if stored is None else self.data_dir / stored
+
+    def relative(self, path: str | os.PathLike) -> str:
+        """How the store keeps a blob path: relative to the data dir, so the data dir can move."""
+        return Path(path).resolve().relative_to(self.data_dir.resolve()).as_posix()
 
     # -- connections ------------------------------------------------------------------------
     def connection(self) -> sqlite3.Connection:
@@ -317,10 +406,10 @@ class Store:
             if row is None or row["tenant"] != tenant:
                 raise NotFound(f"no corpus {corpus_id!r}")
             active = con.execute("SELECT COUNT(*) FROM jobs WHERE corpus_id = ? AND state IN "
-                                 "('queued', 'running')", (corpus_id,)).fetchone()[0]
+                                 "('waiting', 'working')", (corpus_id,)).fetchone()[0]
             if active:
-                raise Conflict(f"corpus {corpus_id!r} is used by {active} queued or running job(s); "
-                               "cancel them first")
+                raise Conflict(f"corpus {corpus_id!r} is used by {active} waiting or working "
+                               "job(s); withdraw them first")
             con.execute("DELETE FROM corpora WHERE id = ?", (corpus_id,))
         shutil.rmtree(self.corpus_dir(corpus_id), ignore_errors=True)
 
@@ -335,13 +424,17 @@ class Store:
 
     # -- jobs: API side ---------------------------------------------------------------------
     def create_job(self, tenant: str, corpus_id: str, settings: dict, *, max_queued: int,
-                   idempotency_key: str | None = None, request_sha256: str | None = None
+                   idempotency_key: str | None = None, request_sha256: str | None = None,
+                   kind: str = "search", parent_id: str | None = None
                    ) -> tuple[dict[str, Any], bool]:
         """Queue a job (COMMITted before returning). Returns ``(job, created)``.
 
         Same tenant + idempotency key + request hash → the existing job and ``created=False``;
-        same key with another request → :class:`IdempotencyMismatch`.
+        same key with another request → :class:`IdempotencyMismatch`. A ``check`` or
+        ``transform`` job names its ``parent_id``: a search of this tenant that is done.
         """
+        if kind not in KINDS:
+            raise ValueError(f"kind {kind!r} is not one of {KINDS}")
         with self.transaction() as con:
             if idempotency_key is not None:
                 row = con.execute("SELECT * FROM jobs WHERE tenant = ? AND idempotency_key = ?",
@@ -351,21 +444,29 @@ class Store:
                         raise IdempotencyMismatch(
                             "this Idempotency-Key was already used with a different request body")
                     return _job_dict(row), False
+            if kind != "search":
+                parent = con.execute("SELECT tenant, state, kind FROM jobs WHERE id = ?",
+                                     (parent_id,)).fetchone()
+                if parent is None or parent["tenant"] != tenant:
+                    raise NotFound(f"no job {parent_id!r}")
+                if parent["kind"] != "search" or parent["state"] != "done":
+                    raise Conflict(f"job {parent_id!r} is a {parent['kind']} that is "
+                                   f"{parent['state']}; a {kind} needs a search that is done")
             corpus = con.execute("SELECT tenant FROM corpora WHERE id = ?", (corpus_id,)).fetchone()
             if corpus is None or corpus["tenant"] != tenant:
                 raise NotFound(f"no corpus {corpus_id!r}")
-            queued = con.execute("SELECT COUNT(*) FROM jobs WHERE tenant = ? AND state = 'queued'",
-                                 (tenant,)).fetchone()[0]
-            if queued >= max_queued:
-                raise QueueFull(f"{queued} jobs already queued for this tenant (limit {max_queued}); "
-                                "wait for some to start or cancel them")
+            waiting = con.execute("SELECT COUNT(*) FROM jobs WHERE tenant = ? AND state = 'waiting'",
+                                  (tenant,)).fetchone()[0]
+            if waiting >= max_queued:
+                raise QueueFull(f"{waiting} jobs already waiting for this tenant (limit "
+                                f"{max_queued}); wait for some to start or withdraw them")
             job_id = uuid.uuid4().hex
             now = _now()
-            con.execute("INSERT INTO jobs (id, tenant, corpus_id, settings, state, created_at, "
-                        "updated_at, idempotency_key, request_sha256) "
-                        "VALUES (?, ?, ?, ?, 'queued', ?, ?, ?, ?)",
+            con.execute("INSERT INTO jobs (id, tenant, corpus_id, settings, state, submitted_at, "
+                        "updated_at, idempotency_key, request_sha256, kind, parent_id) "
+                        "VALUES (?, ?, ?, ?, 'waiting', ?, ?, ?, ?, ?, ?)",
                         (job_id, tenant, corpus_id, json.dumps(settings), now, now,
-                         idempotency_key, request_sha256))
+                         idempotency_key, request_sha256, kind, parent_id))
             row = con.execute("SELECT * FROM jobs WHERE id = ?", (job_id,)).fetchone()
         return _job_dict(row), True
 
@@ -375,27 +476,31 @@ class Store:
             raise NotFound(f"no job {job_id!r}")
         return _job_dict(rows[0])
 
-    def list_jobs(self, tenant: str, state: str | None = None, limit: int = 100) -> list[dict]:
-        if state is None:
-            rows = self._query("SELECT * FROM jobs WHERE tenant = ? ORDER BY created_at DESC "
-                               "LIMIT ?", (tenant, limit))
-        else:
-            rows = self._query("SELECT * FROM jobs WHERE tenant = ? AND state = ? "
-                               "ORDER BY created_at DESC LIMIT ?", (tenant, state, limit))
+    def list_jobs(self, tenant: str, state: str | None = None, limit: int = 100, *,
+                  kind: str | None = None, parent_id: str | None = None) -> list[dict]:
+        """This tenant's jobs, newest first, optionally of one state, kind or parent."""
+        where, args = ["tenant = ?"], [tenant]
+        for column, value in (("state", state), ("kind", kind), ("parent_id", parent_id)):
+            if value is not None:
+                where.append(f"{column} = ?")
+                args.append(value)
+        rows = self._query(f"SELECT * FROM jobs WHERE {' AND '.join(where)} "
+                           "ORDER BY submitted_at DESC LIMIT ?", (*args, limit))
         return [_job_dict(r) for r in rows]
 
-    def cancel_job(self, job_id: str, tenant: str) -> dict[str, Any]:
-        """Cancel a queued job at once; flag a running one (its worker stops at the next heartbeat)."""
+    def withdraw_job(self, job_id: str, tenant: str) -> dict[str, Any]:
+        """Withdraw a waiting job at once; flag a working one (its worker stops at the next
+        heartbeat)."""
         with self.transaction() as con:
             row = con.execute("SELECT * FROM jobs WHERE id = ?", (job_id,)).fetchone()
             if row is None or row["tenant"] != tenant:
                 raise NotFound(f"no job {job_id!r}")
             now = _now()
-            if row["state"] == "queued":
-                con.execute("UPDATE jobs SET state = 'cancelled', stop_reason = 'cancelled', "
-                            "finished_at = ?, updated_at = ? WHERE id = ?", (now, now, job_id))
-            elif row["state"] == "running":
-                con.execute("UPDATE jobs SET cancel_requested = 1, updated_at = ? WHERE id = ?",
+            if row["state"] == "waiting":
+                con.execute("UPDATE jobs SET state = 'withdrawn', stop_reason = 'withdrawn', "
+                            "ended_at = ?, updated_at = ? WHERE id = ?", (now, now, job_id))
+            elif row["state"] == "working":
+                con.execute("UPDATE jobs SET withdraw_requested = 1, updated_at = ? WHERE id = ?",
                             (now, job_id))
             else:
                 raise Conflict(f"job {job_id!r} is already {row['state']}")
@@ -408,6 +513,17 @@ class Store:
             counts[row["state"]] = row["n"]
         return counts
 
+    def last_checks(self) -> list[dict[str, Any]]:
+        """For every search with a check that is done, its latest such check (the id of the
+        search as ``parent_id``, the check's ``id``, ``ended_at`` and ``summary``)."""
+        rows = self._query(
+            "SELECT j.parent_id, j.id, j.ended_at, j.summary FROM jobs j WHERE j.kind = 'check' "
+            "AND j.state = 'done' AND j.ended_at = (SELECT MAX(k.ended_at) FROM jobs k WHERE "
+            "k.parent_id = j.parent_id AND k.kind = 'check' AND k.state = 'done') "
+            "ORDER BY j.parent_id")
+        return [{"parent_id": r["parent_id"], "id": r["id"], "ended_at": r["ended_at"],
+                 "summary": json.loads(r["summary"]) if r["summary"] else {}} for r in rows]
+
     def evaluation_totals(self, window_s: float = 60.0) -> tuple[int, float]:
         """(evaluations done over all jobs, evaluations per second over the last ``window_s``)."""
         total = self._query("SELECT COALESCE(SUM(new_evaluations), 0) FROM job_rounds")[0][0]
@@ -416,7 +532,7 @@ class Store:
         return int(total), float(recent) / window_s
 
     def live_workers(self) -> int:
-        row = self._query("SELECT COUNT(DISTINCT owner) FROM jobs WHERE state = 'running' "
+        row = self._query("SELECT COUNT(DISTINCT owner) FROM jobs WHERE state = 'working' "
                           "AND lease_until > ?", (_now(),))
         return int(row[0][0])
 
@@ -426,37 +542,38 @@ class Store:
 
     # -- jobs: worker side ------------------------------------------------------------------
     def claim(self, owner: str, lease_s: float, max_attempts: int) -> dict[str, Any] | None:
-        """Take the oldest queued job, or a running one whose lease expired; None if there is none.
+        """Take the oldest waiting job, or a working one whose lease expired; None if there is
+        none.
 
-        A reclaimed job past ``max_attempts`` is failed (keeping its last error) instead, and a
-        reclaimed job whose cancel was requested is cancelled.
+        A reclaimed job past ``max_attempts`` ends in ``error`` (keeping its last error)
+        instead, and a reclaimed job whose withdrawal was asked is withdrawn.
         """
         with self.transaction() as con:
             while True:
                 now = _now()
                 row = con.execute(
-                    "SELECT * FROM jobs WHERE state = 'queued' OR (state = 'running' AND "
-                    "lease_until < ?) ORDER BY attempts, created_at LIMIT 1", (now,)).fetchone()
+                    "SELECT * FROM jobs WHERE state = 'waiting' OR (state = 'working' AND "
+                    "lease_until < ?) ORDER BY attempts, submitted_at LIMIT 1", (now,)).fetchone()
                 if row is None:
                     return None
-                if row["cancel_requested"]:  # asked while running; the attempt then ended
-                    con.execute("UPDATE jobs SET state = 'cancelled', stop_reason = 'cancelled', "
-                                "owner = NULL, lease_until = NULL, finished_at = ?, updated_at = ? "
+                if row["withdraw_requested"]:  # asked while working; the attempt then ended
+                    con.execute("UPDATE jobs SET state = 'withdrawn', stop_reason = 'withdrawn', "
+                                "owner = NULL, lease_until = NULL, ended_at = ?, updated_at = ? "
                                 "WHERE id = ?", (now, now, row["id"]))
                     continue
                 if row["attempts"] >= max_attempts:
                     lost = (f"worker {row['owner']} lost the job (lease expired) on attempt "
                             f"{row['attempts']}")
                     error = f"{row['error']}; then {lost}" if row["error"] else lost
-                    con.execute("UPDATE jobs SET state = 'failed', error = ?, owner = NULL, "
-                                "lease_until = NULL, finished_at = ?, updated_at = ? WHERE id = ?",
+                    con.execute("UPDATE jobs SET state = 'error', error = ?, owner = NULL, "
+                                "lease_until = NULL, ended_at = ?, updated_at = ? WHERE id = ?",
                                 (f"gave up after {row['attempts']} attempts: {error}", now, now,
                                  row["id"]))
                     continue
-                if row["state"] == "running":
+                if row["state"] == "working":
                     note = f"worker {row['owner']} lost the job (lease expired) on attempt {row['attempts']}"
                     con.execute("UPDATE jobs SET error = ? WHERE id = ?", (note, row["id"]))
-                con.execute("UPDATE jobs SET state = 'running', owner = ?, attempts = attempts + 1, "
+                con.execute("UPDATE jobs SET state = 'working', owner = ?, attempts = attempts + 1, "
                             "lease_until = ?, started_at = COALESCE(started_at, ?), updated_at = ? "
                             "WHERE id = ?", (owner, now + lease_s, now, now, row["id"]))
                 row = con.execute("SELECT * FROM jobs WHERE id = ?", (row["id"],)).fetchone()
@@ -464,7 +581,7 @@ class Store:
 
     def _owned_update(self, con: sqlite3.Connection, job: dict, sql: str, args: tuple) -> None:
         cur = con.execute(f"UPDATE jobs SET {sql}, updated_at = ? WHERE id = ? AND owner = ? "
-                          "AND attempts = ? AND state = 'running'",
+                          "AND attempts = ? AND state = 'working'",
                           (*args, _now(), job["id"], job["owner"], job["attempts"]))
         if cur.rowcount != 1:
             raise LeaseLost(f"job {job['id']} attempt {job['attempts']} is no longer owned by "
@@ -473,16 +590,17 @@ class Store:
     def renew_lease(self, con: sqlite3.Connection, job: dict, lease_s: float) -> None:
         """Inside a write transaction the caller holds (:meth:`transaction`): push the lease of
         the job this owner and attempt hold to ``lease_s`` from now. Raises LeaseLost.
-        :meth:`heartbeat` is this plus the cancel flag; the fault experiments
+        :meth:`heartbeat` is this plus the withdraw flag; the fault experiments
         (reliability/faulty_worker.py) call it to stop a heartbeat before its COMMIT."""
         self._owned_update(con, job, "lease_until = ?", (_now() + lease_s,))
 
     def heartbeat(self, job: dict, lease_s: float) -> bool:
-        """Renew the lease; returns True when a cancel was requested. Raises LeaseLost."""
+        """Renew the lease; returns True when a withdrawal was asked. Raises LeaseLost."""
         with self.transaction() as con:
             self.renew_lease(con, job, lease_s)
-            row = con.execute("SELECT cancel_requested FROM jobs WHERE id = ?", (job["id"],)).fetchone()
-        return bool(row["cancel_requested"])
+            row = con.execute("SELECT withdraw_requested FROM jobs WHERE id = ?",
+                              (job["id"],)).fetchone()
+        return bool(row["withdraw_requested"])
 
     def record_progress(self, job: dict, progress: dict, new_evaluations: int) -> None:
         with self.transaction() as con:
@@ -496,13 +614,17 @@ class Store:
     def checkpoint_path(self, job: dict, seq: int) -> Path:
         return self.blob_dir / "checkpoints" / f"{job['id']}-{job['attempts']}-{seq}.pkl"
 
-    def record_checkpoint(self, job: dict, path: Path, sha256: str, round_: int | None) -> str | None:
+    def result_folder(self, job: dict) -> Path:
+        """Where an attempt writes its results (recorded by :meth:`finish`)."""
+        return self.blob_dir / "results" / job["id"] / f"attempt-{job['attempts']}"
+
+    def record_checkpoint(self, job: dict, path: Path, sha256: str, round_: int | None) -> Path | None:
         """Point the job at a complete checkpoint blob; returns the previous blob's path."""
         with self.transaction() as con:
             old = con.execute("SELECT checkpoint_path FROM jobs WHERE id = ?", (job["id"],)).fetchone()
             self._owned_update(con, job, "checkpoint_path = ?, checkpoint_sha256 = ?, "
-                               "checkpoint_round = ?", (str(path), sha256, round_))
-        return old["checkpoint_path"] if old else None
+                               "checkpoint_round = ?", (self.relative(path), sha256, round_))
+        return self.path(old["checkpoint_path"]) if old else None
 
     def drop_checkpoint(self, job: dict) -> None:
         """Forget a checkpoint found corrupt, so the next attempt starts clean."""
@@ -511,15 +633,18 @@ class Store:
                                "checkpoint_round = NULL", ())
 
     def finish(self, job: dict, state: str, *, error: str | None = None,
-               stop_reason: str | None = None, result_dir: str | None = None,
+               stop_reason: str | None = None, result_dir: Path | None = None,
                summary: dict | None = None, evaluations: list[dict] | None = None) -> None:
-        """Move an owned running job to a final state; the evaluation audit log goes in with it."""
+        """Move an owned working job to a final state; the evaluation audit log goes in with it."""
         assert state in FINAL_STATES, state
         with self.transaction() as con:
             now = _now()
+            # a final job needs no checkpoint: forget it here, the worker deletes the file
             self._owned_update(con, job, "state = ?, error = ?, stop_reason = ?, result_dir = ?, "
-                               "summary = ?, finished_at = ?, owner = NULL, lease_until = NULL",
-                               (state, error, stop_reason, result_dir,
+                               "summary = ?, ended_at = ?, owner = NULL, lease_until = NULL, "
+                               "checkpoint_path = NULL, checkpoint_sha256 = NULL",
+                               (state, error, stop_reason,
+                                self.relative(result_dir) if result_dir is not None else None,
                                 json.dumps(summary) if summary is not None else None, now))
             if evaluations:
                 con.execute("DELETE FROM evaluations WHERE job_id = ?", (job["id"],))
@@ -530,20 +655,26 @@ class Store:
                       finite_or_none(e.get("objective")), e.get("seconds"))
                      for i, e in enumerate(evaluations)])
 
+    def final_job_ids(self) -> set[str]:
+        """Ids of the jobs that ended (done, error or withdrawn)."""
+        return {r["id"] for r in self._query("SELECT id FROM jobs WHERE state IN "
+                                             "('done', 'error', 'withdrawn')")}
+
     def release(self, job: dict) -> None:
         """Give an owned job back to the queue without using up an attempt (graceful stop)."""
         with self.transaction() as con:
-            self._owned_update(con, job, "state = 'queued', owner = NULL, lease_until = NULL, "
+            self._owned_update(con, job, "state = 'waiting', owner = NULL, lease_until = NULL, "
                                "attempts = attempts - 1", ())
 
     def retry_or_fail(self, job: dict, error: str, max_attempts: int) -> str:
-        """After an error: queue the job again, or fail it once ``max_attempts`` are used."""
+        """After an error: queue the job again (``waiting``), or end it in ``error`` once
+        ``max_attempts`` are used. Returns the new state."""
         with self.transaction() as con:
             if job["attempts"] >= max_attempts:
-                self._owned_update(con, job, "state = 'failed', error = ?, finished_at = ?, "
+                self._owned_update(con, job, "state = 'error', error = ?, ended_at = ?, "
                                    "owner = NULL, lease_until = NULL",
                                    (f"gave up after {job['attempts']} attempts: {error}", _now()))
-                return "failed"
-            self._owned_update(con, job, "state = 'queued', error = ?, owner = NULL, "
+                return "error"
+            self._owned_update(con, job, "state = 'waiting', error = ?, owner = NULL, "
                                "lease_until = NULL", (error,))
-            return "queued"
+            return "waiting"

@@ -22,8 +22,6 @@ from collections.abc import Mapping
 NEGATIVE_SHARE_WARN = 0.005
 # Fewer held-out windows than this make the interval rest on too few bursts to trust it.
 MIN_HELD_OUT_WINDOWS = 30
-# Channels named in a sentence before the rest are counted instead.
-CHANNELS_NAMED = 12
 
 GAIN_LEAD = "gain on windows the fit never saw"
 
@@ -117,58 +115,145 @@ def gain_words(diagnostics) -> str:
     return words
 
 
-def _channels_text(channels) -> str:
+# Frequency ranges named in a sentence before the rest are counted instead.
+RANGES_NAMED = 4
+
+
+def channel_centres(diagnostics) -> list[float] | None:
+    """Each channel's centre frequency (Hz) in channel order, from the refinement's per-channel
+    record (kept for every channel, refined or not); None when the diagnostics carry none."""
+    records = _mapping(diagnostics).get("refinement")
+    if not isinstance(records, list) or not records:
+        return None
+    centres = [_number(_mapping(r).get("center_hz")) for r in records]
+    return None if any(c is None for c in centres) else centres
+
+
+def _hz(value: float) -> str:
+    return f"{value:.3g}" if value < 100 else f"{value:.0f}"
+
+
+def _runs(indices: list[int]) -> list[tuple[int, int]]:
+    """Consecutive channel indices as (first, last) runs, in order."""
+    runs: list[tuple[int, int]] = []
+    for index in sorted(set(indices)):
+        if runs and index == runs[-1][1] + 1:
+            runs[-1] = (runs[-1][0], index)
+        else:
+            runs.append((index, index))
+    return runs
+
+
+def channels_text(channels, centres) -> str:
+    """Channels as people read them, by frequency: " in the 12 channels from 40 to 62 Hz",
+    " in 20 of 96 channels: 40–62 Hz and 900–1800 Hz", " in all 96 channels (40–1800 Hz)".
+    ``channels``: channel indices; ``centres``: every channel's centre (Hz) or None (the
+    channels are then only counted, never listed by index). Empty for no channels."""
     if not isinstance(channels, list) or not channels:
         return ""
-    named = ", ".join(str(c) for c in channels[:CHANNELS_NAMED])
-    more = f" and {len(channels) - CHANNELS_NAMED} more" if len(channels) > CHANNELS_NAMED else ""
-    return f" in channel{'s' if len(channels) > 1 else ''} {named}{more}"
+    indices = sorted({c for c in channels if isinstance(c, int) and not isinstance(c, bool)})
+    count = len(indices)
+    plural = "s" if count > 1 else ""
+    if centres is None or not indices or indices[-1] >= len(centres) or indices[0] < 0:
+        return f" in {count} channel{plural}"
+    if count == len(centres):
+        return f" in all {count} channels ({_hz(centres[0])}–{_hz(centres[-1])} Hz)"
+    runs = _runs(indices)
+    if len(runs) == 1:
+        first, last = runs[0]
+        if first == last:
+            return f" in the channel at {_hz(centres[first])} Hz"
+        return f" in the {count} channels from {_hz(centres[first])} to {_hz(centres[last])} Hz"
+    spans = [f"{_hz(centres[a])} Hz" if a == b else f"{_hz(centres[a])}–{_hz(centres[b])} Hz"
+             for a, b in runs]
+    if len(spans) <= RANGES_NAMED:
+        named = ", ".join(spans[:-1]) + " and " + spans[-1]
+    else:
+        named = ", ".join(spans[:RANGES_NAMED]) + f" and {len(spans) - RANGES_NAMED} more " \
+            + ("range" if len(spans) == RANGES_NAMED + 1 else "ranges")
+    return f" in {count} of {len(centres)} channels: {named}"
 
 
-# What lifts a bound, where a job setting does; other bounds are derived by the engine.
-REMEDY = {"cell_area": "widen cell_area and tune again",
-          "max_negative_share": "raising max_negative_share allows more super-resolution, "
-                                "and more Wigner–Ville interference with it",
-          "channels": "more channels (a denser grid) would lift the cap",
-          "band_hz": "widen band_hz and tune again"}
+def window_std_words(time_spread_s: float, sampling_rate_hz: float | None) -> str:
+    """A channel's window as the page states it: the std s = √2·σ_t of its Gaussian window
+    h(u) = exp(−u²/2s²) (what ``scipy.signal.windows.gaussian`` takes), in ms and, with the
+    rate, in samples; σ_t is the time std of |h|², the filterbank file's ``time_spread_s``
+    (DESIGN §3)."""
+    std = math.sqrt(2.0) * time_spread_s
+    text = f"Gaussian window std {1e3 * std:.3g} ms"
+    return text + (f", {std * sampling_rate_hz:.3g} samples" if sampling_rate_hz else "")
 
 
-def _bound_sentence(setting: str, where: str, channels) -> str:
-    remedy = REMEDY.get(setting)
-    return (f"The result's {setting} sits on {where}{_channels_text(channels)}: the sharpest value "
-            "may lie beyond what was searched" + (f"; {remedy}." if remedy else "."))
+# Each searched parameter in words: what it is and its value with units.
+PARAMETER_WORDS = {"time_spread_s": "window length", "cell_area": "cell area",
+                   "chirp_hz_per_s": "matched sweep rate", "band_hz": "band"}
+# What lifts a bound, where an option does; other bounds are derived by the engine.
+REMEDY = {("cell_area", "lower"): "widen the cell-area range (--cell-area) and tune again",
+          ("cell_area", "upper"): "widen the cell-area range (--cell-area) and tune again",
+          ("time_spread_s", "lower"): "no shorter window is searched at this sampling rate",
+          ("time_spread_s", "upper"): "the longest window searched is a sixth of the burst "
+                                      "window; longer burst windows (--window) allow longer ones",
+          ("chirp_hz_per_s", "lower"): "the sweep-rate bound was found in the data; fast "
+                                       "sweeps may be rare in this corpus",
+          ("chirp_hz_per_s", "upper"): "the sweep-rate bound was found in the data; fast "
+                                       "sweeps may be rare in this corpus",
+          ("band_hz", "lower"): "widen the band (--band) and tune again",
+          ("band_hz", "upper"): "widen the band (--band) and tune again"}
 
 
-def _bound_sentences(judged: Mapping) -> list[str]:
+def _value_words(setting: str, value: float | None, fs: float | None) -> str:
+    if value is None:
+        return ""
+    if setting == "time_spread_s":
+        return f" ({window_std_words(value, fs)})"
+    if setting == "chirp_hz_per_s":
+        return f" ({value:+,.0f} Hz/s)"
+    if setting == "band_hz":
+        return f" ({value:.4g} Hz)"
+    return f" ({value:.3g})"
+
+
+def _bound_sentence(setting: str, bound, value, channels, centres, fs) -> str:
+    name = PARAMETER_WORDS.get(setting, setting.replace("_", " "))
+    if bound in ("lower", "upper"):
+        where = ("the smallest value searched" if bound == "lower" else
+                 "the largest value searched") + _value_words(setting, value, fs)
+    else:  # a bound the engine describes in words
+        where = "a search bound" + (f" ({str(bound).replace('_', ' ')})" if bound else "")
+    remedy = REMEDY.get((setting, bound)) or REMEDY.get((setting, "lower"))
+    return (f"The result's {name} sits on {where}{channels_text(channels, centres)}: the "
+            "sharpest value may lie beyond what was searched" + (f"; {remedy}." if remedy else "."))
+
+
+def _bound_sentences(judged: Mapping, centres, fs) -> list[str]:
     details = [d for d in judged.get("bounds_detail") or [] if isinstance(d, Mapping)]
     sentences = []
     for detail in details:
         setting, bound = str(detail.get("setting") or "a parameter"), detail.get("bound")
         value = _number(detail.get("value"))
         if setting == "channels":
-            where = _channels_text(detail.get("channels"))
-            sentences.append(f"The channel spacing caps the time spread{where}: a longer kernel "
-                             "would fall between channel centres, so the grid cannot hold it; "
-                             f"{REMEDY[setting]}.")
+            where = channels_text(detail.get("channels"), centres)
+            sentences.append(f"The channel spacing caps the window length{where}: a longer "
+                             "window would fall between channel centres, so the grid cannot "
+                             "hold it; more channels (--channels) would lift the cap.")
             continue
         if setting == "max_negative_share":
             ceiling = f" of {100 * value:g} %" if value is not None else ""
-            sentences.append(f"The result stopped at the positivity ceiling{ceiling} (negative "
-                             f"share of the image), not at an optimum of the criterion; "
-                             f"{REMEDY[setting]}.")
+            sentences.append(f"The result stopped at the positivity ceiling{ceiling} (the "
+                             "share of the image below zero), not at an optimum of the "
+                             "criterion; raising the negative share allowed "
+                             "(--max-negative-share) permits more super-resolution, and more "
+                             "Wigner–Ville interference with it.")
             continue
-        if bound in ("lower", "upper"):
-            where = f"its {bound} search bound" + (f" ({value:g})" if value is not None else "")
-        else:  # a bound the engine describes in words, e.g. a cap set by the channel grid
-            where = "a search bound" + (f" ({bound})" if bound else "")
-        sentences.append(_bound_sentence(setting, where, detail.get("channels")))
+        sentences.append(_bound_sentence(setting, bound, value, detail.get("channels"), centres,
+                                         fs))
     described = {str(d.get("setting")) for d in details}
-    sentences += [_bound_sentence(str(setting), "a search bound", None)
+    sentences += [_bound_sentence(str(setting), None, None, None, centres, fs)
                   for setting in judged.get("bounds_hit") or [] if str(setting) not in described]
     return sentences
 
 
-def _negative_sentence(judged: Mapping) -> list[str]:
+def _negative_sentence(judged: Mapping, centres) -> list[str]:
     share = _mapping(judged.get("negative_share"))
     overall = _number(share.get("overall"))
     if overall is None or overall <= NEGATIVE_SHARE_WARN:
@@ -176,11 +261,17 @@ def _negative_sentence(judged: Mapping) -> list[str]:
     per_channel = [_number(v) for v in share.get("per_channel") or []]
     worst = max((i for i, v in enumerate(per_channel) if v is not None),
                 key=lambda i: per_channel[i], default=None)
-    worst_text = (f" (most in channel {worst}: {100 * per_channel[worst]:.1f} %)"
-                  if worst is not None else "")
-    return [f"{100 * overall:.1f} % of the image's absolute mass is negative{worst_text}, above "
+    if worst is None:
+        worst_text = ""
+    elif centres is not None and worst < len(centres):
+        worst_text = (f" (most in the channel at {_hz(centres[worst])} Hz: "
+                      f"{100 * per_channel[worst]:.1f} %)")
+    else:
+        worst_text = f" (most in one channel: {100 * per_channel[worst]:.1f} %)"
+    return [f"{100 * overall:.2g} % of the image's absolute mass is negative{worst_text}, above "
             f"{100 * NEGATIVE_SHARE_WARN:.1f} %: read the output as a sharpness map, not as energy "
-            "per cell, and lower max_negative_share if energies matter."]
+            "per cell, and lower the negative share allowed (--max-negative-share) if energies "
+            "matter."]
 
 
 def warnings(diagnostics) -> list[str]:
@@ -207,14 +298,15 @@ def warnings(diagnostics) -> list[str]:
     if judged is None:
         return out
     if judged.get("in_sample") is True:
-        out.append("Judged in-sample (held_out = 0): the gain was measured on the windows the fit "
-                   "used and overstates what new bursts will show; keep windows out to judge it.")
+        out.append("Judged in-sample (no windows held out): the gain was measured on the windows "
+                   "the fit used and overstates what new bursts will show; keep a share of the "
+                   "windows out (--held-out) to judge it.")
     else:
         held = _count(judged.get("held_out_windows"))
         if held is not None and held < MIN_HELD_OUT_WINDOWS:
             out.append(f"Only {held} windows were held out (fewer than {MIN_HELD_OUT_WINDOWS}): "
                        "the gain and its interval rest on too few bursts to be trusted; use a "
-                       "larger corpus or a larger held_out share.")
+                       "larger corpus or a larger held-out share (--held-out).")
     gain = _mapping(judged.get("gain_bits"))
     estimate, high = _number(gain.get("estimate")), _number(gain.get("high"))
     by_detection = _mapping(_mapping(_mapping(diagnostics).get("settings")).get("criterion")) \
@@ -226,8 +318,10 @@ def warnings(diagnostics) -> list[str]:
                    + ": the channel grid shortens windows where its spacing is wider than their "
                    "frequency spread; more channels or a narrower band may help, or use the "
                    "plain spectrogram.")
-    out += _bound_sentences(judged)
-    out += _negative_sentence(judged)
+    centres = channel_centres(diagnostics)
+    fs = _number(_mapping(_mapping(diagnostics).get("settings")).get("sampling_rate_hz"))
+    out += _bound_sentences(judged, centres, fs)
+    out += _negative_sentence(judged, centres)
     return out
 
 
@@ -238,20 +332,20 @@ def scorecard(diagnostics) -> Mapping | None:
 
 
 def spectrogram_words(diagnostics) -> str:
-    """The best plain spectrogram as a user would set it up: its Gaussian window in samples
-    (``scipy.signal.windows.gaussian`` std and length) and milliseconds, e.g. "the plain
-    spectrogram with a Gaussian window of std 24 samples (6.1 ms), 183 samples long"."""
+    """The best plain spectrogram as a user would set it up: its Gaussian window's std (what
+    ``scipy.signal.windows.gaussian`` takes) in samples and ms, and its length, e.g. "the plain
+    spectrogram with a Gaussian window of std 5.66 samples (1.41 ms), 61 samples long". The
+    std is of the window h itself, √2·σ_t (σ_t, the recorded ``time_spread_s``, is the time
+    std of |h|²: search.spectrogram)."""
     base = _mapping(_mapping(_mapping(diagnostics).get("baselines")).get("spectrogram"))
     params = _mapping(base.get("parameters"))
     sigma = _number(params.get("time_spread_s"))
     fs = _number(_mapping(_mapping(diagnostics).get("settings")).get("sampling_rate_hz"))
     if sigma is None:
         return "the best plain spectrogram"
-    text = "the plain spectrogram with a Gaussian window of"
-    if fs is not None:
-        # |h|² has time std σ_t, so the window's own std is √2·σ_t (search.filterbank)
-        text += f" std {math.sqrt(2.0) * sigma * fs:.0f} samples"
-    text += f" ({1e3 * sigma:.2g} ms time spread)"
+    std = math.sqrt(2.0) * sigma
+    text = "the plain spectrogram with a Gaussian window of std " + (
+        f"{std * fs:.3g} samples ({1e3 * std:.3g} ms)" if fs is not None else f"{1e3 * std:.3g} ms")
     length = _count(params.get("window_samples"))
     return text + (f", {length} samples long" if length is not None else "")
 

@@ -3,12 +3,16 @@
 One worker runs one job at a time:
 
 1. ``claim`` (BEGIN IMMEDIATE) takes the oldest fresh job, else one whose lease expired;
-2. a heartbeat thread renews the lease every third of its length and reads the cancel flag;
+2. a heartbeat thread renews the lease every third of its length and reads the withdraw flag;
 3. ``FilterbankSearch.fit`` runs with ``progress`` (→ the job's progress), ``checkpoint``
    (→ a pickle blob whose sha256 is kept in the store) and ``resume_from`` (the last checkpoint,
    when this is a reclaimed job; a torn or corrupt one is detected and the job restarts clean);
-4. the result files go under ``results/<job>/attempt-<n>/`` and the job is finished — every
+4. the result files go under ``results/<job>/attempt-<n>/`` (the report is rendered on its
+   first request) and the job is finished — every
    write conditioned on owner and attempt, so a worker that lost its lease changes nothing.
+
+That is a ``search`` job; ``check`` and ``transform`` jobs (service.tuned_site) run the same
+way, with the same leases, withdrawals and retries.
 
 SIGTERM (or the parent ``serve`` going away): stop claiming, let the current round end with its
 checkpoint, release the lease without using up an attempt, exit 0.
@@ -30,6 +34,7 @@ import pickle
 import signal
 import socket
 import sqlite3
+import sys
 import threading
 import uuid
 from collections.abc import Callable
@@ -40,7 +45,7 @@ from typing import Any
 from burstlens.search.documents import DiagnosticsDocument, FilterbankDocument, JobRecord
 from burstlens.service.config import ServiceSettings
 from burstlens.service.corpus_check import CorpusRejected, CorpusTooLarge, enforce_limits, jsonable, load_corpus
-from burstlens.service.store import LeaseLost, NotFound, Store, write_blob
+from burstlens.service.store import DataDirTooNew, LeaseLost, NotFound, Store, write_blob
 
 log = logging.getLogger("burstlens.worker")
 
@@ -64,14 +69,14 @@ class PermanentError(Exception):
 
 
 class Heartbeat(threading.Thread):
-    """Renews one job's lease every ``lease_s / 3`` and records the cancel flag or a lost lease."""
+    """Renews one job's lease every ``lease_s / 3`` and records the withdraw flag or a lost lease."""
 
     def __init__(self, store: Store, job: dict, lease_s: float,
                  parent_alive: Callable[[], bool] = lambda: True, on_orphan=lambda: None):
         super().__init__(name=f"heartbeat-{job['id'][:8]}", daemon=True)
         self.store, self.job, self.lease_s = store, job, lease_s
         self.parent_alive, self.on_orphan = parent_alive, on_orphan
-        self.cancelled = False
+        self.withdrawn = False
         self.lost = False
         self._done = threading.Event()
 
@@ -80,7 +85,7 @@ class Heartbeat(threading.Thread):
             if not self.parent_alive():
                 self.on_orphan()
             try:
-                self.cancelled = self.store.heartbeat(self.job, self.lease_s) or self.cancelled
+                self.withdrawn = self.store.heartbeat(self.job, self.lease_s) or self.withdrawn
             except LeaseLost:
                 self.lost = True
                 log.info("job %s: lease no longer held", self.job["id"])
@@ -131,6 +136,7 @@ class Worker:
         """Claim and run jobs until stopped; returns the process exit code (0)."""
         done, idle = 0, self.settings.poll_s
         log.info("worker %s on %s", self.owner, self.settings.data_dir)
+        self.sweep_checkpoints()
         while not self.stopping.is_set() and (max_jobs is None or done < max_jobs):
             if not self.parent_alive():
                 log.warning("parent process gone; stopping")
@@ -155,10 +161,21 @@ class Worker:
             self._dask_client.close()
         return 0
 
+    def sweep_checkpoints(self) -> None:
+        """Delete the checkpoint files of jobs that ended: a worker killed right after a job's
+        final COMMIT never got to delete them (its successor would never read them)."""
+        try:
+            ended = self.store.final_job_ids()
+            for path in (self.store.blob_dir / "checkpoints").iterdir():
+                if path.name.lstrip(".").split("-", 1)[0] in ended:
+                    path.unlink(missing_ok=True)
+        except (sqlite3.OperationalError, OSError) as exc:  # an outage: the next start retries
+            log.warning("could not sweep the checkpoints of ended jobs (%s)", exc)
+
     # -- one job ----------------------------------------------------------------------------
     def run_job(self, job: dict) -> str:
-        """Run one claimed job to an outcome: succeeded, failed, cancelled, queued (retry or
-        released) or lost. Returns that outcome."""
+        """Run one claimed job to an outcome: done, error, withdrawn, waiting (a retry),
+        released or lost. Returns that outcome."""
         log.info("job %s: attempt %d by %s", job["id"], job["attempts"], self.owner)
         beat = Heartbeat(self.store, job, self.settings.lease_s, self.parent_alive, self.request_stop)
         beat.start()
@@ -198,8 +215,8 @@ class Worker:
 class JobRun:
     """One attempt at one job: the callbacks handed to ``fit`` and the attempt's state.
 
-    ``job`` is the claimed job row, ``beat`` its :class:`Heartbeat` (``beat.cancelled``: a
-    cancel reached this attempt), ``worker`` the :class:`Worker` running it.
+    ``job`` is the claimed job row, ``beat`` its :class:`Heartbeat` (``beat.withdrawn``: a
+    withdrawal reached this attempt), ``worker`` the :class:`Worker` running it.
     """
 
     def __init__(self, worker: Worker, job: dict, beat: Heartbeat):
@@ -214,9 +231,9 @@ class JobRun:
 
     # callbacks ------------------------------------------------------------------------------
     def should_stop(self) -> bool:
-        # SIGTERM is not a cancel: it ends at the next checkpoint (see checkpoint), so the job
+        # SIGTERM is not a withdrawal: it ends at the next checkpoint (see checkpoint), so the job
         # resumes elsewhere instead of being judged on a partial search
-        return self.beat.cancelled or self.beat.lost
+        return self.beat.withdrawn or self.beat.lost
 
     def progress(self, info: dict) -> None:
         if self.worker.on_progress is not None:
@@ -253,26 +270,27 @@ class JobRun:
         except LeaseLost:
             path.unlink(missing_ok=True)
             raise
-        if old and old != str(path):
-            Path(old).unlink(missing_ok=True)
+        if old and old != path:
+            old.unlink(missing_ok=True)
         if self.worker.stopping.is_set():
             raise Terminated("stopping after a saved checkpoint")
 
     # steps ----------------------------------------------------------------------------------
     def load_checkpoint(self) -> Any:
         """The last checkpoint's state, or None; a missing/torn/corrupt one is dropped (logged)."""
-        path, digest = self.job.get("checkpoint_path"), self.job.get("checkpoint_sha256")
-        if not path:
+        path = self.store.path(self.job.get("checkpoint_path"))
+        digest = self.job.get("checkpoint_sha256")
+        if path is None:
             return None
         try:
-            data = Path(path).read_bytes()
+            data = path.read_bytes()
             if hashlib.sha256(data).hexdigest() != digest:
                 raise ValueError("sha256 does not match the store (torn or altered file)")
             state = pickle.loads(data)  # our own blob, verified by its digest
         except Exception as exc:
             log.warning("job %s: checkpoint %s unusable (%s); starting over", self.job["id"], path, exc)
             self.store.drop_checkpoint(self.job)
-            Path(path).unlink(missing_ok=True)
+            path.unlink(missing_ok=True)
             # clients see this in the job's progress: the reason, never a server path
             reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
             self.checkpoint_problem = f"last checkpoint unusable ({reason}); started over"
@@ -309,6 +327,8 @@ class JobRun:
         return corpus, search_options, rename
 
     def execute(self) -> str:
+        if self.job["kind"] != "search":
+            return self._execute_on_site()
         job = self.job
         try:
             corpus, search_options, rename = self.prepare()
@@ -337,32 +357,69 @@ class JobRun:
         except LeaseLost:
             return "lost"
         except PermanentError as exc:
-            return self._finish_quietly("failed", error=str(exc))
+            return self._finish_quietly("error", error=str(exc))
         except Exception as exc:
-            if self.beat.lost:
-                return "lost"
-            if self.worker.stopping.is_set():
-                return self._release()
-            if disk_full(exc):
-                # retrying would only fill the disk again: free this job's checkpoints (so the
-                # store can record the outcome) and fail it with the reason
-                log.error("job %s: the data dir is full (%s)", job["id"], exc)
-                self._cleanup_checkpoints()
-                try:
-                    return self._finish_quietly("failed", error=f"the data dir is full: {exc}")
-                except (sqlite3.OperationalError, OSError):
-                    return "lost"  # still full: the lease expires and the job is claimed again
-            log.exception("job %s: attempt %d raised", job["id"], job["attempts"])
-            try:
-                return self.store.retry_or_fail(job, f"{type(exc).__name__}: {exc}",
-                                                self.settings.max_attempts)
-            except LeaseLost:
-                return "lost"
+            return self._after(exc)
         if self.beat.lost:
             return "lost"
-        if self.beat.cancelled:
-            return self._finish_quietly("cancelled", stop_reason="cancelled")
+        if self.beat.withdrawn:
+            return self._finish_quietly("withdrawn", stop_reason="withdrawn")
         return self._succeed(search, corpus, rename)  # a finished fit is kept, even on SIGTERM
+
+    def _execute_on_site(self) -> str:
+        """A check or a transform (service.tuned_site): its result folder and summary."""
+        from burstlens.service import tuned_site
+
+        job = self.job
+        try:
+            with self.worker.dask_context():
+                run = tuned_site.run_check if job["kind"] == "check" else tuned_site.run_transform
+                folder, summary = run(self)
+        except LeaseLost:
+            return "lost"
+        except PermanentError as exc:
+            return self._finish_quietly("error", error=str(exc))
+        except tuned_site.Interrupted:
+            if self.beat.lost:
+                return "lost"
+            if self.beat.withdrawn:
+                return self._finish_quietly("withdrawn", stop_reason="withdrawn")
+            return self._release()
+        except Exception as exc:
+            return self._after(exc)
+        if self.beat.lost:
+            return "lost"
+        if self.beat.withdrawn:  # asked while the last of it ran: withdrawn, as asked
+            return self._finish_quietly("withdrawn", stop_reason="withdrawn")
+        try:
+            self.store.finish(job, "done", stop_reason="completed", result_dir=folder,
+                              summary=summary)
+        except LeaseLost:
+            return "lost"
+        return "done"
+
+    def _after(self, exc: Exception) -> str:
+        """The outcome of an attempt that raised: lost, released, error (disk full) or a retry."""
+        job = self.job
+        if self.beat.lost:
+            return "lost"
+        if self.worker.stopping.is_set():
+            return self._release()
+        if disk_full(exc):
+            # retrying would only fill the disk again: free this job's checkpoints (so the
+            # store can record the outcome) and end it with the reason
+            log.error("job %s: the data dir is full (%s)", job["id"], exc)
+            self._cleanup_checkpoints()
+            try:
+                return self._finish_quietly("error", error=f"the data dir is full: {exc}")
+            except (sqlite3.OperationalError, OSError):
+                return "lost"  # still full: the lease expires and the job is claimed again
+        log.exception("job %s: attempt %d raised", job["id"], job["attempts"])
+        try:
+            return self.store.retry_or_fail(job, f"{type(exc).__name__}: {exc}",
+                                            self.settings.max_attempts)
+        except LeaseLost:
+            return "lost"
 
     def _release(self) -> str:
         try:
@@ -398,7 +455,7 @@ class JobRun:
             diagnostics = DiagnosticsDocument(jsonable(search.diagnostics_, names))
             made = FilterbankDocument.of(search.filterbank_, JobRecord(job["id"], job["settings"]))
             filterbank = FilterbankDocument(jsonable(made.data, names))
-            folder = self.store.blob_dir / "results" / job["id"] / f"attempt-{job['attempts']}"
+            folder = self.store.result_folder(job)
             write_blob(folder / "filterbank.json", filterbank.encode())
             write_blob(folder / "diagnostics.json", diagnostics.encode())
         except Exception as exc:
@@ -408,7 +465,7 @@ class JobRun:
                                                 self.settings.max_attempts)
             except LeaseLost:
                 return "lost"
-        self._write_report(folder, filterbank, diagnostics, corpus)
+        self._keep_windows(folder, corpus)
         from burstlens.service import verdict
 
         # the scorecard leads: what a pipeline gains, in words and in numbers
@@ -418,18 +475,18 @@ class JobRun:
                    "objective": diagnostics.objective, "gain_bits": diagnostics.gain_bits,
                    "stop_reason": diagnostics.stop_reason, "channels": len(filterbank.channels)}
         try:
-            self.store.finish(job, "succeeded", stop_reason=diagnostics.stop_reason,
-                              result_dir=str(folder), summary=summary,
+            self.store.finish(job, "done", stop_reason=diagnostics.stop_reason,
+                              result_dir=folder, summary=summary,
                               evaluations=diagnostics.evaluations)
         except LeaseLost:
             return "lost"
         self._cleanup_checkpoints()
-        return "succeeded"
+        return "done"
 
-    def _write_report(self, folder: Path, filterbank: FilterbankDocument,
-                      diagnostics: DiagnosticsDocument, corpus) -> None:
-        """Keep a window sample for the plots and cache report.html; a failure here never fails
-        the job (GET /report renders it later)."""
+    def _keep_windows(self, folder: Path, corpus) -> None:
+        """Keep a window sample for the report's plots; a failure here never fails the job.
+        The report itself is rendered on its first request (GET /report): at success it would
+        triple a small job's cost, mostly matplotlib layout, for a page nobody may open."""
         import numpy as np
 
         windows = corpus.windows
@@ -439,20 +496,13 @@ class JobRun:
             buffer = io.BytesIO()
             np.save(buffer, np.ascontiguousarray(windows), allow_pickle=False)
             write_blob(folder / "windows.npy", buffer.getvalue())
-            from burstlens.service.report import render_report
-
-            html = render_report(filterbank.data, diagnostics.data, windows,
-                                 corpus.sampling_rate_hz)
-            write_blob(folder / "report.html", html.encode("utf-8"))
         except Exception:
-            log.exception("job %s: report rendering failed", self.job["id"])
+            log.exception("job %s: keeping the report's window sample failed", self.job["id"])
 
 
 def run_worker(settings: ServiceSettings, parent_pid: int | None = None) -> int:
     """Entry point of ``burstlens worker``: run until SIGTERM, then exit 0 (2: no Dask cluster)."""
     if settings.dask:
-        import sys
-
         from burstlens.service.dask_backend import DaskUnavailable, probe
 
         try:
@@ -460,7 +510,14 @@ def run_worker(settings: ServiceSettings, parent_pid: int | None = None) -> int:
         except DaskUnavailable as exc:
             print(f"burstlens worker: {exc}", file=sys.stderr)
             return 2
-    worker = Worker(settings, parent_pid=parent_pid)
+    try:
+        worker = Worker(settings, parent_pid=parent_pid)
+    except DataDirTooNew as exc:
+        print(f"burstlens worker: {exc}", file=sys.stderr)
+        return 2
     worker.install_signal_handlers()
+    if settings.worker_niceness:
+        # the search is batch work: the API's pollers on the same cores come first
+        os.nice(settings.worker_niceness)
     return worker.run()
 

@@ -18,6 +18,7 @@ from collections.abc import Callable, Iterator
 import numpy as np
 
 from burstlens.search.corpus.model import CorpusError, RawTrace
+from burstlens.search.corpus.mseed_records import MAX_RECORD_BYTES, MIN_RECORD_BYTES, RecordError, record_layout
 
 HEAD_BYTES = 4096
 SAC_HEADER_BYTES = 632
@@ -137,10 +138,11 @@ def iter_waveform_chunks(path: str, fmt: str, *, csv_sampling_rate_hz: float | N
     """Read one file of a known format as successive lists of raw traces, in bounded memory.
 
     A miniSEED file is a sequence of independent records (SEED Reference Manual v2.4 ch. 8). When
-    ``fmt`` is "MSEED", the file is larger than ``chunk_bytes`` and its records share one length,
-    the file is decoded one block of whole records at a time: the block is the largest multiple of
-    the record length that is at most ``chunk_bytes`` (at least one record). A trace that runs
-    across blocks comes out in pieces, one per block, which
+    ``fmt`` is "MSEED", the file is larger than ``chunk_bytes`` and every block boundary falls on a
+    record header, the file is decoded one block of whole records at a time: the block is the
+    largest multiple of the first record's length that is at most ``chunk_bytes`` (at least one
+    record); a file cut inside its last record streams too, and its last block fails. A trace that
+    runs across blocks comes out in pieces, one per block, which
     :func:`burstlens.search.corpus.preprocess.join_contiguous` joins back. Every other file (other
     formats, small files, record lengths that vary) is read whole and yielded once, exactly as
     :func:`read_waveform_file` returns it.
@@ -164,7 +166,9 @@ def iter_waveform_chunks(path: str, fmt: str, *, csv_sampling_rate_hz: float | N
     Raises
     ------
     CorpusError
-        When a block cannot be read; the message names the file and the block's byte range.
+        When a block cannot be read; the message names the file, the block's byte range and,
+        for miniSEED, the byte offset of the first record cut short, not a record, or not
+        decodable (see :func:`_mseed_traces`).
     """
     limit = CHUNK_BYTES if chunk_bytes is None else chunk_bytes
     block = _mseed_block_bytes(path, limit) if fmt == "MSEED" else None
@@ -175,7 +179,7 @@ def iter_waveform_chunks(path: str, fmt: str, *, csv_sampling_rate_hz: float | N
         offset = 0
         while raw := fh.read(block):
             where = f" (bytes {offset}-{offset + len(raw)})"
-            traces = _checked_traces(path, fmt, functools.partial(_mseed_block_traces, path, raw, where), where)
+            traces = _checked_traces(path, fmt, functools.partial(_mseed_traces, path, raw, offset, where), where)
             offset += len(raw)
             del raw  # hold no file bytes while the caller works on the traces
             yield traces
@@ -183,7 +187,9 @@ def iter_waveform_chunks(path: str, fmt: str, *, csv_sampling_rate_hz: float | N
 
 def _mseed_block_bytes(path: str, limit: int) -> int | None:
     """Bytes per block of whole miniSEED records for a file larger than ``limit``, or None when the
-    file is to be read whole (small, not a whole number of equal records, or unreadable)."""
+    file is to be read whole (small, a block boundary not on a record header, or unreadable). The
+    size need not be a multiple of the record length: a file cut inside its last record streams,
+    and the walk of its last block reports the cut record."""
     size = os.path.getsize(path)
     if size <= limit:
         return None
@@ -195,7 +201,7 @@ def _mseed_block_bytes(path: str, limit: int) -> int | None:
             reclen = int(get_record_information(fh)["record_length"])
     except Exception:  # the whole-file read reports what is wrong with the file
         return None
-    if reclen <= 0 or size % reclen:
+    if not MIN_RECORD_BYTES <= reclen <= MAX_RECORD_BYTES:  # a damaged exponent: the walk names it
         return None
     block = max(reclen, limit // reclen * reclen)
     # every block must open on a record header, else the records differ in length
@@ -207,10 +213,70 @@ def _mseed_block_bytes(path: str, limit: int) -> int | None:
     return block
 
 
-def _mseed_block_traces(path: str, raw: bytes, where: str) -> list[RawTrace]:
+def _mseed_traces(path: str, raw: bytes, base: int, where: str) -> list[RawTrace]:
+    """Raw traces of ``raw``, whole miniSEED records starting at byte ``base`` of ``path``.
+
+    The record layout is walked first (:func:`record_layout`): a record cut short, a record whose
+    header is not a SEED fixed header, or a broken blockette chain is a CorpusError naming the
+    record's byte offset. ObsPy then decodes the records; its decoder failing, a Steim frame whose
+    last sample disagrees with the reverse integration constant (ObsPy's "Data integrity check"
+    warning; SEED Reference Manual v2.4 appendix B), or a sample count other than the records'
+    fixed headers declare is a CorpusError naming the first record at fault (found by bisection
+    over the records, which decode independently) and ``where``.
+    """
+    try:
+        layout = record_layout(raw, base)
+    except RecordError as exc:
+        raise CorpusError(f"{path}{where}: miniSEED {exc}") from None
+    stream, problem = _decoded(raw, layout.declared_samples)
+    if problem is None:
+        return _stream_traces(path, stream, where)
+    found = _first_bad_record(raw, layout, base)
+    if found is None:  # only the records together fail: name the run of bytes
+        raise CorpusError(f"{path}{where}: not a readable MSEED file ({problem})")
+    offset, cause = found
+    raise CorpusError(f"{path}{where}: miniSEED record at byte {offset} cannot be decoded ({cause})")
+
+
+def _decoded(raw, declared: int):
+    """(ObsPy stream, None) for miniSEED bytes that decode cleanly to ``declared`` samples, else
+    (None, what went wrong)."""
     import obspy
 
-    return _stream_traces(path, obspy.read(io.BytesIO(raw), format="MSEED"), where)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            stream = obspy.read(io.BytesIO(raw), format="MSEED")
+        except Exception as exc:  # the decoder's failure on a damaged record
+            return None, f"{type(exc).__name__}: {' '.join(str(exc).split())[:300]}"
+    for w in caught:
+        if "integrity check" in str(w.message):
+            return None, " ".join(str(w.message).split())[:300]
+    decoded = sum(len(tr.data) for tr in stream)
+    if decoded != declared:
+        return None, f"{decoded} samples decoded where the records' headers declare {declared}"
+    return stream, None
+
+
+def _first_bad_record(raw, layout, base: int) -> tuple[int, str] | None:
+    """(byte offset, cause) of the first record of ``layout`` that alone fails :func:`_decoded`,
+    by bisection (the whole run is known to fail); None if no single record does."""
+    view = memoryview(raw)
+
+    def problem(lo, hi):
+        a = int(layout.offsets[lo]) - base
+        b = int(layout.offsets[hi - 1] + layout.lengths[hi - 1]) - base
+        return _decoded(view[a:b], int(layout.samples[lo:hi].sum()))[1]
+
+    lo, hi = 0, len(layout)
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        if problem(lo, mid) is not None:
+            hi = mid
+        else:
+            lo = mid
+    cause = problem(lo, hi) if hi > lo else None
+    return None if cause is None else (int(layout.offsets[lo]), cause)
 
 
 def _checked_traces(path: str, fmt: str, read: Callable[[], list[RawTrace]], where: str = "") -> list[RawTrace]:
@@ -262,7 +328,9 @@ def _stream_traces(path: str, stream, where: str = "") -> list[RawTrace]:
 
 
 def _read_mseed(path, _rate):
-    return _obspy_traces(path, "MSEED")
+    with open(path, "rb") as fh:
+        raw = fh.read()
+    return _mseed_traces(path, raw, 0, "")
 
 
 def _read_sac(path, _rate):

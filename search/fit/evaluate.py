@@ -65,6 +65,26 @@ def _forget(token: str) -> None:
             del _PREPARED[key]
 
 
+# The filterbank whose transform weights this worker process keeps (see _transform_kept).
+_KEPT_PLAN: list = [None]
+
+
+def _transform_kept(prepared, filterbank, eps: float, one_plan: bool) -> np.ndarray:
+    """``search.transform.transform(prepared, filterbank, eps=eps)``; with ``one_plan`` (a
+    worker process of its own) only this filterbank's cached weights are kept. A search scores
+    each candidate on its chunks and then never again, so older weights (tens of MB for a
+    chirped 96-channel grid) would pile up to the transform's cache bound in every worker,
+    which loky reads as a memory leak and answers by restarting the worker mid-batch."""
+    from burstlens.search.transform import clear_plans, transform
+
+    if one_plan:
+        key = filterbank.key()
+        if _KEPT_PLAN[0] != key:
+            clear_plans()
+            _KEPT_PLAN[0] = key
+    return transform(prepared, filterbank, eps=eps)
+
+
 def make_filterbank(centers_hz, sigma_s, area, beta, fs, provenance=None, steady_lines_hz=()):
     """Filterbank from per-channel arrays (Hz, s, dimensionless, Hz/s) at sampling rate fs (Hz)
     (``steady_lines_hz``: the lines its transform removes first; the search's own scoring
@@ -122,15 +142,13 @@ def scores_from_stats(stats: np.ndarray, criterion: Criterion, n_samples: int, c
 
 
 def _score_task(token, windows, start, stop, fs, centers, sigma, area, beta, cell, criterion,
-                eps, want_stats):
+                eps, want_stats, one_plan=False):
     """Per-window criterion and negative share (and optionally row stats; for a non-separable
     criterion the rows' masses, :func:`row_masses`, not the images) of one filterbank on
     windows[start:stop]."""
-    from burstlens.search.transform import transform
-
     t0 = time.perf_counter()
-    images = transform(_prepared(token, windows, start, stop),
-                       make_filterbank(centers, sigma, area, beta, fs), eps=eps)
+    images = _transform_kept(_prepared(token, windows, start, stop),
+                             make_filterbank(centers, sigma, area, beta, fs), eps, one_plan)
     stats = row_stats(images, criterion, cell)
     scores, shares = scores_from_stats(stats, criterion, images.shape[-1], cell)
     if want_stats and not criterion.separable:
@@ -149,12 +167,11 @@ def _spectrogram_task(token, windows, start, stop, fs, sigma, band, criterion, e
     return scores, time.perf_counter() - t0
 
 
-def _stats_task(token, windows, start, stop, fs, centers, sigma, area, beta, cell, criterion, eps):
+def _stats_task(token, windows, start, stop, fs, centers, sigma, area, beta, cell, criterion, eps,
+                one_plan=False):
     """Row stats of a (usually one-channel) filterbank on windows[start:stop]."""
-    from burstlens.search.transform import transform
-
-    images = transform(_prepared(token, windows, start, stop),
-                       make_filterbank(centers, sigma, area, beta, fs), eps=eps)
+    images = _transform_kept(_prepared(token, windows, start, stop),
+                             make_filterbank(centers, sigma, area, beta, fs), eps, one_plan)
     return row_stats(images, criterion, cell)
 
 
@@ -197,6 +214,7 @@ class Evaluator:
         self.token = uuid.uuid4().hex
         self._tmp = None
         self.parallel = None
+        self.one_plan = False       # True where each task runs in a worker process of its own
         backend = get_active_backend()[0]
         kind = type(backend).__name__
         if kind == "DaskDistributedBackend":      # the cluster's workers, whatever n_jobs says
@@ -214,6 +232,7 @@ class Evaluator:
                 path = os.path.join(self._tmp, "windows.npy")
                 joblib.dump(np.ascontiguousarray(windows, dtype=np.float64), path)
                 self.shared = joblib.load(path, mmap_mode="r")
+                self.one_plan = True
             else:
                 self.shared = windows
         if self.parallel is not None:
@@ -230,7 +249,7 @@ class Evaluator:
         """Per-window scores of each whole-grid filterbank in ``params`` (tuples of per-channel
         arrays centers, sigma, area, beta), in window order."""
         calls = [(_score_task, (self.token, self.shared, s, e, self.fs, *p, self.cell,
-                                self.criterion, self.eps, want_stats))
+                                self.criterion, self.eps, want_stats, self.one_plan))
                  for p in params for s, e in self.chunks]
         out = self._run(calls)
         k = len(self.chunks)
@@ -258,7 +277,7 @@ class Evaluator:
         whose rows are the grid's ``channels`` (default: the whole grid)."""
         cell = self.cell if channels is None else self.cell[np.asarray(channels)]
         calls = [(_stats_task, (self.token, self.shared, s, e, self.fs, *p, cell, self.criterion,
-                                self.eps)) for s, e in self.chunks]
+                                self.eps, self.one_plan)) for s, e in self.chunks]
         return np.concatenate(self._run(calls))
 
     def close(self):

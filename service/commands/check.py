@@ -30,7 +30,7 @@ def register(subparsers) -> None:
     p.add_argument("paths", nargs="+", metavar="PATH", help="new waveform files or folders")
     p.add_argument("--diagnostics", metavar="FILE",
                    help="the tuning's diagnostics.json (default: the one beside --filterbank)")
-    p.add_argument("--json", action="store_true", help="print the answer as JSON")
+    p.add_argument("--json", action="store_true", help="print the answer as JSON (default: in words)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=run)
 

@@ -1,13 +1,18 @@
 """``burstlens inspect PATH...``: what a corpus holds — traces, windows, defaults, rejections.
 
-While reading, a progress bar on stderr (not with ``--quiet``) shows the files read, the hours
-of data and the windows found; ``read_with_progress`` is that reading, also used by ``tune``.
+While reading, a progress bar on stderr (not with ``--quiet``) shows the files read, the
+trace-hours read and the windows found; ``read_with_progress`` is that reading, also used by
+``tune``. The summary counts the record both ways (:func:`record_hours`): station-hours (each
+station's time on record) and trace-hours (every trace's length summed; a 3-component station
+has three traces).
 """
 from __future__ import annotations
 
 import json
 import os
 import sys
+from dataclasses import dataclass
+from datetime import datetime, timedelta
 
 
 def register(subparsers) -> None:
@@ -19,8 +24,9 @@ def register(subparsers) -> None:
                     "windows found per trace, every default chosen, and the rejected windows with reasons.")
     add_paths(p)
     add_corpus_options(p)
-    p.add_argument("--json", action="store_true", help="print the corpus summary as JSON")
-    p.add_argument("--all", action="store_true", help="list every window and rejection, not the first 20")
+    p.add_argument("--json", action="store_true", help="print the corpus summary as JSON (default: text)")
+    p.add_argument("--all", action="store_true",
+                   help="list every window and rejection (default: the first 20 of each)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.add_argument("--jobs", dest="reading_jobs", type=int, default=1, metavar="N",
                    help="processes reading the files (default 1; -1: every core); the result is the same")
@@ -91,7 +97,7 @@ class _ReadingBar:
         elif p.stage != self.bar.desc:
             self.bar.set_description_str(p.stage, refresh=False)
             self.bar.reset(total=total)  # each stage its own count, elapsed time and rate
-        words = f"{p.files_read} files, {_hours(p.hours_read)} h of data"
+        words = f"{p.files_read} files, {_hours(p.hours_read)} trace-hours"
         if p.stage == "cutting":
             words += f", {p.windows_found} windows found"
         self.bar.set_postfix_str(words, refresh=False)
@@ -103,8 +109,81 @@ class _ReadingBar:
 
 
 def _hours(hours: float) -> str:
-    """Hours with three significant digits below 100, whole hours above (a month is 720)."""
+    """Hours with three significant digits below 100, whole hours above (a month is 720 per
+    trace)."""
     return f"{hours:.3g}" if hours < 100 else f"{hours:.0f}"
+
+
+@dataclass(frozen=True)
+class RecordHours:
+    """How much record a corpus holds. ``station_hours``: summed over stations, the time
+    covered by at least one of the station's traces (h); ``trace_hours``: every trace's length
+    summed (h); ``first``/``last``: the earliest start and latest end (UTC), None when no trace
+    carries a start time."""
+
+    stations: int
+    traces: int
+    station_hours: float
+    trace_hours: float
+    first: datetime | None
+    last: datetime | None
+
+
+def station_of(trace_id: str) -> str:
+    """The station of a SEED id ``NET.STA.LOC.CHA``: ``NET.STA`` (its components and location
+    codes are one station); an id of another shape is a station of its own."""
+    parts = trace_id.split(".")
+    return ".".join(parts[:2]) if len(parts) == 4 else trace_id
+
+
+def record_hours(traces) -> RecordHours:
+    """:class:`RecordHours` of ``Corpus.traces`` (dicts with ``trace_id``, ``start`` (ISO 8601
+    UTC or None) and ``duration_s``). A station's time is the union of its traces' spans
+    [start, start + duration], so three components over the same minute count one minute; a
+    trace without a start time spans [0, duration] of its station's own clock."""
+    spans: dict[str, list[tuple[float, float]]] = {}
+    ends = []
+    for t in traces:
+        start = _utc(t.get("start"))
+        duration = float(t.get("duration_s") or 0.0)
+        offset = start.timestamp() if start is not None else 0.0
+        spans.setdefault(station_of(str(t.get("trace_id"))), []).append((offset, offset + duration))
+        if start is not None:
+            ends.append((start, start + timedelta(seconds=duration)))
+    station_s = sum(_union_length(s) for s in spans.values())
+    trace_s = sum(float(t.get("duration_s") or 0.0) for t in traces)
+    return RecordHours(len(spans), len(traces), station_s / 3600.0, trace_s / 3600.0,
+                       min(e[0] for e in ends) if ends else None,
+                       max(e[1] for e in ends) if ends else None)
+
+
+def _utc(text) -> datetime | None:
+    return datetime.fromisoformat(text) if isinstance(text, str) and text else None
+
+
+def _union_length(spans: list[tuple[float, float]]) -> float:
+    """Total length (s) of the union of intervals [a, b]."""
+    total, reach = 0.0, -float("inf")
+    for a, b in sorted(spans):
+        if b > reach:
+            total += b - max(a, reach)
+            reach = b
+    return total
+
+
+def record_lines(traces) -> list[str]:
+    """Two lines on the record: stations and traces with the UTC span when the traces carry
+    start times, then station-hours and trace-hours, each named."""
+    r = record_hours(traces)
+    head = f"record: {r.stations} station{'s' * (r.stations != 1)}, {r.traces} trace{'s' * (r.traces != 1)}"
+    if r.first is not None:
+        head += f", {_stamp(r.first)} to {_stamp(r.last)} UTC"
+    return [head, f"  {_hours(r.station_hours)} station-hours (each station's time on record), "
+                  f"{_hours(r.trace_hours)} trace-hours (every trace's length summed)"]
+
+
+def _stamp(t: datetime) -> str:
+    return t.strftime("%Y-%m-%d %H:%M:%S.%f").rstrip("0").rstrip(".")
 
 
 def noise_line(noise) -> str:
@@ -123,6 +202,7 @@ def render(corpus, limit: int | None = 20) -> str:
     w = out.append
     w(f"corpus: {corpus.n_windows} windows of {corpus.window_samples} samples "
       f"({corpus.window_s * 1000:g} ms) at {corpus.sampling_rate_hz:g} Hz, from {len(corpus.files)} files")
+    out += record_lines(corpus.traces)
     w(f"source sha256: {corpus.source_hash}")
     w(noise_line(corpus.defaults.get("noise")))
     if corpus.skipped:

@@ -61,16 +61,27 @@ def add_corpus_options(parser: argparse.ArgumentParser) -> None:
     g = parser.add_argument_group("corpus options (unset: the reader's default or a value "
                                   "chosen from the data, recorded in the result)")
     for option in CORPUS_OPTIONS.values():
-        kwargs = dict(_KIND_ARGS.get(option.kind, {}))
-        default = "default %(default)s"
-        if option.name.endswith(("_hz", "_s")) and option.kind == "positive":
-            kwargs["metavar"] = option.name.rsplit("_", 1)[1].upper()
-        if option.kind == "choice":
-            # an explicit metavar keeps argparse from listing the choices while building
-            kwargs.update(choices=_Choices(option), metavar=option.name.upper())
-            default = "one of %(choices)s; default %(default)s"
-        g.add_argument(option.cli_flag, dest=option.name, default=_NotGiven(option),
-                       help=f"{option.help} ({default})", **kwargs)
+        add_corpus_option(g, option.name)
+
+
+def add_corpus_option(parser, name: str) -> None:
+    """One ``read_corpus`` option as a flag, with its help, default and choices, for a command
+    that takes only some of them (``transform --max-windows``); read it back with
+    :func:`corpus_options_from_args`."""
+    option = CORPUS_OPTIONS[name]
+    kwargs = dict(_KIND_ARGS.get(option.kind, {}))
+    default = "default %(default)s"
+    if option.name.endswith(("_hz", "_s")) and option.kind == "positive":
+        kwargs["metavar"] = option.name.rsplit("_", 1)[1].upper()
+    if option.kind == "choice":
+        # add_argument checks its metavar by formatting it, which would look the choices up
+        # while building; the placeholder is dropped after, so --help lists {a,b,...}
+        kwargs.update(choices=_Choices(option), metavar=option.name.upper())
+        default = "one of %(choices)s; default %(default)s"
+    action = parser.add_argument(option.cli_flag, dest=option.name, default=_NotGiven(option),
+                                 help=f"{option.help} ({default})", **kwargs)
+    if option.kind == "choice":
+        action.metavar = None
 
 
 def _share(high: float):
@@ -104,26 +115,50 @@ class JobFlag:
         return self.flag.lstrip("-").replace("-", "_")
 
 
-# The search settings as flags, in --help order; unset flags leave the engine's defaults.
+# The search settings as flags, in --help order; unset flags leave the engine's defaults, which
+# each help states (read from search.settings, so help and engine cannot disagree).
+_LOW, _HIGH = SETTINGS_DEFAULTS["cell_area"]
 JOB_FLAGS = (
-    JobFlag("--channels", "channels", {"type": int, "help": "number of channels"}),
-    JobFlag("--band", "band_hz", {"nargs": 2, "type": float, "metavar": ("LO", "HI"),
-                                  "help": "channel band, Hz"}),
-    JobFlag("--spacing", "spacing", {"choices": SPACINGS, "help": "channel centre spacing"}),
-    JobFlag("--criterion", "criterion.name", {"choices": CRITERIA}),
+    JobFlag("--channels", "channels", {
+        "type": int, "metavar": "N",
+        "help": f"number of channels (default {SETTINGS_DEFAULTS['channels']})"}),
+    JobFlag("--band", "band_hz", {
+        "nargs": 2, "type": float, "metavar": ("LO", "HI"),
+        "help": "band the channel centres span, Hz (default from the sampling rate fs: fs/100 to "
+                "0.45 fs, above drift and below the anti-alias roll-off)"}),
+    JobFlag("--spacing", "spacing", {
+        "choices": SPACINGS,
+        "help": f"channel centre spacing (one of %(choices)s; default {SETTINGS_DEFAULTS['spacing']})"}),
+    JobFlag("--criterion", "criterion.name", {
+        "choices": CRITERIA,
+        "help": "what the search minimises: the Rényi entropy of the bursts on the plane, their "
+                "concentration or sparsity, or the detection threshold of an energy detector in "
+                "the site's noise (needs noise windows) (one of %(choices)s; default "
+                f"{CRITERION_DEFAULTS['name']})"}),
     JobFlag("--alpha", "criterion.alpha",
             {"type": float, "help": f"Rényi order (default {CRITERION_DEFAULTS['alpha']:g})"}),
-    JobFlag("--cell-area", "cell_area", {"nargs": 2, "type": float, "metavar": ("MIN", "MAX"),
-                                         "help": "cell area bounds (1 = Heisenberg minimum)"}),
-    JobFlag("--no-chirp", "chirp", {"help": "chirp rate fixed at 0"}, off=True),
-    JobFlag("--no-refine", "refine", {"help": "skip per-channel refinement"}, off=True),
+    JobFlag("--cell-area", "cell_area", {
+        "nargs": 2, "type": float, "metavar": ("MIN", "MAX"),
+        "help": f"bounds of the kernels' cell area (1 = Heisenberg minimum; default {_LOW:g} {_HIGH:g})"}),
+    JobFlag("--no-chirp", "chirp", {"help": "chirp rate fixed at 0 (default: searched)"}, off=True),
+    JobFlag("--no-refine", "refine", {"help": "skip the per-channel refinement (default: refine)"},
+            off=True),
     JobFlag("--no-guard", "guard", {"help": "keep the sharpest filterbank even where it finds "
                                             "bursts or onsets worse than the best plain "
-                                            "spectrogram on the fit windows"}, off=True),
-    JobFlag("--evaluations", "evaluations", {"type": int, "help": "evaluation budget"}),
-    JobFlag("--time-limit", "time_limit_s", {"type": float, "metavar": "S",
-                                              "help": "time budget, s"}),
-    JobFlag("--bootstrap", "bootstrap", {"type": int, "help": "bootstrap resamples"}),
+                                            "spectrogram on the fit windows (default: fall back "
+                                            "to that spectrogram)"}, off=True),
+    JobFlag("--evaluations", "evaluations", {
+        "type": int, "metavar": "N",
+        "help": "evaluation budget: whole filterbanks scored by the first search stage, before "
+                f"the per-channel refinement (default {SETTINGS_DEFAULTS['evaluations']})"}),
+    JobFlag("--time-limit", "time_limit_s", {
+        "type": float, "metavar": "S",
+        "help": "time budget of the search, s: at the limit the best filterbank so far is judged "
+                "and returned (the baselines and the judgement always run; default none)"}),
+    JobFlag("--bootstrap", "bootstrap", {
+        "type": int, "metavar": "N",
+        "help": "refits on resamples of the fit windows for each channel's stability interval "
+                f"(0: none, else at least 2; default {SETTINGS_DEFAULTS['bootstrap']})"}),
     JobFlag("--held-out", "held_out", {
         "type": _share(MAX_HELD_OUT), "metavar": "SHARE",
         "help": f"share of windows kept out of the fit to judge it (0 to {MAX_HELD_OUT:g}, "
@@ -135,10 +170,13 @@ JOB_FLAGS = (
     JobFlag("--compare-to", "compare_to", {
         "metavar": "KIND:LENGTH[:OVERLAP]",
         "help": "your own spectrogram, scored beside the result: window hann or gaussian, "
-                "length and overlap in samples (default overlap half the length), e.g. "
-                "hann:256:192"}),
-    JobFlag("--jobs", "jobs", {"type": int, "help": "parallel evaluations on the worker "
-                                                    "(capped there); tune also reads on this many processes"}),
+                "length and overlap in samples (overlap unset: half the length), e.g. "
+                "hann:256:192 (default none)"}),
+    JobFlag("--jobs", "jobs", {
+        "type": int, "metavar": "N",
+        "help": "candidate filterbanks scored at once, one process each (default "
+                f"{SETTINGS_DEFAULTS['jobs']}; -1 with tune: every core); a server runs at most as "
+                "many as it has cores; tune also reads the files with this many"}),
 )
 
 

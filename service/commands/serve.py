@@ -11,12 +11,17 @@ def register(subparsers) -> None:
                     "the SQLite store under --data-dir. Without any token stored the server only "
                     "binds to loopback; add one with `burstlens tokens add NAME`. Every flag "
                     "defaults to its BURSTLENS_* environment variable.")
-    p.add_argument("--host", help="address to bind (default 127.0.0.1)")
-    p.add_argument("--port", type=int, help="port (default 8000)")
-    p.add_argument("--data-dir", help="store and blob folder (default ./burstlens-data)")
-    p.add_argument("--workers", type=int, metavar="N", help="local worker processes (default 1)")
-    p.add_argument("--dask", metavar="ADDR", help="Dask scheduler, e.g. tcp://HOST:8786")
-    p.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"])
+    p.add_argument("--host", help="address to bind (default $BURSTLENS_HOST, else 127.0.0.1)")
+    p.add_argument("--port", type=int, help="port (default $BURSTLENS_PORT, else 8000)")
+    p.add_argument("--data-dir", metavar="DIR",
+                   help="store and blob folder (default $BURSTLENS_DATA_DIR, else ./burstlens-data)")
+    p.add_argument("--workers", type=int, metavar="N",
+                   help="local worker processes (default $BURSTLENS_WORKERS, else 1)")
+    p.add_argument("--dask", metavar="ADDR",
+                   help="Dask scheduler that scores the candidates, e.g. tcp://HOST:8786 (default "
+                        "$BURSTLENS_DASK, else none: each worker scores on its own processes)")
+    p.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"],
+                   help="least severe log messages shown (one of %(choices)s; default %(default)s)")
     p.set_defaults(func=run)
 
 

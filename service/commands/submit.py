@@ -14,14 +14,16 @@ def register(subparsers) -> None:
 
     p = subparsers.add_parser(
         "submit", help="tune on a server: upload, queue, follow, download",
-        description="Upload waveform files as a corpus, queue a tuning job on a burstlens server, "
-                    "and (with --wait) follow its progress and download filterbank.json, "
+        description="Upload waveform files as a corpus, queue a filterbank search on a burstlens "
+                    "server, and (with --wait) follow its progress and download filterbank.json, "
                     "diagnostics.json and report.html into --out.")
     add_paths(p)
     p.add_argument("--server", required=True, metavar="URL", help="e.g. http://127.0.0.1:8000")
     p.add_argument("--token", help="bearer token (default: $BURSTLENS_TOKEN)")
-    p.add_argument("--wait", action="store_true", help="follow the job until it ends")
-    p.add_argument("--out", metavar="DIR", help="download the results here (implies --wait)")
+    p.add_argument("--wait", action="store_true",
+                   help="follow the job until it ends (default: print the job id and return)")
+    p.add_argument("--out", metavar="DIR", help="download the results here (implies --wait; "
+                                                "default none: they stay on the server)")
     add_corpus_options(p)
     add_job_settings(p)
     p.set_defaults(func=run)
@@ -55,21 +57,28 @@ def follow(client, job_id: str, *, stream=None) -> dict:
     bar = tqdm(total=1000, unit="‰", file=stream, bar_format="{desc} {percentage:3.0f}%|{bar}| "
                "{elapsed}<{remaining}{postfix}", desc=f"job {job_id[:8]}")
 
+    from burstlens.service.commands.tune import ProgressWords
+
+    words = ProgressWords()  # the fit's best kept apart from the judgement, as `tune` shows it
+
     def show(job: dict) -> None:
         prog = job.get("progress") or {}
         fraction = prog.get("fraction")
         if isinstance(fraction, (int, float)):
             bar.n = int(round(1000 * min(max(fraction, 0.0), 1.0)))
-        best = prog.get("best_objective")
-        bar.set_postfix_str(
-            f"{job['state']} {prog.get('stage') or ''} round {prog.get('round') or 0} "
-            f"evaluations {prog.get('evaluations') or 0} (budget {prog.get('budget') or '?'})"
-            + (f" best {best:.4f}" if isinstance(best, (int, float)) else ""), refresh=False)
+        text = job["state"]
+        if prog.get("stage"):
+            best = prog.get("best_objective")
+            text += ": " + words.during({
+                "stage": prog["stage"], "round": prog.get("round") or 0,
+                "evaluations": prog.get("evaluations") or 0, "budget": prog.get("budget") or "?",
+                "best_objective": best if isinstance(best, (int, float)) else None})
+        bar.set_postfix_str(text, refresh=False)
         bar.refresh()
 
     try:
         job = client.wait(job_id, on_progress=show, poll_s=1.0)
-        if job["state"] == "succeeded":
+        if job["state"] == "done":
             bar.n = 1000
             bar.refresh()
         return job
@@ -115,7 +124,7 @@ def run(args: argparse.Namespace) -> int:
                 print(job["id"])
                 return 0
             job = follow(client, job["id"], stream=sys.stderr)
-            if job["state"] != "succeeded":
+            if job["state"] != "done":
                 print(f"job {job['id']} {job['state']}: {job.get('error') or job.get('stop_reason')}",
                       file=sys.stderr)
                 return 1

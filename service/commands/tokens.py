@@ -7,7 +7,8 @@ import argparse
 def register(subparsers) -> None:
     p = subparsers.add_parser("tokens", help="manage API bearer tokens",
                               description="Create, revoke and list bearer tokens of the API.")
-    p.add_argument("--data-dir", help="store folder (default ./burstlens-data)")
+    p.add_argument("--data-dir", metavar="DIR",
+                   help="store folder (default $BURSTLENS_DATA_DIR, else ./burstlens-data)")
     # --data-dir is accepted after the action too (`tokens add NAME --data-dir D`)
     common = argparse.ArgumentParser(add_help=False)
     common.add_argument("--data-dir", default=argparse.SUPPRESS, help=argparse.SUPPRESS)
@@ -16,7 +17,8 @@ def register(subparsers) -> None:
     add.add_argument("name", help="token name (unique)")
     add.add_argument("--tenant", help="tenant the token acts for (default: the name)")
     revoke = sub.add_parser("revoke", parents=[common], help="revoke a token by name")
-    revoke.add_argument("name")
+    revoke.add_argument("name", help="name of the token to revoke; requests with it are "
+                                     "refused from then on")
     sub.add_parser("list", parents=[common], help="list token names and tenants (never the tokens)")
     p.set_defaults(func=run)
 
@@ -26,9 +28,13 @@ def run(args: argparse.Namespace) -> int:
 
     from burstlens.service.auth import create_token
     from burstlens.service.commands.options import service_settings_from
-    from burstlens.service.store import Conflict, Store
+    from burstlens.service.store import Conflict, DataDirTooNew, Store
 
-    store = Store(service_settings_from(args, "data_dir").data_dir)
+    try:
+        store = Store(service_settings_from(args, "data_dir").data_dir)
+    except DataDirTooNew as exc:
+        print(f"burstlens tokens: {exc}", file=sys.stderr)
+        return 2
     if args.action == "add":
         try:
             token = create_token(store, args.name, args.tenant)

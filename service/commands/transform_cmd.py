@@ -18,6 +18,8 @@ import argparse
 
 
 def register(subparsers) -> None:
+    from burstlens.service.commands.options import add_corpus_option
+
     p = subparsers.add_parser(
         "transform", help="apply a filterbank to waveform files, write an NPZ",
         description="Cut windows from the waveform files as the tuning did and write the learned "
@@ -26,9 +28,9 @@ def register(subparsers) -> None:
     p.add_argument("paths", nargs="+", metavar="PATH", help="waveform files or folders")
     p.add_argument("--out", required=True, metavar="FILE.npz", help="output NPZ file")
     p.add_argument("--windowing", choices=["bursts", "whole", "sliding"],
-                   help="how windows are cut (default: as the filterbank's tuning recorded, "
-                        "else the reader's)")
-    p.add_argument("--max-windows", type=int, help="cap on the number of windows")
+                   help="how windows are cut (one of %(choices)s; default: as the filterbank's "
+                        "tuning recorded, else the reader's)")
+    add_corpus_option(p, "max_windows")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.add_argument("--continuous", action="store_true",
                    help="transform every trace whole into a Zarr v3 store (--out OUT.zarr) with UTC times")
@@ -36,7 +38,7 @@ def register(subparsers) -> None:
                    help="with --continuous: output step in seconds (default: the finest step the "
                         "kernels need, see the store's time_step attribute)")
     p.add_argument("--jobs", type=int, metavar="N",
-                   help="with --continuous: processes computing the chunks (default 1; -1 all CPUs)")
+                   help="with --continuous: processes computing the chunks (default 1; -1: every core)")
     p.set_defaults(func=run)
 
 
@@ -52,7 +54,12 @@ def run(args: argparse.Namespace) -> int:
     from burstlens.search.corpus import CorpusError, read_corpus
     from burstlens.search.documents import FilterbankDocument
     from burstlens.search.npz_stream import write_transform_npz
+    from burstlens.service.commands.options import corpus_options_from_args
 
+    try:  # --max-windows, checked as tune checks it; None when not given
+        args.max_windows = corpus_options_from_args(args).get("max_windows")
+    except ValueError as exc:
+        return fail(f"--max-windows: {exc}")
     try:
         with open(args.filterbank, encoding="utf-8") as fh:
             document = FilterbankDocument.read(json.load(fh))
@@ -62,8 +69,6 @@ def run(args: argparse.Namespace) -> int:
         return fail(f"--filterbank {args.filterbank}: {exc.strerror or exc}")
     except (ValueError, json.JSONDecodeError) as exc:
         return fail(f"--filterbank {args.filterbank}: {exc}")
-    if args.max_windows is not None and args.max_windows < 1:
-        return fail(f"--max-windows {args.max_windows}: must be at least 1")
     missing = [p for p in args.paths if not os.path.exists(p)]
     if missing:
         return fail(f"{missing[0]}: no such file or folder")
@@ -147,6 +152,8 @@ def _run_continuous(args, document, options, fail) -> int:
         if bar is not None:
             bar.close()
     step = result.step
-    print(f"wrote {args.out}: {len(result.parts)} part(s), {len(document.filterbank)} channels, "
+    appended = sum(p.appended for p in result.parts)
+    print(f"wrote {args.out}: {len(result.parts)} part(s)"
+          f"{f' ({appended} continuing the store)' if appended else ''}, {len(document.filterbank)} channels, "
           f"time step {step.seconds:g} s ({step.samples} samples, aliasing ≤ {step.aliasing:.1e})")
     return 0

@@ -45,8 +45,8 @@ def summary_lines(diagnostics: dict) -> list[str]:
         lines.append(f"{label}: {result['objective']:.4f} bits{iv}")
         spec = d["baselines"]["spectrogram"]
         window_ms = 1e3 * spec["parameters"]["time_spread_s"]
-        lines.append(f"best spectrogram: {spec['objective']:.4f} bits (window std {window_ms:.3g} ms); "
-                     f"gain {d['gain_bits']:.4f} bits")
+        # the gain itself is the scorecard's sharpness row above: said once
+        lines.append(f"best spectrogram: {spec['objective']:.4f} bits (window std {window_ms:.3g} ms)")
     boot = d.get("bootstrap") or {}
     if boot.get("channels"):
         wide = wide_channels(boot, chirp_bound_hz_per_s=d["settings"].get("chirp_bound_hz_per_s", 0.0))
@@ -59,6 +59,39 @@ def summary_lines(diagnostics: dict) -> list[str]:
             lines.append(f"channels whose resamples all move one way (against a bound, or not "
                          f"converged): {len(off)}")
     return lines
+
+
+class ProgressWords:
+    """The progress bar's words: the stage, its round and evaluations, and the fit's best
+    objective (bits, lower is sharper; on the fit windows, and in the family stage on their
+    subset), kept apart from the judgement, which scores the result on the held-out windows:
+    other windows, so its number is no continuation of the fit's best."""
+
+    def __init__(self):
+        self.fit_best = None
+
+    def during(self, msg: dict) -> str:
+        """Words for one progress message of ``FilterbankSearch.fit``."""
+        if msg["stage"] == "judge":
+            return "judging on the held-out windows" + self._fit_best()
+        best = msg.get("best_objective")
+        if best is not None:
+            self.fit_best = best
+        return (f"{msg['stage']} round {msg['round']}, {msg['evaluations']} of "
+                f"{msg['budget']} evaluations" + self._fit_best())
+
+    def after(self, diagnostics: dict) -> str:
+        """Words once the fit has returned: the fit's best and the judgement, named apart."""
+        judged = diagnostics.get("judgement") or {}
+        result = (judged.get("result") or {}).get("objective")
+        if result is None:
+            return f"stopped ({diagnostics.get('stop_reason')}), not judged" + self._fit_best()
+        where = ("on the fit windows (none held out)" if judged.get("in_sample")
+                 else f"on {judged.get('held_out_windows')} held-out windows")
+        return f"done{self._fit_best()}; judged {result:.4f} bits {where}"
+
+    def _fit_best(self) -> str:
+        return "" if self.fit_best is None else f"; fit best {self.fit_best:.4f} bits"
 
 
 def run(args: argparse.Namespace) -> int:
@@ -100,14 +133,13 @@ def run(args: argparse.Namespace) -> int:
 
         bar = tqdm(total=1000, desc="tune", file=sys.stderr, bar_format="{desc} {percentage:3.0f}%"
                    "|{bar}| {elapsed}<{remaining}{postfix}")
+    shown = ProgressWords()
 
     def progress(msg: dict) -> None:
         if bar is None:
             return
         bar.n = int(round(1000 * msg["fraction"]))
-        best = msg.get("best_objective")
-        bar.set_postfix_str(f"{msg['stage']} round {msg['round']} eval {msg['evaluations']}"
-                            + (f" best {best:.4f}" if best is not None else ""), refresh=False)
+        bar.set_postfix_str(shown.during(msg), refresh=False)
         bar.refresh()
 
     interrupted = []
@@ -128,6 +160,10 @@ def run(args: argparse.Namespace) -> int:
     try:
         search = FilterbankSearch(**search_options)
         search.fit(corpus, progress=progress, should_stop=should_stop)
+        if bar is not None:
+            bar.n = 1000
+            bar.set_postfix_str(shown.after(search.diagnostics_), refresh=False)
+            bar.refresh()
     except ValueError as exc:
         return fail(str(exc))
     finally:

@@ -7,12 +7,16 @@ import argparse
 def register(subparsers) -> None:
     p = subparsers.add_parser(
         "worker", help="run a job worker against a data dir",
-        description="Claim and run tuning jobs from the store under --data-dir until SIGTERM "
-                    "(then: checkpoint, release the job, exit 0).")
-    p.add_argument("--data-dir", help="store and blob folder (default ./burstlens-data)")
-    p.add_argument("--dask", metavar="ADDR", help="Dask scheduler, e.g. tcp://HOST:8786")
+        description="Claim and run jobs (searches, checks, continuous transforms) from the store "
+                    "under --data-dir until SIGTERM (then: checkpoint, release the job, exit 0).")
+    p.add_argument("--data-dir", metavar="DIR",
+                   help="store and blob folder (default $BURSTLENS_DATA_DIR, else ./burstlens-data)")
+    p.add_argument("--dask", metavar="ADDR",
+                   help="Dask scheduler that scores the candidates, e.g. tcp://HOST:8786 (default "
+                        "$BURSTLENS_DASK, else none: the worker scores on its own processes)")
     p.add_argument("--parent-pid", type=int, help=argparse.SUPPRESS)  # set by `serve`
-    p.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"])
+    p.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"],
+                   help="least severe log messages shown (one of %(choices)s; default %(default)s)")
     p.set_defaults(func=run)
 
 

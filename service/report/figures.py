@@ -13,11 +13,19 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from burstlens.service.report.wording import utc_text
+
 from burstlens.search.safe_io import finite_or_none
 from burstlens.service import plots, verdict
 from burstlens.service.report.inputs import channel_column, channel_rows, check_windows, criterion_of
 
 PLOT_NAMES = ("tiling", "examples", "convergence", "channels", "baselines")
+SQRT2 = math.sqrt(2.0)  # window std s = √2·σ_t (service.report.terms)
+# What the reader knows of the waveforms' units: it keeps samples as recorded (counts for
+# integer miniSEED and SAC), and no instrument response is removed.
+AMPLITUDE_LABEL = "amplitude (as recorded)"
+AMPLITUDE_NOTE = ("Waveform amplitudes are as the files store them: counts for integer miniSEED "
+                  "and SAC data; no instrument response was removed.")
 EXAMPLE_ROWS = 3
 
 BASELINE_NAMES = {
@@ -57,12 +65,15 @@ def _tiling(channels: list[dict]) -> Plot:
     png = plots.figure_png(plots.tiling_figure(fc, st, area, beta))
     alt = (f"Tiling of the time–frequency plane: {len(channels)} ellipses, one per channel, "
            f"centred at 0 ms and at each centre frequency from {fc.min():.4g} to {fc.max():.4g} Hz; "
-           f"time spread {1e3 * st.min():.3g} to {1e3 * st.max():.3g} ms, cell area "
+           f"Gaussian window std {1e3 * SQRT2 * st.min():.3g} to {1e3 * SQRT2 * st.max():.3g} ms, "
+           f"cell area "
            f"{area.min():.3g} to {area.max():.3g}, chirp rate {beta.min():.4g} to {beta.max():.4g} "
            f"Hz/s; a dashed Heisenberg cell (a = 1) for reference.")
-    caption = ("Each ellipse is the 1-σ contour of one channel's Gaussian kernel, sheared by its "
-               "chirp rate and coloured by its cell area; the dashed ellipse is the Heisenberg cell "
-               "(cell area 1) with the median channel's time spread.")
+    caption = ("Each ellipse is the 1-σ contour of one channel's Gaussian kernel on the "
+               "time–frequency plane, sheared by its chirp rate and coloured by its cell area; its "
+               "half-width in time is the kernel's time spread σ_t = s/√2 (s the window std of the "
+               "channel table). The dashed ellipse is the Heisenberg cell (cell area 1) of the "
+               "median channel's window.")
     return Plot("tiling", png, alt, caption)
 
 
@@ -110,6 +121,22 @@ def _spectrogram_spread(diagnostics: Mapping) -> float:
     return spread
 
 
+def window_place(meta: Mapping, index: int) -> str:
+    """Where a window lies, for a title: its SEED id and start in UTC ("XX.S01..HHZ from
+    2026-03-17 02:00:12.265 UTC"), or its offset in the trace when the start time is not
+    recorded; never a file path."""
+    trace = str(meta.get("trace_id") or "").strip()
+    start = meta.get("start")
+    offset = finite_or_none(meta.get("offset_s"))
+    if isinstance(start, str) and start.strip():
+        when = f"from {utc_text(start)}"
+    elif offset is not None:
+        when = f"{offset:.3f} s into the trace"
+    else:
+        when = f"window {index}"
+    return f"{trace} {when}" if trace else when
+
+
 def _examples(filterbank_json: Mapping, diagnostics: Mapping, windows, fs: float | None) -> Plot:
     omitted = "Example bursts are not shown: "
     if windows is None:
@@ -133,25 +160,27 @@ def _examples(filterbank_json: Mapping, diagnostics: Mapping, windows, fs: float
     spectrograms = transform(chosen, baseline)
     learned = transform(chosen, filterbank)
     meta = (diagnostics.get("corpus") or {}).get("window_meta")
-    labels = []
+    labels, triggers = [], []
     for label, index, gain in picks:
-        where = ""
-        if isinstance(meta, list) and index < len(meta) and isinstance(meta[index], Mapping):
-            names = [str(meta[index][k]) for k in ("file", "trace_id") if meta[index].get(k)]
-            offset = finite_or_none(meta[index].get("offset_s"))
-            where = (f", {' '.join(names)}" if names else "") + \
-                (f" at {offset:.3f} s" if offset is not None else "")
-        labels.append(f"{label}: window {index}{where} ({gain:+.2f} bits)")
+        entry = meta[index] if isinstance(meta, list) and index < len(meta) \
+            and isinstance(meta[index], Mapping) else {}
+        labels.append(f"{label} ({gain:+.2f} bits): " + window_place(entry, index))
+        triggers.append(finite_or_none(entry.get("trigger_offset_s")))
     times = np.arange(windows.shape[1]) / fs
+    window_std = f"window std {1e3 * SQRT2 * spread:.3g} ms"
     figure = plots.example_figure(times, chosen, spectrograms, learned, filterbank.center_hz, labels,
-                                  spectrogram_label=f"best spectrogram (σ_t = {1e3 * spread:.3g} ms)")
+                                  spectrogram_label=f"best spectrogram ({window_std})",
+                                  trigger_s=triggers, amplitude_label=AMPLITUDE_LABEL)
     alt = ("Example windows, one row each (" + "; ".join(labels) + "). Columns: the waveform "
-           f"against time in ms; the best plain spectrogram (Gaussian window, time spread "
-           f"{1e3 * spread:.3g} ms); the learned filterbank output. Both images share the time "
-           "and frequency axes and one 30 dB colour range.")
-    caption = ("Rows: the window where the learned filterbank gains most over the best "
+           "against time in ms with its trigger onset dashed where known; the best plain "
+           f"spectrogram (Gaussian window, {window_std}); the learned filterbank output. Both "
+           "images share the time and frequency axes and one 30 dB colour range, each with its "
+           "own colour bar.")
+    caption = (" ".join(f"Row {k}, {text}." for k, text in enumerate(labels, start=1))
+               + " Rows: the window where the learned filterbank gains most over the best "
                "spectrogram, the median window and the window where it gains least. Images are "
-               "normalised to unit sum and drawn in dB re. the row's peak.")
+               "normalised to unit sum and drawn in dB re. the row's peak; the dashed line on the "
+               "waveform is the STA/LTA trigger. " + AMPLITUDE_NOTE)
     return Plot("examples", plots.figure_png(figure), alt, caption)
 
 
@@ -212,7 +241,8 @@ def _channels(channels: list[dict], diagnostics: Mapping) -> Plot:
                  f"windows) for {', '.join(sorted(bands))}" if bands
                  else "no stability intervals recorded")
     alt = (f"Per-channel parameters against centre frequency ({fc.min():.4g} to {fc.max():.4g} Hz)"
-           f" in three panels: time spread in ms, cell area (dashed line at 1), chirp rate in Hz/s;"
+           f" in three panels: Gaussian window std in ms, cell area (dashed line at 1), chirp rate"
+           f" in Hz/s;"
            f" {band_text}.")
     caption = ("Fitted value per channel (line) and its stability interval from refits on "
                "resampled windows (band and bars).")
@@ -234,13 +264,35 @@ def _parameter_text(name: str, parameters) -> str:
     if value is None:
         return ""
     if key == "time_spread_s":
-        return f"σ_t = {1e3 * value:.3g} ms"
-    return f"{key} = {value:.3g}"
+        return f"window std {1e3 * SQRT2 * value:.3g} ms"
+    return f"{value:.3g} cycles"
+
+
+def negative_ceiling(diagnostics: Mapping) -> float | None:
+    """The negative share a representation may have (``max_negative_share``, the positivity
+    ceiling of DESIGN §4.3): the judgement's record, else the run's settings."""
+    judged = verdict.judgement(diagnostics) or {}
+    share = judged.get("negative_share") if isinstance(judged.get("negative_share"), Mapping) else {}
+    recorded = finite_or_none(share.get("max_allowed"))
+    if recorded is not None:
+        return recorded
+    return finite_or_none((diagnostics.get("settings") or {}).get("max_negative_share"))
+
+
+def exclusion(baseline: Mapping, ceiling: float | None) -> str | None:
+    """Why a baseline was not eligible as a result, or None: its negative share of the image's
+    absolute mass above the positivity ceiling (DESIGN §4.3)."""
+    share = finite_or_none(baseline.get("negative_share"))
+    if share is None or ceiling is None or share <= ceiling:
+        return None
+    return f"{100 * share:.0f} % of its mass is negative (at most {100 * ceiling:g} % allowed)"
 
 
 def baseline_entries(diagnostics: Mapping) -> list[dict]:
-    """Baselines and the result as plot entries (label, objective, low, high, is_result)."""
+    """Baselines and the result as plot entries (label, objective, low, high, is_result, and
+    ``excluded``: the reason a baseline was not eligible, or None)."""
     entries = []
+    ceiling = negative_ceiling(diagnostics)
     for key, value in (diagnostics.get("baselines") or {}).items():
         objective = finite_or_none(value.get("objective")) if isinstance(value, Mapping) else None
         if objective is None:
@@ -249,7 +301,8 @@ def baseline_entries(diagnostics: Mapping) -> list[dict]:
         detail = _parameter_text(key, value.get("parameters"))
         entries.append({"label": f"{label} ({detail})" if detail else label,
                         "objective": objective, "low": finite_or_none(value.get("low")),
-                        "high": finite_or_none(value.get("high"))})
+                        "high": finite_or_none(value.get("high")),
+                        "excluded": exclusion(value, ceiling)})
     result = diagnostics.get("result") or {}
     objective = finite_or_none(result.get("objective"))
     if objective is not None:
@@ -270,13 +323,22 @@ def _baselines(diagnostics: Mapping, label: str) -> Plot:
     def interval(e):
         return f" [{e['low']:.4g}, {e['high']:.4g}]" if e["low"] is not None and e["high"] is not None else ""
 
+    def excluded(e):
+        return f" (excluded: {e['excluded']})" if e.get("excluded") else ""
+
     alt = ("Baselines and result, objective with interval: "
-           + "; ".join(f"{e['label']} {e['objective']:.4g}{interval(e)}" for e in entries)
+           + "; ".join(f"{e['label']} {e['objective']:.4g}{interval(e)}{excluded(e)}"
+                       for e in entries)
            + (f". Gain over the best spectrogram {gain:+.3f} bits." if gain is not None else "."))
     judged = verdict.judgement(diagnostics)
     held_out = judged is not None and judged.get("in_sample") is not True
     where = "the held-out windows the fit never saw" if held_out else "the same windows"
     caption = f"Points: objective over {where}; bars: intervals where recorded."
+    out = [e for e in entries if e.get("excluded")]
+    if out:
+        caption += (" Open grey points are excluded: they score sharp only through Wigner–Ville "
+                    "interference, which a representation may not use beyond the positivity "
+                    "ceiling (" + "; ".join(f"{e['label']}: {e['excluded']}" for e in out) + ").")
     missing = [BASELINE_NAMES.get(k, k) for k, v in (diagnostics.get("baselines") or {}).items()
                if not (isinstance(v, Mapping) and finite_or_none(v.get("objective")) is not None)]
     if missing:

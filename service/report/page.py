@@ -22,10 +22,11 @@ from burstlens.search.documents import DiagnosticsDocument, FilterbankDocument
 from burstlens.service import palette
 from burstlens.service.report.figures import build_plots
 from burstlens.service.report.inputs import channel_rows, window_counts
-from burstlens.service.report.sections import (channel_table, corpus_summary, esc, figure_html, headline,
-                                               judgement_table, kv_table, rejections, scorecard_table,
-                                               setting_cells,
-                                               settings_section, trace_table, verdict_lead, what_was_tuned)
+from burstlens.service.report.sections import (channel_table, checks_section, corpus_summary, esc,
+                                               figure_html, headline, judgement_table, kv_table,
+                                               rejections, scorecard_table, setting_cells,
+                                               settings_note, settings_section, trace_table,
+                                               verdict_lead, what_was_tuned, window_definition)
 from burstlens.service.report.wording import people_items
 
 CAUTIONS = (
@@ -90,17 +91,25 @@ p.lead.note { font-size: 1.15rem; font-weight: 500; }
 .warnings { border: 1px solid var(--warn-line); border-left-width: 5px; background: var(--warn-bg);
             border-radius: 6px; padding: 2px 18px 6px; margin: 8px 0 4px; }
 .warnings h2 { border: none; margin: 6px 0 2px; font-size: 1.05rem; color: var(--bad); }
+.flag { white-space: nowrap; }
 .warnings ul { margin: 2px 0; padding-left: 20px; font-size: .92rem; }
 section#cautions { border: 1px solid var(--caution-line); background: var(--caution-bg);
                    padding: 4px 18px 10px; margin-top: 30px; border-radius: 6px; }
 section#cautions h2 { border: none; }
+pre { margin: 4px 0 12px; padding: 8px 12px; background: var(--band); border: 1px solid var(--line);
+      overflow-x: auto; white-space: pre-wrap; overflow-wrap: anywhere; font-size: .85rem; }
 footer { color: var(--muted); font-size: .82rem; padding: 0 32px 24px; }
 """
 
 
 def render_report(filterbank_json: Mapping, diagnostics: Mapping, windows=None,
-                  sampling_rate_hz: float | None = None) -> str:
-    """The complete, self-contained HTML report of one tuned filterbank (see module docstring)."""
+                  sampling_rate_hz: float | None = None, *, checks: list[dict] | None = None) -> str:
+    """The complete, self-contained HTML report of one tuned filterbank (see module docstring).
+
+    ``checks``: drift checks of this filterbank on newer data, each the answer ``burstlens check
+    --json`` prints (``search.drift.DriftCheck.to_json()``) plus ``id`` (str), ``finished_at``
+    (UTC epoch seconds) and ``files`` (file names); shown newest first in their own section,
+    which is absent when there are none."""
     channels = channel_rows(filterbank_json)
     figures = {p.name: p for p in build_plots(filterbank_json, diagnostics, windows,
                                               sampling_rate_hz)}
@@ -118,13 +127,18 @@ def render_report(filterbank_json: Mapping, diagnostics: Mapping, windows=None,
     recorded = people_items({k: v for k, v in filterbank_json.items()
                              if k not in ("channels", "settings", "job")})
     tuned = what_was_tuned(filterbank_json, diagnostics, channels)
+    drift = checks_section(checks)
+    fs = FilterbankDocument(filterbank_json).sampling_rate_hz
+    samples = filterbank_json.get("window_samples")
     body = f"""
 <header><h1>burstlens report: tuned time–frequency filterbank</h1>
 <p class="tuned" id="tuned">{esc(tuned)}</p>
+{settings_note(given, recorded_run.settings, recorded_run.reader_defaults)}
 <p class="aid">An analysis aid, not a safety or warning system: see the cautions below.</p></header>
 {verdict_lead(diagnostics)}
 <nav><a href="#examples">Example bursts</a><a href="#channels">Channels</a>\
 <a href="#tiling">Tiling and convergence</a><a href="#judgement">Judgement in numbers</a>\
+{'<a href="#checks">Drift checks</a>' if drift else ""}\
 <a href="#cautions">Cautions</a><a href="#details">Settings and files</a></nav>
 <main>
 <section id="examples"><h2>Example bursts: best plain spectrogram against the tuned filterbank</h2>
@@ -134,7 +148,8 @@ def render_report(filterbank_json: Mapping, diagnostics: Mapping, windows=None,
 (super-resolution) or coarser (smoothing) than a spectrogram its time–frequency cell is, the
 sweep rate it is matched to, and how stable its window and cell area were when refitted on
 resampled windows.</p>
-{channel_table(channels, diagnostics)}
+{window_definition(filterbank_json, diagnostics)}
+{channel_table(channels, diagnostics, fs, samples if isinstance(samples, int) else None)}
 {figure_html(figures["channels"])}</section>
 <section id="tiling"><h2>Tiling and convergence</h2>
 {figure_html(figures["tiling"])}{figure_html(figures["convergence"])}</section>
@@ -145,6 +160,7 @@ resampled windows.</p>
 <div><h3>On held-out windows</h3>{judgement_table(diagnostics)}</div>
 <div>{figure_html(figures["baselines"])}</div>
 </div></section>
+{drift}
 <section id="cautions"><h2>Cautions</h2>{"".join(f"<p>{esc(c)}</p>" for c in CAUTIONS)}</section>
 <details id="details"><summary>Settings, defaults chosen from the data, and files</summary>
 <div class="columns">

@@ -3,11 +3,11 @@ from __future__ import annotations
 
 import shutil
 
-from fastapi import APIRouter, Depends, HTTPException, Request, Response
+from fastapi import APIRouter, HTTPException, Request, Response
 from starlette.concurrency import run_in_threadpool
 
 from burstlens.search.settings import CORPUS_OPTIONS
-from burstlens.service.auth import require_tenant
+from burstlens.service.auth import TenantDep
 from burstlens.service.corpus_check import check_corpus, parse_read_options
 from burstlens.service.dependencies import SettingsDep, StoreDep
 from burstlens.service.models import CorpusView
@@ -45,9 +45,10 @@ _UPLOAD_BODY = {"requestBody": {"required": True, "content": {"multipart/form-da
 
 
 @router.post("", status_code=201, response_model=CorpusView, openapi_extra=_UPLOAD_BODY,
+             operation_id="uploadCorpus", summary="Upload a corpus of waveform files",
              responses=errors(*COMMON, 400, 415))
 async def create_corpus(request: Request, store: StoreDep, settings: SettingsDep,
-                        tenant: str = Depends(require_tenant)) -> CorpusView:
+                        tenant: TenantDep) -> CorpusView:
     """Upload a corpus (multipart field `files`, one part per file).
 
     Corpus options (the job settings `sta_s`, `trigger_on`, `bandpass_hz`, ...) may come as form
@@ -76,15 +77,17 @@ async def create_corpus(request: Request, store: StoreDep, settings: SettingsDep
     return CorpusView.from_corpus(corpus)
 
 
-@router.get("/{corpus_id}", response_model=CorpusView, responses=errors(*COMMON, 404))
-def get_corpus(corpus_id: str, store: StoreDep, tenant: str = Depends(require_tenant)) -> CorpusView:
+@router.get("/{corpus_id}", response_model=CorpusView, operation_id="readCorpus",
+            summary="Read what a corpus holds", responses=errors(*COMMON, 404))
+def get_corpus(corpus_id: str, store: StoreDep, tenant: TenantDep) -> CorpusView:
     """What the corpus holds: files, traces, windows found, rejections with reasons."""
     return CorpusView.from_corpus(store.get_corpus(corpus_id, tenant))
 
 
 @router.delete("/{corpus_id}", status_code=204, response_class=Response,
+               operation_id="deleteCorpus", summary="Delete a corpus and its files",
                responses=errors(*COMMON, 404, 409))
-def delete_corpus(corpus_id: str, store: StoreDep, tenant: str = Depends(require_tenant)) -> Response:
-    """Delete a corpus and its files (refused while a queued or running job uses it)."""
+def delete_corpus(corpus_id: str, store: StoreDep, tenant: TenantDep) -> Response:
+    """Delete a corpus and its files (refused while a waiting or working job uses it)."""
     store.delete_corpus(corpus_id, tenant)
     return Response(status_code=204)

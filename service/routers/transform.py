@@ -8,13 +8,13 @@ import shutil
 import uuid
 from pathlib import Path
 
-from fastapi import APIRouter, Depends, HTTPException, Request, Response
+from fastapi import APIRouter, HTTPException, Request, Response
 from starlette.background import BackgroundTask
 from starlette.concurrency import run_in_threadpool
 from starlette.responses import FileResponse
 
 from burstlens.search.documents import FilterbankDocument
-from burstlens.service.auth import require_tenant
+from burstlens.service.auth import TenantDep
 from burstlens.service.corpus_check import parse_read_options, read_for_client
 from burstlens.service.dependencies import SettingsDep, StoreDep
 from burstlens.service.routers import COMMON, errors
@@ -34,7 +34,7 @@ _BODY = {"requestBody": {"required": True, "content": {"multipart/form-data": {"
                   "minItems": 1,
                   "description": "Waveform files to transform."},
         "filterbank": {"type": "string", "description": "Filterbank JSON (text or file part)."},
-        "job_id": {"type": "string", "description": "Or: a succeeded job whose filterbank to use."},
+        "job_id": {"type": "string", "description": "Or: a search that is done, whose filterbank to use."},
         "windowing": {"type": "string", "enum": ["bursts", "whole", "sliding"]},
         "csv_sampling_rate_hz": {"type": "number", "exclusiveMinimum": 0}}}}}}}
 
@@ -93,12 +93,14 @@ def _upload_options(store: Store, tenant: str, job_id) -> dict:
     return dict(corpus["summary"].get("read_options") or {})
 
 
-@router.post("/transform", response_class=Response, openapi_extra=_BODY, responses={
+@router.post("/transform", response_class=Response, openapi_extra=_BODY,
+             operation_id="transformFiles", summary="Transform waveform files with a filterbank",
+             responses={
     200: {"content": {NPZ_MEDIA_TYPE: {"schema": {"type": "string", "format": "binary"}}},
           "description": "NumPy .npz archive"},
-    **errors(*COMMON, 400, 404, 409, 415, explicit=True)})
+    **errors(*COMMON, 400, 404, 409, 415)})
 async def transform_files(request: Request, store: StoreDep, settings: SettingsDep,
-                          tenant: str = Depends(require_tenant)) -> Response:
+                          tenant: TenantDep) -> Response:
     """Apply a filterbank to waveform files: give `filterbank` (JSON) or `job_id`, plus `files`.
 
     The files are cut into windows as the filterbank's tuning cut its corpus (its windowing,
@@ -131,10 +133,12 @@ async def transform_files(request: Request, store: StoreDep, settings: SettingsD
                                                         "(filterbank JSON) or 'job_id'")
         if job_id is not None:
             job = await run_in_threadpool(store.get_job, job_id, tenant)
-            if job["state"] != "succeeded":
-                raise HTTPException(status_code=409, detail=f"job {job_id!r} is {job['state']}; "
-                                                            "its filterbank exists once it succeeded")
-            text = (Path(job["result_dir"]) / RESULT_FILES["filterbank"]).read_text(encoding="utf-8")
+            if job["kind"] != "search" or job["state"] != "done":
+                raise HTTPException(status_code=409, detail=f"job {job_id!r} is a {job['kind']} "
+                                    f"that is {job['state']}; a filterbank exists once a search "
+                                    "is done")
+            text = (store.path(job["result_dir"]) / RESULT_FILES["filterbank"]).read_text(
+                encoding="utf-8")
         try:
             filterbank_json = json.loads(text)
         except ValueError as exc:

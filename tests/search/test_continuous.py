@@ -432,3 +432,215 @@ def test_cli_jobs_flag(tmp_path, capsys):
         code = main(["transform", *paths, "--filterbank", str(fb_path), "--out", str(tmp_path / "x.zarr"),
                      "--quiet", *extra])
         assert code == 2 and "--jobs" in capsys.readouterr().err
+
+
+# --- appending from the new files alone ---------------------------------------------------------
+
+def _days(tmp_path, n_days, n, *, rate=FS, seed=30, gap_s=0.0, trace_id=TRACE_ID):
+    """Consecutive 'days' of one SEED id (n native samples each, a file each), float32 miniSEED."""
+    x = _samples(n_days * n, seed=seed) if rate == FS else signal.resample_poly(_samples(n_days * n // 2, seed), 2, 1)
+    paths = []
+    for d in range(n_days):
+        net, sta, loc, cha = trace_id.split(".")
+        tr = obspy.Trace(x[d * n:(d + 1) * n].astype(np.float32),
+                         header={"network": net, "station": sta, "location": loc, "channel": cha,
+                                 "sampling_rate": rate, "starttime": START + d * (n / rate + gap_s)})
+        path = str(tmp_path / f"day{d}.mseed")
+        tr.write(path, format="MSEED")
+        paths.append(path)
+    return paths
+
+
+def _store_bytes(store):
+    """Every part's image and time arrays and its complete_until, by group."""
+    import zarr
+
+    root = zarr.open_group(store, mode="r")
+    return {f"{t}/{p}": (part["image"][:], part["time"][:], part.attrs["complete_until"])
+            for t, trace in root.groups() for p, part in trace.groups()}
+
+
+def _same_store(a, b):
+    x, y = _store_bytes(a), _store_bytes(b)
+    assert x.keys() == y.keys()
+    for key in x:
+        assert x[key][2] == y[key][2] == x[key][0].shape[0], key
+        assert np.array_equal(x[key][0], y[key][0]) and np.array_equal(x[key][1], y[key][1]), key
+
+
+def test_day_by_day_equals_one_pass(tmp_path):
+    """Property: two days appended one file at a time give the bytes of one run over both files,
+    and that image equals the one-pass transform of the joined trace (read whole by read_corpus,
+    ``search.transform.transform``) to 1e-5 of its peak away from the trace's ends, at the
+    rule's step; the second run reports the part as appended."""
+    fb = _filterbank()
+    doc = FilterbankDocument.of(fb)
+    paths = _days(tmp_path, 2, 30_000)
+    daily, once = str(tmp_path / "daily.zarr"), str(tmp_path / "once.zarr")
+    transform_continuous(paths[:1], doc, daily, piece_samples=4096)
+    second = transform_continuous(paths[1:], doc, daily, piece_samples=4096)
+    ref_run = transform_continuous(paths, doc, once, piece_samples=4096)
+    assert second.parts[0].appended and second.parts[0].group == ref_run.parts[0].group
+    _same_store(daily, once)
+    step = ref_run.step.samples
+    ref = _one_pass(paths, fb)[:, ::step]
+    image, _ = _image(daily, second.parts[0].group)
+    o = -(-overlap_samples(fb) // step)
+    assert image.shape == ref.shape
+    assert np.abs(image[:, o:-o] - ref[:, o:-o]).max() / np.abs(ref).max() < 1e-5
+
+
+@pytest.mark.parametrize("rate, band, n", [(FS, None, 30_000), (2 * FS, (2.0, 40.0), 34_900)])
+def test_appends_recompute_only_the_seam(tmp_path, monkeypatch, rate, band, n):
+    """Property: with many reader pieces per day (detrended, resampled and band-passed per
+    piece), three days appended one at a time give the bytes of one run over the three files,
+    and each append rewrote only the chunks after its part's final_until (fewer than the part's
+    steps). The store's seam arrays hold native samples from the first re-read piece on."""
+    import zarr
+
+    monkeypatch.setattr(stream, "PIECE_SAMPLES", 8192)
+    monkeypatch.setattr(stream, "MARGIN_SAMPLES", 2048)
+    fb = _filterbank()
+    doc = FilterbankDocument.of(fb)
+    reading = {"sampling_rate_hz": FS, "bandpass_hz": band}
+    paths = _days(tmp_path, 3, n, rate=rate)
+    daily, once = str(tmp_path / "daily.zarr"), str(tmp_path / "once.zarr")
+    stored = 0
+    for d, path in enumerate(paths):
+        run = transform_continuous([path], doc, daily, reading=reading, piece_samples=2048)
+        part = run.parts[0]
+        assert part.appended == (d > 0)
+        if d:  # the stored steps before final_until are kept, the rest rewritten
+            assert stored // 2 < part.resumed_at_step < stored
+            assert part.steps_written == part.n_steps - part.resumed_at_step
+        stored = part.n_steps
+    transform_continuous(paths, doc, once, reading=reading, piece_samples=2048)
+    _same_store(daily, once)
+    group = zarr.open_group(daily, mode="r")[run.parts[0].group]
+    seam = group.attrs["seam"]
+    assert seam["n_raw"] == 3 * len(obspy.read(paths[0])[0].data) and seam["final_pieces"] > 0
+    assert [name for name, _ in group.groups()] == [seam["group"]]
+    assert group[seam["group"]]["raw"].shape == (seam["n_raw"] - seam["raw_first"],)
+
+
+def test_gap_before_the_new_day_starts_a_part(tmp_path):
+    """Property: a new day starting 30 s after the stored end is a new part named by its start;
+    the stored part keeps its bytes (a run over both files writes the same two parts)."""
+    fb = _filterbank()
+    doc = FilterbankDocument.of(fb)
+    paths = _days(tmp_path, 2, 12_000, gap_s=30.0)
+    daily, once = str(tmp_path / "daily.zarr"), str(tmp_path / "once.zarr")
+    transform_continuous(paths[:1], doc, daily, piece_samples=2048)
+    before = _store_bytes(daily)
+    second = transform_continuous(paths[1:], doc, daily, piece_samples=2048)
+    assert not second.parts[0].appended
+    assert second.parts[0].start_ns == (START + 12_000 / FS + 30.0).ns
+    after = _store_bytes(daily)
+    assert len(after) == 2 and all(np.array_equal(after[k][0], before[k][0]) for k in before)
+    transform_continuous(paths, doc, once, piece_samples=2048)
+    _same_store(daily, once)
+
+
+def test_overlapping_new_data_refused(tmp_path):
+    """Property: data overlapping a stored part (a file starting 10 s before the stored end, or
+    the appended day run again) is a ValueError naming the SEED id, its times and the stored
+    part, and leaves the store's bytes as they were."""
+    fb = _filterbank()
+    doc = FilterbankDocument.of(fb)
+    paths = _days(tmp_path, 2, 12_000)
+    out = str(tmp_path / "o.zarr")
+    transform_continuous(paths[:1], doc, out, piece_samples=2048)
+    early = _write(tmp_path / "early.mseed", _samples(5000, seed=40), start=START + 120.0 - 10.0)
+    before = _store_bytes(out)
+    with pytest.raises(ValueError, match=r"XX\.STA\.00\.HHZ from 2024-03-01T00:01:50\.000000Z .* overlaps"):
+        transform_continuous([early], doc, out, piece_samples=2048)
+    assert _store_bytes(out).keys() == before.keys()
+    assert all(np.array_equal(_store_bytes(out)[k][0], before[k][0]) for k in before)
+    transform_continuous(paths[1:], doc, out, piece_samples=2048)
+    with pytest.raises(ValueError, match="overlaps the stored part XX.STA.00.HHZ/20240301T000000.000000Z"):
+        transform_continuous(paths[1:], doc, out, piece_samples=2048)
+
+
+def test_append_with_other_filterbank_or_step_refused(tmp_path):
+    """Property: appending with another filterbank (the message names both sha256 hashes,
+    hashlib) or another time step is a ValueError, and the store is unchanged."""
+    fb = _filterbank()
+    doc = FilterbankDocument.of(fb)
+    paths = _days(tmp_path, 2, 6000)
+    out = str(tmp_path / "o.zarr")
+    transform_continuous(paths[:1], doc, out)
+    before = _store_bytes(out)
+    other = FilterbankDocument.of(Filterbank.constant_q(center_grid((4.0, 40.0), 8), 5.0, FS))
+    with pytest.raises(ValueError, match="another filterbank") as info:
+        transform_continuous(paths[1:], other, out)
+    assert hashlib.sha256(doc.encode()).hexdigest() in str(info.value)
+    assert hashlib.sha256(other.encode()).hexdigest() in str(info.value)
+    with pytest.raises(ValueError, match="another time step"):
+        transform_continuous(paths[1:], doc, out, step_s=0.02)
+    after = _store_bytes(out)
+    assert after.keys() == before.keys() and all(np.array_equal(after[k][0], before[k][0]) for k in before)
+
+
+def test_killed_append_resumes_to_the_same_bytes(tmp_path, monkeypatch):
+    """Property: an append stopped after two chunks claims no more than what it wrote
+    (complete_until below the part's steps); a second stop, after the last chunk but before the
+    seam is saved, leaves the old seam in force; running the new file again ends with the bytes
+    of one run over both files, and a third day then still appends exactly."""
+    monkeypatch.setattr(stream, "PIECE_SAMPLES", 8192)
+    monkeypatch.setattr(stream, "MARGIN_SAMPLES", 2048)
+    fb = _filterbank()
+    doc = FilterbankDocument.of(fb)
+    paths = _days(tmp_path, 3, 20_000)
+    daily, once = str(tmp_path / "daily.zarr"), str(tmp_path / "once.zarr")
+    transform_continuous(paths[:1], doc, daily, piece_samples=2048)
+
+    class Killed(Exception):
+        pass
+
+    calls = []
+
+    def kill_after_two(group, complete):
+        calls.append(complete)
+        if len(calls) == 2:
+            raise Killed
+
+    with pytest.raises(Killed):
+        transform_continuous(paths[1:2], doc, daily, piece_samples=2048, on_chunk=kill_after_two)
+    image, attrs = _image(daily, f"{TRACE_ID}/20240301T000000.000000Z")
+    assert attrs["complete_until"] == calls[-1] < image.shape[1] and attrs["seam"]["n_raw"] == 20_000
+
+    def no_seam(self):
+        raise Killed
+
+    with monkeypatch.context() as m:
+        m.setattr(continuous._PartWriter, "keep_seam", no_seam)
+        with pytest.raises(Killed):
+            transform_continuous(paths[1:2], doc, daily, piece_samples=2048)
+    image, attrs = _image(daily, f"{TRACE_ID}/20240301T000000.000000Z")
+    assert attrs["complete_until"] == image.shape[1] and attrs["seam"]["n_raw"] == 20_000
+    again = transform_continuous(paths[1:2], doc, daily, piece_samples=2048)
+    assert again.parts[0].steps_written == 0
+    transform_continuous(paths[:2], doc, once, piece_samples=2048)
+    _same_store(daily, once)
+    transform_continuous(paths[2:], doc, daily, piece_samples=2048)
+    transform_continuous(paths[2:], doc, once, piece_samples=2048)
+    _same_store(daily, once)
+
+
+@pytest.mark.parametrize("step, offset", [(1, 0), (5, 3), (7, 1234)])
+def test_decimated_single_precision(step, offset):
+    """Property: with precision='single' the unchirped channels are computed in float32 and
+    still equal the float64 hop-1 transform sampled at offset + k·step to 1e-5 of the peak
+    (float32 round-off on lag sums of a few hundred terms, IEEE 754 single precision: about
+    1e-7 relative per operation); mixed with chirped channels (double precision), several
+    windows. A sampling one sample later fails the same check."""
+    fb = Filterbank([Channel(10.0, 0.2, 1.0, 8.0), Channel(20.0, 0.1, 2.0), Channel(30.0, 0.05),
+                     Channel(40.0, 0.3, 0.5)], FS)
+    windows = np.stack([_samples(3001, seed=s) for s in (14, 15)])
+    full = transform(windows, fb, dtype=np.float64)
+    got = transform_decimated(windows, fb, step, offset=offset, precision="single")
+    expected = full[..., offset::step]
+    assert got.dtype == np.float32 and got.shape == expected.shape
+    assert np.abs(got - expected).max() / np.abs(full).max() < 1e-5
+    later = full[..., offset + 1::step][..., : got.shape[-1] - 1]
+    assert np.abs(got[..., : later.shape[-1]] - later).max() / np.abs(full).max() > 1e-3

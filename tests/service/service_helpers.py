@@ -85,7 +85,7 @@ class LiveServer:
         while time.monotonic() < deadline:
             assert self.proc.poll() is None, f"serve exited with {self.proc.returncode}"
             try:
-                httpx.get(self.url + "/healthz", timeout=1.0)
+                httpx.get(self.url + "/v1/health", timeout=1.0)
                 return self
             except httpx.TransportError:
                 time.sleep(0.1)
@@ -170,6 +170,6 @@ def recording_client(calls: dict, n_windows: int = 6):
 
         def submit_job(self, corpus_id, settings):
             calls["job"] = settings
-            return {"id": "j1", "state": "queued"}
+            return {"id": "j1", "state": "waiting"}
 
     return RecordingClient

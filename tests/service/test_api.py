@@ -1,6 +1,8 @@
 """The /v1 API in process: corpora, job submission, idempotency, validation, errors, metrics."""
 from __future__ import annotations
 
+from http import HTTPStatus
+
 import os
 
 from service_helpers import TINY, corpus_files
@@ -49,7 +51,7 @@ def test_rejected_upload_leaves_nothing(make_client, tmp_path):
     response = client.post("/v1/corpora", files=[good, ("files", ("junk.sac", b"\x00\x01" * 400,
                                                                     "application/octet-stream"))])
     assert response.status_code == 422
-    message = response.json()["error"]["message"]
+    message = response.json()["detail"]
     assert "junk.sac" in message and str(tmp_path) not in message
     data = tmp_path / "data"
     assert os.listdir(data / "tmp") == [] and os.listdir(data / "blobs" / "corpora") == []
@@ -62,7 +64,7 @@ def test_delete_corpus(make_client):
     corpus = _upload(client)
     job = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": TINY}).json()
     assert client.delete(f"/v1/corpora/{corpus['id']}").status_code == 409
-    client.post(f"/v1/jobs/{job['id']}/cancel")
+    client.post(f"/v1/jobs/{job['id']}/withdraw")
     assert client.delete(f"/v1/corpora/{corpus['id']}").status_code == 204
     assert client.get(f"/v1/corpora/{corpus['id']}").status_code == 404
 
@@ -75,11 +77,11 @@ def test_job_is_queued_and_listed(make_client):
     assert response.status_code == 201
     job = response.json()
     assert {"id", "state", "progress", "attempts", "error"} <= set(job)
-    assert job["state"] == "queued" and job["attempts"] == 0 and job["error"] is None
+    assert job["state"] == "waiting" and job["attempts"] == 0 and job["error"] is None
     assert response.headers["location"] == f"/v1/jobs/{job['id']}"
     listed = client.get("/v1/jobs").json()["jobs"]
     assert [j["id"] for j in listed] == [job["id"]]
-    assert client.get("/v1/jobs", params={"state": "running"}).json()["jobs"] == []
+    assert client.get("/v1/jobs", params={"state": "working"}).json()["jobs"] == []
 
 
 def test_idempotency_key(make_client):
@@ -94,7 +96,7 @@ def test_idempotency_key(make_client):
     assert first.json()["id"] == again.json()["id"]
     other = client.post("/v1/jobs", json={**body, "settings": {**TINY, "seed": 99}},
                         headers={"Idempotency-Key": "order-1"})
-    assert other.status_code == 422 and "Idempotency-Key" in other.json()["error"]["message"]
+    assert other.status_code == 422 and "Idempotency-Key" in other.json()["detail"]
     assert client.post("/v1/jobs", json=body, headers={"Idempotency-Key": ""}).status_code == 400
     assert len(client.get("/v1/jobs").json()["jobs"]) == 1
 
@@ -106,7 +108,7 @@ def test_unknown_setting_is_named(make_client):
     response = client.post("/v1/jobs", json={"corpus_id": corpus["id"],
                                              "settings": {"chanels": 8, "bogus": 1}})
     assert response.status_code == 422
-    message = response.json()["error"]["message"]
+    message = response.json()["detail"]
     assert "settings.chanels" in message and "settings.bogus" in message
 
 
@@ -119,7 +121,7 @@ def test_invalid_setting_values(make_client):
                             ({"bootstrap": 1}, "bootstrap"), ({"cell_area": [0, 2]}, "cell_area")):
         response = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": settings})
         assert response.status_code == 422, settings
-        assert field in response.json()["error"]["message"]
+        assert field in response.json()["detail"]
 
 
 def test_job_takes_the_corpus_options(make_client):
@@ -137,7 +139,7 @@ def test_job_takes_the_corpus_options(make_client):
                        ({"trigger": "fastest"}, "trigger"), ({"pre_trigger": 1}, "pre_trigger")):
         response = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": bad})
         assert response.status_code == 422, bad
-        assert field in response.json()["error"]["message"]
+        assert field in response.json()["detail"]
 
 
 def test_upload_takes_the_corpus_options_and_records_them(make_client, tmp_path):
@@ -166,14 +168,14 @@ def test_upload_takes_the_corpus_options_and_records_them(make_client, tmp_path)
                        ({"sta_s": "0.5", "lta_s": "0.1"}, "sta_s")):
         response = client.post("/v1/corpora", files=corpus_files(1), data=bad)
         assert response.status_code == 422, bad
-        assert field in response.json()["error"]["message"]
+        assert field in response.json()["detail"]
     assert sorted(os.listdir(data / "blobs" / "corpora")) == before and os.listdir(data / "tmp") == []
     # a job whose settings clash with the upload's options is refused now, not failed later
     corpus_id = client.post("/v1/corpora", files=corpus_files(2),
                            data={"trigger_on": "3"}).json()["id"]
     clash = client.post("/v1/jobs", json={"corpus_id": corpus_id,
                                           "settings": {**TINY, "trigger_off": 3.5}})
-    assert clash.status_code == 422 and "trigger_off" in clash.json()["error"]["message"]
+    assert clash.status_code == 422 and "trigger_off" in clash.json()["detail"]
 
 
 def test_unknown_ids_are_404(make_client):
@@ -182,8 +184,8 @@ def test_unknown_ids_are_404(make_client):
     assert client.post("/v1/jobs", json={"corpus_id": "nope"}).status_code == 404
     for path in ("/v1/jobs/nope", "/v1/jobs/nope/filterbank", "/v1/corpora/nope"):
         response = client.get(path)
-        assert response.status_code == 404 and "nope" in response.json()["error"]["message"]
-    assert client.post("/v1/jobs/nope/cancel").status_code == 404
+        assert response.status_code == 404 and "nope" in response.json()["detail"]
+    assert client.post("/v1/jobs/nope/withdraw").status_code == 404
 
 
 def test_results_before_success_are_409(make_client):
@@ -193,7 +195,7 @@ def test_results_before_success_are_409(make_client):
     job = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": TINY}).json()
     for what in ("filterbank", "diagnostics", "report"):
         response = client.get(f"/v1/jobs/{job['id']}/{what}")
-        assert response.status_code == 409 and "queued" in response.json()["error"]["message"]
+        assert response.status_code == 409 and "waiting" in response.json()["detail"]
 
 
 def test_cancel_queued_job(make_client):
@@ -201,9 +203,9 @@ def test_cancel_queued_job(make_client):
     client = make_client()
     corpus = _upload(client)
     job = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": TINY}).json()
-    cancelled = client.post(f"/v1/jobs/{job['id']}/cancel").json()
-    assert cancelled["state"] == "cancelled"
-    assert client.post(f"/v1/jobs/{job['id']}/cancel").status_code == 409
+    cancelled = client.post(f"/v1/jobs/{job['id']}/withdraw").json()
+    assert cancelled["state"] == "withdrawn"
+    assert client.post(f"/v1/jobs/{job['id']}/withdraw").status_code == 409
 
 
 def test_internal_errors_carry_no_stack_trace(make_client):
@@ -220,16 +222,23 @@ def test_internal_errors_carry_no_stack_trace(make_client):
     assert response.status_code == 500
     text = response.text
     assert "Traceback" not in text and "secret internal detail" not in text
-    assert "reference" in response.json()["error"]["message"]
+    assert "reference" in response.json()["detail"]
 
 
-def test_errors_are_json_everywhere(make_client):
-    """Unknown routes and wrong methods answer the same JSON error shape (DESIGN §7: errors
-    are JSON with a message)."""
+def test_errors_are_problem_documents_everywhere(make_client):
+    """Unknown routes, wrong methods, bad bodies and missing resources all answer a problem
+    document: media type application/problem+json, members type, title, status (equal to the
+    response's status) and detail (RFC 9457, Nottingham, Wilde and Dalal, 2023, §3.1 and §6.1)."""
     client = make_client()
-    for response in (client.get("/v1/nothing"), client.put("/v1/jobs")):
-        assert response.status_code in (404, 405)
-        assert set(response.json()["error"]) >= {"status", "message"}
+    for response in (client.get("/v1/nothing"), client.put("/v1/jobs"),
+                     client.post("/v1/jobs", json={"corpus_id": ""}),
+                     client.get("/v1/jobs/nope")):
+        assert response.status_code in (404, 405, 422)
+        assert response.headers["content-type"].split(";")[0] == "application/problem+json"
+        body = response.json()
+        assert set(body) >= {"type", "title", "status", "detail"}
+        assert body["status"] == response.status_code and body["type"] == "about:blank"
+        assert body["title"] == HTTPStatus(response.status_code).phrase  # the reason phrase
 
 
 def test_wrong_method_lists_every_allowed_method(make_client):
@@ -243,20 +252,20 @@ def test_wrong_method_lists_every_allowed_method(make_client):
         response = client.put(path)
         assert response.status_code == 405, path
         assert {m.strip() for m in response.headers["allow"].split(",")} == expected, path
-        assert response.json()["error"]["status"] == 405
+        assert response.json()["status"] == 405
 
 
 def test_metrics_and_health(make_client):
     """/metrics is Prometheus text with jobs by state and evaluation counters (Prometheus
-    "Exposition formats", text format 0.0.4); /healthz answers ok."""
+    "Exposition formats", text format 0.0.4); /v1/health answers ok."""
     client = make_client()
     corpus = _upload(client)
     client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": TINY})
     text = client.get("/metrics").text
-    assert 'burstlens_jobs{state="queued"} 1' in text
+    assert 'burstlens_jobs{state="waiting"} 1' in text
     assert "# TYPE burstlens_evaluations_total counter" in text
     assert "burstlens_evaluations_per_second" in text
-    assert client.get("/healthz").json()["status"] == "ok"
+    assert client.get("/v1/health").json()["status"] == "ok"
 
 
 def test_jobs_page_is_served(make_client):
@@ -287,4 +296,4 @@ def test_store_trouble_is_503_or_507(make_client):
         response = client.get("/v1/jobs")
         assert response.status_code == status
         assert response.headers.get("retry-after") == retry
-        assert "message" in response.json()["error"]
+        assert response.json()["detail"]

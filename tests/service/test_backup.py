@@ -2,7 +2,9 @@
 
 The shell blocks come from the guide itself (between its ``<!-- backup -->`` and
 ``<!-- restore -->`` markers), with only the two folder variables and the virtualenv path
-pointed at this test's folders, so the guide cannot drift from what is tested.
+pointed at this test's folders, so the guide cannot drift from what is tested. The blocks run
+`burstlens backup` and `burstlens restore`; their own properties (kills, refusals) are tested in
+test_backup_command.py.
 """
 from __future__ import annotations
 
@@ -55,18 +57,19 @@ def snapshot(store: Store) -> dict:
     results = {}
     for job_id, job in jobs.items():
         if job["result_dir"]:
-            results[job_id] = {p.name: p.read_bytes() for p in Path(job["result_dir"]).iterdir()}
+            results[job_id] = {p.name: p.read_bytes() for p in store.path(job["result_dir"]).iterdir()}
     corpus_files_ = {cid: [p.read_bytes() for p in store.corpus_paths(c)] for cid, c in corpora.items()}
     return {"tokens": store.list_tokens(), "corpora": corpora, "jobs": jobs,
             "results": results, "corpus_files": corpus_files_}
 
 
 def test_documented_backup_and_restore_finds_every_job_and_corpus(tmp_path):
-    """Back up a data dir while the API holds it open (SQLite online backup API of the store
-    plus a copy of the blob folder), lose the data dir, restore it as the guide says: the
-    service's store finds every token, corpus and job again with the same fields, the stored
-    waveforms and result files are byte-identical, and the API serves the same filterbanks
-    (SQLite documentation, "Using the SQLite Online Backup API")."""
+    """Back up a data dir while the API holds it open (`burstlens backup`: SQLite online backup
+    API of the store plus the blobs it names), lose the data dir, restore it as the guide says
+    (`burstlens restore`): the service's store finds every token, corpus and job again with the
+    same fields, the stored waveforms and result files are byte-identical, and the API serves
+    the same filterbanks (SQLite documentation, "Using the SQLite Online Backup API"). The
+    backup folder holds the store, the blobs and its manifest, and nothing is left behind."""
     data = tmp_path / "srv" / "burstlens"
     backup = tmp_path / "backup" / "burstlens-1"
     settings = settings_for(data)
@@ -79,14 +82,17 @@ def test_documented_backup_and_restore_finds_every_job_and_corpus(tmp_path):
         Worker(settings).run(max_jobs=2, exit_when_idle=True)
         queued = api.post("/v1/jobs", json={"corpus_id": corpora[2], "settings": TINY}).json()["id"]
         cancelled = api.post("/v1/jobs", json={"corpus_id": corpora[2], "settings": fast}).json()["id"]
-        assert api.post(f"/v1/jobs/{cancelled}/cancel").status_code == 200
+        assert api.post(f"/v1/jobs/{cancelled}/withdraw").status_code == 200
         states = {j: api.get(f"/v1/jobs/{j}").json()["state"] for j in (*done, queued, cancelled)}
-        assert states == {done[0]: "succeeded", done[1]: "succeeded", queued: "queued",
-                          cancelled: "cancelled"}
+        assert states == {done[0]: "done", done[1]: "done", queued: "waiting",
+                          cancelled: "withdrawn"}
         filterbanks = {j: api.get(f"/v1/jobs/{j}/filterbank").json() for j in done}
         before = snapshot(api.app.state.store)
 
         run_block("backup", data, backup)  # online: the API's connection stays open
+        assert {p.name for p in backup.iterdir()} == {"burstlens.sqlite3", "blobs", "manifest.json"}
+        assert [p.name for p in backup.parent.iterdir() if p.name != backup.name] == [
+            ".burstlens-backup-restore.lock"]   # no unfinished folder left beside it
 
         # after the backup: a change the restore must not bring back
         late = api.post("/v1/corpora", files=corpus_files(1, seed=30)).json()["id"]
@@ -104,5 +110,5 @@ def test_documented_backup_and_restore_finds_every_job_and_corpus(tmp_path):
     with TestClient(create_app(settings)) as api:
         for job_id, filterbank in filterbanks.items():
             assert api.get(f"/v1/jobs/{job_id}/filterbank").json() == filterbank
-        assert api.get(f"/v1/jobs/{queued}").json()["state"] == "queued"
+        assert api.get(f"/v1/jobs/{queued}").json()["state"] == "waiting"
         assert {c: api.get(f"/v1/corpora/{c}").status_code for c in corpora} == dict.fromkeys(corpora, 200)

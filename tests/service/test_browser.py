@@ -65,6 +65,17 @@ CONTRAST_JS = """() => {
 }"""
 
 
+# A raw key: a snake_case identifier (lower-case words joined by underscores) standing alone,
+# not part of a dotted Python path such as scipy.signal.resample_poly (common practice: PEP 8
+# spells variables and dict keys this way, people do not).
+RAW_KEY = re.compile(r"(?<![\w.])[a-z][a-z0-9]*(?:_[a-z0-9]+)+\b")
+
+
+def raw_keys(text: str) -> list[str]:
+    """The raw keys in a page's visible text."""
+    return sorted(set(RAW_KEY.findall(text)))
+
+
 def low_contrast(page) -> list:
     """Texts on the page under 4.5:1 (WCAG 2.1 §1.4.3, level AA), with their ratios."""
     return [(text, round(ratio, 2)) for text, ratio in page.evaluate(CONTRAST_JS) if ratio < 4.5]
@@ -97,7 +108,8 @@ class Console:
 
 
 def tiny_fit():
-    """A real FilterbankSearch on a small generated corpus of Gaussian tone bursts in noise."""
+    """A real FilterbankSearch on a small generated corpus of Gaussian tone bursts in noise,
+    each window with a UTC start, a SEED id and a trigger onset as the reader records them."""
     from burstlens.search import FilterbankSearch
     from burstlens.search.corpus import Corpus
 
@@ -106,23 +118,30 @@ def tiny_fit():
     rng = np.random.default_rng(1)
     windows = np.array([np.exp(-0.5 * ((t - 0.12) / 0.02) ** 2) * np.cos(2 * np.pi * (80 + 30 * k) * (t - 0.12))
                         + 0.02 * rng.standard_normal(n) for k in range(m)])
+    # a server path in the file names: the page must show SEED ids and UTC times instead
+    path = "/srv/burstlens/data/blobs/3f/bursts.npz"
     corpus = Corpus(windows=windows, sampling_rate_hz=fs,
-                    window_meta=[{"file": "bursts.npz", "trace_id": "XX.T01..HHZ", "start": None,
-                                  "offset_s": 0.5 * k} for k in range(m)],
-                    traces=[{"file": "bursts.npz", "trace_id": "XX.T01..HHZ", "sampling_rate_hz": fs,
-                             "start": None, "duration_s": 4.0, "windows": m}],
+                    window_meta=[{"file": path, "trace_id": "XX.T01..HHZ",
+                                  "start": f"2026-03-17T02:00:{10 + 0.5 * k:06.3f}000Z",
+                                  "offset_s": 0.5 * k, "trigger_offset_s": 0.064} for k in range(m)],
+                    traces=[{"file": path, "trace_id": "XX.T01..HHZ", "sampling_rate_hz": fs,
+                             "start": "2026-03-17T02:00:10.000000Z", "duration_s": 4.0,
+                             "windows": m}],
                     rejections=[{"file": "bursts.npz", "trace_id": "XX.T01..HHZ", "offset_s": 3.9,
                                  "reason": "flat", "detail": "constant samples"}],
                     defaults={"windowing": "bursts", "window_s": n / fs}, source_hash="5e" * 32,
-                    files=["bursts.npz"])
+                    files=[path])
     search = FilterbankSearch(channels=6, evaluations=8, bootstrap=2, seed=3).fit(corpus)
     return search, corpus
 
 
 def test_report_from_disk_renders_every_image_and_the_channel_table(browser, tmp_path):
-    """The report written to disk and opened as file:// shows every plot (naturalWidth > 0) and
-    a channel table equal to the filterbank JSON, logs no console error and requests nothing
-    beyond the file (HTML Living Standard img decoding; DESIGN §8 channel fields)."""
+    """The report written to disk and opened as file:// at 1280 × 800 shows the scorecard and
+    the warnings above the fold, a SEED id and a UTC time in the first example's title and no
+    server path, no raw key in its visible text, every text at 4.5:1 contrast or more (WCAG
+    2.1 §1.4.3), every plot (naturalWidth > 0) and a channel table equal to the filterbank
+    JSON; it logs no console error and requests nothing beyond the file (HTML Living Standard
+    img decoding; DESIGN §8 channel fields)."""
     from burstlens.service.report import render_report
 
     search, corpus = tiny_fit()
@@ -135,10 +154,16 @@ def test_report_from_disk_renders_every_image_and_the_channel_table(browser, tmp
     page.goto(path.as_uri())
     page.wait_for_load_state("load")
     page.screenshot(path=str(tmp_path / "report-fold.png"))
-    # the answer is above the fold: what was tuned, the gain in words, the warnings box
-    for selector in ("#tuned", "#gain", "#warnings"):
+    # the answer is above the fold: what was tuned, the scorecard, the gain in words, the
+    # warnings box
+    for selector in ("#tuned", "#scorecard", "#gain", "#warnings"):
         box = page.locator(selector).bounding_box()
         assert box is not None and box["y"] + box["height"] <= 800, (selector, box)
+    # the first example names its window by SEED id and UTC time, never by server path
+    examples = page.inner_text("#plot-examples figcaption")
+    first = examples.split("Row 2")[0]
+    assert "XX.T01..HHZ" in first and re.search(r"2026-03-17 02:00:\d\d\.\d{3} UTC", first), first
+    assert "/srv/" not in page.inner_text("body")
     assert "windows the fit never saw" in page.inner_text("#gain")
     assert page.locator("#warnings").is_visible()  # 8 windows: fewer than 30 held out
     assert page.evaluate("() => document.querySelector('details#details').open") is False
@@ -146,6 +171,7 @@ def test_report_from_disk_renders_every_image_and_the_channel_table(browser, tmp
     assert low_contrast(page) == []
     page.click("details#details > summary")  # the folded settings are readable too
     assert low_contrast(page) == []
+    assert raw_keys(page.inner_text("body")) == []
     images = page.evaluate(IMAGES_JS)
     assert len(images) == 5  # tiling, examples, convergence, channels, baselines
     for image in images:
@@ -157,8 +183,9 @@ def test_report_from_disk_renders_every_image_and_the_channel_table(browser, tmp
         for field in ("center_hz", "time_spread_s", "cell_area", "chirp_hz_per_s"):
             assert float(row[field]["value"]) == channel[field]
         assert float(row["center_hz"]["text"]) == pytest.approx(channel["center_hz"], rel=1e-4)
+        # shown as the Gaussian window's std s = √2·σ_t in ms (DESIGN §3: |h|² has std σ_t)
         assert float(row["time_spread_s"]["text"]) == \
-            pytest.approx(1e3 * channel["time_spread_s"], rel=1e-2)  # shown in ms
+            pytest.approx(1e3 * 2 ** 0.5 * channel["time_spread_s"], rel=1e-2)
         assert row["equivalent"]["text"] == channel["equivalent"]["text"]
     assert "not a certified safety" in page.inner_text("#cautions")
     page.screenshot(path=str(tmp_path / "report.png"), full_page=True)
@@ -217,25 +244,25 @@ def test_jobs_page_with_a_token_follows_a_job_to_succeeded_and_opens_its_report(
 
     job_id = _upload_and_submit(server.url, auth, TINY)
     queued_id = _upload_and_submit(server.url, auth, {**TINY, "seed": 4})  # waits for the worker
-    page.click(f'tr[data-job-id="{queued_id}"] button.cancel')
+    page.click(f'tr[data-job-id="{queued_id}"] button.withdraw')
     seen = []
 
     def state():
         value = _row_state(page, job_id)
         if value and (not seen or seen[-1] != value):
             seen.append(value)
-            if value == "running":
+            if value == "working":
                 page.screenshot(path=str(tmp_path / "jobs-running.png"))
-        return value in ("succeeded", "failed", "cancelled")
+        return value in ("done", "error", "withdrawn")
 
     wait_for(state, timeout=120.0, interval=0.2)
-    assert seen[-1] == "succeeded", seen
-    assert set(seen) <= {"queued", "running", "succeeded"}
-    page.wait_for_selector(f'tr[data-job-id="{queued_id}"][data-state="cancelled"]', timeout=30000)
+    assert seen[-1] == "done", seen
+    assert set(seen) <= {"waiting", "working", "done"}
+    page.wait_for_selector(f'tr[data-job-id="{queued_id}"][data-state="withdrawn"]', timeout=30000)
     row = page.locator(f'tr[data-job-id="{job_id}"]')
-    assert row.locator(".state").inner_text() == "succeeded"
+    assert row.locator(".state").inner_text() == "done"
     assert re.search(r"[+-]\d\.\d{3} bits", row.inner_text())  # gain over the spectrogram
-    assert row.locator("button.cancel").count() == 0
+    assert row.locator("button.withdraw").count() == 0
     page.screenshot(path=str(tmp_path / "jobs.png"), full_page=True)
     assert low_contrast(page) == []  # succeeded and cancelled rows, links, buttons
     link = row.locator("a.report-link")
@@ -272,16 +299,16 @@ def test_jobs_page_without_tokens_lists_and_cancels_a_queued_job(browser, live_s
     console = Console(page)
     page.goto(server.url + "/")
     row = f'tr[data-job-id="{job_id}"]'
-    page.wait_for_selector(f'{row}[data-state="queued"]')
+    page.wait_for_selector(f'{row}[data-state="waiting"]')
     assert page.locator("#token-panel").is_hidden()
     assert page.locator(f"{row} a.report-link").count() == 0
     assert "waiting for a worker" in page.inner_text(row)
     assert low_contrast(page) == []
-    page.click(f"{row} button.cancel")
-    page.wait_for_selector(f'{row}[data-state="cancelled"]', timeout=15000)
+    page.click(f"{row} button.withdraw")
+    page.wait_for_selector(f'{row}[data-state="withdrawn"]', timeout=15000)
     with httpx.Client(base_url=server.url) as client:
-        assert client.get(f"/v1/jobs/{job_id}").json()["state"] == "cancelled"
-    assert page.locator(f"{row} button.cancel").count() == 0
+        assert client.get(f"/v1/jobs/{job_id}").json()["state"] == "withdrawn"
+    assert page.locator(f"{row} button.withdraw").count() == 0
     page.screenshot(path=str(tmp_path / "jobs-cancelled.png"), full_page=True)
     assert console.errors == []
     assert console.foreign(server.url + "/") == []  # no external asset: only its own API

@@ -44,3 +44,27 @@ def test_submit_uploads_exactly_the_files_the_reader_reads(tmp_path, monkeypatch
     assert sorted(calls["files"]) == sorted(read)
     assert {str(tmp_path / name) for name in ("a.mseed", "b.csv", "c.npy", "numbers.txt")} \
         <= set(calls["files"]) and len(calls["files"]) == 5
+
+
+def test_follow_keeps_the_fit_best_apart_from_the_judgement():
+    """The server's progress of a search, as `submit` shows it: during the judge stage the bar
+    names the fit's best (from the family stage) and says it is judging, never showing the
+    judge stage's own objective (other windows) as the best."""
+    import io
+
+    from burstlens.service.commands.submit import follow
+
+    class Polled:
+        def wait(self, job_id, on_progress, poll_s):
+            base = {"id": job_id, "state": "working"}
+            on_progress({**base, "progress": {"stage": "family", "round": 2, "evaluations": 8,
+                                              "budget": 16, "best_objective": 4.25, "fraction": 0.4}})
+            on_progress({**base, "progress": {"stage": "judge", "round": 3, "evaluations": 16,
+                                              "budget": 16, "best_objective": 5.75, "fraction": 0.9}})
+            return {**base, "state": "done"}
+
+    stream = io.StringIO()
+    assert follow(Polled(), "j1", stream=stream)["state"] == "done"
+    shown = stream.getvalue()
+    assert "fit best 4.2500 bits" in shown and "judging on the held-out windows" in shown
+    assert "5.75" not in shown

@@ -1,5 +1,6 @@
 """`burstlens tune` and `burstlens transform`: files written, summary, NPZ layout, exit codes."""
 import json
+import re
 
 import numpy as np
 import pytest
@@ -69,15 +70,70 @@ def test_tune_writes_the_results(tuned, capsys):
     assert "<html" in (out / "report.html").read_text().lower()
 
 
+# A line that states the sharpness gain over the best plain spectrogram, in any of the forms
+# the CLI and the demo have used ("gain on windows the fit never saw: 0.16 …", "gain over the
+# best spectrogram: 0.161 bits …", "; gain 0.1610 bits", "0.16 bit sharper than …").
+GAIN_FORMS = re.compile(r"\bgain\b|sharper than|as sharp as|less sharp than", re.IGNORECASE)
+
+
+def assert_gain_said_once(lines, diagnostics):
+    """Exactly one line (warnings aside) states the gain, and no line repeats its value in the
+    three- or four-decimal forms the second statement used."""
+    stated = [line for line in lines if GAIN_FORMS.search(line) and not line.startswith("warning:")]
+    assert len(stated) == 1, stated
+    gain = diagnostics["gain_bits"]
+    assert not [line for line in lines if f"{gain:.3f}" in line or f"{gain:.4f}" in line]
+
+
 def test_tune_prints_a_summary(wav_dir, tmp_path, capsys):
     """The summary opens with the scorecard on held-out windows (the tuned filterbank against the
-    best plain spectrogram), then names windows used, stop reason, objective, gain over the best
-    spectrogram and the channels with wide stability intervals."""
-    assert main(["tune", str(wav_dir), "--out", str(tmp_path), "--quiet", *FAST, "--no-refine"]) == 0
-    text = capsys.readouterr().out
+    best plain spectrogram), which states the gain, once; then names windows used, stop reason,
+    objective and the channels with wide stability intervals. The progress bar's last state
+    names the fit's best (the family stage's best on its subset, --no-refine) and, apart, the
+    judgement: the result's objective on the held-out windows."""
+    assert main(["tune", str(wav_dir), "--out", str(tmp_path), *FAST, "--no-refine"]) == 0
+    shown = capsys.readouterr()
+    text = shown.out
     assert text.startswith(("The tuned filterbank", "The returned spectrogram"))
-    for phrase in ("windows used: 6", "stop reason:", "objective:", "gain", "wide stability intervals"):
+    for phrase in ("windows used: 6", "stop reason:", "objective:", "wide stability intervals"):
         assert phrase in text, phrase
+    diagnostics = json.loads((tmp_path / "diagnostics.json").read_text())
+    assert_gain_said_once(text.splitlines(), diagnostics)
+    last = shown.err.replace("\r", "\n").strip().splitlines()[-1]
+    fit_best = diagnostics["family"]["best_objective_subset"]
+    judged = diagnostics["judgement"]
+    assert last.endswith(f"done; fit best {fit_best:.4f} bits; judged "
+                         f"{judged['result']['objective']:.4f} bits on "
+                         f"{judged['held_out_windows']} held-out windows"), last
+
+
+def test_progress_words_keep_the_fit_best_apart_from_the_judgement():
+    """While judging, the bar keeps the fit's best (the last one the fit stages reported) and
+    never shows the judge stage's number, which is the result scored on other windows."""
+    from burstlens.service.commands.tune import ProgressWords
+
+    words = ProgressWords()
+    msg = {"round": 3, "evaluations": 6, "budget": 6}
+    assert words.during({**msg, "stage": "family", "best_objective": 4.25}).endswith(
+        "family round 3, 6 of 6 evaluations; fit best 4.2500 bits")
+    words.during({**msg, "stage": "refine", "best_objective": 4.2})
+    during = words.during({**msg, "stage": "judge", "best_objective": 4.42})
+    assert during == "judging on the held-out windows; fit best 4.2000 bits"
+    assert words.after({"stop_reason": "cancelled", "judgement": None}) == \
+        "stopped (cancelled), not judged; fit best 4.2000 bits"
+
+
+def test_demo_summary_says_the_gain_once(tuned):
+    """`make demo`'s summary (service/demo.py) leads with the scorecard and says the gain once,
+    not again as "gain over the best spectrogram: … bits (objective … vs …)"."""
+    from burstlens.service.demo import summary_lines
+
+    _, out = tuned
+    diagnostics = json.loads((out / "diagnostics.json").read_text())
+    filterbank = json.loads((out / "filterbank.json").read_text())
+    lines = summary_lines(filterbank, diagnostics, 1.0)
+    assert any("stop reason" in line for line in lines)
+    assert_gain_said_once(lines, diagnostics)
 
 
 @pytest.mark.parametrize("extra, needle", [

@@ -41,7 +41,7 @@ def upload_and_queue(http: httpx.Client, url: str, headers=None) -> str:
 
 def finished(http: httpx.Client, url: str, job_id: str) -> dict:
     view = http.get(f"{url}/v1/jobs/{job_id}").json()
-    return view if view["state"] in ("succeeded", "failed", "cancelled") else None
+    return view if view["state"] in ("done", "error", "withdrawn") else None
 
 
 def comparable(filterbank: dict) -> dict:
@@ -66,7 +66,7 @@ def reference(tmp_path_factory):
         job_id = upload_and_queue(http, "")
         Worker(settings_for(data)).run(max_jobs=1, exit_when_idle=True)
         view = http.get(f"/v1/jobs/{job_id}").json()
-        assert view["state"] == "succeeded", view
+        assert view["state"] == "done", view
         return comparable(http.get(f"/v1/jobs/{job_id}/filterbank").json())
 
 
@@ -83,7 +83,7 @@ def dask_server(tmp_path_factory, cluster):
     def up():
         assert proc.poll() is None, f"serve exited with {proc.returncode}"
         try:
-            return httpx.get(url + "/healthz", timeout=1.0).status_code == 200
+            return httpx.get(url + "/v1/health", timeout=1.0).status_code == 200
         except httpx.TransportError:
             return False
 
@@ -105,7 +105,7 @@ def test_dask_job_gives_the_same_filterbank(dask_server, reference):
     with httpx.Client(timeout=30) as http:
         job_id = upload_and_queue(http, dask_server)
         view = wait_for(lambda: finished(http, dask_server, job_id), timeout=150, interval=0.2)
-        assert view["state"] == "succeeded", view
+        assert view["state"] == "done", view
         filterbank = http.get(f"{dask_server}/v1/jobs/{job_id}/filterbank").json()
         assert comparable(filterbank) == reference
 
@@ -121,14 +121,14 @@ def test_losing_a_dask_worker_mid_job_gives_the_same_filterbank(dask_server, clu
 
         def running_with_evaluations():
             view = http.get(f"{dask_server}/v1/jobs/{job_id}").json()
-            return view if view["state"] == "running" and view["progress"].get("evaluations") else None
+            return view if view["state"] == "working" and view["progress"].get("evaluations") else None
 
         at_kill = wait_for(running_with_evaluations, timeout=120, interval=0.05)
         victim = sorted(client.run(os.getpid).values())[0]
         os.kill(victim, signal.SIGKILL)
         assert at_kill["progress"].get("fraction", 0.0) < 1.0
         view = wait_for(lambda: finished(http, dask_server, job_id), timeout=180, interval=0.2)
-        assert view["state"] == "succeeded", view
+        assert view["state"] == "done", view
         assert victim not in client.run(os.getpid).values()
         filterbank = http.get(f"{dask_server}/v1/jobs/{job_id}/filterbank").json()
         assert comparable(filterbank) == reference

@@ -82,7 +82,7 @@ def test_compose_parses_and_runs_existing_commands():
 
 def test_dockerfile_runs_the_service_as_a_user_with_a_health_check():
     """Dockerfile: slim Python base, non-root USER, the data dir as a VOLUME, a HEALTHCHECK on
-    /healthz, a `pip install .` of the project and nothing fetched at run time; its CMD is a
+    /v1/health, a `pip install .` of the project and nothing fetched at run time; its CMD is a
     real `burstlens` command (Dockerfile reference; common practice)."""
     text = (DEPLOY / "Dockerfile").read_text(encoding="utf-8")
     lines = [ln.strip() for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
@@ -92,8 +92,8 @@ def test_dockerfile_runs_the_service_as_a_user_with_a_health_check():
     data_dir = re.search(r"BURSTLENS_DATA_DIR=(\S+)", text).group(1)
     volumes = [json.loads(ln[len("VOLUME"):]) for ln in lines if ln.startswith("VOLUME")]
     assert [data_dir] in volumes
-    health = " ".join(ln for ln in lines if "healthz" in ln)
-    assert "HEALTHCHECK" in text and "/healthz" in health
+    health = " ".join(ln for ln in lines if "/v1/health" in ln)
+    assert "HEALTHCHECK" in text and "/v1/health" in health
     installs = re.findall(r"pip install ([^&\n]+)", text)
     assert [i.strip() for i in installs] == ["."], installs
     assert not re.search(r"\b(curl|wget|ADD)\b", "\n".join(lines))

@@ -56,13 +56,13 @@ def reference(corpus_paths, tmp_path_factory):
         corpus = client.post("/v1/corpora", files=files).json()
         job = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": FAULT}).json()
         Worker(settings).run(exit_when_idle=True)
-        assert client.get(f"/v1/jobs/{job['id']}").json()["state"] == "succeeded"
+        assert client.get(f"/v1/jobs/{job['id']}").json()["state"] == "done"
         return client.get(f"/v1/jobs/{job['id']}/filterbank").json()["channels"]
 
 
 def _round(client: Client, job_id: str) -> int:
     job = client.job(job_id)
-    return (job["progress"].get("round") or 0) if job["state"] == "running" else 0
+    return (job["progress"].get("round") or 0) if job["state"] == "working" else 0
 
 
 def _start_worker(data_dir) -> subprocess.Popen:
@@ -86,7 +86,7 @@ def test_full_life_over_http_with_submit(live_server, corpus_paths, tmp_path, ca
     assert "<html" in (out / "report.html").read_text().lower()
     with Client(server.url) as client:
         (job,) = client.jobs()
-        assert (job["state"], job["attempts"]) == ("succeeded", 1)
+        assert (job["state"], job["attempts"]) == ("done", 1)
         arrays = np.load(io.BytesIO(client.transform(corpus_paths[:1], job_id=job["id"])),
                          allow_pickle=False)
         assert arrays["representation"].shape[1:] == (6, 256)
@@ -107,7 +107,7 @@ def test_kill_9_worker_is_reclaimed_and_resumes(live_server, corpus_paths, refer
         (pid,) = server.worker_pids()
         os.kill(pid, signal.SIGKILL)
         done = client.wait(job["id"], poll_s=0.2, timeout_s=120)
-        assert (done["state"], done["attempts"]) == ("succeeded", 2)
+        assert (done["state"], done["attempts"]) == ("done", 2)
         assert done["progress"]["resumed"] is True
         assert client.filterbank(job["id"])["channels"] == reference
 
@@ -127,14 +127,14 @@ def test_sigterm_worker_exits_0_and_resume_is_identical(live_server, corpus_path
         finally:
             first.kill() if first.poll() is None else None
         paused = client.job(job["id"])
-        assert (paused["state"], paused["attempts"]) == ("queued", 0)
+        assert (paused["state"], paused["attempts"]) == ("waiting", 0)
         second = _start_worker(server.data_dir)
         try:
             done = client.wait(job["id"], poll_s=0.2, timeout_s=120)
         finally:
             second.send_signal(signal.SIGTERM)
             assert second.wait(timeout=60) == 0
-        assert (done["state"], done["attempts"]) == ("succeeded", 1)
+        assert (done["state"], done["attempts"]) == ("done", 1)
         assert done["progress"]["resumed"] is True
         assert client.filterbank(job["id"])["channels"] == reference
 
@@ -152,7 +152,7 @@ def test_server_restart_loses_nothing(live_server, corpus_paths, tmp_path):
     restarted = live_server(workers=1, data_dir=server.data_dir)
     with Client(restarted.url) as client:
         states = [client.wait(i, poll_s=0.3, timeout_s=180)["state"] for i in ids]
-    assert states == ["succeeded"] * 3
+    assert states == ["done"] * 3
 
 
 def test_enqueue_is_durable_and_streamed_limit_holds(live_server, corpus_paths):
@@ -176,8 +176,8 @@ def test_enqueue_is_durable_and_streamed_limit_holds(live_server, corpus_paths):
     db = sqlite3.connect(server.data_dir / "burstlens.sqlite3")
     row = db.execute("SELECT state, settings FROM jobs WHERE id = ?", (job["id"],)).fetchone()
     db.close()
-    assert row[0] == "queued" and json.loads(row[1]) == FAULT
+    assert row[0] == "waiting" and json.loads(row[1]) == FAULT
     restarted = live_server(workers=0, data_dir=server.data_dir)
     with Client(restarted.url) as client:
-        assert client.job(job["id"])["state"] == "queued"
-        assert client.cancel(job["id"])["state"] == "cancelled"
+        assert client.job(job["id"])["state"] == "waiting"
+        assert client.withdraw(job["id"])["state"] == "withdrawn"

@@ -3,6 +3,8 @@ import hashlib
 import json
 import os
 
+import pytest
+
 from burstlens.service.cli import main
 
 ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
@@ -66,9 +68,9 @@ def test_demo_corpus_command_writes_identical_files(tmp_path, capsys):
 
 
 def test_inspect_progress_bar_on_stderr_leaves_stdout_unchanged(capsys):
-    """`inspect` draws its progress on stderr, naming the files read, the hours of data and the
-    windows found (the demo: 5 files of three 60 s traces, 0.25 h), and prints the same summary
-    on stdout as with --quiet, which draws nothing (DESIGN §9: inspect's summary)."""
+    """`inspect` draws its progress on stderr, naming the files read, the trace-hours read and
+    the windows found (the demo: 5 files of three 60 s traces, 0.25 trace-hours), and prints the
+    same summary on stdout as with --quiet, which draws nothing (DESIGN §9: inspect's summary)."""
     assert main(["inspect", DEMO]) == 0
     shown = capsys.readouterr()
     assert main(["inspect", DEMO, "--quiet"]) == 0
@@ -77,4 +79,41 @@ def test_inspect_progress_bar_on_stderr_leaves_stdout_unchanged(capsys):
     last = shown.err.replace("\r", "\n").strip().splitlines()[-1]
     found = next(line.split(": ")[1] for line in shown.out.splitlines() if line.startswith("  windows_found: "))
     assert last.startswith("cutting 15/15 ")
-    assert last.endswith(f"5 files, 0.25 h of data, {found} windows found")
+    assert last.endswith(f"5 files, 0.25 trace-hours, {found} windows found")
+
+
+def test_inspect_counts_station_hours_and_trace_hours_each_named(capsys):
+    """The demo is one minute of record at five 3-component stations (demo_corpus/README.md):
+    the summary says 5 stations, 15 traces, 5/60 = 0.0833 station-hours and 15/60 = 0.25
+    trace-hours, naming each, with the UTC span of the record."""
+    assert main(["inspect", DEMO, "--quiet"]) == 0
+    out = capsys.readouterr().out.splitlines()
+    assert out[1] == "record: 5 stations, 15 traces, 2026-03-17 02:00:00 to 2026-03-17 02:01:00 UTC"
+    assert out[2].startswith("  0.0833 station-hours (each station's time on record), "
+                             "0.25 trace-hours (every trace's length summed)")
+
+
+def test_record_hours_counts_a_stations_time_once():
+    """Station-hours: per station (NET.STA of the SEED id NET.STA.LOC.CHA; FDSN SEED Reference
+    Manual v2.4, 2012, field order from memory), the length of the union of its traces' spans,
+    so the components of one station and overlapping pieces count once and a gap counts
+    nothing; trace-hours: every trace's length summed (common practice). Worked by hand:
+    station A has Z, N, E over 02:00–03:00 (1 h) plus a Z piece 02:30–03:30 (union 02:00–03:30,
+    1.5 h); station B has 02:00–02:15 and 02:45–03:00 (0.5 h); a WAV trace with no start time
+    adds 0.25 h of its own. Trace-hours: 3 + 1 + 0.25 + 0.25 + 0.25 = 4.75 h."""
+    from burstlens.service.commands.inspect import record_hours
+
+    def trace(trace_id, start, hours):
+        return {"trace_id": trace_id, "start": start, "duration_s": 3600.0 * hours}
+
+    traces = [trace(f"XX.A.00.GP{c}", "2026-03-17T02:00:00.000000Z", 1.0) for c in "ZNE"]
+    traces += [trace("XX.A.10.GPZ", "2026-03-17T02:30:00.000000Z", 1.0),
+               trace("XX.B.00.GPZ", "2026-03-17T02:00:00.000000Z", 0.25),
+               trace("XX.B.00.GPZ", "2026-03-17T02:45:00.000000Z", 0.25),
+               trace(".event1.00.", None, 0.25)]
+    r = record_hours(traces)
+    assert (r.stations, r.traces) == (3, 7)
+    assert r.station_hours == pytest.approx(1.5 + 0.5 + 0.25, abs=1e-12)
+    assert r.trace_hours == pytest.approx(4.75, abs=1e-12)
+    assert r.first.isoformat() == "2026-03-17T02:00:00+00:00"
+    assert r.last.isoformat() == "2026-03-17T03:30:00+00:00"

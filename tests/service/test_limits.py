@@ -19,7 +19,7 @@ def test_declared_body_over_limit_is_413(make_client, tmp_path):
     client = make_client(max_body_bytes=50_000)
     response = client.post("/v1/corpora", files=corpus_files(1))
     assert response.status_code == 413
-    assert "50000" in response.json()["error"]["message"]
+    assert "50000" in response.json()["detail"]
     assert _nothing_left(tmp_path)
 
 
@@ -44,7 +44,7 @@ def test_too_many_files_is_413(make_client, tmp_path):
     """More files than max_files in one upload: 413 naming the limit, nothing kept (DESIGN §7)."""
     client = make_client(max_files=2)
     response = client.post("/v1/corpora", files=corpus_files(3))
-    assert response.status_code == 413 and "2 files" in response.json()["error"]["message"]
+    assert response.status_code == 413 and "2 files" in response.json()["detail"]
     assert _nothing_left(tmp_path)
 
 
@@ -54,7 +54,7 @@ def test_too_many_windows_is_413(make_client, tmp_path):
     client = make_client(max_windows=3)
     response = client.post("/v1/corpora", files=corpus_files(1))
     assert response.status_code == 413
-    assert "limit of 3" in response.json()["error"]["message"]
+    assert "limit of 3" in response.json()["detail"]
     assert _nothing_left(tmp_path)
 
 
@@ -63,7 +63,7 @@ def test_too_many_samples_is_413(make_client, tmp_path):
     client = make_client(max_samples=10_000)
     response = client.post("/v1/corpora", files=corpus_files(1))
     assert response.status_code == 413
-    assert "12000 samples" in response.json()["error"]["message"]
+    assert "12000 samples" in response.json()["detail"]
     assert _nothing_left(tmp_path)
 
 
@@ -79,8 +79,8 @@ def test_queued_jobs_per_tenant_is_429(make_client):
         assert response.status_code == 201
         ids.append(response.json()["id"])
     response = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": TINY})
-    assert response.status_code == 429 and "limit 2" in response.json()["error"]["message"]
-    client.post(f"/v1/jobs/{ids[0]}/cancel")
+    assert response.status_code == 429 and "limit 2" in response.json()["detail"]
+    client.post(f"/v1/jobs/{ids[0]}/withdraw")
     assert client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": TINY}).status_code == 201
 
 
@@ -97,7 +97,7 @@ def test_disk_full_is_507(make_client, tmp_path, monkeypatch):
     client = make_client()
     response = client.post("/v1/corpora", files=corpus_files(1))
     assert response.status_code == 507
-    assert "disk is full" in response.json()["error"]["message"]
+    assert "disk is full" in response.json()["detail"]
     assert _nothing_left(tmp_path)
 
 
@@ -107,4 +107,4 @@ def test_not_multipart_is_415(make_client):
     client = make_client()
     response = client.post("/v1/corpora", content=burst_npz(),
                            headers={"content-type": "application/octet-stream"})
-    assert response.status_code == 415 and "multipart" in response.json()["error"]["message"]
+    assert response.status_code == 415 and "multipart" in response.json()["detail"]

@@ -50,3 +50,28 @@ def test_api_conforms_to_its_openapi(case):
     media types, headers and schemas (schemathesis, property-based testing of OpenAPI
     documents; OpenAPI Specification 3.1)."""
     case.call_and_validate(checks=CHECKS)
+
+
+def test_every_operation_has_its_own_id_summary_and_problem_errors():
+    """Every operation of the document has an explicit operationId in our own camelCase (never
+    the framework's generated `name_path_method` form, which contains underscores), a summary,
+    and declares each 4xx/5xx answer as a problem document under application/problem+json with
+    the `Problem` schema (RFC 9457, Nottingham, Wilde and Dalal, 2023, §3 and §6.1)."""
+    document = schema.raw_schema
+    problem = document["components"]["schemas"]["Problem"]
+    assert set(problem["required"]) >= {"title", "status", "detail"}
+    ids = []
+    for path, item in document["paths"].items():
+        for method, operation in item.items():
+            where = f"{method.upper()} {path}"
+            assert operation.get("summary"), f"{where}: no summary"
+            op_id = operation.get("operationId", "")
+            assert op_id and "_" not in op_id and op_id[0].islower(), f"{where}: id {op_id!r}"
+            ids.append(op_id)
+            for status, answer in operation["responses"].items():
+                if status[0] in "45":
+                    content = answer.get("content", {})
+                    assert list(content) == ["application/problem+json"], f"{where} {status}"
+                    assert content["application/problem+json"]["schema"] == {
+                        "$ref": "#/components/schemas/Problem"}, f"{where} {status}"
+    assert len(ids) == len(set(ids))

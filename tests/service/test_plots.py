@@ -138,9 +138,9 @@ def test_convergence_requires_evaluations():
 
 
 def test_channel_parameters_draw_values_and_bootstrap_bands():
-    """Three panels against frequency (Hz): time spread in ms, cell area with the a = 1 line,
-    chirp in Hz/s; each with its fitted line and a band spanning the given [low, high] (common
-    practice for interval plots)."""
+    """Three panels against frequency (Hz): the Gaussian window's std √2·σ_t in ms (DESIGN §3:
+    |h|² has time std σ_t), cell area with the a = 1 line, chirp in Hz/s; each with its fitted
+    line and a band spanning the given [low, high] (common practice for interval plots)."""
     bands = {
         "time_spread_s": np.column_stack([TIME_SPREAD_S * 0.9, TIME_SPREAD_S * 1.2]),
         "cell_area": np.column_stack([CELL_AREA * 0.8, CELL_AREA * 1.1]),
@@ -149,7 +149,7 @@ def test_channel_parameters_draw_values_and_bootstrap_bands():
     fig = plots.channel_parameters_figure(CENTER_HZ, TIME_SPREAD_S, CELL_AREA, CHIRP_HZ_PER_S, bands)
     axes = fig.axes
     assert len(axes) == 3
-    scales = {"time_spread_s": 1e3, "cell_area": 1.0, "chirp_hz_per_s": 1.0}
+    scales = {"time_spread_s": 1e3 * np.sqrt(2.0), "cell_area": 1.0, "chirp_hz_per_s": 1.0}
     values = {"time_spread_s": TIME_SPREAD_S, "cell_area": CELL_AREA, "chirp_hz_per_s": CHIRP_HZ_PER_S}
     for ax, field in zip(axes, scales, strict=True):
         (band,) = [c for c in ax.collections if c.get_gid() == f"band:{field}"]
@@ -160,7 +160,7 @@ def test_channel_parameters_draw_values_and_bootstrap_bands():
         (line,) = [ln for ln in ax.get_lines() if ln.get_gid() == f"value:{field}"]
         np.testing.assert_allclose(line.get_ydata(), scales[field] * values[field])
         np.testing.assert_allclose(line.get_xdata(), CENTER_HZ)
-    assert "(ms)" in axes[0].get_ylabel()
+    assert "window std" in axes[0].get_ylabel() and "(ms)" in axes[0].get_ylabel()
     assert "cell area" in axes[1].get_ylabel()
     assert "(Hz/s)" in axes[2].get_ylabel()
     assert "(Hz)" in axes[2].get_xlabel()
@@ -202,7 +202,8 @@ def test_example_rows_share_axes_and_colour_limits():
     spec = rng.random((rows, CENTER_HZ.size, n))
     learned = rng.random((rows, CENTER_HZ.size, n)) ** 4
     learned[1, 2, 3] = -0.5  # super-resolved channels may go negative
-    fig = plots.example_figure(t, waves, spec, learned, CENTER_HZ, ["first", "second"])
+    fig = plots.example_figure(t, waves, spec, learned, CENTER_HZ, ["first", "second"],
+                               trigger_s=[0.032, None], amplitude_label="amplitude (counts)")
     meshes = [c for ax in fig.axes for c in ax.collections
               if isinstance(c, QuadMesh) and str(c.get_gid()).startswith("image:")]
     assert len(meshes) == 2 * rows
@@ -215,12 +216,22 @@ def test_example_rows_share_axes_and_colour_limits():
         assert max(a.get_array().max(), b.get_array().max()) == pytest.approx(0.0)
         assert min(a.get_array().min(), b.get_array().min()) >= -plots.DYNAMIC_RANGE_DB - 1e-9
         assert "(Hz)" in a.axes.get_ylabel() and "(ms)" in a.axes.get_xlabel()
+        # each image panel has its own colour bar, on the same 30 dB range
+        bars = [ax for ax in a.axes.figure.axes if ax not in (a.axes, b.axes)
+                and ax.get_ylabel() == "dB re. row peak"]
+        assert len(bars) == 2
+        assert a.axes.get_yscale() == b.axes.get_yscale() == plots.frequency_scale(CENTER_HZ)
     assert [sub.get_suptitle() for sub in fig.subfigs] == ["first", "second"]
     wave_axes = [ax for ax in fig.axes if ax.get_title(loc="left") == "waveform"]
     assert len(wave_axes) == rows
     assert wave_axes[0].figure is fig.subfigs[0]
     np.testing.assert_allclose(wave_axes[0].get_lines()[0].get_ydata(), waves[0])
     np.testing.assert_allclose(wave_axes[0].get_lines()[0].get_xdata(), 1e3 * t)
+    # the trigger marker where the onset is known, in ms from the window start; none elsewhere
+    (trigger,) = [ln for ln in wave_axes[0].get_lines() if ln.get_gid() == "trigger"]
+    assert trigger.get_xdata()[0] == pytest.approx(32.0)
+    assert not [ln for ln in wave_axes[1].get_lines() if ln.get_gid() == "trigger"]
+    assert wave_axes[0].get_ylabel() == "amplitude (counts)"
     with pytest.raises(ValueError, match="learned"):
         plots.example_figure(t, waves, spec, learned[:, :3], CENTER_HZ, ["first", "second"])
 
@@ -251,6 +262,40 @@ def test_baselines_draw_one_interval_per_entry():
     assert to_rgba(result_colour) != to_rgba(ax.containers[0].lines[0].get_color())
     assert "+0.500 bits" in ax.get_title(loc="left")
     assert "(bits)" in ax.get_xlabel()
+
+
+def test_an_excluded_baseline_is_drawn_open_and_labelled():
+    """A baseline marked excluded keeps its point, drawn open in grey, and its tick label says
+    "excluded" with the reason; the others are drawn filled as before."""
+    entries = [{"label": "best spectrogram", "objective": 10.2},
+               {"label": "pseudo-WVD", "objective": 9.0, "excluded": "46 % of its mass is negative"},
+               {"label": "learned filterbank", "objective": 9.7, "is_result": True}]
+    ax = plots.baselines_figure(entries).axes[0]
+    labels = [t.get_text() for t in ax.get_yticklabels()]
+    assert labels[1] == "pseudo-WVD\nexcluded: 46 % of its mass is negative"
+    assert labels[0] == "best spectrogram"
+    marker = ax.containers[1].lines[0]
+    assert to_rgba(marker.get_markerfacecolor()) == to_rgba("white")
+    assert to_rgba(ax.containers[0].lines[0].get_markerfacecolor()) != to_rgba("white")
+
+
+def test_every_plot_uses_one_frequency_scale():
+    """The tiling, the channel parameters and the examples draw frequency on the same scale:
+    log for channels spanning more than a decade, linear otherwise (one choice per filterbank)."""
+    for centres in (CENTER_HZ, np.linspace(100.0, 400.0, CENTER_HZ.size)):
+        scale = plots.frequency_scale(centres)
+        count = centres.size
+        tiling = plots.tiling_figure(centres, TIME_SPREAD_S, CELL_AREA, CHIRP_HZ_PER_S)
+        assert tiling.axes[0].get_yscale() == scale
+        params = plots.channel_parameters_figure(centres, TIME_SPREAD_S, CELL_AREA, CHIRP_HZ_PER_S)
+        assert params.axes[-1].get_xscale() == scale
+        t = np.arange(64) / 1000.0
+        examples = plots.example_figure(t, np.zeros((1, 64)), np.ones((1, count, 64)),
+                                        np.ones((1, count, 64)), centres, ["one"])
+        images = [ax for ax in examples.axes if ax.get_ylabel() == "frequency (Hz)"]
+        assert len(images) == 2 and all(ax.get_yscale() == scale for ax in images)
+    assert plots.frequency_scale(CENTER_HZ) == "log"
+    assert plots.frequency_scale(np.linspace(100.0, 400.0, 5)) == "linear"
 
 
 def test_text_from_data_is_drawn_literally():

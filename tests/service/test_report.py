@@ -6,6 +6,7 @@ own transform on generated windows.
 """
 import base64
 import copy
+import html
 import re
 from html.parser import HTMLParser
 
@@ -31,7 +32,7 @@ class Page(HTMLParser):
         attrs = dict(attrs)
         self.tags.append((tag, attrs))
         if tag == "tr" and "data-channel" in attrs:
-            self._row = {"channel": int(attrs["data-channel"]), "cells": {}}
+            self._row = {"channel": int(attrs["data-channel"]), "cells": {}, "text": ""}
         if tag == "td" and self._row is not None and "data-field" in attrs:
             self._cell = {"field": attrs["data-field"], "value": attrs.get("data-value"), "text": ""}
 
@@ -45,6 +46,8 @@ class Page(HTMLParser):
 
     def handle_data(self, data):
         self.text.append(data)
+        if self._row is not None:
+            self._row["text"] += data + " "
         if self._cell is not None:
             self._cell["text"] += data
 
@@ -146,9 +149,10 @@ def test_report_escapes_hostile_strings():
 
 def test_channel_table_matches_filterbank_json(page_text):
     """One row per channel with the filterbank JSON's center_hz, time_spread_s, cell_area and
-    chirp_hz_per_s (exact value in data-value) shown in the trade's terms: centre in Hz, window
-    σ_t in ms, super-resolution or smoothing factor, matched sweep in Hz/s; and the equivalent
-    reading text (DESIGN §8 channel fields)."""
+    chirp_hz_per_s (exact value in data-value) shown in the trade's terms: centre in Hz, the
+    Gaussian window's std s = √2·σ_t in ms (DESIGN §3: |h|² has time std σ_t), its FWHM
+    2√(2 ln 2)·s (common practice), super-resolution or smoothing factor, matched sweep in
+    Hz/s; and the equivalent reading text (DESIGN §8 channel fields)."""
     fb = filterbank_json(channels=7)
     page = Page(page_text)
     assert [r["channel"] for r in page.rows] == list(range(7))
@@ -157,7 +161,9 @@ def test_channel_table_matches_filterbank_json(page_text):
             assert float(row["cells"][field]["value"]) == channel[field]
         text = {f: row["cells"][f]["text"] for f in report.CHANNEL_FIELDS}
         assert float(text["center_hz"]) == pytest.approx(channel["center_hz"], rel=1e-4)
-        assert float(text["time_spread_s"]) == pytest.approx(1e3 * channel["time_spread_s"], rel=1e-2)
+        std_ms = 1e3 * np.sqrt(2.0) * channel["time_spread_s"]
+        assert float(text["time_spread_s"]) == pytest.approx(std_ms, rel=1e-2)
+        assert f"{2 * np.sqrt(2 * np.log(2)) * std_ms:.3g}" in row["text"]
         assert float(text["chirp_hz_per_s"].replace(",", "")) == \
             pytest.approx(channel["chirp_hz_per_s"], abs=0.5)
         area = channel["cell_area"]
@@ -181,11 +187,12 @@ def test_summary_shows_the_run_and_the_cautions(page_text):
         assert reason in visible
     assert "STA length 10 ms" in visible and "LTA length 200 ms" in visible
     assert "sta_s" not in visible and "lta_s" not in visible  # labels for people, not keys
-    assert "Evaluations" in visible and "Seed" in visible
+    assert "Evaluation budget" in visible and "Random seed" in visible
     assert "site-A.mseed" in visible and "XX.S01..HHZ" in visible
     assert "not a certified safety" in visible
     assert "licensed professionals" in visible
     assert "ab" * 32 in visible  # provenance: corpus hash
+    assert "Corpus fingerprint (SHA-256)" in visible
     assert "Not shown, no finite score (an invalid image): pseudo-Wigner–Ville." in visible
 
 
@@ -214,10 +221,18 @@ def test_example_windows_are_the_best_median_and_worst_gain():
 
 def test_examples_drawn_from_windows_with_the_project_transform():
     """Given windows, the report embeds the example-burst plot, computed with search.transform
-    for the learned filterbank and the best spectrogram (a = 1, β = 0 at the recorded σ_t); a
+    for the learned filterbank and the best spectrogram (a = 1, β = 0 at the recorded σ_t,
+    named by its window std √2·σ_t); each example is named by its SEED id and UTC start, never
+    by the file's server path, or by its offset in the trace when no start is recorded; a
     sampling rate that disagrees with the filterbank is refused naming both (project rule)."""
     fb = filterbank_json()
     diag = diagnostics()
+    diag["corpus"]["window_meta"] = [
+        {"file": "/srv/burstlens/blobs/ab/site-A.mseed", "trace_id": "XX.S01..HHZ",
+         "start": f"2026-03-17T02:00:{10 + k:02d}.250000Z", "offset_s": 10.25 + k,
+         "trigger_offset_s": 0.032} for k in range(5)] + [
+        {"file": "/srv/burstlens/blobs/ab/site-A.mseed", "trace_id": "XX.S01..HHZ",
+         "start": None, "offset_s": 40.5}]
     fs, n = fb["sampling_rate_hz"], fb["window_samples"]
     t = np.arange(n) / fs
     rng = np.random.default_rng(2)
@@ -226,9 +241,15 @@ def test_examples_drawn_from_windows_with_the_project_transform():
     page = Page(report.render_report(fb, diag, windows, fs))
     (example,) = [a for t, a in page.tags if t == "img" and "Example windows" in a.get("alt", "")]
     assert base64.b64decode(example["src"].split(",", 1)[1])[:8] == b"\x89PNG\r\n\x1a\n"
-    assert "best plain spectrogram" in example["alt"] and "4 ms" in example["alt"]
+    assert "best plain spectrogram" in example["alt"] and "window std 5.66 ms" in example["alt"]
     gains = np.array(diag["per_window"]["spectrogram"]) - np.array(diag["per_window"]["result"])
-    assert f"window {int(np.argmax(gains))}" in example["alt"].split(";")[0]
+    best = int(np.argmax(gains))
+    first = example["alt"].split(";")[0]
+    when = f"from 2026-03-17 02:00:{10 + best:02d}.250 UTC" if best < 5 else "40.500 s into the trace"
+    assert "XX.S01..HHZ" in first and when in first, first
+    caption = visible_text(report.render_report(fb, diag, windows, fs))
+    assert f"Row 1, sharpest gain ({gains[best]:+.2f} bits): XX.S01..HHZ {when}." in caption
+    assert "/srv/" not in caption and "STA/LTA trigger" in caption
     with pytest.raises(ValueError, match="1000 Hz.*2000 Hz"):
         report.report_plots(fb, diag, windows, 1000.0)
     with pytest.raises(ValueError, match="windows"):
@@ -325,8 +346,9 @@ def test_the_warnings_box_shows_each_warning_that_applies(change):
     expected = verdict.warnings(diag)
     assert len(expected) == 1
     box = text[text.index('<div class="warnings"'):text.index("<nav")]
-    assert visible_text(box) == visible_text('<div id="warnings">' + "Warnings "
-                                             + " ".join(f"<li>{w}</li>" for w in expected))
+    # option names are wrapped in a span (kept on one line): compare the text without tags
+    assert " ".join(html.unescape(re.sub(r"<[^>]+>", " ", re.sub(r"</?span[^>]*>", "", box))).split()) == \
+        " ".join(("Warnings " + " ".join(expected)).split())
     assert text.index(verdict.gain_words(diag)) < text.index('id="warnings"')
 
 
@@ -336,7 +358,7 @@ def test_summary_shows_negative_share_and_onset_timing():
     assert "negative share of the image 0.4 % (ceiling 1 %)" in visible
     assert "result 3.1 / 9 ms · spectrogram 3.4 / 10.2 ms (40 windows)" in visible
     assert "held-out objective of the result 9.1 [9, 9.3]" in visible
-    assert "windows held out / fitted / guard 53 / 158 / 2" in visible
+    assert "Windows held out / fitted / guard 53 / 158 / 2" in visible
     without_onset = judged_diagnostics(onset=None)
     assert "not measured (no trigger offsets)" in visible_text(
         report.render_report(filterbank_json(), without_onset, None, None))
@@ -445,3 +467,199 @@ def test_the_report_says_which_corpus_options_were_given():
     assert re.search(r"STA length\s*given\s*20 ms", details), details[:400]
     assert re.search(r"LTA length\s*400 ms \(20 × STA\)", details), details[:400]
     assert "sta_s" not in details and "'given'" not in details
+
+
+# A raw key: a snake_case identifier standing alone, not part of a dotted Python path such as
+# scipy.signal.resample_poly (common practice: PEP 8 spells variables and dict keys this way).
+RAW_KEY = re.compile(r"(?<![\w.])[a-z][a-z0-9]*(?:_[a-z0-9]+)+\b")
+
+
+def test_no_raw_key_in_the_visible_text():
+    """Every label, setting, table head and warning is said in words with units: no snake_case
+    key (window_samples, source_hash, sampling_rate_hz, band_hz, csv_sampling_rate_hz, …) is
+    left in the page's text, the folded settings and the warnings included."""
+    diag = judged_diagnostics(bounds_hit=["time_spread_s"], bounds_detail=[
+        {"setting": "time_spread_s", "bound": "lower", "value": 0.002, "channels": [0, 1]}])
+    diag["settings"].update(sampling_rate_hz=2000.0, band_hz=[60.0, 900.0],
+                            csv_sampling_rate_hz=None, time_spread_bounds_s=[0.002, 0.02],
+                            family_reference="geometric mean of band_hz", window_samples=256)
+    diag["corpus"]["rejections"] = [{"file": "site-A.mseed", "trace_id": "XX.S01..HHZ",
+                                     "offset_s": 3.5, "reason": "flat", "detail": "constant"}]
+    diag["corpus"]["traces"][0].update(start="2026-03-17T02:00:00.000000Z", duration_s=60.0,
+                                       sampling_rate_hz=2000.0)
+    visible = visible_text(report.render_report(filterbank_json(), diag, None, None))
+    assert RAW_KEY.findall(visible) == []
+    assert "Sampling rate declared for CSV files not set" in visible
+    assert re.search(r"Channel band (default )?60 Hz–900 Hz", visible)
+    assert "2026-03-17 02:00:00.000 UTC" in visible  # trace starts in UTC words
+
+
+def test_window_terms_agree_with_scipy_windows():
+    """A channel's window in the user's terms, checked on scipy.signal.windows themselves
+    (reference library): gaussian(length, std) has the std s = √2·σ_t in samples, and its
+    square's time std is σ_t·fs (DESIGN §3: |h|² has time std σ_t); the FWHM given is the one
+    measured on that window (2√(2 ln 2)·s, common practice) and the Hann length's own window,
+    hann(L, sym=False), is above half its peak over as many samples, to within one sample."""
+    from scipy.signal.windows import gaussian, hann
+
+    from burstlens.service.report.terms import window_terms
+
+    def fwhm_samples(w):
+        """Width at half the peak, each crossing placed by linear interpolation (samples)."""
+        half, above = w.max() / 2, np.flatnonzero(w >= w.max() / 2)
+        first, last = above[0], above[-1]
+        left = first - (w[first] - half) / (w[first] - w[first - 1])
+        right = last + (w[last] - half) / (w[last] - w[last + 1])
+        return float(right - left)
+
+    for sigma, fs in ((0.001, 4000.0), (0.0426667, 4000.0), (0.006, 2000.0), (0.02, 500.0)):
+        terms = window_terms(sigma, fs, 1024)
+        w = gaussian(terms.length, std=terms.std_samples)
+        n = np.arange(w.size) - (w.size - 1) / 2
+        power = w ** 2 / np.sum(w ** 2)
+        assert np.sqrt(np.sum(power * n ** 2)) == pytest.approx(sigma * fs, rel=1e-3)
+        assert terms.std_samples == pytest.approx(np.sqrt(2) * sigma * fs, rel=1e-12)
+        assert abs(fwhm_samples(w) - terms.fwhm_s * fs) <= 1.0
+        assert abs(fwhm_samples(hann(terms.hann, sym=False)) - terms.fwhm_s * fs) <= 1.0
+        assert terms.nfft >= terms.length and terms.hop >= 1
+    with pytest.raises(ValueError, match="time_spread_s"):
+        window_terms(0.0, 1000.0, 256)
+
+
+def test_the_shortfft_line_builds_the_best_spectrogram():
+    """The report's copyable line, run as it is, builds a scipy.signal.ShortTimeFFT whose window
+    is scipy's gaussian at the best spectrogram's std √2·σ_t·fs, and whose spectrogram of the
+    analytic signal, over 2‖h‖², equals the project's own plain spectrogram image
+    (search.spectrogram, the a = 1 identity of DESIGN §3) at the same bins and times."""
+    from scipy.signal import hilbert
+    from scipy.signal.windows import gaussian
+
+    from burstlens.search.spectrogram import spectrogram_images
+
+    text = report.render_report(filterbank_json(), judged_diagnostics(), None, None)
+    line = html.unescape(re.search(r'<pre id="stft-line"><code>(.*?)</code></pre>', text).group(1))
+    space = {}
+    exec(line, space)  # the line as a user copies it
+    sft = space["SFT"]
+    sigma, fs = 0.004, 2000.0
+    length = sft.win.size
+    assert np.allclose(sft.win, gaussian(length, std=np.sqrt(2) * sigma * fs), rtol=0, atol=1e-9)
+    assert sft.fs == fs
+    t = np.arange(256) / fs
+    x = np.exp(-0.5 * ((t - 0.06) / 0.01) ** 2) * np.cos(2 * np.pi * 300 * t)
+    z = hilbert(x)
+    ours, _ = next(spectrogram_images(z[None], fs, sigma, [60.0, 900.0]))
+    sft.fft_mode = "twosided"  # the line is for real traces; the identity is on the analytic one
+    theirs = sft.spectrogram(z, p0=0, p1=-(-(256 - sft.hop // 2) // sft.hop), k_offset=sft.hop // 2)
+    theirs = theirs / (2 * np.sum(sft.win ** 2))
+    freqs = np.arange(sft.mfft) * fs / sft.mfft
+    rows = np.flatnonzero((freqs >= 60.0) & (freqs <= 900.0))
+    assert np.allclose(theirs[rows], ours, rtol=1e-9, atol=1e-12 * ours.max())
+
+
+def test_the_page_says_which_settings_differ_from_the_defaults():
+    """Under the title, the settings that made the run where they differ from
+    search.settings.SETTINGS_DEFAULTS, each with its default; a run with the defaults says so.
+    For a service job the job's own settings are compared; for `burstlens tune` the resolved
+    ones."""
+    text = report.render_report(filterbank_json(), judged_diagnostics(), None, None)
+    note = visible_text(text[text.index('id="settings-used"'):text.index("</header>")])
+    assert "channels 5 (default 96)" in note  # the job asked for 5
+    fb = filterbank_json()
+    fb["job"]["settings"] = {"channels": 96, "seed": 0}
+    text = report.render_report(fb, judged_diagnostics(), None, None)
+    assert "Made with the default settings." in visible_text(text)
+    del fb["job"]
+    diag = judged_diagnostics()
+    diag["settings"] = {"channels": 96, "evaluations": 8, "seed": 0, "held_out": 0.25,
+                        "sampling_rate_hz": 2000.0, "band_hz": [30.0, 900.0]}
+    note = visible_text(report.render_report(fb, diag, None, None))
+    assert "evaluation budget 8 (default 24)" in note
+    assert "channel band 30 Hz–900 Hz (default fs/100 to 0.45·fs)" in note
+    assert "channels 96" not in note.split("Made with")[1].split(".")[0]
+
+
+def test_an_excluded_baseline_is_drawn_marked_with_its_reason():
+    """The pseudo-WVD, whose image is 46 % negative against a 1 % positivity ceiling (DESIGN
+    §4.3), is still drawn but marked excluded with that reason, in the entries, the alt text and
+    the caption; a baseline within the ceiling is not."""
+    from burstlens.service.report.figures import baseline_entries
+
+    diag = judged_diagnostics()
+    diag["baselines"]["pseudo_wvd"]["negative_share"] = 0.4583
+    diag["baselines"]["spectrogram"]["negative_share"] = 0.0
+    entries = {e["label"]: e for e in baseline_entries(diag)}
+    assert entries["pseudo-Wigner–Ville"]["excluded"] == \
+        "46 % of its mass is negative (at most 1 % allowed)"
+    assert entries["best plain spectrogram (own FFT grid) (window std 5.66 ms)"]["excluded"] is None
+    page = Page(report.render_report(filterbank_json(), diag, None, None))
+    (image,) = [a for t, a in page.tags if t == "img" and a.get("alt", "").startswith("Baselines")]
+    assert "pseudo-Wigner–Ville 8.9 [8.7, 9] (excluded: 46 % of its mass is negative" in image["alt"]
+    visible = " ".join(" ".join(page.text).split())
+    assert "excluded" in visible and "pseudo-Wigner–Ville: 46 % of its mass is negative" in visible
+
+
+@pytest.fixture(scope="module")
+def drift_answers(tmp_path_factory):
+    """Two real `burstlens check --json` answers (search.drift.check_drift) on a generated site
+    (tests/service/test_check_command.py's decaying tone bursts in red noise with a 50 Hz line),
+    tuned briefly: new files from the same site, and files whose bursts moved from 120 to
+    250 Hz; each with the id, UTC finish time and file names the service adds."""
+    from test_check_command import write_site
+
+    from burstlens.search import FilterbankSearch
+    from burstlens.search.corpus import read_corpus
+    from burstlens.search.documents import FilterbankDocument
+    from burstlens.search.drift import check_drift
+
+    folder = tmp_path_factory.mktemp("drift")
+    corpus = read_corpus([write_site(folder / "tuning.npz", seed=1, seconds=40.0)])
+    search = FilterbankSearch(channels=8, evaluations=4, refine=False, bootstrap=0, seed=0).fit(corpus)
+    document = FilterbankDocument.read(FilterbankDocument.of(search.filterbank_).to_json())
+    answers = []
+    for k, (seed, hz) in enumerate(((2, 120.0), (3, 250.0))):
+        name = f"week{k + 1}.npz"
+        new = read_corpus([write_site(folder / name, seed=seed, f_burst_hz=hz, seconds=30.0)],
+                          **{**document.reading_options(), "max_windows": 256})
+        answer = check_drift(document, new, search.diagnostics_, evaluations=2, resamples=200)
+        answers.append({**answer.to_json(), "id": f"check-{k}", "files": [name],
+                        "finished_at": 1773712800.0 + 7 * 86400 * k})  # 2026-03-17 02:00 UTC
+    return document.to_json(), search.diagnostics_, answers
+
+
+def test_drift_checks_are_listed_newest_first_in_words(drift_answers):
+    """The drift-check section shows one row per check, newest first: its UTC date, files,
+    the verdict in words (keep / re-tune), what moved (the check's own sentences) and the
+    filterbank's sharpness gain over the new data's best spectrogram with its interval, as the
+    answer's scorecard records it; without checks the section is absent."""
+    filterbank, diag, answers = drift_answers
+    assert [a["verdict"] for a in answers] == ["keep", "retune"]
+    text = report.render_report(filterbank, diag, None, None, checks=answers)
+    section = text[text.index('<section id="checks">'):]
+    section = section[:section.index("</section>")]
+    rows = re.findall(r"<tr data-check=\"([^\"]+)\">(.*?)</tr>", section)
+    assert [r[0] for r in rows] == ["check-1", "check-0"]
+    newest, oldest = (visible_text(r[1]) for r in rows)
+    assert newest.startswith("2026-03-24 02:00 UTC week2.npz re-tune")
+    assert oldest.startswith("2026-03-17 02:00 UTC week1.npz keep: the filterbank still serves")
+    for row, answer in ((newest, answers[1]), (oldest, answers[0])):
+        gain = answer["scorecard"]["rows"]["sharpness_bits"]["filterbank"]
+        assert row.endswith(f"{gain['estimate']:+.2f} bits [{gain['low']:+.2f}, {gain['high']:+.2f}]")
+    for moved in answers[1]["moved"]:
+        assert html.escape(moved["words"]) in section
+    assert "nothing moved" in oldest
+    assert 'href="#checks"' in text
+    for empty in (None, []):
+        assert 'id="checks"' not in report.render_report(filterbank, diag, None, None, checks=empty)
+
+
+def test_a_malformed_check_is_refused_naming_the_field(drift_answers):
+    """A check without a known verdict or a UTC finish time raises a ValueError naming the entry
+    and the field (project rule: clear errors)."""
+    filterbank, diag, answers = drift_answers
+    with pytest.raises(ValueError, match=r"checks\[1\]\['verdict'\]"):
+        report.render_report(filterbank, diag, None, None,
+                             checks=[answers[0], {**answers[1], "verdict": "maybe"}])
+    with pytest.raises(ValueError, match=r"checks\[0\]\['finished_at'\]"):
+        report.render_report(filterbank, diag, None, None,
+                             checks=[{**answers[0], "finished_at": "yesterday"}])

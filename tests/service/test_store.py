@@ -56,11 +56,11 @@ def test_reclaimed_job_rejects_the_old_owner(tmp_path):
     with pytest.raises(LeaseLost):
         store.record_progress(first, {"round": 9}, 1)
     with pytest.raises(LeaseLost):
-        store.finish(first, "succeeded")
+        store.finish(first, "done")
     assert store.heartbeat(second, 60.0) is False
-    store.finish(second, "succeeded")
+    store.finish(second, "done")
     job = store.get_job(job_id, "t")
-    assert job["state"] == "succeeded" and job["owner"] is None
+    assert job["state"] == "done" and job["owner"] is None
 
 
 def test_attempt_limit_fails_with_the_last_error(tmp_path):
@@ -73,7 +73,7 @@ def test_attempt_limit_fails_with_the_last_error(tmp_path):
         time.sleep(0.15)
     assert store.claim("w3", 0.1, 2) is None
     job = store.get_job(job_id, "t")
-    assert job["state"] == "failed"
+    assert job["state"] == "error"
     assert "2 attempts" in job["error"] and "w2" in job["error"]
 
 
@@ -81,12 +81,12 @@ def test_error_retries_then_fails(tmp_path):
     """An attempt that raised goes back to the queue with its error, until the limit (DESIGN §7)."""
     store, (job_id,) = _store_with_jobs(tmp_path, 1)
     job = store.claim("w", 60.0, 2)
-    assert store.retry_or_fail(job, "RuntimeError: boom 1", 2) == "queued"
+    assert store.retry_or_fail(job, "RuntimeError: boom 1", 2) == "waiting"
     assert store.get_job(job_id, "t")["error"] == "RuntimeError: boom 1"
     job = store.claim("w", 60.0, 2)
-    assert store.retry_or_fail(job, "RuntimeError: boom 2", 2) == "failed"
+    assert store.retry_or_fail(job, "RuntimeError: boom 2", 2) == "error"
     job = store.get_job(job_id, "t")
-    assert job["state"] == "failed" and job["error"].endswith("RuntimeError: boom 2")
+    assert job["state"] == "error" and job["error"].endswith("RuntimeError: boom 2")
 
 
 def test_release_returns_the_attempt(tmp_path):
@@ -95,7 +95,7 @@ def test_release_returns_the_attempt(tmp_path):
     job = store.claim("w", 60.0, 3)
     store.release(job)
     job = store.get_job(job_id, "t")
-    assert (job["state"], job["attempts"], job["owner"]) == ("queued", 0, None)
+    assert (job["state"], job["attempts"], job["owner"]) == ("waiting", 0, None)
 
 
 def test_cancel_queued_and_running(tmp_path):
@@ -104,9 +104,9 @@ def test_cancel_queued_and_running(tmp_path):
     store, (a, b) = _store_with_jobs(tmp_path, 2)
     running = store.claim("w", 60.0, 3)
     queued_id = b if running["id"] == a else a
-    assert store.cancel_job(queued_id, "t")["state"] == "cancelled"
-    flagged = store.cancel_job(running["id"], "t")
-    assert flagged["state"] == "running" and flagged["cancel_requested"]
+    assert store.withdraw_job(queued_id, "t")["state"] == "withdrawn"
+    flagged = store.withdraw_job(running["id"], "t")
+    assert flagged["state"] == "working" and flagged["withdraw_requested"]
     assert store.heartbeat(running, 60.0) is True
     assert store.claim("w2", 60.0, 3) is None  # the cancelled job is not claimable
 
@@ -117,7 +117,7 @@ def test_committed_job_is_visible_to_a_new_connection(tmp_path):
     "Write-Ahead Logging", "PRAGMA synchronous")."""
     store, (job_id,) = _store_with_jobs(tmp_path, 1)
     other = sqlite3.connect(store.db_path)
-    assert other.execute("SELECT state FROM jobs WHERE id = ?", (job_id,)).fetchone() == ("queued",)
+    assert other.execute("SELECT state FROM jobs WHERE id = ?", (job_id,)).fetchone() == ("waiting",)
     assert other.execute("PRAGMA journal_mode").fetchone() == ("wal",)
     assert store.connection().execute("PRAGMA synchronous").fetchone()[0] == 2  # FULL
     other.close()

@@ -116,3 +116,36 @@ def test_store_of_other_filterbank_exit_2(site, tmp_path, capsys):
     other.write_text(json.dumps(Filterbank.constant_q(center_grid((3.0, 40.0), 6), 5.0, FS).to_json()))
     assert main(["transform", "--continuous", wave, "--filterbank", str(other), "--out", out, "--quiet"]) == 2
     assert "another filterbank" in capsys.readouterr().err
+
+
+def test_cli_appends_a_day_and_refuses_an_overlap(site, tmp_path, capsys):
+    """Property: `transform --continuous NEXT --out EXISTING.zarr` with the file that continues
+    the stored trace exits 0, says the part continues the store, and extends time to the one-
+    pass transform of both files (read whole, ``search.transform.transform``, 1e-5 of the peak
+    away from the ends); the same file again overlaps what is stored: exit 2 naming the SEED id."""
+    import zarr
+
+    fb, fb_path, wave = site
+    first = obspy.read(wave)[0]
+    rng = np.random.default_rng(1)
+    nxt = obspy.Trace(rng.standard_normal(15_000).astype(np.float32),
+                      header={"network": "XX", "station": "A", "channel": "HHZ", "sampling_rate": FS,
+                              "starttime": first.stats.endtime + 1 / FS})
+    later = str(tmp_path / "b.mseed")
+    nxt.write(later, format="MSEED")
+    out = str(tmp_path / "o.zarr")
+    assert main(["transform", "--continuous", wave, "--filterbank", fb_path, "--out", out, "--quiet"]) == 0
+    capsys.readouterr()
+    assert main(["transform", "--continuous", later, "--filterbank", fb_path, "--out", out, "--quiet"]) == 0
+    assert "1 continuing the store" in capsys.readouterr().out
+    part = zarr.open_group(out, mode="r")["XX.A..HHZ/20240502T120000.000000Z"]
+    step = part.attrs["time_step"]["samples"]
+    ref = transform(read_corpus([wave, later], windowing="whole", sampling_rate_hz=FS).windows[0], fb,
+                    dtype=np.float64)[:, ::step]
+    image = part["image"][:].T
+    o = -(-overlap_samples(fb) // step)
+    assert image.shape == ref.shape and part.attrs["complete_until"] == ref.shape[1]
+    assert np.abs(image[:, o:-o] - ref[:, o:-o]).max() / np.abs(ref).max() < 1e-5
+    assert main(["transform", "--continuous", later, "--filterbank", fb_path, "--out", out, "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert "XX.A..HHZ" in err and "overlaps" in err

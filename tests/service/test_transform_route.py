@@ -34,7 +34,7 @@ def tuned(tmp_path_factory):
                                                   "settings": QUICK}).json()["id"]
         Worker(settings).run(exit_when_idle=True)
         for job_id in (by_job, by_upload):
-            assert client.get(f"/v1/jobs/{job_id}").json()["state"] == "succeeded"
+            assert client.get(f"/v1/jobs/{job_id}").json()["state"] == "done"
         yield client, by_job, by_upload
 
 
@@ -244,7 +244,7 @@ def test_a_full_disk_is_507_and_leaves_nothing(tuned, monkeypatch):
     _disk_fills_on_second_chunk(monkeypatch)
     response = client.post("/v1/transform", data={"job_id": by_job}, files=corpus_files(1, seed=5))
     assert response.status_code == 507
-    assert "disk is full" in response.json()["error"]["message"]
+    assert "disk is full" in response.json()["detail"]
     assert list(client.app.state.store.tmp_dir.iterdir()) == []
 
 

@@ -11,9 +11,17 @@ import pytest
 from burstlens.service import verdict
 
 
+CENTRES = [40.0, 52.0, 70.0, 95.0, 130.0, 180.0, 250.0, 340.0, 460.0, 620.0, 840.0, 1150.0,
+           1550.0, 1800.0]
+
+
 def clean(channels=3):
-    """A judged run with nothing to warn about."""
+    """A judged run with nothing to warn about, its channel centres in the refinement's
+    per-channel record (as the search keeps it for every channel)."""
     return {
+        "refinement": [{"channel": c, "center_hz": f, "status": "disabled"}
+                       for c, f in enumerate(CENTRES)],
+        "settings": {"sampling_rate_hz": 4000.0},
         "stop_reason": "budget", "fallback": None, "gain_bits": 0.42,
         "result": {"objective": 11.2, "low": 11.1, "high": 11.3},
         "judgement": {
@@ -62,14 +70,32 @@ def test_a_clean_run_has_no_warning():
 
 
 def test_warns_when_a_parameter_sits_on_a_search_bound():
-    """bounds_detail read in words: the setting, which bound, its value and the channels."""
+    """bounds_detail read in words: the parameter, which bound, its value with units and the
+    channels as a frequency range in Hz, never indices or raw keys."""
     diag = clean()
     diag["judgement"]["bounds_hit"] = ["cell_area"]
     diag["judgement"]["bounds_detail"] = [{"setting": "cell_area", "bound": "lower", "value": 0.25,
                                            "channels": [0, 1, 2]}]
     (warning,) = verdict.warnings(diag)
-    assert "cell_area sits on its lower search bound (0.25) in channels 0, 1, 2" in warning
-    assert "widen cell_area" in warning
+    assert ("The result's cell area sits on the smallest value searched (0.25) in the 3 "
+            "channels from 40 to 70 Hz") in warning
+    assert "widen the cell-area range (--cell-area)" in warning
+    assert "cell_area" not in warning
+
+
+def test_a_window_on_its_bound_is_said_as_a_window_in_ms_and_samples():
+    """The time spread σ_t on its bound (the 0.0426667 s a search records) is said as the
+    Gaussian window's std √2·σ_t, rounded, in ms and samples (DESIGN §3: |h|² has time std
+    σ_t), in all channels by their band; no raw key, no raw float."""
+    diag = clean()
+    diag["judgement"]["bounds_hit"] = ["time_spread_s"]
+    diag["judgement"]["bounds_detail"] = [{"setting": "time_spread_s", "bound": "upper",
+                                           "value": 0.042666666666666665,
+                                           "channels": list(range(len(CENTRES)))}]
+    (warning,) = verdict.warnings(diag)
+    assert ("The result's window length sits on the largest value searched (Gaussian window "
+            "std 60.3 ms, 241 samples) in all 14 channels (40–1800 Hz)") in warning
+    assert "time_spread_s" not in warning and "0.0426" not in warning
 
 
 def test_the_grid_cap_is_said_in_words():
@@ -79,15 +105,15 @@ def test_the_grid_cap_is_said_in_words():
     diag["judgement"]["bounds_detail"] = [{"setting": "channels", "value": None, "channels": [4],
                                            "bound": "grid spacing caps time_spread_s"}]
     (warning,) = verdict.warnings(diag)
-    assert "The channel spacing caps the time spread in channel 4" in warning
-    assert "more channels" in warning
+    assert "The channel spacing caps the window length in the channel at 130 Hz" in warning
+    assert "more channels (--channels)" in warning
 
 
 def test_a_bound_named_without_detail_still_warns():
     diag = clean()
     diag["judgement"]["bounds_hit"] = ["chirp_hz_per_s"]
     (warning,) = verdict.warnings(diag)
-    assert warning.startswith("The result's chirp_hz_per_s sits on a search bound:")
+    assert warning.startswith("The result's matched sweep rate sits on a search bound:")
 
 
 @pytest.mark.parametrize("overall, warned", [(0.004, False), (0.005, False), (0.0051, True),
@@ -99,7 +125,8 @@ def test_warns_when_the_negative_share_is_above_half_a_percent(overall, warned):
     found = verdict.warnings(diag)
     assert bool(found) is warned
     if warned:
-        assert "negative" in found[0] and "channel 1: 4.0 %" in found[0]
+        assert "negative" in found[0] and "the channel at 52 Hz: 4.0 %" in found[0]
+        assert f"{100 * overall:.2g} % of the image" in found[0]  # 0.51 %, not a rounded 0.5 %
 
 
 def test_warns_on_the_spectrogram_fallback():
@@ -152,12 +179,18 @@ def test_a_cancelled_run_without_judgement_still_warns():
     assert verdict.lines(diag)[1].startswith("warning: The search was cancelled")
 
 
-def test_long_channel_lists_are_shortened():
+def test_scattered_channels_are_said_as_frequency_ranges():
+    """Channels are grouped into runs of neighbours and said as ranges in Hz, at most four,
+    the rest counted; without recorded centres they are only counted, never listed by index."""
     diag = clean()
     diag["judgement"]["bounds_detail"] = [{"setting": "chirp_hz_per_s", "bound": "upper",
-                                           "value": None, "channels": list(range(20))}]
+                                           "value": 5000.0, "channels": [0, 1, 4, 6, 7, 9, 11, 13]}]
     (warning,) = verdict.warnings(diag)
-    assert "channels 0, 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11 and 8 more" in warning
+    assert ("largest value searched (+5,000 Hz/s) in 8 of 14 channels: 40–52 Hz, 130 Hz, "
+            "250–340 Hz, 620 Hz and 2 more ranges") in warning
+    del diag["refinement"]
+    (warning,) = verdict.warnings(diag)
+    assert "in 8 channels:" in warning and "13" not in warning
 
 
 def test_every_cli_printout_starts_with_the_verdict():
@@ -185,7 +218,8 @@ def test_warns_when_the_result_stopped_at_the_positivity_ceiling():
     diag["judgement"]["bounds_detail"] = [{"setting": "max_negative_share", "bound": "upper",
                                            "value": 0.01, "channels": []}]
     (warning,) = verdict.warnings(diag)
-    assert "positivity ceiling of 1 %" in warning and "raising max_negative_share" in warning
+    assert "positivity ceiling of 1 %" in warning
+    assert "raising the negative share allowed (--max-negative-share)" in warning
 
 
 @pytest.mark.parametrize("estimate, high, warned, surely", [

@@ -110,15 +110,31 @@ def test_block_holds_at_least_one_record(tmp_path, monkeypatch):
     assert len(list(iter_waveform_chunks(str(path), "MSEED"))) == math.ceil(n_records / 4)
 
 
-def test_size_not_a_multiple_of_record_length_reads_whole(tmp_path):
-    """A file cut mid-record is not a whole number of records (SEED Reference Manual v2.4 ch. 8), so
-    it is read whole: one list, equal to read_waveform_file's."""
+def test_file_cut_inside_its_last_record_streams_then_fails_at_that_record(tmp_path):
+    """A file cut 200 bytes before its end is not a whole number of records (SEED Reference Manual
+    v2.4, IRIS/FDSN 2012, ch. 8: a record is 2^e bytes, e from blockette 1000), so its last record
+    is cut short. It still streams block by block (no whole-file load): the blocks before it equal
+    ObsPy's decoding of the same records, and the last block is a CorpusError naming the file and
+    the cut record's byte offset."""
     path = tmp_path / "cut.mseed"
     _interleaved_file(path, "STEIM2", 512, n=50_000)
-    path.write_bytes(path.read_bytes()[:-200])
-    chunks = list(iter_waveform_chunks(str(path), "MSEED", chunk_bytes=4096))
-    assert len(chunks) == 1
-    _assert_same_traces(chunks[0], read_waveform_file(str(path), "MSEED"))
+    whole = path.read_bytes()
+    size = len(whole) - 200
+    path.write_bytes(whole[:size])
+    last_record = size // 512 * 512
+    gen = iter_waveform_chunks(str(path), "MSEED", chunk_bytes=4096)
+    yielded = []
+    with pytest.raises(CorpusError) as err:
+        for chunk in gen:
+            yielded.append(chunk)
+    assert len(yielded) == last_record // 4096
+    assert str(path) in str(err.value) and f"record at byte {last_record} is cut short" in str(err.value)
+    intact = tmp_path / "intact.mseed"
+    intact.write_bytes(whole[: len(yielded) * 4096])
+    want = read_waveform_file(str(intact), "MSEED")
+    for t in want:
+        t.file = str(path)  # the same records, read from the cut file
+    _assert_same_traces(join_contiguous([t for c in yielded for t in c]), join_contiguous(want), ordered=False)
 
 
 def test_mixed_record_lengths_read_whole(tmp_path):

@@ -283,13 +283,15 @@ def test_unknown_format_names_the_file(tmp_path):
 
 
 def test_unreadable_file_names_the_file_and_cause(tmp_path):
-    """A truncated miniSEED file (valid header, missing data) is an error naming the file and the
-    reader's complaint; a missing path is named too."""
+    """A truncated miniSEED file (valid header, missing data) is an error naming the file, the cut
+    record's byte offset and the cause (its blockette 1000 declares more bytes than remain; SEED
+    Reference Manual v2.4, IRIS/FDSN 2012, ch. 8); a missing path is named too."""
     fs = 4000.0
     good = _write_mseed(tmp_path / "r.mseed", _burst_record(fs, 28.0, ONSETS), fs)
     bad = tmp_path / "cut.mseed"
     bad.write_bytes(good.read_bytes()[:300])
-    with pytest.raises(CorpusError, match=rf"{bad}: not a readable MSEED file"):
+    with pytest.raises(CorpusError, match=rf"{bad}: miniSEED record at byte 0 is cut short: its blockette 1000 "
+                                          r"declares 4096 bytes, 300 remain"):
         read_corpus(bad)
     with pytest.raises(CorpusError, match=r"nowhere\.mseed: no such file or folder"):
         read_corpus(tmp_path / "nowhere.mseed")
