@@ -117,8 +117,8 @@ def test_backup_during_a_live_server_restores_every_job_and_result(live_server, 
         assert "holds its store open" in refused.stderr
         assert client.health() and not list(data.parent.glob("data.before-restore-*"))
 
+        # (the jobs in flight may end meanwhile: the backup holds them as they were, checked below)
         ended = {j: client.job(j) for j in (search, transform)}
-        assert client.job(flying[0])["state"] == "working"
         live_filterbank = client.filterbank(search)
         final = {j: client.wait(j) for j in flying}
         assert {j["state"] for j in final.values()} == {"done"}
