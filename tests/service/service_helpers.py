@@ -40,6 +40,27 @@ def burst_npz(seed: int = 0, fs: float = 1000.0, seconds: float = 12.0, bursts: 
     return buffer.getvalue()
 
 
+def drift_site_trace(seed: int, f_burst_hz: float = 120.0, seconds: float = 60.0,
+                     fs: float = 1000.0) -> np.ndarray:
+    """One trace of the generated site the drift checks use: decaying bursts
+    x = A·exp(−t/τ)·sin(2πft), τ = 30 ms, every ~1.2 s, in AR(1) red noise with a steady 50 Hz
+    line."""
+    from scipy.signal import lfilter
+
+    rng = np.random.default_rng(seed)
+    n = int(fs * seconds)
+    t = np.arange(n) / fs
+    x = lfilter([1.0], [1.0, -0.95], 0.02 * rng.standard_normal(n))
+    x += 0.2 * np.sin(2 * np.pi * 50.0 * t + rng.uniform(0, 2 * np.pi))
+    onsets = np.arange(1.0, seconds - 1.0, 1.2)
+    for t0 in onsets + rng.uniform(-0.2, 0.2, onsets.size):
+        i = int(t0 * fs)
+        tau = np.arange(min(n - i, 300)) / fs
+        f = f_burst_hz * rng.uniform(0.9, 1.1)
+        x[i:i + tau.size] += rng.uniform(2.0, 4.0) * np.exp(-tau / 0.03) * np.sin(2 * np.pi * f * tau)
+    return x
+
+
 def corpus_files(count: int = 2, seed: int = 0, **kwargs) -> list:
     """Multipart ``files`` entries for httpx / TestClient."""
     return [("files", (f"trace{i}.npz", burst_npz(seed + i, **kwargs), "application/octet-stream"))

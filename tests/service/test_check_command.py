@@ -9,7 +9,7 @@ import json
 
 import numpy as np
 import pytest
-from scipy.signal import lfilter
+from service_helpers import drift_site_trace
 
 from burstlens.service.cli import main
 
@@ -17,20 +17,9 @@ FS = 1000.0
 
 
 def write_site(path, seed: int, f_burst_hz: float = 120.0, seconds: float = 60.0) -> str:
-    """One generated trace as .npz: decaying bursts x = A·exp(−t/τ)·sin(2πft), τ = 30 ms, every
-    ~1.2 s in AR(1) red noise with a steady 50 Hz line."""
-    rng = np.random.default_rng(seed)
-    n = int(FS * seconds)
-    t = np.arange(n) / FS
-    x = lfilter([1.0], [1.0, -0.95], 0.02 * rng.standard_normal(n))
-    x += 0.2 * np.sin(2 * np.pi * 50.0 * t + rng.uniform(0, 2 * np.pi))
-    onsets = np.arange(1.0, seconds - 1.0, 1.2)
-    for t0 in onsets + rng.uniform(-0.2, 0.2, onsets.size):
-        i = int(t0 * FS)
-        tau = np.arange(min(n - i, 300)) / FS
-        f = f_burst_hz * rng.uniform(0.9, 1.1)
-        x[i:i + tau.size] += rng.uniform(2.0, 4.0) * np.exp(-tau / 0.03) * np.sin(2 * np.pi * f * tau)
-    np.savez(path, data=x, sampling_rate_hz=np.float64(FS))
+    """One generated trace of the drift site (service_helpers.drift_site_trace) as .npz."""
+    np.savez(path, data=drift_site_trace(seed, f_burst_hz, seconds, FS),
+             sampling_rate_hz=np.float64(FS))
     return str(path)
 
 

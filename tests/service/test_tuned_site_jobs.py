@@ -1,12 +1,13 @@
 """Checks and continuous transforms over HTTP: `POST /v1/jobs/{id}/checks` and
 `POST /v1/jobs/{id}/transforms`, run by the job worker (service/tuned_site.py).
 
-The site is made up here, as in tests/service/test_check_command.py: decaying tone bursts in red
-noise with a steady 50 Hz line. A search is tuned once over the API; the properties checked are
-the API's contract (kinds, parents, states, results) and that the worker's answers are the
-library's own: a check's answer is `search.drift.check_drift`'s verdict, and a transform's store
-holds the same arrays as `search.continuous.transform_continuous` run locally (itself tested
-against the one-pass transform in tests/search/test_continuous.py).
+The site is generated (`service_helpers.drift_site_trace`, as for tests/service/
+test_check_command.py): decaying tone bursts in red noise with a steady 50 Hz line. A search is
+tuned once over the API; the properties checked are the API's contract (kinds, parents, states,
+results) and that the worker's answers are the library's own: a check's answer is
+`search.drift.check_drift`'s verdict, and a transform's store holds the same arrays as
+`search.continuous.transform_continuous` run locally (itself tested against the one-pass
+transform in tests/search/test_continuous.py).
 """
 from __future__ import annotations
 
@@ -17,8 +18,7 @@ import numpy as np
 import obspy
 import pytest
 from fastapi.testclient import TestClient
-from scipy.signal import lfilter
-from service_helpers import settings_for
+from service_helpers import drift_site_trace, settings_for
 
 from burstlens.service.app import create_app
 from burstlens.service.worker import Worker
@@ -26,23 +26,6 @@ from burstlens.service.worker import Worker
 FS = 1000.0
 START = obspy.UTCDateTime(2026, 3, 9, 6, 0, 0)
 SEARCH = {"channels": 16, "evaluations": 16, "refine": False, "bootstrap": 0, "seed": 1}
-
-
-def site_trace(seed: int, f_burst_hz: float = 120.0, seconds: float = 60.0) -> np.ndarray:
-    """Decaying bursts A·exp(−t/τ)·sin(2πft), τ = 30 ms, every ~1.2 s, in AR(1) red noise with
-    a steady 50 Hz line."""
-    rng = np.random.default_rng(seed)
-    n = int(FS * seconds)
-    t = np.arange(n) / FS
-    x = lfilter([1.0], [1.0, -0.95], 0.02 * rng.standard_normal(n))
-    x += 0.2 * np.sin(2 * np.pi * 50.0 * t + rng.uniform(0, 2 * np.pi))
-    onsets = np.arange(1.0, seconds - 1.0, 1.2)
-    for t0 in onsets + rng.uniform(-0.2, 0.2, onsets.size):
-        i = int(t0 * FS)
-        tau = np.arange(min(n - i, 300)) / FS
-        f = f_burst_hz * rng.uniform(0.9, 1.1)
-        x[i:i + tau.size] += rng.uniform(2.0, 4.0) * np.exp(-tau / 0.03) * np.sin(2 * np.pi * f * tau)
-    return x
 
 
 def npz_file(name: str, x: np.ndarray) -> tuple:
@@ -66,7 +49,7 @@ def site(tmp_path_factory):
     data = tmp_path_factory.mktemp("site") / "data"
     settings = settings_for(data)
     client = TestClient(create_app(settings), raise_server_exceptions=False)
-    corpus = client.post("/v1/corpora", files=[npz_file("tuning.npz", site_trace(1))]).json()
+    corpus = client.post("/v1/corpora", files=[npz_file("tuning.npz", drift_site_trace(1))]).json()
     search = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": SEARCH}).json()
     worker = Worker(settings)
     worker.run(exit_when_idle=True)
@@ -99,7 +82,7 @@ def test_check_over_http_keeps_then_retunes_with_a_gauge_per_search(site):
     first, and the Prometheus gauge follows the latest check (text exposition format, common
     practice)."""
     client, worker, search_id, _ = site
-    keep = run_check(client, worker, search_id, site_trace(2))
+    keep = run_check(client, worker, search_id, drift_site_trace(2))
     assert keep["state"] == "done", keep
     assert keep["summary"]["verdict"] == "keep" and keep["summary"]["files"] == ["week-2.npz"]
     answer = client.get(f"/v1/jobs/{keep['id']}/check").json()
@@ -108,7 +91,7 @@ def test_check_over_http_keeps_then_retunes_with_a_gauge_per_search(site):
     metrics = client.get("/metrics").text
     assert f'burstlens_check_keep{{job="{search_id}",check="{keep["id"]}"}} 1' in metrics
 
-    moved = run_check(client, worker, search_id, site_trace(3, f_burst_hz=250.0))
+    moved = run_check(client, worker, search_id, drift_site_trace(3, f_burst_hz=250.0))
     assert moved["summary"]["verdict"] == "retune"
     assert "dominant_frequency" in moved["summary"]["moved"]
     listed = client.get(f"/v1/jobs/{search_id}/checks").json()["jobs"]
@@ -125,7 +108,7 @@ def test_site_jobs_need_a_search_that_is_done(site):
     id is a 404, a check as parent a 409, a check's results are refused at a search's routes
     and the reverse (409), each a problem document (RFC 9457)."""
     client, worker, search_id, _ = site
-    corpus_id = upload(client, npz_file("more.npz", site_trace(4, seconds=20.0)))
+    corpus_id = upload(client, npz_file("more.npz", drift_site_trace(4, seconds=20.0)))
     assert client.post("/v1/jobs/nope/checks", json={"corpus_id": corpus_id}).status_code == 404
     check = client.post(f"/v1/jobs/{search_id}/checks", json={"corpus_id": corpus_id}).json()
     response = client.post(f"/v1/jobs/{check['id']}/transforms", json={"corpus_id": corpus_id})
@@ -148,7 +131,7 @@ def test_transform_job_resumes_and_serves_the_local_store(site, tmp_path):
     from burstlens.search.documents import FilterbankDocument
 
     client, worker, search_id, data = site
-    raw = mseed_bytes(site_trace(5, seconds=400.0))
+    raw = mseed_bytes(drift_site_trace(5, seconds=400.0))
     corpus_id = upload(client, ("files", ("KEEL.mseed", raw, "application/octet-stream")))
     job = client.post(f"/v1/jobs/{search_id}/transforms",
                       json={"corpus_id": corpus_id, "time_step_s": 0.004}).json()
