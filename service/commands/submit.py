@@ -80,6 +80,7 @@ def follow(client, job_id: str, *, stream=None) -> dict:
         job = client.wait(job_id, on_progress=show, poll_s=1.0)
         if job["state"] == "done":
             bar.n = 1000
+            bar.set_postfix_str("done" + words.fit_best_words(), refresh=False)
             bar.refresh()
         return job
     finally:

@@ -73,24 +73,25 @@ class ProgressWords:
     def during(self, msg: dict) -> str:
         """Words for one progress message of ``FilterbankSearch.fit``."""
         if msg["stage"] == "judge":
-            return "judging on the held-out windows" + self._fit_best()
+            return "judging on the held-out windows" + self.fit_best_words()
         best = msg.get("best_objective")
         if best is not None:
             self.fit_best = best
         return (f"{msg['stage']} round {msg['round']}, {msg['evaluations']} of "
-                f"{msg['budget']} evaluations" + self._fit_best())
+                f"{msg['budget']} evaluations" + self.fit_best_words())
 
     def after(self, diagnostics: dict) -> str:
         """Words once the fit has returned: the fit's best and the judgement, named apart."""
         judged = diagnostics.get("judgement") or {}
         result = (judged.get("result") or {}).get("objective")
         if result is None:
-            return f"stopped ({diagnostics.get('stop_reason')}), not judged" + self._fit_best()
+            return f"stopped ({diagnostics.get('stop_reason')}), not judged" + self.fit_best_words()
         where = ("on the fit windows (none held out)" if judged.get("in_sample")
                  else f"on {judged.get('held_out_windows')} held-out windows")
-        return f"done{self._fit_best()}; judged {result:.4f} bits {where}"
+        return f"done{self.fit_best_words()}; judged {result:.4f} bits {where}"
 
-    def _fit_best(self) -> str:
+    def fit_best_words(self) -> str:
+        """"; fit best X bits", or nothing before the fit has a best."""
         return "" if self.fit_best is None else f"; fit best {self.fit_best:.4f} bits"
 
 
