@@ -91,7 +91,7 @@ class ProgressWords:
         return f"done{self.fit_best_words()}; judged {result:.4f} bits {where}"
 
     def fit_best_words(self) -> str:
-        """"; fit best X bits", or nothing before the fit has a best."""
+        """The words "; fit best X bits", or nothing before the fit has a best."""
         return "" if self.fit_best is None else f"; fit best {self.fit_best:.4f} bits"
 
 
