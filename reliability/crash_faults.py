@@ -343,7 +343,7 @@ def run(faults: int = 100, corruptions: int = len(CORRUPTIONS), seed: int = 2026
             f"COMMIT landed: {moments}; {lanes} uninterrupted references identical: "
             f"{'yes' if reproducible else 'NO'}; jobs leaving checkpoint files: "
             f"{tally.leftover_jobs}",
-            f"{tally.identical}/{faults} succeeded with the identical filterbank ({elapsed:.0f} s)",
+            f"{tally.identical}/{faults} done with the identical filterbank ({elapsed:.0f} s)",
             f"{faults}/{faults} identical, no checkpoint file left, a COMMIT killed after its WAL "
             "frames were written",
             tally.identical == faults and tally.fired == faults and reproducible

@@ -6,11 +6,11 @@ acknowledged only after COMMIT; so when the disk fills, new uploads are refused 
 half-writing, and nothing acknowledged before is lost or damaged.
 
 Method (needs root): a tmpfs of a few MB (``mount -t tmpfs -o size=4m``) holds the data dir of a
-``serve --workers 1``. Before the disk fills: one corpus and one succeeded job are acknowledged
+``serve --workers 1``. Before the disk fills: one corpus and one done job are acknowledged
 (their file digests and filterbank kept), and a long job is running. Then a filler file takes
 every free byte. While full: uploads, an upload over the body limit, a job submission and reads of
 the acknowledged resources; the running job must end ``failed`` with a reason. After the filler is
-removed: the acknowledged corpus files are byte-identical, the succeeded job's filterbank is
+removed: the acknowledged corpus files are byte-identical, the done job's filterbank is
 identical, ``PRAGMA integrity_check`` is ok and a new upload succeeds. The tmpfs is unmounted at
 the end. If ``mount`` is refused the experiment is skipped with the reason.
 """

@@ -11,7 +11,7 @@ in threads and, at a seeded moment, SIGKILLs the server — in even cycles toget
 processes, in odd cycles alone (its workers are orphaned and must stop by themselves). The store
 gets ``PRAGMA integrity_check`` while nothing runs, the server is started again on the same data
 dir, and every submission whose answer was lost is retried with its key, as a client would. At the
-end every job must have succeeded exactly once: lost = an acknowledged key with no job or a job
+end every job must be done exactly once: lost = an acknowledged key with no job or a job
 that did not succeed; duplicated = a key with more than one job, or an acknowledged id that is not
 the key's job. All results must be identical (same corpus and settings), and nothing may be left
 orphaned in the data dir.
@@ -159,7 +159,7 @@ def run(cycles: int = 2, batch: int = 3, burst: int = 3, seed: int = 20261202,
             reference = reference or text
             different += text != reference
         if different:
-            details.append(f"{different} succeeded jobs differ from the first one's filterbank")
+            details.append(f"{different} done jobs differ from the first one's filterbank")
         attempts = Counter(j["attempts"] for j in jobs)
         integrity.append(integrity_check(data))
         client.close()

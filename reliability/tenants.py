@@ -8,7 +8,7 @@ tenant.
 
 Method: tokens are made with ``burstlens tokens add`` (alice, bob, and a second token of alice's
 that is revoked with ``burstlens tokens revoke`` while the server runs, after it was shown to
-work). Alice uploads a corpus under a distinctive file name and has a succeeded, a running and a
+work). Alice uploads a corpus under a distinctive file name and has a done, a working and a
 queued job. Then every route of ``/openapi.json`` (plus the HTML pages) is called with alice's ids
 by bob, with no token, a wrong token, alice's revoked token, a non-Bearer scheme and an empty
 Bearer. A leak is any answer that lets the caller past the check (bob: anything but 404 on
