@@ -46,7 +46,7 @@ def by_hand(windows: np.ndarray, fs: float, n_windows_grid: int = 24) -> dict:
     criterion = Criterion("renyi", alpha=3.0)
     results = []
     for sigma in np.geomspace(4.0 / fs, n / fs / 6.0, n_windows_grid):
-        std = sigma * fs * math.sqrt(2.0)          # |h|² has time std σ_t (DESIGN §3)
+        std = sigma * fs * math.sqrt(2.0)          # |h|² has time std σ_t (docs/design.md §3)
         half = int(math.ceil(4.0 * std))
         win = gaussian(2 * half + 1, std)
         mfft = 1 << int(math.ceil(math.log2(len(win))))

@@ -1,4 +1,4 @@
-"""Reliability and security campaign: each promise of DESIGN §7 turned into a bounded experiment.
+"""Reliability and security campaign: each promise of docs/design.md §7 turned into a bounded experiment.
 
 ``python -m reliability.run`` (``make reliability``) starts real ``burstlens serve`` processes on
 127.0.0.1 with ephemeral ports and temporary data dirs, runs every experiment with bounded counts

@@ -1,6 +1,6 @@
 """Experiment 4 — bad input: generated cases against the readers, the JSON API and the uploads.
 
-Promise (DESIGN §6, §7): bad input gets a clear error naming the file or field and the cause,
+Promise (docs/design.md §6, §7): bad input gets a clear error naming the file or field and the cause,
 never a 5xx; nothing half-ingested is kept; ``.npy``/``.npz`` are never unpickled.
 
 Five parts, each seeded and bounded, at least 10^5 cases in a full run:

@@ -1,6 +1,6 @@
 """Experiment 1 — crash faults: kill -9 a worker at seeded moments of a running job.
 
-Promise (DESIGN §5, §7): an expired lease is reclaimed and the job resumes from its last
+Promise (docs/design.md §5, §7): an expired lease is reclaimed and the job resumes from its last
 checkpoint; a resumed job ends with the same filterbank as an uninterrupted one; a torn or corrupt
 checkpoint is detected and the job falls back to an earlier one or restarts clean, never resumes
 from garbage.
@@ -194,7 +194,7 @@ class _Tally:
 
 def _exhaust(campaign: _Campaign) -> dict:
     """Kill every attempt of one job: past the attempt limit it must end ``failed`` with its
-    last error kept (DESIGN §7)."""
+    last error kept (docs/design.md §7)."""
     job_id = campaign.submit()
     for _ in range(MAX_ATTEMPTS):
         # right after each attempt's first round: a resumed attempt has fewer rounds left

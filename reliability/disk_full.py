@@ -1,6 +1,6 @@
 """Experiment 3 — disk trouble: the data dir on a small filesystem that fills up.
 
-Promise (DESIGN §7): blobs are written to a temp file, fsynced and renamed, and a job is
+Promise (docs/design.md §7): blobs are written to a temp file, fsynced and renamed, and a job is
 acknowledged only after COMMIT; so when the disk fills, new uploads are refused with a clear
 507 (or 413 past the body limit), a running job fails with a reason instead of hanging or
 half-writing, and nothing acknowledged before is lost or damaged.

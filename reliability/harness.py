@@ -107,7 +107,7 @@ class Workers:
         return proc
 
     def stop(self, proc: subprocess.Popen, timeout: float = 60.0) -> int:
-        """SIGTERM (the graceful stop of DESIGN §7), SIGKILL if it does not end in ``timeout``."""
+        """SIGTERM (the graceful stop of docs/design.md §7), SIGKILL if it does not end in ``timeout``."""
         if proc.poll() is None:
             proc.send_signal(signal.SIGTERM)
             try:

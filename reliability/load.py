@@ -1,6 +1,6 @@
 """Experiment 6 — load: many tenants submit jobs while many clients poll, against 2 workers.
 
-Promise (DESIGN §7): the queue is light and the compute is heavy — one host with the API, the
+Promise (docs/design.md §7): the queue is light and the compute is heavy — one host with the API, the
 store and two workers finishes every job while clients poll, answers status quickly, limits
 waiting jobs per tenant with a 429 that says so (the limit is ``max_queued_jobs``), and never
 makes a request or a worker wait out a locked store.

@@ -1,6 +1,6 @@
 """Experiment 2 — restarts: kill -9 the whole server with queued, running and in-flight jobs.
 
-Promise (DESIGN §7): a job is acknowledged only after COMMIT (WAL, ``synchronous=FULL``); an
+Promise (docs/design.md §7): a job is acknowledged only after COMMIT (WAL, ``synchronous=FULL``); an
 expired lease is reclaimed and the job resumes; the same Idempotency-Key and body give the same
 job (IETF draft "The Idempotency-Key HTTP Header Field"), so a client that lost its answer can
 retry without creating a second job.

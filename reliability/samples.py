@@ -30,7 +30,7 @@ def waveform(seed: int = 0, seconds: float = 4.0) -> np.ndarray:
 
 
 def valid_files(seed: int = 0) -> dict[str, bytes]:
-    """One valid file of every format the readers take (DESIGN §6), keyed by a short name."""
+    """One valid file of every format the readers take (docs/design.md §6), keyed by a short name."""
     from obspy import Stream, Trace, UTCDateTime
     from scipy.io import wavfile
 
@@ -78,7 +78,7 @@ class _Marker:
 
 def hostile_files(marker_path: str) -> dict[str, bytes]:
     """NumPy files holding object arrays (pickles); one of them, if unpickled, creates
-    ``marker_path``. The readers must refuse them all without unpickling (DESIGN §6)."""
+    ``marker_path``. The readers must refuse them all without unpickling (docs/design.md §6)."""
     out = {}
     objects = np.empty(3, dtype=object)
     objects[:] = [1.0, "two", {"three": 3}]

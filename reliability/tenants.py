@@ -1,6 +1,6 @@
 """Experiment 5 — tenants: every route tried with another tenant's ids and with bad credentials.
 
-Promise (DESIGN §7): every corpus and job belongs to the token's tenant and another tenant gets
+Promise (docs/design.md §7): every corpus and job belongs to the token's tenant and another tenant gets
 404 (exactly as for an id that does not exist, so there is no existence oracle: OWASP API
 Security Top 10, "Broken Object Level Authorization"); a missing, wrong or revoked token is a
 401 carrying ``WWW-Authenticate: Bearer`` (RFC 6750 §3); Idempotency-Keys are scoped to the

@@ -1,6 +1,6 @@
 """Experiment 7 — token guessing: a guesser hammers the API while the token's owner works.
 
-Promise (DESIGN §7, service/guessing.py): repeated failed authentication from one address is
+Promise (docs/design.md §7, service/guessing.py): repeated failed authentication from one address is
 slowed — past ``auth_failures_allowed`` failures in the window each answer is a 429 with an
 integer Retry-After, held ``auth_slow_answer_s`` before it is sent — and a valid token is never
 refused, even from the guesser's own address; a wrong, a revoked and a malformed token are

@@ -168,7 +168,7 @@ def _json_float(x):
 
 
 class ConvergenceLog:
-    """Every evaluation of a search and the best-so-far trace, per stage (DESIGN §8).
+    """Every evaluation of a search and the best-so-far trace, per stage (docs/design.md §8).
 
     ``evaluations`` rows: ``{"stage", "round", "params", "objective", "seconds"}``; ``best_so_far``
     rows: ``{"evaluation", "stage", "objective"}`` appended whenever a stage's best improves

@@ -63,7 +63,7 @@ def _mapping(value) -> Mapping:
 @dataclass(frozen=True)
 class JobRecord:
     """The service job that made a filterbank: its ``id`` and its ``settings`` as submitted
-    (job settings of DESIGN §7, only the keys the client set)."""
+    (job settings of docs/design.md §7, only the keys the client set)."""
 
     id: str | None
     settings: dict
@@ -303,7 +303,7 @@ CHANNEL_TABLE = ("center_hz", "time_spread_s", "freq_spread_hz", "cell_area", "c
 
 def npz_members(representation, filterbank: Filterbank, window_meta,
                 file_name: Callable[[str], str] = str) -> dict[str, np.ndarray]:
-    """The arrays of the transform NPZ (DESIGN §8), plain arrays only (no object arrays, so
+    """The arrays of the transform NPZ (docs/design.md §8), plain arrays only (no object arrays, so
     ``np.load`` never needs ``allow_pickle``), in the order they are written:
 
     - ``representation`` (M, C, N) float32: the filterbank image of each window;

@@ -1,7 +1,7 @@
 """Channels and filterbanks of Gaussian kernels on the time–frequency plane.
 
 A channel is a 2-D Gaussian kernel G(u, ν) centred on (0, f_c) that smooths the Wigner–Ville
-distribution (DESIGN §3). Its four parameters:
+distribution (docs/design.md §3). Its four parameters:
 
 - ``center_hz`` f_c, Hz, 0 < f_c < fs/2;
 - ``time_spread_s`` σ_t, s: the standard deviation of the kernel along time;
@@ -9,7 +9,7 @@ distribution (DESIGN §3). Its four parameters:
   a Gaussian-window spectrogram), > 1 smooths more, < 1 super-resolves (outputs can go negative);
 - ``chirp_hz_per_s`` β = ρ·σ_f/σ_t, Hz/s: the shear of the kernel, which lies along
   f′ = f_c + β·(t′ − t). β is the sweep rate df/dt of the arrivals the channel renders sharpest,
-  positive for upward sweeps as read off a time–frequency plot (DESIGN §3).
+  positive for upward sweeps as read off a time–frequency plot (docs/design.md §3).
 
 Derived (all exact, no approximation): the conditional frequency spread σ_f√(1−ρ²) = a/(4πσ_t),
 σ_f² = (β·σ_t)² + (a/(4πσ_t))² and ρ = β·σ_t/σ_f (ρ has the sign of β).

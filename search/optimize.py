@@ -1,4 +1,4 @@
-"""FilterbankSearch: fit a Gaussian-smoothed Wigner–Ville filterbank to a corpus (DESIGN §5).
+"""FilterbankSearch: fit a Gaussian-smoothed Wigner–Ville filterbank to a corpus (docs/design.md §5).
 
 The estimator resolves the settings, splits the windows (``search.split``), bounds the chirp
 rate on the fit windows (``search.sweeps``) and runs the stages of ``search.fit`` in order on
@@ -42,9 +42,9 @@ STAGES = (("baselines", baselines.run), ("family", family.run), ("refine", refin
 
 
 class FilterbankSearch:
-    """Unsupervised filterbank fit (DESIGN §5), scikit-learn style.
+    """Unsupervised filterbank fit (docs/design.md §5), scikit-learn style.
 
-    Parameters (settings of DESIGN §7; defaults in ``search.settings.SETTINGS_DEFAULTS``):
+    Parameters (settings of docs/design.md §7; defaults in ``search.settings.SETTINGS_DEFAULTS``):
     ``channels``, ``band_hz`` ([lo, hi] Hz; default [fs/100, 0.45 fs]), ``spacing`` (log|linear),
     ``criterion`` (name or dict: name, alpha, p, measure, negative_mass_penalty, reduce),
     ``cell_area`` ([min, max]), ``chirp``, ``refine``, ``evaluations`` (stage-1 budget: filterbanks
@@ -57,7 +57,7 @@ class FilterbankSearch:
     2·dims + 2), ``stall_rounds``/``stall_tol``, ``refine_sweeps``, ``refine_maxiter`` (Brent
     iterations per coordinate), ``refine_min_share`` (channels whose mean share of the image mass
     is below this fraction of 1/C are left as they are), ``smoothness`` (weight of the
-    second-difference penalty, bits), ``eps`` (kernel truncation, DESIGN §3).
+    second-difference penalty, bits), ``eps`` (kernel truncation, docs/design.md §3).
 
     Learned attributes: ``filterbank_`` (search.filterbank.Filterbank), ``diagnostics_``
     (JSON-ready dict, keys in DEVELOPERS.md), ``objective_`` (bits on the grid for Rényi).

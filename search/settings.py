@@ -1,6 +1,6 @@
 """Job settings: names, defaults, validation, and the split into corpus and search options.
 
-A job's settings (DESIGN §7, the CLI flags of §9 in snake_case) mix options for reading the
+A job's settings (docs/design.md §7, the CLI flags of §9 in snake_case) mix options for reading the
 corpus (every ``read_corpus`` keyword, defined once in :data:`CORPUS_OPTIONS`) with options for
 the search. The service and the CLI hand the whole dict to :func:`split_settings`, pass the first
 half to ``read_corpus`` and the second to ``FilterbankSearch``. Every check here raises

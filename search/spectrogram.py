@@ -10,7 +10,7 @@ bits on the t–f plane (cell size Δt·Δf), so they compare with the filterban
 The image is ``|X_z(n, f)|² / (2‖h‖²)`` with ``X_z`` the hop-1, two-sided
 ``scipy.signal.ShortTimeFFT`` of the analytic signal z and ``h`` a Gaussian window of standard
 deviation ``σ_t·fs·√2`` samples (|h|² has time std σ_t). That is a channel of cell area 1 and
-no chirp (DESIGN §3 identity; spectrogram as the WVD smoothed by the window's WVD: L. Cohen,
+no chirp (docs/design.md §3 identity; spectrogram as the WVD smoothed by the window's WVD: L. Cohen,
 "Time-Frequency Analysis", 1995), without the alias term at f + fs/2, which the analytic
 signal makes negligible inside the band.
 """

@@ -1,6 +1,6 @@
 """How fast the corpus's arrivals sweep in frequency: a data-driven bound on |chirp|.
 
-The search lets each channel's kernel shear along a sweep rate β (Hz/s, DESIGN §3). Its bound
+The search lets each channel's kernel shear along a sweep rate β (Hz/s, docs/design.md §3). Its bound
 must cover the sweeps the corpus holds: band width / window duration is far below the rate of a
 dispersive guided wave, which crosses hundreds of hertz in a few milliseconds.
 

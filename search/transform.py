@@ -1,4 +1,4 @@
-"""The filterbank transform: Gaussian-smoothed Wigner–Ville rows, one per channel (DESIGN §3).
+"""The filterbank transform: Gaussian-smoothed Wigner–Ville rows, one per channel (docs/design.md §3).
 
 For a window x (N samples at fs) with analytic signal z and channel c = (f_c, σ_t, a, β):
 
@@ -474,7 +474,7 @@ def _chirp_plan(filterbank, idx, n_samples, eps, method) -> _ChirpPlan:
     sigma = filterbank.time_spread_s[idx]
     centers = filterbank.center_hz[idx]
     # The helpers below take the kernel's shear s in the convolution variable t − t′, where
-    # the kernel G (centred on ν = β·u, u = t′ − t, DESIGN §3) is sheared by −β: a channel
+    # the kernel G (centred on ν = β·u, u = t′ − t, docs/design.md §3) is sheared by −β: a channel
     # with +β then sharpens arrivals sweeping upward at β Hz/s. The only place the sign is set.
     shears = -filterbank.chirp_hz_per_s[idx]
     lags = np.atleast_1d(lag_count(spread, fs, n_samples, eps))

@@ -1,6 +1,6 @@
 """Analytic signal, instantaneous autocorrelation, lag counts and the discrete pseudo-WVD.
 
-Conventions (DESIGN §3): a real window x[n], n = 0..N−1, sampled at fs; its analytic signal
+Conventions (docs/design.md §3): a real window x[n], n = 0..N−1, sampled at fs; its analytic signal
 z = scipy.signal.hilbert(x). The instantaneous autocorrelation is r[n, m] = z[n+m]·z*[n−m],
 zero when n±m falls outside the window, at lag τ_m = 2m/fs; since r[n, −m] = conj r[n, m] only
 m ≥ 0 is stored. The discrete pseudo-WVD is
@@ -28,7 +28,7 @@ def truncation_width(eps: float) -> float:
 
 
 def lag_count(conditional_freq_spread_hz, sampling_rate_hz, window_samples, eps=1e-6):
-    """Largest lag index L_c kept for a channel (DESIGN §3), int or int array like the input:
+    """Largest lag index L_c kept for a channel (docs/design.md §3), int or int array like the input:
 
         L_c = min(⌊(N−1)/2⌋, ⌈fs·√(2 ln(1/ε)) / (4π·σ_f√(1−ρ²))⌉).
 

@@ -34,7 +34,9 @@ def parse_read_options(fields: dict[str, str]) -> dict[str, Any]:
         raise CorpusRejected(str(exc)) from None
 
 
-def _renamer(paths: list[Path], names: list[str]):
+def renamer(paths: list[Path], names: list[str]):
+    """A function that rewrites the stored files' paths (and their folders) in a text to the
+    client's own file names, so no server path reaches a client."""
     pairs = sorted(((str(p), n) for p, n in zip(paths, names, strict=True)), key=lambda x: -len(x[0]))
     folders = sorted({str(p.parent) for p in paths}, key=len, reverse=True)
 
@@ -77,7 +79,7 @@ def load_corpus(paths: list[Path], names: list[str], options: dict[str, Any], ma
     from burstlens.search.corpus import CorpusError
     from burstlens.search.settings import read_corpus_as_given
 
-    rename = _renamer(paths, names)
+    rename = renamer(paths, names)
     try:
         return read_corpus_as_given([str(p) for p in paths], options, mapper=mapper)
     except CorpusError as exc:
@@ -126,6 +128,6 @@ def check_corpus(paths: list[Path], files: list[dict], options: dict[str, Any], 
     """
     names = [f["name"] for f in files]
     corpus = read_for_client(paths, names, options, settings)
-    summary = jsonable(corpus.to_json(), _renamer(paths, names))
+    summary = jsonable(corpus.to_json(), renamer(paths, names))
     summary.pop("window_meta", None)  # one entry per window: too much for a record
     return summary, getattr(corpus, "source_hash", None)

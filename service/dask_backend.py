@@ -1,6 +1,6 @@
 """Connecting a job worker to an existing Dask cluster, and running a fit's evaluations on it.
 
-The cluster is an existing ``dask scheduler`` with ``dask worker`` processes (DESIGN §2: no
+The cluster is an existing ``dask scheduler`` with ``dask worker`` processes (docs/design.md §2: no
 home-made cluster code). A worker process opens one ``distributed.Client`` with :func:`connect`
 and runs each fit inside :func:`evaluations_on`, which sets joblib's Dask backend for that
 client; the search's joblib calls then fan out to the cluster (``search.fit.evaluate`` scatters the

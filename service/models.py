@@ -1,6 +1,6 @@
 """Request and response bodies of the /v1 API (pydantic), with the examples shown in OpenAPI.
 
-``JobSettings`` mirrors the CLI settings flags in snake_case (DESIGN §7). Every field is optional:
+``JobSettings`` mirrors the CLI settings flags in snake_case (docs/design.md §7). Every field is optional:
 a missing one takes the engine's default, which the result records. Unknown keys are rejected
 (``extra="forbid"``) so a typo never silently runs a different job. Its corpus fields are made
 from the one definition of the corpus options (``search.settings.CORPUS_OPTIONS``): same names,

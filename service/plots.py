@@ -97,7 +97,7 @@ def _as_1d(name: str, values, length: int | None = None) -> np.ndarray:
 def kernel_covariance(time_spread_s: float, cell_area: float, chirp_hz_per_s: float) -> np.ndarray:
     """Covariance (2 × 2, units s², s·Hz, Hz²) of a channel's Gaussian kernel in the t–f plane.
 
-    From DESIGN §3: a = 4π σ_t σ_f √(1−ρ²) and β = ρ σ_f / σ_t, so the covariance
+    From docs/design.md §3: a = 4π σ_t σ_f √(1−ρ²) and β = ρ σ_f / σ_t, so the covariance
     [[σ_t², ρσ_tσ_f], [ρσ_tσ_f, σ_f²]] equals [[σ_t², βσ_t²], [βσ_t², (a/4πσ_t)² + β²σ_t²]].
     """
     s2 = time_spread_s**2

@@ -1,6 +1,6 @@
 """The job store: one SQLite file (WAL, ``synchronous=FULL``) plus a blob folder under the data dir.
 
-Durability rules (DESIGN §7):
+Durability rules (docs/design.md §7):
 - every write that the API acknowledges is COMMITted first (``synchronous=FULL`` makes the commit
   survive a power cut, not just a process kill);
 - claims and other read-modify-write steps run inside ``BEGIN IMMEDIATE`` so two workers never

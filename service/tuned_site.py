@@ -61,7 +61,8 @@ def corpus_of(run):
 def run_check(run) -> tuple[Path, dict]:
     """Judge the parent's filterbank on the job's corpus; write ``check.json``."""
     from burstlens.search.drift import MAX_WINDOWS, check_drift
-    from burstlens.service.corpus_check import CorpusRejected, enforce_limits, jsonable, load_corpus
+    from burstlens.service.corpus_check import (CorpusRejected, enforce_limits, jsonable, load_corpus,
+                                                renamer)
     from burstlens.service.store import write_blob
     from burstlens.service.worker import PermanentError
 
@@ -77,13 +78,7 @@ def run_check(run) -> tuple[Path, dict]:
                              progress=lambda f: run.progress({"stage": "check", "fraction": f}))
     except (CorpusRejected, ValueError) as exc:
         raise PermanentError(str(exc)) from None
-    rename = {str(p): name for p, name in zip(paths, names, strict=True)}
-
-    def names_only(text: str) -> str:
-        for stored, name in rename.items():
-            text = text.replace(stored, name)
-        return text
-
+    names_only = renamer(paths, names)
     document = jsonable(answer.to_json(), names_only)
     folder = run.store.result_folder(run.job)
     write_blob(folder / CHECK_FILE, (json.dumps(document, indent=1) + "\n").encode("utf-8"))
@@ -95,6 +90,7 @@ def run_transform(run) -> tuple[Path, dict]:
     """The parent's filterbank over the job's corpus into ``results/<job>/store.zarr``."""
     from burstlens.search.continuous import transform_continuous
     from burstlens.search.corpus import CorpusError
+    from burstlens.service.corpus_check import renamer
     from burstlens.service.worker import PermanentError
 
     filterbank, _ = parent_documents(run)
@@ -122,10 +118,7 @@ def run_transform(run) -> tuple[Path, dict]:
             reading=filterbank.reading_options(record["summary"].get("read_options")),
             progress=written, on_plan=plan, on_chunk=between_chunks)
     except (CorpusError, ValueError) as exc:
-        text = str(exc)
-        for path, name in zip(paths, names, strict=True):
-            text = text.replace(str(path), name)
-        raise PermanentError(text) from None
+        raise PermanentError(renamer(paths, names)(str(exc))) from None
     parts = [{"seed_id": p.trace_id, "group": p.group, "start_ns": p.start_ns, "steps": p.n_steps}
              for p in result.parts]
     return folder, {"time_step_s": result.step.seconds, "parts": parts,

@@ -1,7 +1,7 @@
 """What a person must read first about a tuned filterbank: the scorecard, the gain, the warnings.
 
-The search judges its result on windows the fit never saw (``diagnostics['judgement']``, DESIGN
-§8). ``scorecard_rows`` says, in three sentences, what the pipeline gains: how much weaker a
+The search judges its result on windows the fit never saw (``diagnostics['judgement']``,
+docs/design.md §8). ``scorecard_rows`` says, in three sentences, what the pipeline gains: how much weaker a
 burst the site's detector finds, how close the onsets stay to the waveform's, how much sharper
 the bursts are, each against the best plain spectrogram with its interval (and the user's own
 spectrogram when one was named). ``gain_sentence`` states the sharpness gain in one line,
@@ -178,7 +178,7 @@ def window_std_words(time_spread_s: float, sampling_rate_hz: float | None) -> st
     """A channel's window as the page states it: the std s = √2·σ_t of its Gaussian window
     h(u) = exp(−u²/2s²) (what ``scipy.signal.windows.gaussian`` takes), in ms and, with the
     rate, in samples; σ_t is the time std of |h|², the filterbank file's ``time_spread_s``
-    (DESIGN §3)."""
+    (docs/design.md §3)."""
     std = math.sqrt(2.0) * time_spread_s
     text = f"Gaussian window std {1e3 * std:.3g} ms"
     return text + (f", {std * sampling_rate_hz:.3g} samples" if sampling_rate_hz else "")

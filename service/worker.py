@@ -44,7 +44,8 @@ from typing import Any
 
 from burstlens.search.documents import DiagnosticsDocument, FilterbankDocument, JobRecord
 from burstlens.service.config import ServiceSettings
-from burstlens.service.corpus_check import CorpusRejected, CorpusTooLarge, enforce_limits, jsonable, load_corpus
+from burstlens.service.corpus_check import (CorpusRejected, CorpusTooLarge, enforce_limits, jsonable,
+                                            load_corpus, renamer)
 from burstlens.service.store import DataDirTooNew, LeaseLost, NotFound, Store, write_blob
 
 log = logging.getLogger("burstlens.worker")
@@ -323,8 +324,7 @@ class JobRun:
                 search_options["n_jobs"] = -1  # every Dask worker core
         else:
             search_options["n_jobs"] = min(int(search_options.get("n_jobs", 1)), os.cpu_count() or 1)
-        rename = {str(p): f["name"] for p, f in zip(paths, record["files"], strict=True)}
-        return corpus, search_options, rename
+        return corpus, search_options, renamer(paths, [f["name"] for f in record["files"]])
 
     def execute(self) -> str:
         if self.job["kind"] != "search":
@@ -443,13 +443,8 @@ class JobRun:
             for path in folder.glob(pattern):
                 path.unlink(missing_ok=True)
 
-    def _succeed(self, search, corpus, rename: dict[str, str]) -> str:
+    def _succeed(self, search, corpus, names: Callable[[str], str]) -> str:
         job = self.job
-
-        def names(text: str) -> str:
-            for stored, name in rename.items():
-                text = text.replace(stored, name)
-            return text
 
         try:
             diagnostics = DiagnosticsDocument(jsonable(search.diagnostics_, names))

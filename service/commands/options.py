@@ -1,4 +1,4 @@
-"""The arguments shared by ``inspect``, ``tune`` and ``submit`` (DESIGN §9), declared once, and
+"""The arguments shared by ``inspect``, ``tune`` and ``submit`` (docs/design.md §9), declared once, and
 the service settings that ``serve``, ``worker`` and ``tokens`` share (:func:`service_settings_from`).
 
 Each command adds the groups it takes (:func:`add_paths`, :func:`add_corpus_options`,
@@ -181,7 +181,7 @@ JOB_FLAGS = (
 
 
 def add_job_settings(parser: argparse.ArgumentParser) -> None:
-    """The search settings flags (DESIGN §9, :data:`JOB_FLAGS`)."""
+    """The search settings flags (docs/design.md §9, :data:`JOB_FLAGS`)."""
     g = parser.add_argument_group("job settings (unset: the engine's default, recorded in the result)")
     for flag in JOB_FLAGS:
         action = {"action": "store_true"} if flag.off else {}

@@ -7,7 +7,7 @@ it (after a failure, or with later files of the same traces); the bar counts the
 
 The files are cut into windows as the filterbank's tuning cut its corpus: its rate and window
 length, and the corpus options its job recorded (``FilterbankDocument.reading_options``);
-``--windowing`` and ``--max-windows`` override. The NPZ (DESIGN §8) has the members of
+``--windowing`` and ``--max-windows`` override. The NPZ (docs/design.md §8) has the members of
 ``search.documents.npz_members``, the same as ``POST /v1/transform``; it is written a chunk of
 windows at a time (``search.npz_stream``), so memory holds the windows and one chunk of images,
 never the whole (M, C, N) image; a progress bar on stderr counts the windows (``--quiet``: none).

@@ -1,6 +1,6 @@
 """``burstlens tune PATH... --out DIR``: fit a filterbank locally (no server), with a progress bar.
 
-Writes ``filterbank.json`` and ``diagnostics.json`` (DESIGN §8) into DIR, and ``report.html``
+Writes ``filterbank.json`` and ``diagnostics.json`` (docs/design.md §8) into DIR, and ``report.html``
 when the report module is available; prints a short summary. Exit codes: 0 done (also when
 cancelled with Ctrl-C: the best result so far is written), 2 bad input or bad settings.
 """

@@ -1,4 +1,4 @@
-"""One self-contained HTML report per tuned filterbank (DESIGN §8), and its PNG plots.
+"""One self-contained HTML report per tuned filterbank (docs/design.md §8), and its PNG plots.
 
 ``render_report(filterbank_json, diagnostics, windows, sampling_rate_hz, *, checks=None)``
 returns the complete HTML page (plots inline, no script, nothing loaded from the network;

@@ -47,7 +47,7 @@ class Plot:
 
 
 def objective_label(criterion: Mapping) -> str:
-    """Axis label for the corpus objective of a criterion (DESIGN §4)."""
+    """Axis label for the corpus objective of a criterion (docs/design.md §4)."""
     name = str(criterion.get("name", "renyi"))
     if name == "renyi":
         alpha = criterion.get("alpha", 3.0)
@@ -270,7 +270,7 @@ def _parameter_text(name: str, parameters) -> str:
 
 def negative_ceiling(diagnostics: Mapping) -> float | None:
     """The negative share a representation may have (``max_negative_share``, the positivity
-    ceiling of DESIGN §4.3): the judgement's record, else the run's settings."""
+    ceiling of docs/design.md §4.3): the judgement's record, else the run's settings."""
     judged = verdict.judgement(diagnostics) or {}
     share = judged.get("negative_share") if isinstance(judged.get("negative_share"), Mapping) else {}
     recorded = finite_or_none(share.get("max_allowed"))
@@ -281,7 +281,7 @@ def negative_ceiling(diagnostics: Mapping) -> float | None:
 
 def exclusion(baseline: Mapping, ceiling: float | None) -> str | None:
     """Why a baseline was not eligible as a result, or None: its negative share of the image's
-    absolute mass above the positivity ceiling (DESIGN §4.3)."""
+    absolute mass above the positivity ceiling (docs/design.md §4.3)."""
     share = finite_or_none(baseline.get("negative_share"))
     if share is None or ceiling is None or share <= ceiling:
         return None

@@ -1,12 +1,12 @@
 """The report page: its cautions, its style sheet and ``render_report``, which puts the sections
-and figures together (DESIGN §8).
+and figures together (docs/design.md §8).
 
 ``render_report(filterbank_json, diagnostics, windows, sampling_rate_hz)`` returns a complete
 HTML page: inline CSS, every plot embedded as a base64 ``data:`` PNG with a text alternative, no
 script and no external asset (a Content-Security-Policy meta tag forbids loading any), so the file
 works offline, opened from disk. All text that comes from data is escaped with ``html.escape``.
 
-Inputs: ``filterbank_json`` is the filterbank JSON of DESIGN §8 (``Filterbank.to_json()``),
+Inputs: ``filterbank_json`` is the filterbank JSON of docs/design.md §8 (``Filterbank.to_json()``),
 ``diagnostics`` the ``FilterbankSearch.diagnostics_`` dict (DEVELOPERS.md lists its keys),
 ``windows`` the corpus windows ``(M, N)`` float in window order (or None: the example-burst plot
 is then omitted with a note), ``sampling_rate_hz`` their rate in Hz (None: the filterbank's).

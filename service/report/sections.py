@@ -2,7 +2,7 @@
 tables, rejections, corpus and trace tables, settings, figures and the one-line summary.
 
 Each function returns a piece of markup from the two documents (``filterbank_json``, the
-filterbank JSON of DESIGN §8; ``diagnostics``, the search's diagnostics dict); every text that
+filterbank JSON of docs/design.md §8; ``diagnostics``, the search's diagnostics dict); every text that
 comes from data goes through ``esc``. The words themselves are ``service.report.wording``'s.
 """
 from __future__ import annotations
@@ -239,7 +239,7 @@ SCORECARD_NAMES = {"result": "tuned filterbank", "spectrogram": "best plain spec
                    "yours": "your spectrogram", "envelope": "raw envelope"}
 
 
-# How each scorecard row was measured, in words (DESIGN §5.1); the engine's own record of the
+# How each scorecard row was measured, in words (docs/design.md §5.1); the engine's own record of the
 # method stays in the diagnostics file.
 SCORECARD_METHOD = {
     "detection": "Detected at gain: each held-out burst is added to the site's noise windows at "

@@ -4,7 +4,7 @@ length, NFFT and hop, and a copyable ``scipy.signal.ShortTimeFFT`` line.
 
 One window spread is used on the whole page: the standard deviation s of the Gaussian window
 h(u) = exp(−u²/2s²) that multiplies the signal — the ``std`` of ``scipy.signal.windows.gaussian``.
-The filterbank file stores the kernel's time spread σ_t = s/√2, the time std of |h|² (DESIGN §3),
+The filterbank file stores the kernel's time spread σ_t = s/√2, the time std of |h|² (docs/design.md §3),
 so s = √2·σ_t. The FWHM given beside it is of the same h: 2√(2 ln 2)·s ≈ 2.355·s (the full width
 at half maximum of a Gaussian of std s; common practice). Units: s, Hz, samples.
 """

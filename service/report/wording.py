@@ -14,7 +14,7 @@ from collections.abc import Mapping
 from burstlens.search.safe_io import finite_or_none
 from burstlens.service.report.inputs import count_of
 
-# The job settings of DESIGN §7 (what a person sets); everything else the engine resolved is a
+# The job settings of docs/design.md §7 (what a person sets); everything else the engine resolved is a
 # default it chose, shown apart with the corpus reader's choices.
 JOB_SETTINGS = ("channels", "band_hz", "spacing", "window_s", "criterion", "cell_area", "chirp",
                 "refine", "evaluations", "time_limit_s", "bootstrap", "seed", "windowing",
@@ -64,7 +64,7 @@ LABELS = {"sta": "STA length", "lta": "LTA length", "window": "window length",
 UNITS = (("_hz_per_s", "Hz/s", 1.0), ("_hz", "Hz", 1.0), ("_samples", "samples", 1.0),
          ("_bits", "bits", 1.0), ("_s", "s", 1.0))
 # keys whose value is a kernel time spread σ_t (s), shown as the Gaussian window's std √2·σ_t,
-# the one window spread the page uses (DESIGN §3: |h|² has time std σ_t)
+# the one window spread the page uses (docs/design.md §3: |h|² has time std σ_t)
 WINDOW_SPREAD_KEYS = ("time_spread_s", "time_spread_bounds_s")
 # a snake_case name not part of a dotted path (scipy.signal.resample_poly names a function)
 SNAKE_CASE = re.compile(r"(?<![\w.])[a-z][a-z0-9]*(?:_[a-z0-9]+)+\b")

@@ -202,7 +202,7 @@ _JSON_OBJECT = {"content": {"application/json": {"schema": {"type": "object"}}}}
             responses={200: {**_JSON_OBJECT, "description": "Filterbank JSON (burstlens-filterbank, "
                              "version 3)"}, **errors(*COMMON, 404, 409)})
 def get_filterbank(job_id: str, store: StoreDep, tenant: TenantDep):
-    """The tuned filterbank JSON itself (DESIGN §8), ready for POST /v1/transform or the CLI."""
+    """The tuned filterbank JSON itself (docs/design.md §8), ready for POST /v1/transform or the CLI."""
     return FileResponse(_result(store, job_id, tenant, "filterbank"), media_type="application/json")
 
 
@@ -223,25 +223,26 @@ def get_report(job_id: str, store: StoreDep, tenant: TenantDep):
     """One self-contained HTML page explaining the result (plots inline), with a section for
     the checks done on later data."""
     path = _result(store, job_id, tenant, "report")
-    checks = _checks_of(store, job_id, tenant)
-    if checks:  # one page per set of checks: a check that ends later makes a new page
-        path = path.with_name(f"report-after-{checks[0]['id']}.html")
+    done_checks = store.list_jobs(tenant, state="done", kind="check", parent_id=job_id, limit=1000)
+    if done_checks:  # one page per set of checks: a check that ends later makes a new page
+        path = path.with_name(f"report-after-{done_checks[0]['id']}.html")
     if not path.is_file():  # rendered on the first request, then kept
         try:
             from burstlens.service.report import render_report
         except ImportError:
             raise HTTPException(status_code=503,
                                 detail="the report renderer is not installed") from None
+        checks = _answers(store, done_checks)
         extra = {"checks": checks} if checks else {}
         write_blob(path, render_report(*_load_results(path.parent), **extra).encode("utf-8"))
     return HTMLResponse(path.read_text(encoding="utf-8"))
 
 
-def _checks_of(store: Store, job_id: str, tenant: str) -> list[dict]:
-    """The done checks of a search, newest first: each its ``check.json`` with ``id``,
+def _answers(store: Store, done_checks: list[dict]) -> list[dict]:
+    """The answers of done checks, in their order: each its ``check.json`` with ``id``,
     ``finished_at`` (UTC, s) and ``files`` (the client's names)."""
     checks = []
-    for check in store.list_jobs(tenant, state="done", kind="check", parent_id=job_id, limit=1000):
+    for check in done_checks:
         try:
             answer = json.loads((store.path(check["result_dir"]) / RESULT_FILES["check"]).read_text())
         except (OSError, ValueError, TypeError):

@@ -14,7 +14,7 @@ def test_generated_bad_input_never_gives_5xx_or_leaves_state():
     is a ``CorpusError`` naming that record's byte offset (SEED Reference Manual v2.4, IRIS/FDSN
     2012, ch. 8); schemathesis (all checks, every phase) gets no 5xx and only parseable JSON from
     the JSON API and leaves no orphans; hostile multipart uploads get no 5xx and leave the data
-    dir's files and tables exactly as they were (DESIGN §6–7; OWASP "Unrestricted File Upload";
+    dir's files and tables exactly as they were (docs/design.md §6–7; OWASP "Unrestricted File Upload";
     NumPy docs, ``numpy.load``: allow_pickle=False refuses object arrays)."""
     rows = bad_input.run(reader_cases=200, api_examples=5, multipart_cases=100, seed=7,
                          api_max_time_s=10, min_cases=1000, bulk_cases=400, sweep="boundaries",

@@ -15,7 +15,7 @@ def test_killed_workers_resume_to_the_identical_filterbank():
     reclaims when the lease expires and finishes with exactly the filterbank of an uninterrupted
     run, no checkpoint file left; a truncated checkpoint and a well-formed one of the wrong state
     (digest matching) are refused and the job restarts clean, never resuming from garbage; a job
-    whose every attempt is killed ends failed with its last error kept (DESIGN §5 and §7:
+    whose every attempt is killed ends failed with its last error kept (docs/design.md §5 and §7:
     leases, checkpoints, "a resumed job must end with the same filterbank as an uninterrupted
     one"; kill -9 semantics: POSIX signal(7), SIGKILL cannot be caught; WAL commit order and
     frame checksums: SQLite documentation, "Database File Format" §4)."""

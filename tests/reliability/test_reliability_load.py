@@ -35,7 +35,7 @@ def test_jobs_all_finish_under_polling_and_the_queue_limit_is_429():
     """Every submitted job is done while pollers read its status, no request errs, no lock
     timeout reaches the log, and the per-tenant queue limit answers 429 naming the limit exactly
     at limit + 1 waiting jobs, other tenants unaffected, a withdrawal freeing a place, and no
-    tenant ever has more waiting (DESIGN §7: waiting jobs per tenant → 429; RFC 6585 §4, 429 Too
+    tenant ever has more waiting (docs/design.md §7: waiting jobs per tenant → 429; RFC 6585 §4, 429 Too
     Many Requests). The latency bound here is loose (1 s): this subset shares the machine with
     the rest of the suite; the campaign's row holds the 100 ms goal."""
     row, = load.run(tenants=2, jobs_per_tenant=2, pollers=4, workers=2, max_queued=1,

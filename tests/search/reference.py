@@ -1,6 +1,6 @@
 """Naive references for the transform tests (test-only, deliberately slow and literal).
 
-The WVD is the explicit double sum of DESIGN §3 over every lag the window holds, and the channel
+The WVD is the explicit double sum of docs/design.md §3 over every lag the window holds, and the channel
 output is the explicit 2-D convolution of that full grid with the sampled kernel
 G_c(u, ν) = g_t(u)·N(ν; βu, σ_f²(1−ρ²)), u = t′ − t (the kernel lies along an arrival sweeping
 at β Hz/s) — nothing here shares code with search.transform.
@@ -31,7 +31,7 @@ def reference_wvd(z: np.ndarray, n_freqs: int) -> np.ndarray:
 
 def reference_frequency_count(n_samples: int, channels, sampling_rate_hz: float, eps=1e-17) -> int:
     """Nf ≥ max(2L+1, L + L_ε): the lag weights of every channel have fallen below ε before the
-    first alias of the frequency grid (DESIGN §3)."""
+    first alias of the frequency grid (docs/design.md §3)."""
     lags = (n_samples - 1) // 2
     k = math.sqrt(2.0 * math.log(1.0 / eps))
     widest = max(

@@ -1,4 +1,4 @@
-"""DESIGN §4 check values, computed through the project's own transform and criteria.
+"""docs/design.md §4 check values, computed through the project's own transform and criteria.
 
 Grid. fs = 1 kHz, N = 1024 samples (Δt = 1 ms), Gaussian atoms of duration σ0 = 20 ms (σ0 is
 the std of |x|², i.e. x = exp(−t²/4σ0²)·cos(2π f0 t)), centred at f0 = fs/4 where the even-lag
@@ -110,7 +110,7 @@ def test_matched_spectrogram_is_one_bit_above_wvd(atom_wvds, name, kw, band):
     """The spectrogram with the matched Gaussian window (a = 1, σ_t = σ0, and for the chirped
     atom the matched chirp) has H_3 = 0.7925 bits, exactly 1 bit above the atom's WVD: smoothing
     by the window's own WVD doubles the covariance, det Σ × 4 (Baraniuk et al. 2001; spectrogram
-    as smoothed WVD: Cohen, Time-Frequency Analysis, 1995). DESIGN §3: a channel's chirp β is
+    as smoothed WVD: Cohen, Time-Frequency Analysis, 1995). docs/design.md §3: a channel's chirp β is
     the sweep rate of the arrivals it matches, so the window matched to an atom sweeping at +β
     is the channel with chirp +β."""
     spec = matched_spectrogram(atom(**kw), band, kw.get("chirp_hz_per_s", 0.0))[0]

@@ -152,7 +152,7 @@ def test_signed_images_odd_and_even_orders():
                                    np.array([1.0, np.inf])])
 def test_non_positive_or_non_finite_sum_scores_inf(image):
     """An image whose sum is not positive and finite is not a distribution: every criterion
-    scores +inf (DESIGN §4 invalid-candidate rule; common practice)."""
+    scores +inf (docs/design.md §4 invalid-candidate rule; common practice)."""
     assert renyi_entropy(image) == math.inf
     assert concentration(image) == math.inf
     for crit in (Criterion(), Criterion(name="concentration"), Criterion(name="sparsity"),
@@ -227,7 +227,7 @@ def test_block_processing_does_not_change_scores(monkeypatch):
 
 def test_negative_mass_fraction_and_penalty():
     """Σ|p⁻|/Σ|p| of [3, −1, 2, −2] is 3/8 and the penalty adds λ times it to the score
-    (DESIGN §4 negative_mass_penalty; common practice)."""
+    (docs/design.md §4 negative_mass_penalty; common practice)."""
     x = np.array([3.0, -1.0, 2.0, -2.0])
     assert negative_mass_fraction(x) == pytest.approx(3 / 8)
     assert negative_mass_fraction(np.abs(x)) == 0.0
@@ -244,7 +244,7 @@ def test_negative_mass_fraction_and_penalty():
 
 def test_reducers_in_window_order_and_inf_propagation():
     """mean / median / 10 %-trimmed mean (scipy.stats.trim_mean) of per-window scores; any
-    invalid (+inf or NaN) window makes the objective +inf (DESIGN §4)."""
+    invalid (+inf or NaN) window makes the objective +inf (docs/design.md §4)."""
     rng = np.random.default_rng(13)
     s = rng.normal(size=41)
     assert reduce_scores(s) == pytest.approx(np.mean(s), rel=1e-15)

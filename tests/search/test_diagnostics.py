@@ -89,7 +89,7 @@ def test_search_1d_reaches_the_minimum():
 
 
 def test_convergence_log_best_so_far_per_stage():
-    """best_so_far holds strictly improving values per stage (DESIGN §8 best-so-far trace)."""
+    """best_so_far holds strictly improving values per stage (docs/design.md §8 best-so-far trace)."""
     log = dg.ConvergenceLog()
     for stage, y in [("family", 5.0), ("family", 6.0), ("family", 4.0), ("refine", 9.0),
                      ("family", math.inf), ("refine", 8.5)]:

@@ -41,7 +41,7 @@ def test_written_document_is_the_engines_json_byte_for_byte():
 def test_read_document_gives_the_recorded_facts():
     """Read back, the typed properties are what was written: rate, window samples and length
     (N / fs), criterion, objective, gain, corpus hash, the engine's settings and the job with its
-    settings as submitted; the filterbank equals the one written (DESIGN §8)."""
+    settings as submitted; the filterbank equals the one written (docs/design.md §8)."""
     fb = _filterbank()
     document = FilterbankDocument.read(json.loads(FilterbankDocument.of(fb, JOB).encode()))
     assert document.filterbank == fb and document.version == 3
@@ -56,7 +56,7 @@ def test_read_document_gives_the_recorded_facts():
 
 def test_version_1_is_read_through_filterbank_from_json():
     """A version-1 file is read by Filterbank.from_json (chirp and correlation negated, the
-    conversion noted in the provenance) and its other facts read as in version 2 (DESIGN §3, §8;
+    conversion noted in the provenance) and its other facts read as in version 2 (docs/design.md §3, §8;
     search/filterbank.py docstring)."""
     fb = _filterbank()
     old = fb.to_json()
@@ -132,7 +132,7 @@ def test_diagnostics_document_reads_old_and_cancelled_runs():
 def test_npz_members_are_plain_arrays_in_one_order():
     """The transform NPZ holds the image (M, C, N) float32, the sample times, the channel table
     (C,) float64, the rate and per-window file, trace id and offset, all plain (non-object)
-    arrays so np.load needs no pickles (DESIGN §8); file names go through ``file_name``, and a
+    arrays so np.load needs no pickles (docs/design.md §8); file names go through ``file_name``, and a
     window without a recorded offset gets NaN."""
     fb = _filterbank()
     image = np.ones((2, 3, 4))

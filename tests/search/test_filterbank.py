@@ -23,7 +23,7 @@ FS = 4000.0
 def test_derived_spreads_invert(sigma, area, chirp):
     """σ_f, ρ derived from (σ_t, a, β) satisfy a = 4πσ_tσ_f√(1−ρ²), β = ρσ_f/σ_t and
     σ_f√(1−ρ²) = a/(4πσ_t), and from_spreads(σ_t, σ_f, ρ) gives back the same channel.
-    Source: the parametrisation of a 2-D Gaussian by its covariance (DESIGN §3; common practice)."""
+    Source: the parametrisation of a 2-D Gaussian by its covariance (docs/design.md §3; common practice)."""
     c = Channel(100.0, sigma, area, chirp)
     rho, sigma_f = c.correlation, c.freq_spread_hz
     assert abs(rho) < 1.0
@@ -75,7 +75,7 @@ def test_nyquist_message_and_channel_index():
 def test_equivalent_reading():
     """The reading for people: kind by cell area (|a−1| < 0.05 spectrogram, > 1 smoothed, < 1
     super-resolved by 1/a), window length = FWHM of h(u) = exp(−u²/4σ_t²) = 4√(ln 2)·σ_t, and a
-    one-line text; a channel of chirp +β matches arrivals sweeping upward at β Hz/s (DESIGN §3;
+    one-line text; a channel of chirp +β matches arrivals sweeping upward at β Hz/s (docs/design.md §3;
     test_transform checks it on a chirp). Source: Gaussian window conventions (common
     practice)."""
     e = Channel(100.0, 0.00375, 0.5, 800.0).equivalent()
@@ -145,7 +145,7 @@ def test_version_1_loads_with_chirp_signs_negated():
     that sharpens the same arrivals; its provenance keeps the file's facts and adds
     converted_from_version = 1 and a note saying what was done; saving it again writes
     the current version, which reads back unchanged (no second negation). Channels given only by their
-    spreads (freq_spread_hz, correlation) are converted too. Source: DESIGN §3 and §8 (file
+    spreads (freq_spread_hz, correlation) are converted too. Source: docs/design.md §3 and §8 (file
     versions); common practice for format migration."""
     fb = Filterbank([Channel(30.0, 0.02, 1.0), Channel(300.0, 0.004, 0.4, 1234.5),
                      Channel(1900.0, 0.002, 3.0, -50.0)], FS)
@@ -179,7 +179,7 @@ def test_version_1_loads_with_chirp_signs_negated():
 def test_version_3_round_trips_chirp_signs():
     """Version 3 is what to_json writes, and from_json reads it back with the same signs:
     chirp_hz_per_s, correlation and matched_sweep_hz_per_s all positive for an upward-matching
-    channel, nothing converted. Source: DESIGN §3 and §8; common practice."""
+    channel, nothing converted. Source: docs/design.md §3 and §8; common practice."""
     fb = Filterbank([Channel(300.0, 0.004, 0.4, 1234.5), Channel(700.0, 0.01, 1.0, -300.0)], FS)
     doc = json.loads(json.dumps(fb.to_json()))
     assert doc["version"] == 3

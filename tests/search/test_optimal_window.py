@@ -5,7 +5,7 @@ A Gaussian atom of duration σ0 (std of |x|²) with linear chirp β has a Gaussi
 covariance [[σ0², βσ0²], [βσ0², β²σ0² + (4πσ0)⁻²]]; a window of time spread s adds
 diag(s², (4πs)⁻²). Every Rényi entropy of a Gaussian density grows with det Σ (Baraniuk,
 Flandrin, Janssen, Michel, IEEE Trans. Inf. Theory 47(4), 2001), and the determinant is least at
-s*⁴ = σ0⁴ / (1 + 16π²β²σ0⁴) (DESIGN §3): s* = σ0 without chirp, s* → 1/√(4π|β|) for a long
+s*⁴ = σ0⁴ / (1 + 16π²β²σ0⁴) (docs/design.md §3): s* = σ0 without chirp, s* → 1/√(4π|β|) for a long
 chirp. The scan is scipy.optimize.minimize_scalar (bounded) on log s over [s/2.5, 3.5 s];
 the scan must land within 3 % of s*, against a discretisation error far below it (channels at
 1 Hz over ≥ 6 frequency stds of the widest image, 1 ms samples).
@@ -49,14 +49,14 @@ def best_window(x, half_band_hz, guess_s):
 
 
 def optimal_window(sigma0_s, chirp_hz_per_s):
-    """s* = σ0 / (1 + 16π²β²σ0⁴)^(1/4) (DESIGN §3)."""
+    """s* = σ0 / (1 + 16π²β²σ0⁴)^(1/4) (docs/design.md §3)."""
     return sigma0_s / (1 + 16 * math.pi**2 * chirp_hz_per_s**2 * sigma0_s**4) ** 0.25
 
 
 @pytest.mark.parametrize("sigma0_s", [0.015, 0.03])
 def test_gaussian_atom_optimal_window_is_its_duration(sigma0_s):
     """For an unchirped Gaussian atom of duration σ0 the H_3-minimising Gaussian window has
-    time spread σ0 (det of the smoothed Gaussian, Baraniuk et al. 2001; DESIGN §3), within 3 %."""
+    time spread σ0 (det of the smoothed Gaussian, Baraniuk et al. 2001; docs/design.md §3), within 3 %."""
     x = chirped_atom(2048, sigma0_s)
     s = best_window(x, half_band_hz=120.0, guess_s=sigma0_s)
     assert s == pytest.approx(sigma0_s, rel=0.03)
@@ -65,7 +65,7 @@ def test_gaussian_atom_optimal_window_is_its_duration(sigma0_s):
 @pytest.mark.parametrize("chirp_hz_per_s", [300.0, -300.0])
 def test_long_linear_chirp_optimal_window(chirp_hz_per_s):
     """For a long linear chirp of rate β the H_3-minimising Gaussian window tends to
-    s* = 1/√(4π|β|) (DESIGN §3, from the determinant of the smoothed Gaussian; Baraniuk et
+    s* = 1/√(4π|β|) (docs/design.md §3, from the determinant of the smoothed Gaussian; Baraniuk et
     al. 2001), within 3 %. Here σ0 = 0.1 s is 6 s*, so the finite-length correction
     (1 + 16π²β²σ0⁴)^(−1/4) is 0.02 %; the sweep covers 100–400 Hz."""
     sigma0 = 0.1
@@ -79,7 +79,7 @@ def test_long_linear_chirp_optimal_window(chirp_hz_per_s):
 def test_short_chirped_atom_follows_the_general_formula():
     """Between the two limits, a chirped atom with σ0 = 20 ms and β = 300 Hz/s has
     s* = σ0/(1 + 16π²β²σ0⁴)^(1/4) = 14.9 ms, 8.7 % below the long-chirp value and 26 % below
-    σ0, and the scan finds it within 3 % (DESIGN §3; Baraniuk et al. 2001)."""
+    σ0, and the scan finds it within 3 % (docs/design.md §3; Baraniuk et al. 2001)."""
     sigma0, beta = 0.02, 300.0
     expected = optimal_window(sigma0, beta)
     assert abs(expected / (1 / math.sqrt(4 * math.pi * beta)) - 1) > 0.08

@@ -66,7 +66,7 @@ SMALL = dict(channels=8, band_hz=[120.0, 360.0], spacing="log", evaluations=8, s
 
 def test_spectrogram_search_recovers_the_atom_duration():
     """Cell area fixed at 1 and no chirp (a Gaussian spectrogram): for Gaussian atoms of duration
-    σ0 the entropy-minimising window has time spread σ0 (DESIGN §3 closed form from the
+    σ0 the entropy-minimising window has time spread σ0 (docs/design.md §3 closed form from the
     determinant of the smoothed Gaussian; L. Cohen, Time-Frequency Analysis, 1995; Rényi entropy
     as in Baraniuk et al., IEEE Trans. IT 47(4), 2001). Within 3 %. The closed form is the
     entropy of the whole image, so the windows are scored whole (``excess`` off); the site test
@@ -84,7 +84,7 @@ def test_spectrogram_search_recovers_the_atom_duration():
 
 def test_spectrogram_search_on_long_chirps_recovers_the_chirp_window():
     """For a long linear chirp of rate β the optimal Gaussian spectrogram window tends to
-    s* = 1/√(4π|β|); in general s*⁴ = σ0⁴/(1 + 16π²β²σ0⁴) (DESIGN §3; Cohen 1995). Here
+    s* = 1/√(4π|β|); in general s*⁴ = σ0⁴/(1 + 16π²β²σ0⁴) (docs/design.md §3; Cohen 1995). Here
     σ0 = 60 ms, β = 400 Hz/s: the general form is within 0.05 % of the limit. Within 3 %."""
     fs, beta, sigma0 = 1000.0, 400.0, 0.06
     corpus = make_corpus(chirps(4, 512, fs, beta, sigma0, 250.0), fs)
@@ -97,7 +97,7 @@ def test_spectrogram_search_on_long_chirps_recovers_the_chirp_window():
 
 
 def test_chirped_search_recovers_the_chirp_rate():
-    """Chirp allowed, cell area fixed at 1: the kernel shears onto the chirp. Under DESIGN §3's
+    """Chirp allowed, cell area fixed at 1: the kernel shears onto the chirp. Under docs/design.md §3's
     convention (G centred on ν = β·u with u = t' − t, i.e. the spectrogram of the chirped window
     exp(+jπβu²), which dechirps a signal of rate +β) a search on upward chirps returns the
     upward rate +β, the sign a time–frequency plot shows. The channels that carry the chirp
@@ -148,7 +148,7 @@ def test_judgement_uses_only_windows_the_fit_never_saw(mixed, options):
 
 def test_diagnostics_follow_the_contract(mixed):
     """diagnostics_ carries every key of the DEVELOPERS.md contract, is strict JSON, and records
-    every setting and default used (DESIGN §8). The filterbank carries its provenance."""
+    every setting and default used (docs/design.md §8). The filterbank carries its provenance."""
     est = FilterbankSearch(**SMALL).fit(mixed)
     d = est.diagnostics_
     for key in ("stop_reason", "evaluations", "best_so_far", "refinement", "bootstrap", "baselines",
@@ -189,7 +189,7 @@ def test_refinement_never_raises_its_objective(mixed):
 # ----------------------------------------------------------------------------- stop rules
 
 def test_stop_rules_are_recorded(mixed):
-    """Budget, stall, time limit and cancel each end the search with their reason (DESIGN §5)."""
+    """Budget, stall, time limit and cancel each end the search with their reason (docs/design.md §5)."""
     base = {**SMALL, "refine": False, "bootstrap": 0}
     assert FilterbankSearch(**base).fit(mixed).diagnostics_["stop_reason"] == "budget"
     stalled = FilterbankSearch(**{**base, "evaluations": 40, "initial_points": 2, "stall_rounds": 1,
@@ -220,7 +220,7 @@ def test_progress_reports_every_round(mixed):
 def test_resume_from_a_checkpoint_equals_the_uninterrupted_run(mixed):
     """Checkpoints pickle the scikit-optimize Optimizer itself with the refinement state; resuming
     from one taken mid-family-search, or mid-refinement, ends with exactly the uninterrupted
-    filterbank and objective (DESIGN §5: replaying told points would not reproduce the run)."""
+    filterbank and objective (docs/design.md §5: replaying told points would not reproduce the run)."""
     states = []
     whole = FilterbankSearch(**SMALL).fit(mixed, checkpoint=lambda s: states.append(pickle.dumps(s)))
     phases = [pickle.loads(s)["phase"] for s in states]
@@ -243,7 +243,7 @@ def test_resume_from_a_checkpoint_equals_the_uninterrupted_run(mixed):
 
 def test_same_filterbank_for_one_or_two_loky_workers(mixed):
     """Chunks are fixed and per-window scores are reduced in window order, so n_jobs = 1 and 2
-    give identical filterbanks (DESIGN §5 determinism; joblib loky backend)."""
+    give identical filterbanks (docs/design.md §5 determinism; joblib loky backend)."""
     one = FilterbankSearch(**SMALL, n_jobs=1).fit(mixed)
     two = FilterbankSearch(**SMALL, n_jobs=2).fit(mixed)
     assert one.filterbank_ == two.filterbank_
@@ -285,7 +285,7 @@ def test_bad_settings_raise_naming_the_setting(mixed, options, name):
 
 
 def test_unknown_setting_is_named():
-    """Unknown keys in job settings are refused by name (DESIGN §7)."""
+    """Unknown keys in job settings are refused by name (docs/design.md §7)."""
     with pytest.raises(ValueError, match="'window_length'"):
         split_settings({"window_length": 3})
 

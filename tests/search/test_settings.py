@@ -7,7 +7,7 @@ from burstlens.search.settings import (SETTINGS_DEFAULTS, resolve_search_options
 
 def test_split_routes_every_key_and_fills_defaults():
     """split_settings sends the corpus options given (here window_s/windowing/max_windows/seed)
-    to the corpus reader and the rest to the search, with jobs renamed n_jobs (DESIGN §7
+    to the corpus reader and the rest to the search, with jobs renamed n_jobs (docs/design.md §7
     settings; DEVELOPERS.md contract). Common practice: unset values take the documented defaults."""
     corpus, search = split_settings({"window_s": 0.5, "windowing": "whole", "max_windows": 10,
                                      "seed": 7, "jobs": 2, "channels": 12})
@@ -54,7 +54,7 @@ def test_bad_settings_name_the_setting(settings, name):
 
 
 def test_unknown_keys_are_all_named():
-    """Every unknown key is named in one message (DESIGN §7: unknown keys are a 422 naming them)."""
+    """Every unknown key is named in one message (docs/design.md §7: unknown keys are a 422 naming them)."""
     with pytest.raises(ValueError, match="'colour'.*'flavour'|'flavour'.*'colour'"):
         split_settings({"colour": 1, "flavour": 2})
 
@@ -67,7 +67,7 @@ def test_band_above_nyquist_is_refused_against_the_corpus_rate():
 
 def test_resolved_defaults_follow_the_data():
     """Data-dependent defaults are written out: band [fs/100, 0.45 fs], σ_t bounds
-    [4/fs, window/6] and |β| ≤ band width / window duration (DESIGN §5)."""
+    [4/fs, window/6] and |β| ≤ band width / window duration (docs/design.md §5)."""
     s = resolve_search_options({}, 4000.0, 1024)
     assert s["band_hz"] == [40.0, 1800.0]
     assert s["time_spread_bounds_s"] == [pytest.approx(1e-3), pytest.approx(0.256 / 6)]
@@ -76,13 +76,13 @@ def test_resolved_defaults_follow_the_data():
 
 
 def test_too_short_windows_are_refused():
-    """Windows under 25 samples leave no room between 4/fs and window/6 (DESIGN §5 bounds)."""
+    """Windows under 25 samples leave no room between 4/fs and window/6 (docs/design.md §5 bounds)."""
     with pytest.raises(ValueError, match="too short"):
         resolve_search_options({}, 1000.0, 20)
 
 
 def test_every_corpus_option_is_a_setting_for_read_corpus():
-    """The corpus options are exactly read_corpus's keywords (DESIGN §6, §9: the settings mirror
+    """The corpus options are exactly read_corpus's keywords (docs/design.md §6, §9: the settings mirror
     the reader), each a job setting that split_settings hands to the reader, and only when set:
     the reader's own defaults stay in force otherwise."""
     import inspect

@@ -2,7 +2,7 @@
 
 Source of the identity: a channel of cell area 1 and no chirp is the Gaussian-window
 spectrogram (L. Cohen, "Time-Frequency Analysis", 1995: the spectrogram is the WVD smoothed by
-the window's WVD; DESIGN §3), computed here with the reference library's
+the window's WVD; docs/design.md §3), computed here with the reference library's
 scipy.signal.ShortTimeFFT. Rényi entropy on the plane: Baraniuk, Flandrin, Janssen & Michel,
 IEEE Trans. Inf. Theory 47(4), 2001.
 """

@@ -72,7 +72,7 @@ def test_fast_matches_naive_full_grid(naive_case, chirped, chirp_method):
     equal the defining double sum S_c[n] = Σ_n' Σ_k W[n',k] G_c((n'−n)/fs, f_k−f_c) Δf/fs (the
     kernel centred on ν = β·(t′ − t)) on a full WVD grid with an explicit 2-D convolution, to
     relative error < 1e-10, channels near 0 and fs/2 included. Source: the definition in
-    DESIGN §3 (discrete WVD after Claasen & Mecklenbräuker, Philips J. Res. 35, 1980)."""
+    docs/design.md §3 (discrete WVD after Claasen & Mecklenbräuker, Philips J. Res. 35, 1980)."""
     x, expected = naive_case
     channels = CHIRPED if chirped else CHANNELS
     rows = slice(len(CHANNELS), None) if chirped else slice(0, len(CHANNELS))
@@ -84,7 +84,7 @@ def test_fast_matches_naive_full_grid(naive_case, chirped, chirp_method):
 
 def test_mixed_filterbank_keeps_channel_order(naive_case):
     """A filterbank mixing chirped and unchirped channels returns every row in the filterbank's
-    order, each equal to the naive reference (< 1e-10). Source: DESIGN §3 definition."""
+    order, each equal to the naive reference (< 1e-10). Source: docs/design.md §3 definition."""
     x, expected = naive_case
     channels = CHANNELS + CHIRPED
     order = np.random.default_rng(5).permutation(len(channels))
@@ -283,7 +283,7 @@ def test_prepared_windows_and_blocks_agree():
 def test_long_windows_are_processed_in_blocks(monkeypatch, chirp_method):
     """With tiny block budgets (forcing row blocks, lag blocks, Doppler-row blocks and window
     chunks) the output is unchanged, and bit-identical on one thread and on two, and for one
-    window at a time (runs must not depend on how work is spread, DESIGN §5): memory is bounded
+    window at a time (runs must not depend on how work is spread, docs/design.md §5): memory is bounded
     by blocking, not by M·N·N arrays. Common practice."""
     module = importlib.import_module("burstlens.search.transform")  # the module, not the function
 
@@ -311,7 +311,7 @@ def test_chirp_methods_agree_on_long_windows():
     peak) on windows long enough that lag counts are not capped by the window, with cell areas
     below and above 1 and both chirp signs, for the whole filterbank and for each channel alone
     (as refinement computes them, where 2L exceeds the kernel's half width): two independent
-    derivations of the same R(θ, m). Source: DESIGN §3 (R the FFT over time of r); the
+    derivations of the same R(θ, m). Source: docs/design.md §3 (R the FFT over time of r); the
     cross-correlation theorem (common practice)."""
     windows = np.random.default_rng(9).standard_normal((2, 700))
     fb = Filterbank([Channel(40.0, 0.012, 0.3, 900.0), Channel(230.0, 0.006, 1.0, -3000.0),

@@ -21,7 +21,7 @@ def _random_analytic(n, seed):
 
 def test_autocorrelation_layouts_match_definition():
     """r[n, m] = z[n+m]·z*[n−m], zero where n±m leaves the window, in every layout, row range
-    and lag range. Source: DESIGN §3 (Claasen & Mecklenbräuker, Philips J. Res. 35, 1980)."""
+    and lag range. Source: docs/design.md §3 (Claasen & Mecklenbräuker, Philips J. Res. 35, 1980)."""
     z = np.stack([_random_analytic(23, 0), _random_analytic(23, 1)])
     lags = 9
     expected = np.zeros((2, 23, lags + 1), dtype=complex)
@@ -42,7 +42,7 @@ def test_autocorrelation_layouts_match_definition():
 
 def test_lag_count_rule():
     """L_c = min(⌊(N−1)/2⌋, ⌈fs·√(2 ln(1/ε))/(4π σ_c)⌉): the lag weight
-    exp(−2π²σ_c²τ²), τ = 2m/fs, is ≤ ε beyond L_c and > ε just before it. Source: DESIGN §3."""
+    exp(−2π²σ_c²τ²), τ = 2m/fs, is ≤ ε beyond L_c and > ε just before it. Source: docs/design.md §3."""
     eps = 1e-6
 
     def weight(m: int, spread: float) -> float:

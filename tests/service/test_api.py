@@ -45,7 +45,7 @@ def test_uploaded_file_names_are_never_paths(make_client, tmp_path):
 
 def test_rejected_upload_leaves_nothing(make_client, tmp_path):
     """A file the reader cannot read is a 422 naming the client's file, and no trace of the
-    upload stays on disk or in the store (DESIGN §6: nothing half-ingested is kept)."""
+    upload stays on disk or in the store (docs/design.md §6: nothing half-ingested is kept)."""
     client = make_client()
     good = corpus_files(1)[0]
     response = client.post("/v1/corpora", files=[good, ("files", ("junk.sac", b"\x00\x01" * 400,
@@ -59,7 +59,7 @@ def test_rejected_upload_leaves_nothing(make_client, tmp_path):
 
 def test_delete_corpus(make_client):
     """DELETE removes the corpus (then 404), and is refused with 409 while a queued job uses it
-    (DESIGN §7; RFC 9110 §15.5.10, 409 Conflict)."""
+    (docs/design.md §7; RFC 9110 §15.5.10, 409 Conflict)."""
     client = make_client()
     corpus = _upload(client)
     job = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": TINY}).json()
@@ -70,7 +70,7 @@ def test_delete_corpus(make_client):
 
 
 def test_job_is_queued_and_listed(make_client):
-    """POST /v1/jobs answers 201 with id, state, progress, attempts and error (DESIGN §7)."""
+    """POST /v1/jobs answers 201 with id, state, progress, attempts and error (docs/design.md §7)."""
     client = make_client()
     corpus = _upload(client)
     response = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": TINY})
@@ -102,7 +102,7 @@ def test_idempotency_key(make_client):
 
 
 def test_unknown_setting_is_named(make_client):
-    """Unknown keys in settings are a 422 whose message names each of them (DESIGN §7)."""
+    """Unknown keys in settings are a 422 whose message names each of them (docs/design.md §7)."""
     client = make_client()
     corpus = _upload(client)
     response = client.post("/v1/jobs", json={"corpus_id": corpus["id"],
@@ -125,7 +125,7 @@ def test_invalid_setting_values(make_client):
 
 
 def test_job_takes_the_corpus_options(make_client):
-    """A job's settings take every corpus option by its CLI name in snake_case (DESIGN §7): a job
+    """A job's settings take every corpus option by its CLI name in snake_case (docs/design.md §7): a job
     with sta_s is accepted and records it; an out-of-range trigger_on, or one that leaves the
     default off threshold above it, is a 422 naming the setting."""
     client = make_client()
@@ -179,7 +179,7 @@ def test_upload_takes_the_corpus_options_and_records_them(make_client, tmp_path)
 
 
 def test_unknown_ids_are_404(make_client):
-    """Unknown corpus and job ids answer 404 with a JSON error (DESIGN §7)."""
+    """Unknown corpus and job ids answer 404 with a JSON error (docs/design.md §7)."""
     client = make_client()
     assert client.post("/v1/jobs", json={"corpus_id": "nope"}).status_code == 404
     for path in ("/v1/jobs/nope", "/v1/jobs/nope/filterbank", "/v1/corpora/nope"):
@@ -199,7 +199,7 @@ def test_results_before_success_are_409(make_client):
 
 
 def test_cancel_queued_job(make_client):
-    """Cancelling a queued job ends it at once; cancelling it again is a 409 (DESIGN §7)."""
+    """Cancelling a queued job ends it at once; cancelling it again is a 409 (docs/design.md §7)."""
     client = make_client()
     corpus = _upload(client)
     job = client.post("/v1/jobs", json={"corpus_id": corpus["id"], "settings": TINY}).json()
@@ -269,7 +269,7 @@ def test_metrics_and_health(make_client):
 
 
 def test_jobs_page_is_served(make_client):
-    """GET / serves the jobs page for people as HTML (DESIGN §7)."""
+    """GET / serves the jobs page for people as HTML (docs/design.md §7)."""
     response = make_client().get("/")
     assert response.status_code == 200
     assert response.headers["content-type"].startswith("text/html")

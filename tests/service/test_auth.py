@@ -85,7 +85,7 @@ def test_same_idempotency_key_is_per_tenant(tmp_path, capsys, make_client):
 
 def test_no_tokens_means_loopback_only(tmp_path, capsys):
     """Without any token stored, `serve` refuses a non-loopback address (exit 2, nothing bound)
-    and names the way out; with a token it would be allowed (DESIGN §7)."""
+    and names the way out; with a token it would be allowed (docs/design.md §7)."""
     from burstlens.service.serving import serve
 
     assert serve(settings_for(tmp_path / "data", host="0.0.0.0", workers=0)) == 2
@@ -94,7 +94,7 @@ def test_no_tokens_means_loopback_only(tmp_path, capsys):
 
 def test_public_address_keeps_auth_on_after_revocation(tmp_path, capsys):
     """Bound to a non-loopback address, the API stays closed even once every token is revoked:
-    `serve` pins tokens_required (DESIGN §7: no-token mode only on loopback)."""
+    `serve` pins tokens_required (docs/design.md §7: no-token mode only on loopback)."""
     from burstlens.service.serving import bind_policy
     from burstlens.service.store import Store
 
@@ -107,7 +107,7 @@ def test_public_address_keeps_auth_on_after_revocation(tmp_path, capsys):
 
 def test_tokens_required_without_tokens_refuses_all(make_client):
     """tokens_required with no token stored: every /v1 call is a 401, /v1/health still answers
-    (DESIGN §7)."""
+    (docs/design.md §7)."""
     client = make_client(tokens_required=True)
     assert client.get("/v1/jobs").status_code == 401
     assert client.get("/v1/health").json()["auth"] is True

@@ -91,7 +91,7 @@ def test_backup_during_a_live_server_restores_every_job_and_result(live_server, 
     restores, at another path, to a data dir whose API answers the same for every job that had
     ended (job, corpus, filterbank) with byte-identical result files, transform store included;
     the jobs in flight come back waiting or working and end with the filterbank the live server
-    gave them (the determinism the fault tests rely on, DESIGN §7). A restore over the live
+    gave them (the determinism the fault tests rely on, docs/design.md §7). A restore over the live
     data dir is refused with exit 2 and leaves it serving."""
     server = live_server(workers=1)
     data = server.data_dir

@@ -141,7 +141,7 @@ def test_report_from_disk_renders_every_image_and_the_channel_table(browser, tmp
     server path, no raw key in its visible text, every text at 4.5:1 contrast or more (WCAG
     2.1 §1.4.3), every plot (naturalWidth > 0) and a channel table equal to the filterbank
     JSON; it logs no console error and requests nothing beyond the file (HTML Living Standard
-    img decoding; DESIGN §8 channel fields)."""
+    img decoding; docs/design.md §8 channel fields)."""
     from burstlens.service.report import render_report
 
     search, corpus = tiny_fit()
@@ -183,7 +183,7 @@ def test_report_from_disk_renders_every_image_and_the_channel_table(browser, tmp
         for field in ("center_hz", "time_spread_s", "cell_area", "chirp_hz_per_s"):
             assert float(row[field]["value"]) == channel[field]
         assert float(row["center_hz"]["text"]) == pytest.approx(channel["center_hz"], rel=1e-4)
-        # shown as the Gaussian window's std s = √2·σ_t in ms (DESIGN §3: |h|² has std σ_t)
+        # shown as the Gaussian window's std s = √2·σ_t in ms (docs/design.md §3: |h|² has std σ_t)
         assert float(row["time_spread_s"]["text"]) == \
             pytest.approx(1e3 * 2 ** 0.5 * channel["time_spread_s"], rel=1e-2)
         assert row["equivalent"]["text"] == channel["equivalent"]["text"]
@@ -215,7 +215,7 @@ def test_jobs_page_with_a_token_follows_a_job_to_succeeded_and_opens_its_report(
     a job submitted after the page loaded appears without a reload and its row moves to
     `succeeded` by polling, while Cancel moves a second, queued job to `cancelled`; the report
     link fetches the page with the token and every image renders (RFC 6750 bearer tokens;
-    DESIGN §7 job states)."""
+    docs/design.md §7 job states)."""
     from burstlens.service.auth import create_token
     from burstlens.service.store import Store
 
@@ -292,7 +292,7 @@ def test_jobs_page_with_a_token_follows_a_job_to_succeeded_and_opens_its_report(
 def test_jobs_page_without_tokens_lists_and_cancels_a_queued_job(browser, live_server, tmp_path):
     """A loopback server without tokens needs none: GET / lists a queued job at once (no token
     prompt, no report link yet), its Cancel button moves it to `cancelled`, and the page loads
-    nothing but its own origin (DESIGN §7)."""
+    nothing but its own origin (docs/design.md §7)."""
     server = live_server(workers=0)  # no worker: the job stays queued
     job_id = _upload_and_submit(server.url, {}, TINY)
     page = browser.new_page(viewport={"width": 1280, "height": 720})

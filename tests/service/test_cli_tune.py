@@ -49,8 +49,8 @@ def tuned(wav_dir, tmp_path_factory):
 
 
 def test_tune_writes_the_results(tuned, capsys):
-    """tune exits 0 and writes filterbank.json (format burstlens-filterbank, version 2, DESIGN
-    §8) and diagnostics.json (strict JSON with the stop reason); the filterbank reads back."""
+    """tune exits 0 and writes filterbank.json (format burstlens-filterbank, version 2,
+    docs/design.md §8) and diagnostics.json (strict JSON with the stop reason); the filterbank reads back."""
     from burstlens.search import Filterbank
 
     code, out = tuned
@@ -159,7 +159,7 @@ def test_tune_missing_input_exits_2(tmp_path, capsys):
 
 
 def test_transform_writes_plain_npz(tuned, wav_dir, tmp_path):
-    """transform writes the NPZ of DESIGN §8 — representation (M, C, N) float32, times_s,
+    """transform writes the NPZ of docs/design.md §8 — representation (M, C, N) float32, times_s,
     center_hz and the channel table — loadable without pickles, equal to search.transform."""
     from burstlens.search import Filterbank, read_corpus, transform
 
@@ -244,7 +244,7 @@ def burst_dir(tmp_path_factory):
 def test_tune_takes_every_corpus_option_and_the_corpus_reflects_them(burst_dir, tmp_path):
     """tune passes the corpus flags (the same as inspect's) to the corpus reader: the corpus in
     diagnostics.json records the values used, and under defaults.given which ones were given
-    rather than chosen from the data (DESIGN §6: every default the run chose is written)."""
+    rather than chosen from the data (docs/design.md §6: every default the run chose is written)."""
     kind = _trigger_kind()
     out = tmp_path / "out"
     assert main(["tune", str(burst_dir), "--out", str(out), "--quiet", "--channels", "6",

@@ -101,7 +101,7 @@ def dask_server(tmp_path_factory, cluster):
 
 def test_dask_job_gives_the_same_filterbank(dask_server, reference):
     """A job whose evaluations run on the Dask cluster ends with exactly the filterbank of the
-    same job run without Dask (DESIGN §5: deterministic however the work is spread)."""
+    same job run without Dask (docs/design.md §5: deterministic however the work is spread)."""
     with httpx.Client(timeout=30) as http:
         job_id = upload_and_queue(http, dask_server)
         view = wait_for(lambda: finished(http, dask_server, job_id), timeout=150, interval=0.2)

@@ -1,7 +1,7 @@
 """Real processes on loopback: `burstlens serve`, `burstlens worker`, kill -9, SIGTERM, restarts.
 
 Each fault test compares the interrupted job's filterbank with an uninterrupted run of the same
-corpus and settings (computed in process), channel by channel and exactly (DESIGN §5: a resumed
+corpus and settings (computed in process), channel by channel and exactly (docs/design.md §5: a resumed
 job ends with the same filterbank as an uninterrupted one).
 """
 from __future__ import annotations
@@ -72,7 +72,7 @@ def _start_worker(data_dir) -> subprocess.Popen:
 
 def test_full_life_over_http_with_submit(live_server, corpus_paths, tmp_path, capsys):
     """`burstlens submit --out` against a live server uploads, queues, follows the progress and
-    downloads filterbank.json, diagnostics.json and report.html (DESIGN §9); the client's
+    downloads filterbank.json, diagnostics.json and report.html (docs/design.md §9); the client's
     transform returns the NPZ; SIGTERM then stops `serve` and its workers with exit code 0."""
     server = live_server(workers=1)
     out = tmp_path / "out"
@@ -98,7 +98,7 @@ def test_full_life_over_http_with_submit(live_server, corpus_paths, tmp_path, ca
 def test_kill_9_worker_is_reclaimed_and_resumes(live_server, corpus_paths, reference):
     """kill -9 of the worker mid-job: `serve` starts another worker, which reclaims the job once
     the lease has expired, resumes from the checkpoint and ends with exactly the uninterrupted
-    filterbank (DESIGN §7)."""
+    filterbank (docs/design.md §7)."""
     server = live_server(workers=1)
     with Client(server.url) as client:
         corpus = client.upload_corpus(corpus_paths)
@@ -114,7 +114,7 @@ def test_kill_9_worker_is_reclaimed_and_resumes(live_server, corpus_paths, refer
 
 def test_sigterm_worker_exits_0_and_resume_is_identical(live_server, corpus_paths, reference):
     """SIGTERM to `burstlens worker` mid-job: it checkpoints, releases the job (no attempt used)
-    and exits 0; the next worker resumes to exactly the uninterrupted filterbank (DESIGN §7)."""
+    and exits 0; the next worker resumes to exactly the uninterrupted filterbank (docs/design.md §7)."""
     server = live_server(workers=0)
     with Client(server.url) as client:
         corpus = client.upload_corpus(corpus_paths)
@@ -157,7 +157,7 @@ def test_server_restart_loses_nothing(live_server, corpus_paths, tmp_path):
 
 def test_enqueue_is_durable_and_streamed_limit_holds(live_server, corpus_paths):
     """The job is in the database once POST /v1/jobs has answered, even if the server is killed
-    right after (a job is acknowledged only after COMMIT, DESIGN §7). On the same real server a
+    right after (a job is acknowledged only after COMMIT, docs/design.md §7). On the same real server a
     chunked upload over max_body_bytes is cut off with a 413."""
     server = live_server(workers=0, BURSTLENS_MAX_BODY_BYTES=1_000_000)
     with Client(server.url) as client:

@@ -13,7 +13,7 @@ DEMO = os.path.join(ROOT, "demo_corpus")
 
 def test_inspect_demo_shows_traces_windows_defaults(capsys):
     """`burstlens inspect demo_corpus/` exits 0 and prints every trace with SEED id, rate and
-    duration, the windows found, the defaults chosen and the rejections line (DESIGN §9)."""
+    duration, the windows found, the defaults chosen and the rejections line (docs/design.md §9)."""
     assert main(["inspect", DEMO]) == 0
     out = capsys.readouterr().out
     assert "windows of 1024 samples (256 ms) at 4000 Hz" in out
@@ -70,7 +70,7 @@ def test_demo_corpus_command_writes_identical_files(tmp_path, capsys):
 def test_inspect_progress_bar_on_stderr_leaves_stdout_unchanged(capsys):
     """`inspect` draws its progress on stderr, naming the files read, the trace-hours read and
     the windows found (the demo: 5 files of three 60 s traces, 0.25 trace-hours), and prints the
-    same summary on stdout as with --quiet, which draws nothing (DESIGN §9: inspect's summary)."""
+    same summary on stdout as with --quiet, which draws nothing (docs/design.md §9: inspect's summary)."""
     assert main(["inspect", DEMO]) == 0
     shown = capsys.readouterr()
     assert main(["inspect", DEMO, "--quiet"]) == 0

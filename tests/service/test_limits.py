@@ -25,7 +25,7 @@ def test_declared_body_over_limit_is_413(make_client, tmp_path):
 
 def test_streamed_body_over_limit_is_413(make_client, tmp_path):
     """A body without Content-Length (chunked) is counted as it streams and cut off with 413,
-    not the 400 a raise inside receive() would give (DESIGN §7)."""
+    not the 400 a raise inside receive() would give (docs/design.md §7)."""
     client = make_client(max_body_bytes=50_000)
     body = b"--b\r\nContent-Disposition: form-data; name=\"files\"; filename=\"x.npz\"\r\n\r\n"
 
@@ -41,7 +41,7 @@ def test_streamed_body_over_limit_is_413(make_client, tmp_path):
 
 
 def test_too_many_files_is_413(make_client, tmp_path):
-    """More files than max_files in one upload: 413 naming the limit, nothing kept (DESIGN §7)."""
+    """More files than max_files in one upload: 413 naming the limit, nothing kept (docs/design.md §7)."""
     client = make_client(max_files=2)
     response = client.post("/v1/corpora", files=corpus_files(3))
     assert response.status_code == 413 and "2 files" in response.json()["detail"]
@@ -50,7 +50,7 @@ def test_too_many_files_is_413(make_client, tmp_path):
 
 def test_too_many_windows_is_413(make_client, tmp_path):
     """A corpus with more windows than max_windows: 413 with both numbers in the message
-    (DESIGN §7)."""
+    (docs/design.md §7)."""
     client = make_client(max_windows=3)
     response = client.post("/v1/corpora", files=corpus_files(1))
     assert response.status_code == 413
@@ -59,7 +59,7 @@ def test_too_many_windows_is_413(make_client, tmp_path):
 
 
 def test_too_many_samples_is_413(make_client, tmp_path):
-    """A corpus with more samples than max_samples (12 s at 1 kHz = 12000): 413 (DESIGN §7)."""
+    """A corpus with more samples than max_samples (12 s at 1 kHz = 12000): 413 (docs/design.md §7)."""
     client = make_client(max_samples=10_000)
     response = client.post("/v1/corpora", files=corpus_files(1))
     assert response.status_code == 413

@@ -25,7 +25,7 @@ def _patches(fig, gid):
 
 def test_kernel_covariance_reproduces_cell_area_and_chirp():
     """The kernel covariance has 4π√det Σ = a and conditional-mean slope Σ_tf/Σ_tt = β, as the
-    definitions a = 4π σ_t σ_f √(1−ρ²), β = ρ σ_f/σ_t require (DESIGN §3; Gaussian conditioning,
+    definitions a = 4π σ_t σ_f √(1−ρ²), β = ρ σ_f/σ_t require (docs/design.md §3; Gaussian conditioning,
     common practice)."""
     for st, a, beta in zip(TIME_SPREAD_S, CELL_AREA, CHIRP_HZ_PER_S, strict=True):
         cov = plots.kernel_covariance(st, a, beta)
@@ -71,7 +71,7 @@ def test_tiling_draws_one_ellipse_per_channel_coloured_by_area():
 
 def test_tiling_shears_chirped_channels():
     """A chirped channel's ellipse leans with slope β: the frequency offset at the outline's
-    extreme time equals β·σ_t (DESIGN §3 kernel shear)."""
+    extreme time equals β·σ_t (docs/design.md §3 kernel shear)."""
     fig = plots.tiling_figure([500.0], [0.005], [1.0], [4000.0])
     (ellipse,) = _patches(fig, plots.CHANNEL_GID)
     xy = ellipse.get_xy()[:-1]
@@ -138,7 +138,7 @@ def test_convergence_requires_evaluations():
 
 
 def test_channel_parameters_draw_values_and_bootstrap_bands():
-    """Three panels against frequency (Hz): the Gaussian window's std √2·σ_t in ms (DESIGN §3:
+    """Three panels against frequency (Hz): the Gaussian window's std √2·σ_t in ms (docs/design.md §3:
     |h|² has time std σ_t), cell area with the a = 1 line, chirp in Hz/s; each with its fitted
     line and a band spanning the given [low, high] (common practice for interval plots)."""
     bands = {

@@ -53,7 +53,7 @@ class Page(HTMLParser):
 
 
 def filterbank_json(channels=5):
-    """A filterbank JSON written by the project's own Filterbank.to_json (DESIGN §8)."""
+    """A filterbank JSON written by the project's own Filterbank.to_json (docs/design.md §8)."""
     centres = np.geomspace(60.0, 900.0, channels)
     bank = Filterbank([Channel(float(fc), 0.006 * (fc / 60.0) ** -0.4, [0.6, 1.0, 1.4, 2.0, 0.8][i % 5],
                                100.0 * (i - 2)) for i, fc in enumerate(centres)], 2000.0)
@@ -150,9 +150,9 @@ def test_report_escapes_hostile_strings():
 def test_channel_table_matches_filterbank_json(page_text):
     """One row per channel with the filterbank JSON's center_hz, time_spread_s, cell_area and
     chirp_hz_per_s (exact value in data-value) shown in the trade's terms: centre in Hz, the
-    Gaussian window's std s = √2·σ_t in ms (DESIGN §3: |h|² has time std σ_t), its FWHM
+    Gaussian window's std s = √2·σ_t in ms (docs/design.md §3: |h|² has time std σ_t), its FWHM
     2√(2 ln 2)·s (common practice), super-resolution or smoothing factor, matched sweep in
-    Hz/s; and the equivalent reading text (DESIGN §8 channel fields)."""
+    Hz/s; and the equivalent reading text (docs/design.md §8 channel fields)."""
     fb = filterbank_json(channels=7)
     page = Page(page_text)
     assert [r["channel"] for r in page.rows] == list(range(7))
@@ -176,7 +176,7 @@ def test_channel_table_matches_filterbank_json(page_text):
 def test_summary_shows_the_run_and_the_cautions(page_text):
     """The summary states the gain, stop reason, windows used and rejected with reasons, the
     settings and the defaults chosen; a baseline without a finite score is named, not dropped
-    silently; the cautions of DESIGN §10 are on the page."""
+    silently; the cautions of docs/design.md §10 are on the page."""
     diag = diagnostics(channels=7)
     visible = " ".join(" ".join(Page(page_text).text).split())
     assert "+0.500 bits" in visible
@@ -207,7 +207,7 @@ def test_without_windows_the_example_plot_is_omitted_with_a_note(page_text):
 
 def test_example_windows_are_the_best_median_and_worst_gain():
     """The example rows are the windows with the largest, the median and the smallest gain
-    (spectrogram score − result score), in that order, among the windows available (DESIGN §8)."""
+    (spectrogram score − result score), in that order, among the windows available (docs/design.md §8)."""
     per_window = {"result": [5.0, 5.0, 5.0, 5.0, 5.0], "spectrogram": [5.3, 6.0, 4.9, 5.1, 5.5]}
     picks = report.example_indices(per_window, 5)
     assert [index for _, index, _ in picks] == [1, 0, 2]
@@ -497,7 +497,7 @@ def test_no_raw_key_in_the_visible_text():
 def test_window_terms_agree_with_scipy_windows():
     """A channel's window in the user's terms, checked on scipy.signal.windows themselves
     (reference library): gaussian(length, std) has the std s = √2·σ_t in samples, and its
-    square's time std is σ_t·fs (DESIGN §3: |h|² has time std σ_t); the FWHM given is the one
+    square's time std is σ_t·fs (docs/design.md §3: |h|² has time std σ_t); the FWHM given is the one
     measured on that window (2√(2 ln 2)·s, common practice) and the Hann length's own window,
     hann(L, sym=False), is above half its peak over as many samples, to within one sample."""
     from scipy.signal.windows import gaussian, hann
@@ -530,7 +530,7 @@ def test_the_shortfft_line_builds_the_best_spectrogram():
     """The report's copyable line, run as it is, builds a scipy.signal.ShortTimeFFT whose window
     is scipy's gaussian at the best spectrogram's std √2·σ_t·fs, and whose spectrogram of the
     analytic signal, over 2‖h‖², equals the project's own plain spectrogram image
-    (search.spectrogram, the a = 1 identity of DESIGN §3) at the same bins and times."""
+    (search.spectrogram, the a = 1 identity of docs/design.md §3) at the same bins and times."""
     from scipy.signal import hilbert
     from scipy.signal.windows import gaussian
 
@@ -580,8 +580,8 @@ def test_the_page_says_which_settings_differ_from_the_defaults():
 
 
 def test_an_excluded_baseline_is_drawn_marked_with_its_reason():
-    """The pseudo-WVD, whose image is 46 % negative against a 1 % positivity ceiling (DESIGN
-    §4.3), is still drawn but marked excluded with that reason, in the entries, the alt text and
+    """The pseudo-WVD, whose image is 46 % negative against a 1 % positivity ceiling
+    (docs/design.md §4.3), is still drawn but marked excluded with that reason, in the entries, the alt text and
     the caption; a baseline within the ceiling is not."""
     from burstlens.service.report.figures import baseline_entries
 

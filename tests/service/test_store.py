@@ -65,7 +65,7 @@ def test_reclaimed_job_rejects_the_old_owner(tmp_path):
 
 def test_attempt_limit_fails_with_the_last_error(tmp_path):
     """A job whose worker keeps dying is failed once max_attempts claims have been used, and the
-    failure keeps the last error (DESIGN §7)."""
+    failure keeps the last error (docs/design.md §7)."""
     store, (job_id,) = _store_with_jobs(tmp_path, 1)
     for attempt in (1, 2):
         job = store.claim(f"w{attempt}", 0.1, 2)
@@ -78,7 +78,7 @@ def test_attempt_limit_fails_with_the_last_error(tmp_path):
 
 
 def test_error_retries_then_fails(tmp_path):
-    """An attempt that raised goes back to the queue with its error, until the limit (DESIGN §7)."""
+    """An attempt that raised goes back to the queue with its error, until the limit (docs/design.md §7)."""
     store, (job_id,) = _store_with_jobs(tmp_path, 1)
     job = store.claim("w", 60.0, 2)
     assert store.retry_or_fail(job, "RuntimeError: boom 1", 2) == "waiting"
@@ -100,7 +100,7 @@ def test_release_returns_the_attempt(tmp_path):
 
 def test_cancel_queued_and_running(tmp_path):
     """Cancel ends a queued job at once and flags a running one; the flag comes back through the
-    running worker's heartbeat (DESIGN §7)."""
+    running worker's heartbeat (docs/design.md §7)."""
     store, (a, b) = _store_with_jobs(tmp_path, 2)
     running = store.claim("w", 60.0, 3)
     queued_id = b if running["id"] == a else a

@@ -85,7 +85,7 @@ def test_warns_when_a_parameter_sits_on_a_search_bound():
 
 def test_a_window_on_its_bound_is_said_as_a_window_in_ms_and_samples():
     """The time spread σ_t on its bound (the 0.0426667 s a search records) is said as the
-    Gaussian window's std √2·σ_t, rounded, in ms and samples (DESIGN §3: |h|² has time std
+    Gaussian window's std √2·σ_t, rounded, in ms and samples (docs/design.md §3: |h|² has time std
     σ_t), in all channels by their band; no raw key, no raw float."""
     diag = clean()
     diag["judgement"]["bounds_hit"] = ["time_spread_s"]

@@ -47,9 +47,9 @@ def _channels(client, job_id):
 
 
 def test_job_full_life(shared):
-    """A queued job is claimed, reports progress, succeeds with the filterbank JSON (DESIGN §8),
+    """A queued job is claimed, reports progress, succeeds with the filterbank JSON (docs/design.md §8),
     diagnostics, report, its PNG plots (PNG signature, ISO/IEC 15948) and an evaluation audit
-    log; /v1/transform applies it as an NPZ with plain (non-object) arrays (DESIGN §7–8)."""
+    log; /v1/transform applies it as an NPZ with plain (non-object) arrays (docs/design.md §7–8)."""
     client, _, job_id = shared
     job = {"id": job_id}
     done = client.get(f"/v1/jobs/{job['id']}").json()
@@ -90,7 +90,7 @@ def test_job_full_life(shared):
 
 def test_transform_with_filterbank_json(shared):
     """POST /v1/transform with the filterbank JSON itself gives the same NPZ as with the job id;
-    a malformed filterbank is a 422 naming it, an output over the limit a 413 (DESIGN §7)."""
+    a malformed filterbank is a 422 naming it, an output over the limit a 413 (docs/design.md §7)."""
     client, _, job_id = shared
     job = {"id": job_id}
     filterbank = client.get(f"/v1/jobs/{job['id']}/filterbank").text
@@ -113,7 +113,7 @@ def test_transform_with_filterbank_json(shared):
 def test_crashing_job_fails_after_attempts_without_blocking_others(shared):
     """A job whose search always raises (band above the Nyquist frequency, found only once the
     corpus is read) is retried up to max_attempts and then failed with the last error; a job
-    queued after it still runs (DESIGN §7)."""
+    queued after it still runs (docs/design.md §7)."""
     client, corpus_id, _ = shared
     assert client.app.state.settings.max_attempts == 3
     bad = _submit(client, {**TINY, "band_hz": [10.0, 4000.0]}, corpus_id)
@@ -137,7 +137,7 @@ def _stopped_after_checkpoints(client, count: int) -> Worker:
 
 def test_resume_from_checkpoint_matches_uninterrupted(shared):
     """A job stopped after a checkpoint is released (attempt given back) and, resumed from the
-    pickled state, ends with exactly the filterbank of an uninterrupted run (DESIGN §5)."""
+    pickled state, ends with exactly the filterbank of an uninterrupted run (docs/design.md §5)."""
     client, corpus_id, reference_id = shared
     reference = {"id": reference_id}
     job = _submit(client, TINY, corpus_id)
@@ -172,7 +172,7 @@ def test_torn_checkpoint_restarts_clean(shared):
 
 def test_cancel_running_job(shared):
     """Cancelling a running job reaches its worker through the heartbeat; the search stops at
-    its next round and the job ends cancelled, its checkpoints removed (DESIGN §7)."""
+    its next round and the job ends cancelled, its checkpoints removed (docs/design.md §7)."""
     client, corpus_id, reference_id = shared
     job = _submit(client, TINY, corpus_id)
 

@@ -111,7 +111,7 @@ def _mseed(path, fs, station, seconds=12.0, channel="HHZ", seed=0):
 
 def test_mixed_rates_resampled_to_most_common(tmp_path):
     """Files at 4000, 4000 and 2000 Hz are read at the most common rate, 4000 Hz, and the defaults
-    say so (DESIGN §6)."""
+    say so (docs/design.md §6)."""
     for k, (name, fs) in enumerate((("a", 4000.0), ("b", 4000.0), ("c", 2000.0))):
         _mseed(tmp_path / f"{name}.mseed", fs, name.upper(), seed=k)
     corpus = read_corpus(tmp_path)
@@ -123,7 +123,7 @@ def test_mixed_rates_resampled_to_most_common(tmp_path):
 
 def test_irreconcilable_rates_are_an_error_naming_the_file(tmp_path):
     """A 500 Hz file among 4 kHz files would need ×8 upsampling: a CorpusError naming that file and
-    suggesting sampling_rate_hz; asking for 500 Hz explicitly downsamples all (DESIGN §6)."""
+    suggesting sampling_rate_hz; asking for 500 Hz explicitly downsamples all (docs/design.md §6)."""
     _mseed(tmp_path / "fast1.mseed", 4000.0, "F1")
     _mseed(tmp_path / "fast2.mseed", 4000.0, "F2", seed=1)
     slow = _mseed(tmp_path / "slow.mseed", 500.0, "S1")
@@ -147,7 +147,7 @@ def test_component_selection_by_orientation_code(tmp_path):
 def test_a_corpus_reads_to_the_same_bits_whatever_the_thread_count(tmp_path):
     """A job worker reads the corpus with other BLAS thread settings than the API or a Dask
     worker; the windows must come out bit for bit the same, so the fit is the same wherever it
-    runs (DESIGN §5 determinism; common practice). The detrend still removes the least-squares
+    runs (docs/design.md §5 determinism; common practice). The detrend still removes the least-squares
     line: the residual is orthogonal to 1 and n (normal equations)."""
     from threadpoolctl import threadpool_limits
 

@@ -92,7 +92,7 @@ def test_fast_length_is_a_power_of_two():
 
 def test_burst_durations_join_triggers_within_gap():
     """Triggers closer than the gap (P and S of one event) form one burst from first on to last
-    off; farther ones are separate (our definition of a burst, DESIGN §6)."""
+    off; farther ones are separate (our definition of a burst, docs/design.md §6)."""
     onsets = np.array([[100, 120], [200, 260], [2000, 2010]])
     np.testing.assert_array_equal(w.burst_durations(onsets, 100), [161, 11])
     np.testing.assert_array_equal(w.burst_durations(onsets, 50), [21, 61, 11])
@@ -100,7 +100,7 @@ def test_burst_durations_join_triggers_within_gap():
 
 def test_place_burst_windows_merges_and_keeps_pre_trigger_share():
     """A window starts pre samples before its trigger; triggers inside it are merged; a window near
-    an end moves inward to the guard, merging with its predecessor if it then overlaps (DESIGN §6:
+    an end moves inward to the guard, merging with its predecessor if it then overlaps (docs/design.md §6:
     fixed windows with a pre-trigger share, overlapping triggers merged)."""
     starts, counts, short = w.place_burst_windows(np.array([150, 1000, 1100, 1900, 5000, 9950]), 10000, 512, 128, 100)
     assert starts == [100, 872, 1772, 4872, 10000 - 100 - 512]

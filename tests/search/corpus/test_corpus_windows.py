@@ -39,7 +39,7 @@ ONSETS = (3.1, 7.4, 11.9, 16.2, 20.5, 24.8)
 def test_bursts_found_with_defaults_scaled_to_the_rate(tmp_path):
     """The same call finds every burst at 5 kHz, 4 kHz, 2 kHz and 250 Hz: the dominant frequency,
     STA (4 periods), LTA (20 × STA) and window length derive from the data, so for a record that
-    is the same in samples they are about the same in samples at every rate (DESIGN §6; STA/LTA lengths after
+    is the same in samples they are about the same in samples at every rate (docs/design.md §6; STA/LTA lengths after
     Trnkoczy, "Understanding and parameter setting of STA/LTA trigger algorithm", NMSOP-2 IS 8.1,
     2012). Without a trigger kind the reader uses equal-weight averages and records 'boxcar'."""
     sizes = set()
@@ -65,7 +65,7 @@ def test_bursts_found_with_defaults_scaled_to_the_rate(tmp_path):
 
 def test_given_options_are_used_and_recorded(tmp_path):
     """Given STA/LTA lengths, thresholds, window and trigger kind override the derived defaults and
-    are written into Corpus.defaults as used (DESIGN §6: every default the run chose is recorded)."""
+    are written into Corpus.defaults as used (docs/design.md §6: every default the run chose is recorded)."""
     fs = 4000.0
     path = _write_mseed(tmp_path / "r.mseed", _burst_record(fs, 28.0, ONSETS), fs)
     corpus = read_corpus(path, sta_s=0.01, lta_s=0.2, trigger_on=4.0, trigger_off=1.2, window_s=0.128,
@@ -79,7 +79,7 @@ def test_given_options_are_used_and_recorded(tmp_path):
 
 def test_overlapping_triggers_merge_into_one_window(tmp_path):
     """Two bursts 80 ms apart (a P and an S) fall in one window, which counts two triggers; a burst
-    a second later gets its own window (DESIGN §6: overlapping triggers merged)."""
+    a second later gets its own window (docs/design.md §6: overlapping triggers merged)."""
     fs = 4000.0
     x = _burst_record(fs, 12.0, (4.0, 6.0), seed=1)
     k = np.arange(200)
@@ -97,7 +97,7 @@ def test_trigger_offset_points_at_the_trigger_onset(tmp_path):
     ``classic_sta_lta`` and ``trigger_onset`` (the reference library) on the record band-passed
     like the trigger's input (Butterworth order 4, zero phase, scipy.signal). Windows clipped at
     the trace's tapered ends hold the onset before or after pre_trigger·N, and a merged window
-    points at its first trigger (DESIGN §6)."""
+    points at its first trigger (docs/design.md §6)."""
     from obspy.signal.trigger import classic_sta_lta, trigger_onset
     from scipy import signal
 
@@ -123,7 +123,7 @@ def test_trigger_offset_points_at_the_trigger_onset(tmp_path):
 
 def test_whole_windowing_one_window_per_event_file(tmp_path):
     """'whole': each trace is one window; traces of different lengths are cut to the median length
-    around their energy peak, a shorter one is rejected as 'too short' (DESIGN §6)."""
+    around their energy peak, a shorter one is rejected as 'too short' (docs/design.md §6)."""
     fs = 1000.0
     rng = np.random.default_rng(2)
     for k, n in enumerate((900, 1000, 1000, 1100, 400)):
@@ -143,7 +143,7 @@ def test_whole_windowing_one_window_per_event_file(tmp_path):
 
 
 def test_sliding_windows_every_hop(tmp_path):
-    """'sliding': windows of window_s every hop_s inside the tapered ends (DESIGN §6)."""
+    """'sliding': windows of window_s every hop_s inside the tapered ends (docs/design.md §6)."""
     fs = 1000.0
     x = np.random.default_rng(3).standard_normal(20000)
     np.save(tmp_path / "cont.npy", x)
@@ -158,7 +158,7 @@ def test_sliding_windows_every_hop(tmp_path):
 
 def test_rejections_carry_named_reasons(tmp_path):
     """Flat, clipped, duplicate, non-finite and too-short windows are rejected with those names,
-    and the accepted windows are the rest (DESIGN §6: rejections are part of the result)."""
+    and the accepted windows are the rest (docs/design.md §6: rejections are part of the result)."""
     fs = 1000.0
     rng = np.random.default_rng(4)
     good = rng.standard_normal(2000) * 100
@@ -198,7 +198,7 @@ def test_non_finite_run_splits_a_continuous_trace(tmp_path):
 def test_contiguous_files_are_joined_and_gaps_split(tmp_path):
     """Consecutive files of one channel (e.g. hourly files) are joined into one trace, so a burst on
     the boundary is found and attributed to the file where its window starts; a real time gap
-    between files keeps them apart (DESIGN §6: split at gaps)."""
+    between files keeps them apart (docs/design.md §6: split at gaps)."""
     fs = 1000.0
     start = UTCDateTime(2026, 2, 3, 4, 0, 0)
     x = _burst_record(fs, 40.0, (8.0, 19.9, 31.0), seed=9)
@@ -215,7 +215,7 @@ def test_contiguous_files_are_joined_and_gaps_split(tmp_path):
 
 def test_cap_is_a_seeded_subsample_in_window_order(tmp_path):
     """max_windows keeps a seeded random subset in window order: the same seed gives the same
-    windows, and the defaults record how many were found (DESIGN §6: cap and seeded subsample)."""
+    windows, and the defaults record how many were found (docs/design.md §6: cap and seeded subsample)."""
     fs = 1000.0
     np.save(tmp_path / "c.npy", np.random.default_rng(5).standard_normal(30000))
     kw = dict(windowing="sliding", window_s=0.5, csv_sampling_rate_hz=fs, max_windows=10)
@@ -362,7 +362,7 @@ def test_bad_options_name_the_option(tmp_path, options, message):
 
 
 def test_failed_read_leaves_nothing_behind(tmp_path):
-    """A failing read writes nothing: the input folder is byte-identical afterwards (DESIGN §6:
+    """A failing read writes nothing: the input folder is byte-identical afterwards (docs/design.md §6:
     nothing half-ingested is kept)."""
     fs = 4000.0
     _write_mseed(tmp_path / "r.mseed", _burst_record(fs, 28.0, ONSETS), fs)
