@@ -1,4 +1,4 @@
-"""Benchmark of search.transform against the issue-2 targets, all figures from one run.
+"""Benchmark of search.tfd against the issue-2 targets, all figures from one run.
 
 Set-up: fs = 4 kHz, C = 96 channels on a log grid over 20–1800 Hz, σ_t from 50 ms (lowest
 centre) down to 2 ms (highest), a = 1; the chirped variant adds β = +1500 Hz/s to every channel.
@@ -42,7 +42,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from burstlens.search import Channel, Filterbank, center_grid, prepare, transform  # noqa: E402
-from burstlens.search.transform import auto_chirp_method, clear_plans  # noqa: E402
+from burstlens.search.tfd import auto_chirp_method, clear_plans  # noqa: E402
 from burstlens.search.wvd import lag_count, truncation_width  # noqa: E402
 
 FS = 4000.0
@@ -212,7 +212,7 @@ def chirp_method_choice(rounds: int = 3) -> None:
 
 
 def main() -> None:
-    print(f"burstlens.search.transform benchmark: fs={FS:g} Hz, C={CHANNELS}, σ_t 2–50 ms, a=1, "
+    print(f"burstlens.search.tfd benchmark: fs={FS:g} Hz, C={CHANNELS}, σ_t 2–50 ms, a=1, "
           f"chirp {CHIRP:+g} Hz/s for the chirped filterbank, eps={EPS:g}")
     with threadpool_limits(1):
         peak_memory(workers=1)

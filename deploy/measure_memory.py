@@ -39,7 +39,7 @@ import numpy as np
 kind, m, c, n = sys.argv[1], int(sys.argv[2]), int(sys.argv[3]), int(sys.argv[4])
 fs = 1000.0
 from burstlens.search.filterbank import Filterbank, center_grid
-from burstlens.search.transform import transform
+from burstlens.search.tfd import transform
 from burstlens.search.optimize import FilterbankSearch
 rng = np.random.default_rng(0)
 windows = rng.standard_normal((m, n))

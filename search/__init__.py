@@ -11,8 +11,8 @@ _EXPORTS = {
     "Channel": "burstlens.search.filterbank",
     "Filterbank": "burstlens.search.filterbank",
     "center_grid": "burstlens.search.filterbank",
-    "transform": "burstlens.search.transform",
-    "prepare": "burstlens.search.transform",
+    "transform": "burstlens.search.tfd",
+    "prepare": "burstlens.search.tfd",
     "renyi_entropy": "burstlens.search.criteria",
     "Criterion": "burstlens.search.criteria",
     "read_corpus": "burstlens.search.corpus",
@@ -31,8 +31,3 @@ def __getattr__(name):
         raise AttributeError(f"module 'search' has no attribute {name!r}") from None
     return getattr(import_module(module), name)
 
-
-# `transform` is both a submodule and a function: importing the submodule binds the module to
-# the package attribute and would shadow the lazy export, so bind the function eagerly (this
-# loads only numpy and scipy).
-from burstlens.search.transform import prepare as prepare, transform as transform  # noqa: E402

@@ -18,7 +18,7 @@ Steady lines (``Filterbank.steady_lines_hz``) are removed per piece, by the same
 ``transform`` (:func:`search.noise.remove_lines` over the piece's input range), before the
 kernels see the samples: their fit, so the image, depends on the piece (measured in the tests).
 
-Each chunk is computed at its output samples only (:func:`search.transform.transform_decimated`,
+Each chunk is computed at its output samples only (:func:`search.tfd.transform_decimated`,
 equal to the hop-1 image sampled every Δ; ``precision="single"`` computes the unchirped
 channels in float32, about 1e-7 of the image's peak from the double-precision image). Chunks run
 in this process (``n_jobs=1``), on a local process pool (joblib, ``n_jobs`` workers), or on a
@@ -72,7 +72,7 @@ from burstlens.search.corpus.model import CorpusError
 from burstlens.search.documents import FilterbankDocument
 from burstlens.search.filterbank import Filterbank
 from burstlens.search.timestep import TimeStep, time_step
-from burstlens.search.transform import transform_decimated
+from burstlens.search.tfd import transform_decimated
 from burstlens.search.wvd import lag_count, truncation_width
 
 FORMAT = "burstlens-continuous"

@@ -24,7 +24,7 @@ A spectrogram with a Gaussian window is the WVD smoothed by the window's own WVD
 Time-Frequency Analysis, 1995); its cell area is exactly 1 (de Bruijn 1967; Janssen 1984).
 
 A filterbank also carries the site's steady lines (``steady_lines_hz``: mains hum, pumps,
-fans), found in the tuning corpus: :func:`search.transform.transform` removes them from every
+fans), found in the tuning corpus: :func:`search.tfd.transform` removes them from every
 window before the kernels see it (``search.noise``), so new data is transformed as the
 tuning scored it.
 

@@ -22,7 +22,7 @@ from numpy.lib import format as npy_format
 from burstlens.search.documents import npz_members
 from burstlens.search.filterbank import Filterbank
 from burstlens.search.safe_io import atomic_write
-from burstlens.search.transform import transform
+from burstlens.search.tfd import transform
 
 __all__ = ["CHUNK_BYTES", "chunk_windows_for", "write_npz", "write_transform_npz"]
 

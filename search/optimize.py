@@ -211,6 +211,6 @@ class FilterbankSearch:
         """Apply the fitted filterbank: ``(M, N)`` windows -> ``(M, C, N)`` float32 images."""
         if not hasattr(self, "filterbank_"):
             raise ValueError("FilterbankSearch is not fitted yet: call fit(corpus) first")
-        from burstlens.search.transform import transform
+        from burstlens.search.tfd import transform
 
         return transform(windows, self.filterbank_, eps=self.eps)

@@ -45,7 +45,7 @@ from burstlens.search.diagnostics import INTERVAL_LEVEL, bootstrap_indices, perc
 from burstlens.search.filterbank import Filterbank
 from burstlens.search.onset import image_onsets
 from burstlens.search.representation import ROWS, Representation
-from burstlens.search.transform import transform
+from burstlens.search.tfd import transform
 from burstlens.search.wvd import analytic_signal
 
 GAINS_DB = np.arange(-60.0, 21.0, 1.0)  # default burst gains, amplitude dB
@@ -81,7 +81,7 @@ def envelope_representation(sampling_rate_hz: float) -> Representation:
 
 
 def filterbank_representation(name: str, filterbank: Filterbank, eps: float = 1e-6) -> Representation:
-    """A filterbank as a representation: :func:`search.transform.transform` in float64.
+    """A filterbank as a representation: :func:`search.tfd.transform` in float64.
 
     One column per sample (time step 1/fs, first column at 0 s); cells ΔA_c = Δf_c/fs s·Hz
     (:func:`search.criteria.cell_sizes` of the channel centres); ``eps`` the transform's

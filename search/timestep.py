@@ -1,6 +1,6 @@
 """The output time step a filterbank allows: each channel's image is band-limited by its kernel.
 
-Channel c's image is S_c = g_c ∗ y_c (:mod:`search.transform`): the unsmoothed lag sum y_c
+Channel c's image is S_c = g_c ∗ y_c (:mod:`search.tfd`): the unsmoothed lag sum y_c
 convolved over time with g_c, the N(0, σ_t²) density, whose spectrum over the time-frequency
 variable θ (Hz) is ĝ_c(θ) = exp(−2π²σ_t²θ²). For a chirped channel (β ≠ 0) lag m's term is
 shifted to θ = βτ_m (τ_m = 2m/fs, m ≤ L_c), so the kernel passes |θ| ≤ |β|τ_{L_c} + θ_ε with

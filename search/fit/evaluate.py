@@ -38,8 +38,8 @@ _PREPARED_MAX = 128             # cached prepared chunks per process (LRU)
 
 
 def _prepared(token: str, windows, start: int, stop: int):
-    """Prepared form (search.transform.prepare) of windows[start:stop], cached per process."""
-    from burstlens.search.transform import prepare
+    """Prepared form (search.tfd.prepare) of windows[start:stop], cached per process."""
+    from burstlens.search.tfd import prepare
 
     key = (token, start, stop)
     with _PREPARED_LOCK:
@@ -70,12 +70,12 @@ _KEPT_PLAN: list = [None]
 
 
 def _transform_kept(prepared, filterbank, eps: float, one_plan: bool) -> np.ndarray:
-    """``search.transform.transform(prepared, filterbank, eps=eps)``; with ``one_plan`` (a
+    """``search.tfd.transform(prepared, filterbank, eps=eps)``; with ``one_plan`` (a
     worker process of its own) only this filterbank's cached weights are kept. A search scores
     each candidate on its chunks and then never again, so older weights (tens of MB for a
     chirped 96-channel grid) would pile up to the transform's cache bound in every worker,
     which loky reads as a memory leak and answers by restarting the worker mid-batch."""
-    from burstlens.search.transform import clear_plans, transform
+    from burstlens.search.tfd import clear_plans, transform
 
     if one_plan:
         key = filterbank.key()

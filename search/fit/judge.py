@@ -335,7 +335,7 @@ def onset_timing(ctx, judged, p, centers, sigma) -> dict | None:
     (window std ``sigma`` on the channel ``centers``; the channel sum is its band energy
     envelope, whatever the grid samples)."""
     from burstlens.search.onset import error_summary_ms, image_onsets
-    from burstlens.search.transform import transform
+    from burstlens.search.tfd import transform
 
     meta = getattr(ctx.corpus, "window_meta", None) or []
     offsets = [meta[i].get("trigger_offset_s") if i < len(meta) and isinstance(meta[i], dict)

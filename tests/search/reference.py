@@ -3,7 +3,7 @@
 The WVD is the explicit double sum of docs/design.md §3 over every lag the window holds, and the channel
 output is the explicit 2-D convolution of that full grid with the sampled kernel
 G_c(u, ν) = g_t(u)·N(ν; βu, σ_f²(1−ρ²)), u = t′ − t (the kernel lies along an arrival sweeping
-at β Hz/s) — nothing here shares code with search.transform.
+at β Hz/s) — nothing here shares code with search.tfd.
 """
 from __future__ import annotations
 

@@ -24,7 +24,7 @@ import pytest
 
 from burstlens.search.criteria import Criterion, continuous_entropy, negative_mass_fraction, renyi_entropy
 from burstlens.search.filterbank import Channel, Filterbank
-from burstlens.search.transform import transform
+from burstlens.search.tfd import transform
 
 FS = 1000.0                              # Hz
 N = 1024                                 # samples per window

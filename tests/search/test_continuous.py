@@ -1,6 +1,6 @@
 """The continuous transform (search/continuous.py) and its time step (search/timestep.py).
 
-References: the one-pass transform of the whole trace (``search.transform.transform``, one window
+References: the one-pass transform of the whole trace (``search.tfd.transform``, one window
 read by ``read_corpus(windowing='whole')``); obspy's trace times (UTC of each sample); hashlib's
 sha256; scipy.signal.resample (Fourier interpolation) for the step's error bound; xarray in a
 plain interpreter for the store's layout.
@@ -25,7 +25,7 @@ from burstlens.search.corpus import read_corpus, stream
 from burstlens.search.documents import FilterbankDocument
 from burstlens.search.filterbank import Channel, Filterbank, center_grid
 from burstlens.search.timestep import aliasing_at, interpolation_bound, time_step
-from burstlens.search.transform import transform, transform_decimated
+from burstlens.search.tfd import transform, transform_decimated
 
 FS = 100.0
 START = obspy.UTCDateTime(2024, 3, 1, 0, 0, 0)
@@ -471,7 +471,7 @@ def _same_store(a, b):
 def test_day_by_day_equals_one_pass(tmp_path):
     """Property: two days appended one file at a time give the bytes of one run over both files,
     and that image equals the one-pass transform of the joined trace (read whole by read_corpus,
-    ``search.transform.transform``) to 1e-5 of its peak away from the trace's ends, at the
+    ``search.tfd.transform``) to 1e-5 of its peak away from the trace's ends, at the
     rule's step; the second run reports the part as appended."""
     fb = _filterbank()
     doc = FilterbankDocument.of(fb)

@@ -268,7 +268,7 @@ def test_steady_lines_travel_with_the_filterbank_and_leave_before_the_transform(
     subtracted: D. E. Butler, R. D. Russell, Geophysics 58(6), 1993, from memory); the lines
     round-trip through JSON and take part in equality; a version-2 file loads with none
     (docs/design.md §8, file versions; common practice for format migration)."""
-    from burstlens.search.transform import prepare, transform
+    from burstlens.search.tfd import prepare, transform
 
     fs, n = 2000.0, 1024
     t = np.arange(n) / fs

@@ -7,7 +7,7 @@ from obspy.signal.trigger import aic_simple
 
 from burstlens.search.filterbank import Filterbank, center_grid
 from burstlens.search.onset import _aic, aic_onset, image_onsets, onset_errors_ms
-from burstlens.search.transform import transform
+from burstlens.search.tfd import transform
 
 FS = 4000.0
 N = 512

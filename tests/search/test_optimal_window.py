@@ -18,7 +18,7 @@ from scipy.optimize import minimize_scalar
 
 from burstlens.search.criteria import renyi_entropy
 from burstlens.search.filterbank import Channel, Filterbank
-from burstlens.search.transform import transform
+from burstlens.search.tfd import transform
 
 FS = 1000.0   # Hz
 F0 = 250.0    # Hz

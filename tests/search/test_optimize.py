@@ -312,7 +312,7 @@ def test_a_default_search_on_separated_pairs_keeps_the_counting_property():
     Janssen & Michel, IEEE Trans. IT 47(4), 2001): interference is not rewarded. The fit stays
     within the ceiling, and a parameter on a search bound is named in the judgement."""
     from burstlens.search.criteria import cell_sizes, renyi_entropy
-    from burstlens.search.transform import transform
+    from burstlens.search.tfd import transform
 
     fs, n, sigma0, f0 = 1000.0, 256, 0.008, 200.0
     corpus = make_corpus(pair_windows(16, fs, n, sigma0, f0, 6 * sigma0, seed=5), fs)

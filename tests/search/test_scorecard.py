@@ -27,7 +27,7 @@ from burstlens.search.scorecard import (
     scorecard,
     threshold_gain_db,
 )
-from burstlens.search.transform import transform
+from burstlens.search.tfd import transform
 
 FS = 2000.0
 N = 512
@@ -103,7 +103,7 @@ def test_injection_identity_against_direct_transforms():
     (the cross term of a quadratic form is bilinear; L. Cohen, "Time-Frequency Analysis", 1995:
     Wigner–Ville-class distributions are quadratic in the signal), so the channel-summed
     envelopes too: the combination equals a direct float64 transform of n + g·b to round-off,
-    for a filterbank with chirped and unchirped channels (search.transform) and for a Gaussian
+    for a filterbank with chirped and unchirped channels (search.tfd) and for a Gaussian
     |STFT|² from scipy.signal.ShortTimeFFT on a hop of 4 samples."""
     rng = np.random.default_rng(3)
     bursts, noise = _gaussian_bursts(5, 0.004, rng), rng.standard_normal((3, N))
@@ -317,7 +317,7 @@ def test_bad_input_names_the_field():
 
 
 def test_filterbank_and_envelope_representations():
-    """The filterbank representation is search.transform in float64 on cells of Δf_c/fs; the
+    """The filterbank representation is search.tfd in float64 on cells of Δf_c/fs; the
     envelope representation is |hilbert(x)|² (scipy.signal.hilbert) as one channel."""
     from scipy.signal import hilbert
 

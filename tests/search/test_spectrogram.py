@@ -15,7 +15,7 @@ from burstlens.search import transform
 from burstlens.search.criteria import Criterion, cell_sizes
 from burstlens.search.filterbank import Filterbank, center_grid
 from burstlens.search.spectrogram import fft_size, hop, spectrogram_scores
-from burstlens.search.transform import prepare
+from burstlens.search.tfd import prepare
 
 FS, N = 4000.0, 1024
 
@@ -34,7 +34,7 @@ def bursts(m, seed):
 @pytest.mark.parametrize("sigma", [0.002, 0.005, 0.02, 0.0427])
 def test_fft_grid_scores_equal_the_filterbank_on_the_same_bins(sigma):
     """Scored on its FFT grid (bins ≤ 1/(4πσ_t), time steps ≤ σ_t/8, midpoint rule), the plain
-    spectrogram gives the H3 of search.transform's a = 1 channels at the same bin centres and
+    spectrogram gives the H3 of search.tfd's a = 1 channels at the same bin centres and
     hop 1 within 0.01 bit (Cohen 1995 identity; ShortTimeFFT as the reference STFT)."""
     windows = bursts(3, seed=1)
     crit = Criterion()

@@ -160,7 +160,7 @@ def test_tune_missing_input_exits_2(tmp_path, capsys):
 
 def test_transform_writes_plain_npz(tuned, wav_dir, tmp_path):
     """transform writes the NPZ of docs/design.md §8 — representation (M, C, N) float32, times_s,
-    center_hz and the channel table — loadable without pickles, equal to search.transform."""
+    center_hz and the channel table — loadable without pickles, equal to search.tfd."""
     from burstlens.search import Filterbank, read_corpus, transform
 
     _, out = tuned

@@ -220,7 +220,7 @@ def test_example_windows_are_the_best_median_and_worst_gain():
 
 
 def test_examples_drawn_from_windows_with_the_project_transform():
-    """Given windows, the report embeds the example-burst plot, computed with search.transform
+    """Given windows, the report embeds the example-burst plot, computed with search.tfd
     for the learned filterbank and the best spectrogram (a = 1, β = 0 at the recorded σ_t,
     named by its window std √2·σ_t); each example is named by its SEED id and UTC start, never
     by the file's server path, or by its offset in the trace when no start is recorded; a

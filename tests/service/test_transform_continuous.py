@@ -1,6 +1,6 @@
 """`burstlens transform --continuous`: the Zarr store, the step flag, exit codes and messages.
 
-Reference: the one-pass transform of the whole trace (``search.transform.transform`` of the trace
+Reference: the one-pass transform of the whole trace (``search.tfd.transform`` of the trace
 read by ``read_corpus(windowing='whole')``), sampled at the step the store records.
 """
 from __future__ import annotations
@@ -14,7 +14,7 @@ import pytest
 from burstlens.search.continuous import overlap_samples
 from burstlens.search.corpus import read_corpus
 from burstlens.search.filterbank import Filterbank, center_grid
-from burstlens.search.transform import transform
+from burstlens.search.tfd import transform
 from burstlens.service.cli import main
 
 FS = 100.0
@@ -121,7 +121,7 @@ def test_store_of_other_filterbank_exit_2(site, tmp_path, capsys):
 def test_cli_appends_a_day_and_refuses_an_overlap(site, tmp_path, capsys):
     """Property: `transform --continuous NEXT --out EXISTING.zarr` with the file that continues
     the stored trace exits 0, says the part continues the store, and extends time to the one-
-    pass transform of both files (read whole, ``search.transform.transform``, 1e-5 of the peak
+    pass transform of both files (read whole, ``search.tfd.transform``, 1e-5 of the peak
     away from the ends); the same file again overlaps what is stored: exit 2 naming the SEED id."""
     import zarr
 

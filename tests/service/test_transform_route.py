@@ -130,7 +130,7 @@ def test_a_failed_transform_leaves_no_file_and_shows_no_internals(tuned, monkeyp
     500 that names no internals (no exception text, no stack trace), and leaves neither the
     output nor a temp file in the data dir."""
     from burstlens.search import npz_stream
-    from burstlens.search.transform import transform
+    from burstlens.search.tfd import transform
 
     client, by_job, _ = tuned
     calls = []
@@ -223,7 +223,7 @@ def _disk_fills_on_second_chunk(monkeypatch):
     import errno
 
     from burstlens.search import npz_stream
-    from burstlens.search.transform import transform
+    from burstlens.search.tfd import transform
 
     calls = []
 

@@ -3,7 +3,7 @@ import numpy as np
 
 from burstlens.search.criteria import Criterion, cell_sizes
 from burstlens.search.fit.evaluate import CHUNK, Evaluator, make_filterbank, row_masses
-from burstlens.search.transform import transform
+from burstlens.search.tfd import transform
 
 
 def test_row_masses_pooled_by_chunk_equal_the_whole_stack_sums():
