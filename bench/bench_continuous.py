@@ -56,7 +56,6 @@ from scipy.signal import ShortTimeFFT
 from scipy.signal.windows import gaussian
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT))
 
 from burstlens.search.continuous import transform_continuous  # noqa: E402
 from burstlens.search.documents import FilterbankDocument  # noqa: E402

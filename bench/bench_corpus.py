@@ -30,7 +30,6 @@ TARGET_MB = 2048.0
 
 CHILD = """
 import json, sys, time
-sys.path.insert(0, {root!r})
 from burstlens.search.corpus import read_corpus
 t0 = time.perf_counter()
 corpus = read_corpus({path!r})
@@ -68,7 +67,7 @@ def main() -> int:
         t0 = time.perf_counter()
         size = make_hour(path)
         print(f"generated 1 h × 3 channels × 4 kHz STEIM2: {size / 1e6:.1f} MB in {time.perf_counter() - t0:.1f} s")
-        done = subprocess.run([sys.executable, "-c", CHILD.format(root=str(ROOT), path=str(path))],
+        done = subprocess.run([sys.executable, "-c", CHILD.format(path=str(path))],
                               capture_output=True, text=True)
         if done.returncode:
             print(done.stderr)

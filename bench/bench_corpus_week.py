@@ -60,17 +60,16 @@ TIME_TARGET = 1.2
 
 CHILD = """
 import json, sys, time
-sys.path.insert(0, {root!r})
 from burstlens.search.corpus import read_corpus
 t0 = time.perf_counter()
 corpus = read_corpus(sys.argv[1:])
 seconds = time.perf_counter() - t0
-channels = len({{t["trace_id"] for t in corpus.traces}})
-print(json.dumps({{"seconds": seconds, "files": len(corpus.files),
+channels = len({t["trace_id"] for t in corpus.traces})
+print(json.dumps({"seconds": seconds, "files": len(corpus.files),
                    "hours": sum(t["duration_s"] for t in corpus.traces) / 3600.0 / channels,
                    "windows_kept": corpus.defaults["windows_kept"],
                    "windows_found": corpus.defaults["windows_found"],
-                   "triggers": corpus.defaults["triggers"]}}))
+                   "triggers": corpus.defaults["triggers"]}))
 """
 
 
@@ -192,7 +191,7 @@ def run_reader(paths: list[Path], cap: int) -> dict:
     def limit() -> None:
         resource.setrlimit(resource.RLIMIT_AS, (cap, cap))
 
-    cmd = [sys.executable, "-c", CHILD.format(root=str(ROOT)), *map(str, paths)]
+    cmd = [sys.executable, "-c", CHILD, *map(str, paths)]
     # files, not pipes: the parent reads nothing until os.wait4 has reaped the child
     with tempfile.TemporaryFile() as out, tempfile.TemporaryFile() as err:
         child = subprocess.Popen(cmd, stdout=out, stderr=err, preexec_fn=limit)

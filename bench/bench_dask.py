@@ -21,11 +21,9 @@ import argparse
 import json
 import sys
 import time
-from pathlib import Path
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 FS = 1000.0
 

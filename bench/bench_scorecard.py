@@ -11,7 +11,7 @@ Prints, from one run on this machine:
   scorecard in numbers (each row's estimate [low, high], reference − representation, positive:
   better than the best plain spectrogram; each representation's absolute figures) and in words
   (``service.verdict.scorecard_rows``), then anything in it that was not measured;
-- a generated site with known answers (the generator of tests/search/test_site_noise.py:
+- a generated site with known answers (burstlens.search.testing.sites, as in tests/search/test_site_noise.py:
   Gaussian bursts of time spread σ0 = 6.1 ms at 300 Hz, a red background, steady lines at 50,
   150, 250 and 420 Hz carrying more than 90 % of the energy), fitted with the default criterion
   and with ``{"name": "detection"}`` (both with a 64 ms Hann ``compare_to``): the same figures,
@@ -27,15 +27,15 @@ Usage: ``python bench/bench_scorecard.py``.
 from __future__ import annotations
 
 import functools
-import importlib.util
 import os
 import sys
 import time
 
 import numpy as np
 
+from burstlens.search.testing import sites
+
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-sys.path.insert(0, ROOT)
 
 GENERATED_BURSTS, GENERATED_NOISE = 128, 64   # a held-out quarter of 32 bursts, as in the demo
 # a user's own spectrogram scored beside the result (compare_to): 64 ms Hann windows, 75 % overlap
@@ -214,40 +214,30 @@ def demo() -> None:
     report("demo site", *timed_fit(options, corpus))
 
 
-def generator():
-    """tests/search/test_site_noise.py, loaded by path: ``site``, ``corpus`` and the constants."""
-    path = os.path.join(ROOT, "tests", "search", "test_site_noise.py")
-    spec = importlib.util.spec_from_file_location("site_noise", path)
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
-
-
 def generated() -> None:
-    gen = generator()
-    windows, noise, share = gen.site(True, m=GENERATED_BURSTS, k=GENERATED_NOISE)
+    windows, noise, share = sites.site(True, m=GENERATED_BURSTS, k=GENERATED_NOISE)
     jobs = min(2, os.cpu_count() or 1)
     print(f"generated site: {len(windows)} burst windows, {len(noise)} noise windows, "
-          f"{gen.N} samples at {gen.FS:g} Hz; bursts sigma0 {1e3 * gen.SIGMA0:.2f} ms at "
-          f"{gen.F0:g} Hz; lines {[f for f, _ in gen.LINES]} Hz carry {share:.1%} of the energy; "
-          f"settings {gen.SETTINGS}, jobs {jobs}, compare_to {GENERATED_COMPARE_TO}")
+          f"{sites.N} samples at {sites.FS:g} Hz; bursts sigma0 {1e3 * sites.SIGMA0:.2f} ms at "
+          f"{sites.F0:g} Hz; lines {[f for f, _ in sites.LINES]} Hz carry {share:.1%} of the energy; "
+          f"settings {sites.SETTINGS}, jobs {jobs}, compare_to {GENERATED_COMPARE_TO}")
     walls = {}
     for label, criterion in (("default criterion", None), ("criterion detection", {"name": "detection"})):
-        est, wall, load, watch = timed_fit({**gen.SETTINGS, "criterion": criterion, "n_jobs": jobs,
+        est, wall, load, watch = timed_fit({**sites.SETTINGS, "criterion": criterion, "n_jobs": jobs,
                                             "compare_to": GENERATED_COMPARE_TO},
-                                           gen.corpus(windows, noise))
+                                           sites.corpus(windows, noise))
         walls[label] = wall
         report(f"generated site, {label}", est, wall, load, watch)
         d, fb = est.diagnostics_, est.filterbank_
         found = np.asarray(d["noise"]["lines"]["lines_hz"], dtype=np.float64)
-        put = np.array([f for f, _ in gen.LINES])
+        put = np.array([f for f, _ in sites.LINES])
         miss = [float(f) for f in put if found.size == 0 or np.min(np.abs(found - f)) > 1.0]
         extra = [float(f) for f in found if np.min(np.abs(put - f)) > 1.0]
         sigma = d["baselines"]["spectrogram"]["parameters"]["time_spread_s"]
-        at_f0 = float(fb.time_spread_s[int(np.argmin(np.abs(fb.center_hz - gen.F0)))])
+        at_f0 = float(fb.time_spread_s[int(np.argmin(np.abs(fb.center_hz - sites.F0)))])
         print(f"  known answers: lines put in {put.tolist()} Hz, missed {miss}, extra {extra}; "
-              f"best spectrogram {1e3 * sigma:.3f} ms = {sigma / gen.SIGMA0:.3f} sigma0; result at "
-              f"{gen.F0:g} Hz {1e3 * at_f0:.3f} ms = {at_f0 / gen.SIGMA0:.3f} sigma0")
+              f"best spectrogram {1e3 * sigma:.3f} ms = {sigma / sites.SIGMA0:.3f} sigma0; result at "
+              f"{sites.F0:g} Hz {1e3 * at_f0:.3f} ms = {at_f0 / sites.SIGMA0:.3f} sigma0")
     print(f"  RATIO detection / default criterion fit time: "
           f"{walls['criterion detection'] / walls['default criterion']:.2f}")
 

@@ -32,7 +32,6 @@ import time
 import numpy as np
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-sys.path.insert(0, ROOT)
 
 
 def by_hand(windows: np.ndarray, fs: float, n_windows_grid: int = 24) -> dict:

@@ -25,7 +25,6 @@ import sys
 import time
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
-sys.path.insert(0, ROOT)
 
 # the same for both sizes; n_jobs = 1 so the child's own peak memory is the whole search's
 OPTIONS = dict(channels=48, evaluations=4, refine_maxiter=1, bootstrap=2, subset=64, n_jobs=1)

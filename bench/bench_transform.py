@@ -26,7 +26,6 @@ from __future__ import annotations
 
 import math
 import resource
-import sys
 import time
 import tracemalloc
 from functools import partial
@@ -39,7 +38,6 @@ from scipy.signal.windows import gaussian
 from threadpoolctl import threadpool_limits
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT))
 
 from burstlens.search import Channel, Filterbank, center_grid, prepare, transform  # noqa: E402
 from burstlens.search.tfd import auto_chirp_method, clear_plans  # noqa: E402
@@ -137,8 +135,7 @@ def speed(n_samples: int, n_windows: int, rounds: int, workers: int | None) -> d
 
 def naive_ratio() -> None:
     """fast / naive on a size the naive full-grid reference can do (N = 128, 8 channels)."""
-    sys.path.insert(0, str(ROOT / "tests" / "search"))
-    from reference import reference_channel, reference_frequency_count, reference_wvd
+    from burstlens.search.testing.reference import reference_channel, reference_frequency_count, reference_wvd
     from scipy.signal import hilbert
 
     n_samples = 128

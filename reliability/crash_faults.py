@@ -51,7 +51,7 @@ from reliability.harness import (FINAL, SMALL, LiveServer, Row, Workers, compara
                                  db_rows, remove_tree, wait_until)
 
 LEASE_S = 2.0
-MAX_ATTEMPTS = 3  # service_helpers.service_env sets BURSTLENS_MAX_ATTEMPTS=3
+MAX_ATTEMPTS = 3  # burstlens.service.testing.service_env sets BURSTLENS_MAX_ATTEMPTS=3
 CORRUPTIONS = ("truncated", "forged-digest", "bit-flip", "overwritten", "deleted")
 # where a kill inside a COMMIT landed (faulty_worker.commit_moment), in the table's words
 COMMIT_MOMENTS = (("before-frames", "before its WAL frames"),

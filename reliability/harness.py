@@ -1,6 +1,6 @@
 """What every experiment shares: result rows, servers and workers, data-dir audits.
 
-Servers are started with the service tests' own helper (``tests/service/service_helpers.py``:
+Servers are started with the service tests' own helpers (``burstlens.service.testing``:
 ``LiveServer``, ``burst_npz``, ``TINY``), so the campaign exercises exactly the process the tests
 and the deployment use. Extra ``burstlens worker`` processes (plain or with a fault injected, see
 :mod:`reliability.faulty_worker`) are started here, always bounded and always reaped.
@@ -17,11 +17,9 @@ import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
-ROOT = Path(os.path.abspath(__file__)).parents[1]  # not resolved: a linked checkout stays itself
-if str(ROOT / "tests" / "service") not in sys.path:
-    sys.path.insert(0, str(ROOT / "tests" / "service"))
+from burstlens.service.testing import TINY, LiveServer, burst_npz, corpus_files, service_env
 
-from service_helpers import TINY, LiveServer, burst_npz, corpus_files, service_env  # noqa: E402
+ROOT = Path(os.path.abspath(__file__)).parents[1]  # not resolved: a linked checkout stays itself
 
 __all__ = ["ROOT", "TINY", "LiveServer", "burst_npz", "corpus_files", "service_env", "Row",
            "Workers", "DataDirAudit", "integrity_check", "db_rows", "wait_until", "FINAL",

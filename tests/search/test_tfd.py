@@ -17,7 +17,7 @@ from burstlens.search.criteria import renyi_entropy
 from burstlens.search import tfd as tfd_module
 from burstlens.search.tfd import CHIRP_METHODS, PreparedWindows, auto_chirp_method, clear_plans
 
-from reference import reference_channel, reference_frequency_count, reference_wvd
+from burstlens.search.testing.reference import reference_channel, reference_frequency_count, reference_wvd
 
 FS = 1000.0
 

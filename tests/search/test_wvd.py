@@ -10,7 +10,7 @@ from scipy.signal import hilbert
 from burstlens.search.wvd import (analytic_signal, autocorrelation, lag_count, pseudo_wvd,
                         truncation_width, wvd_frequencies)
 
-from reference import reference_wvd
+from burstlens.search.testing.reference import reference_wvd
 
 FS = 1000.0
 

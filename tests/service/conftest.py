@@ -2,7 +2,7 @@
 
 ``make_client`` builds in-process TestClients, ``live_server`` real ``burstlens serve``
 processes; both over ``tmp_path/data`` and closed or stopped at teardown. The helpers they use
-are in service_helpers.py.
+are in service/testing.py.
 """
 from __future__ import annotations
 
@@ -10,7 +10,7 @@ from pathlib import Path
 
 import pytest
 
-from service_helpers import LiveServer, settings_for
+from burstlens.service.testing import LiveServer, settings_for
 
 
 @pytest.fixture

@@ -5,7 +5,7 @@ from http import HTTPStatus
 
 import os
 
-from service_helpers import TINY, corpus_files
+from burstlens.service.testing import TINY, corpus_files
 
 from burstlens.service.dependencies import get_store
 

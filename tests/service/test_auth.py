@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import hashlib
 
-from service_helpers import TINY, corpus_files, settings_for
+from burstlens.service.testing import TINY, corpus_files, settings_for
 
 from burstlens.service.cli import main as cli
 

@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pytest
 from fastapi.testclient import TestClient
-from service_helpers import TINY, corpus_files, settings_for
+from burstlens.service.testing import TINY, corpus_files, settings_for
 
 from burstlens.service.app import create_app
 from burstlens.service.store import Store

@@ -21,12 +21,14 @@ from pathlib import Path
 
 import pytest
 from fastapi.testclient import TestClient
-from service_helpers import ROOT, TINY, burst_npz, corpus_files, service_env, settings_for, wait_for
+from burstlens.service.testing import TINY, burst_npz, corpus_files, service_env, settings_for, wait_for
 
 from burstlens.service.app import create_app
 from burstlens.service.client import Client
 from burstlens.service.store import SCHEMA_VERSION, Store
 from burstlens.service.worker import Worker
+
+ROOT = Path(__file__).resolve().parents[2]  # the checkout: the working folder of the commands
 
 pytestmark = pytest.mark.timeout(300)
 

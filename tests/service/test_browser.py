@@ -11,7 +11,7 @@ import re
 import httpx
 import numpy as np
 import pytest
-from service_helpers import TINY, corpus_files, wait_for
+from burstlens.service.testing import TINY, corpus_files, wait_for
 
 CHROMIUM = "/usr/bin/chromium"
 LAUNCH_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",

@@ -9,7 +9,7 @@ import json
 
 import numpy as np
 import pytest
-from service_helpers import drift_site_trace
+from burstlens.service.testing import drift_site_trace
 
 from burstlens.service.cli import main
 
@@ -17,7 +17,7 @@ FS = 1000.0
 
 
 def write_site(path, seed: int, f_burst_hz: float = 120.0, seconds: float = 60.0) -> str:
-    """One generated trace of the drift site (service_helpers.drift_site_trace) as .npz."""
+    """One generated trace of the drift site (burstlens.service.testing.drift_site_trace) as .npz."""
     np.savez(path, data=drift_site_trace(seed, f_burst_hz, seconds, FS),
              sampling_rate_hz=np.float64(FS))
     return str(path)

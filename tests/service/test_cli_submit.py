@@ -4,7 +4,7 @@ from obspy import Stream, Trace, UTCDateTime
 
 from burstlens.search.corpus import read_corpus
 from burstlens.service.cli import main
-from service_helpers import recording_client
+from burstlens.service.testing import recording_client
 
 FS = 1000.0
 

@@ -7,7 +7,7 @@ import pytest
 from scipy.io import wavfile
 
 from burstlens.service.cli import main
-from service_helpers import recording_client
+from burstlens.service.testing import recording_client
 
 
 def atoms(m, n, fs, sigma0, f0, seed=0):
@@ -233,7 +233,7 @@ def _trigger_kind():
 @pytest.fixture(scope="module")
 def burst_dir(tmp_path_factory):
     """Two 12-s traces (.npz, 1 kHz) of tone bursts in noise, for burst windowing."""
-    from service_helpers import burst_npz
+    from burstlens.service.testing import burst_npz
 
     folder = tmp_path_factory.mktemp("bursts")
     for i in range(2):

@@ -10,12 +10,15 @@ import signal
 import subprocess
 import sys
 import time
+from pathlib import Path
 
 import httpx
 import pytest
-from service_helpers import ROOT, TINY, corpus_files, free_port, service_env, settings_for, wait_for
+from burstlens.service.testing import TINY, corpus_files, free_port, service_env, settings_for, wait_for
 
 from burstlens.service.dask_backend import DaskUnavailable, connect
+
+ROOT = Path(__file__).resolve().parents[2]  # the checkout: the working folder of the commands
 
 pytestmark = pytest.mark.timeout(240)
 
@@ -230,7 +233,7 @@ def test_a_one_thread_cluster_runs_the_search_on_the_cluster(tmp_path):
     cluster's size)."""
     from distributed import LocalCluster
 
-    from service_helpers import burst_npz
+    from burstlens.service.testing import burst_npz
 
     from burstlens.search import read_corpus
     from burstlens.search.optimize import FilterbankSearch

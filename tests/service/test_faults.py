@@ -13,15 +13,18 @@ import signal
 import sqlite3
 import subprocess
 import sys
+from pathlib import Path
 
 import httpx
 import numpy as np
 import pytest
 
-from service_helpers import ROOT, TINY, burst_npz, service_env, settings_for, wait_for
+from burstlens.service.testing import TINY, burst_npz, service_env, settings_for, wait_for
 
 from burstlens.service.cli import main as cli
 from burstlens.service.client import Client
+
+ROOT = Path(__file__).resolve().parents[2]  # the checkout: the working folder of the commands
 
 pytestmark = pytest.mark.slow
 

@@ -6,7 +6,7 @@ import errno
 import io
 import os
 
-from service_helpers import TINY, burst_npz, corpus_files
+from burstlens.service.testing import TINY, burst_npz, corpus_files
 
 
 def _nothing_left(tmp_path) -> bool:

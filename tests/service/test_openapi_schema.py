@@ -16,7 +16,7 @@ from schemathesis.checks import (content_type_conformance, not_a_server_error,
                                  response_headers_conformance, response_schema_conformance,
                                  status_code_conformance)
 
-from service_helpers import TINY, corpus_files, settings_for
+from burstlens.service.testing import TINY, corpus_files, settings_for
 
 CHECKS = [not_a_server_error, status_code_conformance, content_type_conformance,
           response_headers_conformance, response_schema_conformance]

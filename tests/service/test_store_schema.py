@@ -18,7 +18,7 @@ from pathlib import Path
 
 import pytest
 from fastapi.testclient import TestClient
-from service_helpers import settings_for
+from burstlens.service.testing import settings_for
 
 from burstlens.service.app import create_app
 from burstlens.service.store import SCHEMA_VERSION, DataDirTooNew, Store

@@ -11,7 +11,7 @@ import threading
 
 import numpy as np
 import pytest
-from service_helpers import settings_for
+from burstlens.service.testing import settings_for
 
 from burstlens.service.guessing import GuessLimiter, retry_after_s
 

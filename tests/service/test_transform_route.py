@@ -7,7 +7,7 @@ import io
 import numpy as np
 import pytest
 
-from service_helpers import TINY, burst_npz, corpus_files, settings_for
+from burstlens.service.testing import TINY, burst_npz, corpus_files, settings_for
 
 # A quick fit: the windowing under test, not the search, is what these jobs are for.
 QUICK = {**TINY, "bootstrap": 0, "refine": False, "max_windows": 40}

@@ -1,7 +1,7 @@
 """Checks and continuous transforms over HTTP: `POST /v1/jobs/{id}/checks` and
 `POST /v1/jobs/{id}/transforms`, run by the job worker (service/tuned_site.py).
 
-The site is generated (`service_helpers.drift_site_trace`, as for tests/service/
+The site is generated (`burstlens.service.testing.drift_site_trace`, as for tests/service/
 test_check_command.py): decaying tone bursts in red noise with a steady 50 Hz line. A search is
 tuned once over the API; the properties checked are the API's contract (kinds, parents, states,
 results) and that the worker's answers are the library's own: a check's answer is
@@ -18,7 +18,7 @@ import numpy as np
 import obspy
 import pytest
 from fastapi.testclient import TestClient
-from service_helpers import drift_site_trace, settings_for
+from burstlens.service.testing import drift_site_trace, settings_for
 
 from burstlens.service.app import create_app
 from burstlens.service.worker import Worker

@@ -7,7 +7,7 @@ from typing import get_args
 import numpy as np
 import pytest
 
-from service_helpers import TINY, corpus_files, settings_for, wait_for
+from burstlens.service.testing import TINY, corpus_files, settings_for, wait_for
 
 from burstlens.service.dependencies import get_settings
 from burstlens.service.report import PLOT_NAMES

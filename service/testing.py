@@ -1,5 +1,7 @@
-"""Shared helpers of the service tests: small burst corpora, settings, live servers (the
-fixtures built on them, ``make_client`` and ``live_server``, are in conftest.py).
+"""Support for the service tests, the benchmarks and the reliability campaign (as numpy.testing
+is for numpy's): small burst corpora, settings, live ``burstlens serve`` processes. The pytest
+fixtures built on them (``make_client``, ``live_server``) are in tests/service/conftest.py.
+Nothing in the service imports this module.
 
 The waveforms are made up for these tests only (a seeded noise floor with Gaussian-enveloped
 tone bursts); no check compares against them, they only give the corpus reader something to cut.
@@ -19,7 +21,6 @@ import numpy as np
 
 from burstlens.service.config import ServiceSettings
 
-ROOT = Path(__file__).resolve().parents[2]
 
 # Tiny search settings: a job takes a few seconds on one core.
 TINY = {"channels": 6, "evaluations": 8, "bootstrap": 2, "seed": 3, "window_s": 0.256}
@@ -101,7 +102,7 @@ class LiveServer:
         self.proc = subprocess.Popen(
             [sys.executable, "-m", "burstlens.service.cli", "serve", "--host", "127.0.0.1", "--port",
              str(self.port), "--data-dir", str(self.data_dir), "--workers", str(self.workers),
-             "--log-level", "warning"], cwd=ROOT, env=service_env(**self.env))
+             "--log-level", "warning"], env=service_env(**self.env))
         deadline = time.monotonic() + 60
         while time.monotonic() < deadline:
             assert self.proc.poll() is None, f"serve exited with {self.proc.returncode}"
