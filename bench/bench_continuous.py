@@ -237,7 +237,7 @@ def print_hour(hours: float, jobs: int, precision: str) -> None:
               f"step {step.samples} samples ({step.seconds * 1e3:g} ms)", flush=True)
         t0 = time.perf_counter()
         result = transform_continuous(paths, document, str(folder / "out.zarr"), reading={"sampling_rate_hz": FS},
-                                      n_jobs=jobs, precision=precision)
+                                      jobs=jobs, precision=precision)
         continuous = time.perf_counter() - t0
         peak_self = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
         peak_children = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024

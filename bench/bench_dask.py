@@ -2,8 +2,8 @@
 against local joblib on the same machine.
 
 Three runs of the same FilterbankSearch on the same synthetic burst corpus:
-  serial      n_jobs=1, no parallelism;
-  joblib      n_jobs=2 with joblib's default process backend (loky), on this machine;
+  serial      jobs=1, no parallelism;
+  joblib      jobs=2 with joblib's default process backend (loky), on this machine;
   dask        joblib's Dask backend on a distributed.LocalCluster of 2 worker processes with one
               thread each, on loopback — the path `burstlens serve --dask ADDR` takes.
 Evaluations per second = candidate filterbanks scored (diagnostics_["evaluations"], all stages)
@@ -47,18 +47,19 @@ class BurstCorpus:
         return {"windows": int(self.windows.shape[0]), "sampling_rate_hz": FS}
 
 
-def fit(corpus, options: dict, n_jobs: int) -> tuple[float, int, float, dict]:
+def fit(corpus, options: dict, jobs: int) -> tuple[float, int, float, dict]:
     """(evaluations per second, evaluations, wall seconds, filterbank JSON) of one fit."""
     from burstlens.search.optimize import FilterbankSearch
 
     started = time.perf_counter()
-    search = FilterbankSearch(**options, n_jobs=n_jobs).fit(corpus)
+    search = FilterbankSearch(**options, jobs=jobs).fit(corpus)
     wall = time.perf_counter() - started
     count = len(search.diagnostics_["evaluations"])
     filterbank = search.filterbank_.to_json()
-    # the provenance records how the work was spread; everything else must be identical
+    # the provenance records how the work was spread (the file's key for jobs is n_jobs);
+    # everything else must be identical
     filterbank["settings"] = {k: v for k, v in filterbank.get("settings", {}).items()
-                              if k not in ("n_jobs", "jobs")}
+                              if k != "n_jobs"}
     return count / wall, count, wall, filterbank
 
 

@@ -201,7 +201,7 @@ def demo() -> None:
 
     corpus_options, options = split_settings(dict(DEMO_SETTINGS))
     # the service's rule (service.worker): no more jobs than the machine has cores
-    options["n_jobs"] = min(int(options["n_jobs"]), os.cpu_count() or 1)
+    options["jobs"] = min(int(options["jobs"]), os.cpu_count() or 1)
     options["compare_to"] = DEMO_COMPARE_TO
     t0 = time.perf_counter()
     corpus = read_corpus([os.path.join(ROOT, "demo_corpus")], **corpus_options)
@@ -209,7 +209,7 @@ def demo() -> None:
     m, n = corpus.windows.shape
     print(f"demo site: {m} windows x {n} samples at {corpus.sampling_rate_hz:g} Hz read in "
           f"{read_s:.1f} s ({corpus_options}); channels {options['channels']}, evaluations "
-          f"{options['evaluations']}, bootstrap {options['bootstrap']}, jobs {options['n_jobs']}, "
+          f"{options['evaluations']}, bootstrap {options['bootstrap']}, jobs {options['jobs']}, "
           f"compare_to {DEMO_COMPARE_TO}")
     report("demo site", *timed_fit(options, corpus))
 
@@ -223,7 +223,7 @@ def generated() -> None:
           f"settings {sites.SETTINGS}, jobs {jobs}, compare_to {GENERATED_COMPARE_TO}")
     walls = {}
     for label, criterion in (("default criterion", None), ("criterion detection", {"name": "detection"})):
-        est, wall, load, watch = timed_fit({**sites.SETTINGS, "criterion": criterion, "n_jobs": jobs,
+        est, wall, load, watch = timed_fit({**sites.SETTINGS, "criterion": criterion, "jobs": jobs,
                                             "compare_to": GENERATED_COMPARE_TO},
                                            sites.corpus(windows, noise))
         walls[label] = wall

@@ -26,8 +26,8 @@ import time
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
-# the same for both sizes; n_jobs = 1 so the child's own peak memory is the whole search's
-OPTIONS = dict(channels=48, evaluations=4, refine_maxiter=1, bootstrap=2, subset=64, n_jobs=1)
+# the same for both sizes; jobs = 1 so the child's own peak memory is the whole search's
+OPTIONS = dict(channels=48, evaluations=4, refine_maxiter=1, bootstrap=2, subset=64, jobs=1)
 MEMORY_TARGET_MB = 1024.0
 TIME_TARGET = 1.2
 

@@ -65,7 +65,7 @@ if kind == "transform":
     out = transform(windows, bank)
     assert out.shape == (m, c, n)
 else:
-    FilterbankSearch(channels=c, evaluations=8, bootstrap=2, seed=0, n_jobs=1).fit(
+    FilterbankSearch(channels=c, evaluations=8, bootstrap=2, seed=0, jobs=1).fit(
         SyntheticCorpus(windows))
 peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
 print(json.dumps({"before_kib": before, "peak_kib": peak}))

@@ -281,18 +281,23 @@ def main(argv=None) -> int:
     worker.install_signal_handlers()
     started = time.monotonic()
     counts["claiming"] = True  # commits count from the first claim on (not the store's opening)
-    # one job, waiting up to 30 s for it to be claimable
-    deadline = time.monotonic() + 30.0
-    while time.monotonic() < deadline:
-        job = worker.store.claim(worker.owner, worker.settings.lease_s, worker.settings.max_attempts)
-        if job is not None:
-            counts["outcome"] = worker.run_job(job)
-            break
-        time.sleep(worker.settings.poll_s)
+    counts["outcome"] = run_one_job(worker)
     counts["seconds"] = time.monotonic() - started
     if stats is not None:
         stats.write_text(json.dumps(counts))
     return 0
+
+
+def run_one_job(worker, wait_s: float = 30.0) -> str | None:
+    """Claim one job, waiting up to ``wait_s`` for it to be claimable (a killed attempt's lease
+    must expire first), and run it: the attempt's outcome, or None when none came."""
+    deadline = time.monotonic() + wait_s
+    while time.monotonic() < deadline:
+        job = worker.store.claim(worker.owner, worker.settings.lease_s, worker.settings.max_attempts)
+        if job is not None:
+            return worker.run_job(job)
+        time.sleep(worker.settings.poll_s)
+    return None
 
 
 if __name__ == "__main__":

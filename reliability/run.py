@@ -15,7 +15,7 @@ import tempfile
 import time
 
 EXPERIMENTS = ("crash_faults", "restarts", "disk_full", "bad_input", "tenants", "load",
-               "token_guessing")
+               "token_guessing", "transform_kills")
 
 
 def table(rows) -> str:

@@ -21,7 +21,7 @@ kernels see the samples: their fit, so the image, depends on the piece (measured
 Each chunk is computed at its output samples only (:func:`search.tfd.transform_decimated`,
 equal to the hop-1 image sampled every Δ; ``precision="single"`` computes the unchirped
 channels in float32, about 1e-7 of the image's peak from the double-precision image). Chunks run
-in this process (``n_jobs=1``), on a local process pool (joblib, ``n_jobs`` workers), or on a
+in this process (``jobs=1``), on a local process pool (joblib, ``jobs`` workers), or on a
 Dask cluster when joblib's Dask backend is in force (``joblib.parallel_config(backend="dask")``,
 or ``service.dask_backend.evaluations_on``): the reader stays in this process, hands out batches
 of chunks (input samples, offset, step) and writes their images in order, so the store's bytes
@@ -37,7 +37,12 @@ settings and the time step. Per part, ``complete_until`` counts the leading time
 (every chunk before it complete; later chunks read NaN until written) and ``final_until`` those no
 later samples of the trace can change; ``n_samples`` is the trace's length as read. A run that
 dies resumes at ``complete_until``; a later run over the trace extended (the earlier files
-with the new) rewrites from ``final_until`` and extends ``time``.
+with the new) rewrites from ``final_until`` and extends ``time``. The root's and a part's
+attributes are written with the group, in one write, and a new part's ``complete_until`` only
+once its arrays and coordinates are whole: a run killed while creating a part leaves one
+without it, which the next run makes anew. A write cut short leaves Zarr's temp file
+(``*.partial``: the local store writes each key to one and renames it onto the key); the next
+run removes them, so a copy of the store carries none.
 
 Appending from the new files alone. A part's image near its end depends on samples not yet
 recorded twice over: through the kernels (``overlap`` samples) and, before them, through the
@@ -147,7 +152,7 @@ def transform_continuous(paths, document: FilterbankDocument, out: str, *, step_
                          reading: dict | None = None, piece_samples: int = PIECE_SAMPLES, eps: float = 1e-6,
                          progress: Callable[[int], None] | None = None,
                          on_chunk: Callable[[str, int], None] | None = None,
-                         on_plan: Callable[[int], None] | None = None, n_jobs: int = 1,
+                         on_plan: Callable[[int], None] | None = None, jobs: int = 1,
                          precision: str = "double") -> ContinuousResult:
     """Transform every trace of ``paths`` whole and write the images to the Zarr store ``out``.
 
@@ -157,9 +162,9 @@ def transform_continuous(paths, document: FilterbankDocument, out: str, *, step_
     ``piece_samples``: output samples per piece (about; a whole number of steps, one chunk).
     ``progress(n)`` after each chunk written (n chunks); ``on_plan(total)`` once the chunks
     to write are known; ``on_chunk(group, steps_complete)`` after each chunk's marker is updated
-    (what it raises stops the run, the store stays resumable). ``n_jobs``: processes computing
+    (what it raises stops the run, the store stays resumable). ``jobs``: processes computing
     chunks (joblib; 1 = this process, −1 = all CPUs); under joblib's Dask backend the cluster's
-    workers, whatever ``n_jobs`` says. ``precision``: ``"double"`` (default) or ``"single"``, the
+    workers, whatever ``jobs`` says. ``precision``: ``"double"`` (default) or ``"single"``, the
     unchirped channels' lag products and FFTs in float32 (``transform_decimated``'s; about 2.5×
     faster, the same bytes serially and on process pools, but chunks computed at once in threads
     of one process, e.g. a Dask worker with several threads, may differ in the last bits; the
@@ -171,8 +176,8 @@ def transform_continuous(paths, document: FilterbankDocument, out: str, *, step_
 
     if precision not in ("double", "single"):
         raise ValueError(f"precision={precision!r} must be 'double' or 'single'")
-    if isinstance(n_jobs, bool) or not isinstance(n_jobs, int) or n_jobs == 0 or n_jobs < -1:
-        raise ValueError(f"n_jobs={n_jobs!r} must be a whole number ≥ 1, or −1 for all CPUs")
+    if isinstance(jobs, bool) or not isinstance(jobs, int) or jobs == 0 or jobs < -1:
+        raise ValueError(f"jobs={jobs!r} must be a whole number ≥ 1, or −1 for all CPUs")
     filterbank = document.filterbank
     fs = filterbank.sampling_rate_hz
     reading = dict(reading if reading is not None else document.reading_options())
@@ -213,7 +218,7 @@ def transform_continuous(paths, document: FilterbankDocument, out: str, *, step_
         writers[seg.index] = _PartWriter(root, seg, mode, stored, context, seam=last[seg.trace_id] == seg.index)
     if on_plan is not None:
         on_plan(sum(w.chunks_to_write for w in writers.values()))
-    runner = _Runner(n_jobs)
+    runner = _Runner(jobs)
     done = 0
     try:
         pending: list[_Chunk] = []
@@ -245,9 +250,9 @@ def _open_root(zarr, out: str, attrs: dict):
     try:
         root = zarr.open_group(out, mode="r+", zarr_format=3)
     except (FileNotFoundError, zarr.errors.GroupNotFoundError):
-        root = zarr.open_group(out, mode="w-", zarr_format=3)
-        root.attrs.update(attrs)
-        return root
+        # one write (attrs.update writes once per key): a kill leaves no root or a whole one
+        return zarr.open_group(out, mode="w-", zarr_format=3, attributes=attrs)
+    _remove_temp_files(out)
     old = dict(root.attrs)
     if old.get("format") != FORMAT:
         raise ValueError(f"--out {out}: not a {FORMAT} store (format {old.get('format')!r})")
@@ -261,6 +266,17 @@ def _open_root(zarr, out: str, attrs: dict):
             raise ValueError(f"--out {out}: the store was written with another {what} "
                              f"({key} {was!r}, now {now!r}); write to a new store")
     return root
+
+
+def _remove_temp_files(out: str) -> None:
+    """Remove the temp files of Zarr writes a killed run cut short (``*.partial`` under a local
+    store's folder; readers never use them, a copy of the store would carry them)."""
+    import os
+    from pathlib import Path
+
+    if os.path.isdir(out):
+        for path in Path(out).rglob("*.partial"):
+            path.unlink(missing_ok=True)
 
 
 def chunk_image(x: np.ndarray, filterbank: Filterbank, eps: float, step: int, offset: int,
@@ -285,17 +301,17 @@ class _Runner:
     """Computes batches of chunks in this process, on joblib's pool, or on the Dask cluster of
     joblib's Dask backend, and has each part write its chunks in order."""
 
-    def __init__(self, n_jobs: int):
+    def __init__(self, jobs: int):
         from joblib import Parallel, effective_n_jobs
         from joblib.parallel import get_active_backend
 
         kind = type(get_active_backend()[0]).__name__
         self.parallel = None
         self.batch = 1
-        if kind == "DaskDistributedBackend":  # the cluster's workers, whatever n_jobs says
+        if kind == "DaskDistributedBackend":  # the cluster's workers, whatever jobs says
             self.parallel = Parallel(n_jobs=-1)
-        elif n_jobs != 1 and kind != "SequentialBackend":
-            self.parallel = Parallel(n_jobs=n_jobs)
+        elif jobs != 1 and kind != "SequentialBackend":
+            self.parallel = Parallel(n_jobs=jobs)
         if self.parallel is not None:
             self.parallel.__enter__()
             self.batch = BATCH_PER_WORKER * max(1, effective_n_jobs(self.parallel.n_jobs))
@@ -509,6 +525,9 @@ class _PartWriter:
         marks = {"n_samples": self.n, "final_until": self.final_until, "n_raw": self.layout.n_raw,
                  "start_s": self.start_s, "native_rate_hz": self.seg.native_rate_hz,
                  "sample_kind": self.seg.trace.kind}
+        if self.stored is not None and "complete_until" not in root[self.group_path].attrs:
+            del root[self.group_path]  # a run was killed while creating it: make it anew
+            self.stored = None
         if self.stored is not None:
             group = root[self.group_path]
             old_n = int(group.attrs.get("n_samples", -1))
@@ -532,9 +551,10 @@ class _PartWriter:
             times[:] = self._times()
             return image, group, first
         trace_group = root.require_group(self.seg.trace_id)
-        group = trace_group.create_group(self.group_path.split("/")[-1])
-        group.attrs.update({**self.ctx.attrs, "trace_id": self.seg.trace_id, "start": _iso(self.start_ns),
-                            "start_ns": self.start_ns, "complete_until": 0, **marks, "seam": None})
+        # the attributes in one write; complete_until once the arrays are whole (see above)
+        group = trace_group.create_group(self.group_path.split("/")[-1], attributes={
+            **self.ctx.attrs, "trace_id": self.seg.trace_id, "start": _iso(self.start_ns),
+            "start_ns": self.start_ns, **marks, "seam": None})
         chunks = (self.chunk_steps, len(fb))
         image = group.create_array("image", shape=(self.n_steps, len(fb)), chunks=chunks, dtype="float32",
                                    fill_value=float("nan"), dimension_names=("time", "frequency"),
@@ -552,6 +572,7 @@ class _PartWriter:
         spread = group.create_array("time_spread_s", shape=(len(fb),), dtype="float64",
                                     dimension_names=("frequency",), attributes={"units": "s"}, fill_value=0.0)
         spread[:] = fb.time_spread_s
+        group.attrs["complete_until"] = 0
         return image, group, 0
 
     def _times(self) -> np.ndarray:

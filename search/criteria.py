@@ -51,7 +51,7 @@ from dataclasses import asdict, dataclass
 import numpy as np
 from scipy.stats import trim_mean
 
-from burstlens.search.settings import CRITERIA, REDUCERS, SPARSITY_MEASURES
+from burstlens.search.criteria_options import CRITERIA, REDUCERS, SPARSITY_MEASURES
 
 # the criteria that score one image (the search's "detection" scores a corpus: search.fit.detect)
 IMAGE_CRITERIA = tuple(c for c in CRITERIA if c != "detection")

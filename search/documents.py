@@ -12,14 +12,16 @@ command, the report, the result routes) goes through this module, so they agree 
   provenance); their other keys are the same.
 - :class:`DiagnosticsDocument`: ``diagnostics.json``, ``FilterbankSearch.diagnostics_``
   (DEVELOPERS.md lists its keys). It has no format version of its own (``version`` is the
-  burstlens version that wrote it); files from before the held-out judgement lack
-  ``judgement``, which then reads as None.
+  burstlens version that wrote it); ``typed`` reads it into the dataclasses of
+  :mod:`search.diagnostics_doc` (schema 1, from before the held-out judgement, whose
+  ``judgement`` then reads as None, and schema 2, today's).
 - :func:`npz_members`: the arrays of the transform NPZ, for the route and the command alike.
 
-A document keeps the JSON object as read or as it will be written (``data``); its properties are
-typed readings of that object, never a second copy, so a written document has the bytes it always
-had and a read one loses no key. Properties return None (or an empty dict) for a part the file
-lacks; only :attr:`FilterbankDocument.filterbank` and :meth:`FilterbankDocument.read` check.
+A document keeps the JSON object as read or as it will be written (``data``) and writes only
+that, so a written document has the bytes it always had and a read one loses no key; its
+properties are typed readings of it (the diagnostics' through ``typed``). Properties return None
+(or an empty dict) for a part the file lacks; only :attr:`FilterbankDocument.filterbank` and
+:meth:`FilterbankDocument.read` check.
 """
 from __future__ import annotations
 
@@ -31,12 +33,13 @@ from typing import Any
 
 import numpy as np
 
+from burstlens.search.diagnostics_doc import Diagnostics
 from burstlens.search.filterbank import FORMAT, VERSION, Filterbank
 from burstlens.search.safe_io import finite_or_none
 from burstlens.search.settings import CORPUS_OPTIONS, check_corpus_options
 
 __all__ = ["FORMAT", "VERSION", "CARRIED_OPTIONS", "JobRecord", "FilterbankDocument",
-           "DiagnosticsDocument", "encode", "npz_members", "CHANNEL_TABLE"]
+           "DiagnosticsDocument", "Diagnostics", "encode", "npz_members", "CHANNEL_TABLE"]
 
 # Corpus options a filterbank does not hand on to new files: its own rate and window length fix
 # the first two, and the last two chose the tuning's sample of windows, not how windows are cut.
@@ -54,10 +57,6 @@ def encode(obj: Any, *, final_newline: bool = True) -> bytes:
     """
     text = json.dumps(obj, indent=1, allow_nan=False)
     return (text + "\n" if final_newline else text).encode("utf-8")
-
-
-def _mapping(value) -> Mapping:
-    return value if isinstance(value, Mapping) else {}
 
 
 @dataclass(frozen=True)
@@ -174,7 +173,8 @@ class FilterbankDocument:
     @property
     def tuning_settings(self) -> Mapping:
         """Every setting of the run as the engine resolved it (``settings``); {} when absent."""
-        return _mapping(self.data.get("settings"))
+        settings = self.data.get("settings")
+        return settings if isinstance(settings, Mapping) else {}
 
     @property
     def job(self) -> JobRecord | None:
@@ -219,7 +219,8 @@ class FilterbankDocument:
 
 @dataclass(frozen=True)
 class DiagnosticsDocument:
-    """``diagnostics.json`` (see the module docstring); ``data`` is the JSON object."""
+    """``diagnostics.json`` (see the module docstring); ``data`` is the JSON object, ``typed`` its
+    reading as :class:`search.diagnostics_doc.Diagnostics` (what every reader uses)."""
 
     data: Mapping[str, Any]
 
@@ -229,67 +230,71 @@ class DiagnosticsDocument:
     def encode(self, *, final_newline: bool = True) -> bytes:
         return encode(self.data, final_newline=final_newline)
 
+    @cached_property
+    def typed(self) -> Diagnostics:
+        """The document as typed records (``Diagnostics.from_json(data)``); ``ValueError`` when
+        ``data`` is not a JSON object."""
+        return Diagnostics.from_json(self.data)
+
     @property
     def version(self) -> str | None:
         """The burstlens version that wrote the file."""
-        value = self.data.get("version")
-        return value if isinstance(value, str) else None
+        return self.typed.version
 
     @property
     def stop_reason(self) -> str | None:
-        value = self.data.get("stop_reason")
-        return value if isinstance(value, str) else None
+        return self.typed.stop_reason
 
     @property
     def judgement(self) -> Mapping | None:
-        """The held-out judgement; None for a cancelled run or a file from before it existed."""
-        found = self.data.get("judgement")
-        return found if isinstance(found, Mapping) else None
+        """The held-out judgement as recorded; None for a cancelled run or a file from before it
+        existed (``typed.judgement`` is its typed reading)."""
+        judged = self.typed.judgement
+        return None if judged is None else judged.source
 
     @property
     def result(self) -> Mapping:
         """The result's objective and interval (``objective``, ``low``, ``high``); {} if absent."""
-        return _mapping(self.data.get("result"))
+        result = self.typed.result
+        return {} if result is None else result.source
 
     @property
     def objective(self) -> float | None:
-        return finite_or_none(self.result.get("objective"))
+        result = self.typed.result
+        return None if result is None else result.objective
 
     @property
     def gain_bits(self) -> float | None:
         """Gain over the best spectrogram, bits (the judgement's estimate when judged)."""
-        return finite_or_none(self.data.get("gain_bits"))
+        return self.typed.gain_bits
 
     @property
     def evaluations(self) -> list:
         """Every stage-1 and stage-2 evaluation ({``stage``, ``round``, ``params``,
-        ``objective``, ``seconds``}), [] when absent."""
-        evaluations = self.data.get("evaluations")
-        return evaluations if isinstance(evaluations, list) else []
+        ``objective``, ``seconds``}) as recorded, [] when absent."""
+        return [e.source for e in self.typed.evaluations]
 
     @property
     def settings(self) -> Mapping:
         """Every setting of the run as the engine resolved it; {} when absent."""
-        return _mapping(self.data.get("settings"))
+        return self.typed.settings.source
 
     @property
     def corpus(self) -> Mapping:
         """The corpus summary (``Corpus.to_json()``); {} when absent."""
-        return _mapping(self.data.get("corpus"))
+        return self.typed.corpus.source
 
     @property
     def reader_defaults(self) -> Mapping | None:
         """Every choice the corpus reader made (``corpus.defaults``, with ``given``: the
         options the caller set); None when not recorded."""
-        defaults = self.corpus.get("defaults")
-        return defaults if isinstance(defaults, Mapping) else None
+        return self.typed.corpus.defaults
 
     @property
     def windowing(self) -> str | None:
         """How the tuning corpus was cut (``bursts``, ``whole``, ``sliding``), as the reader
         recorded it."""
-        value = (self.reader_defaults or {}).get("windowing")
-        return value if isinstance(value, str) else None
+        return self.typed.corpus.windowing
 
 
 # ---------------------------------------------------------------------------------------------

@@ -364,7 +364,7 @@ def refit_options(filterbank, settings: Mapping, *, evaluations: int, seed: int)
     options["channels"] = int(settings.get("channels") or len(centers))
     options["band_hz"] = list(settings.get("band_hz") or [float(centers.min()), float(centers.max())])
     options.update(evaluations=int(evaluations), refine=False, bootstrap=0, guard=False,
-                   seed=int(seed), n_jobs=1)
+                   seed=int(seed), jobs=1)
     return options
 
 

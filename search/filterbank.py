@@ -228,6 +228,23 @@ class Filterbank:
     ``steady_lines_hz``: the site's steady lines, Hz, each in (0, fs/2), removed from windows
     before the transform (module docstring). Array properties have shape (C,). Filterbanks are
     immutable, hashable and compare by value.
+
+    Examples
+    --------
+    >>> from burstlens.search import Channel, Filterbank
+    >>> bank = Filterbank([Channel(5.0, 0.05), Channel(20.0, 0.02, cell_area=2.0)], 100.0)
+    >>> bank
+    Filterbank(2 channels, sampling_rate_hz=100.0)
+    >>> bank.center_hz, bank.cell_area
+    (array([ 5., 20.]), array([1., 2.]))
+    >>> bank[1].equivalent()["text"]
+    'Gaussian spectrogram window 66.6 ms, smoothed ×2.0'
+    >>> Filterbank.from_json(bank.to_json(window_samples=512)) == bank
+    True
+    >>> Filterbank([Channel(60.0, 0.05)], 100.0)
+    Traceback (most recent call last):
+    ...
+    ValueError: channel 0: center_hz=60.0 is at or above the Nyquist frequency fs/2=50.0 ...
     """
 
     def __init__(self, channels: Iterable[Channel], sampling_rate_hz: float, *, provenance=None,

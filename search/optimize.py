@@ -21,7 +21,7 @@ one :class:`~search.fit.context.RunContext`:
 Every score is a criterion of ``search.criteria`` on the t–f plane (cell sizes of the grid);
 a candidate whose mean negative share exceeds ``max_negative_share`` scores +inf. The state
 after every round is a picklable checkpoint; resuming from it ends with the filterbank of an
-uninterrupted run. Scores do not depend on ``n_jobs`` or the joblib backend
+uninterrupted run. Scores do not depend on ``jobs`` or the joblib backend
 (``search.fit.evaluate``).
 """
 from __future__ import annotations
@@ -35,21 +35,28 @@ from burstlens.search.fit.context import Cancelled, RunContext
 from burstlens.search.fit.evaluate import CHUNK
 from burstlens.search.fit.space import SearchSpace
 from burstlens.search.noise import site_lines
-from burstlens.search.settings import SETTINGS_DEFAULTS, resolve_search_options
+from burstlens.search.settings import SEARCH_KEYS, JobSettings
+from burstlens.search.split import held_out_split
+from burstlens.search.sweeps import sweep_rate_bound
+from burstlens.search.tfd import transform
 
 # the stages before the judgement, in order, by the state's phase name
 STAGES = (("baselines", baselines.run), ("family", family.run), ("refine", refine.run))
+# the defaults of the job settings, the one source of the keyword defaults below
+_DEFAULT = JobSettings()
 
 
 class FilterbankSearch:
     """Unsupervised filterbank fit (docs/design.md §5), scikit-learn style.
 
-    Parameters (settings of docs/design.md §7; defaults in ``search.settings.SETTINGS_DEFAULTS``):
+    Parameters (settings of docs/design.md §7; defaults and checks in
+    ``search.settings.JobSettings``; :meth:`from_settings` builds the search from one):
     ``channels``, ``band_hz`` ([lo, hi] Hz; default [fs/100, 0.45 fs]), ``spacing`` (log|linear),
     ``criterion`` (name or dict: name, alpha, p, measure, negative_mass_penalty, reduce),
     ``cell_area`` ([min, max]), ``chirp``, ``refine``, ``evaluations`` (stage-1 budget: filterbanks
     scored on the subset), ``time_limit_s``, ``bootstrap`` (resamples; 0 for none), ``seed``,
-    ``n_jobs``, ``subset`` (windows in the stage-1 subset), ``compare_to`` (the user's own
+    ``jobs`` (candidates scored at once, one process each; -1: every core), ``subset`` (windows
+    in the stage-1 subset), ``compare_to`` (the user's own
     spectrogram, e.g. ``"hann:256:128"``, scored in the scorecard: ``search.compare``), ``guard``
     (True: fall back to the best spectrogram when the result detects or picks worse on the fit
     windows, ``search.fit.judge.pipeline_guard``). Tuning knobs (recorded too):
@@ -61,16 +68,37 @@ class FilterbankSearch:
 
     Learned attributes: ``filterbank_`` (search.filterbank.Filterbank), ``diagnostics_``
     (JSON-ready dict, keys in DEVELOPERS.md), ``objective_`` (bits on the grid for Rényi).
+
+    Example: twelve 256-sample windows at 1 kHz, each a Gaussian burst at 100 Hz (time spread
+    7 ms) at a random onset in light noise; a quick fit of 8 channels (4 family evaluations,
+    no refinement, no bootstrap) and the images of two windows, (M, C, N):
+
+    >>> import numpy as np
+    >>> from burstlens.search.corpus import Corpus
+    >>> fs, n, m = 1000.0, 256, 12
+    >>> rng = np.random.default_rng(0)
+    >>> u = np.arange(n) / fs - rng.uniform(0.08, 0.16, (m, 1))
+    >>> windows = (np.exp(-(u / 0.01) ** 2) * np.cos(2 * np.pi * 100 * u)
+    ...            + 0.01 * rng.standard_normal((m, n)))
+    >>> meta = [{"file": "made up", "trace_id": "XX.DOC..HHZ", "start": None,
+    ...          "offset_s": 0.5 * i} for i in range(m)]
+    >>> corpus = Corpus(windows, fs, meta, [], [], {}, "made up")
+    >>> search = FilterbankSearch(channels=8, evaluations=4, refine=False, bootstrap=0)
+    >>> len(search.fit(corpus).filterbank_.channels)
+    8
+    >>> search.transform(windows[:2]).shape
+    (2, 8, 256)
     """
 
-    def __init__(self, channels=96, band_hz=None, spacing="log", criterion=None,
-                 cell_area=(0.25, 4.0), chirp=True, refine=True,
-                 evaluations=SETTINGS_DEFAULTS["evaluations"], time_limit_s=None,
-                 bootstrap=8, seed=0, n_jobs=1, subset=64, batch=4, initial_points=None,
-                 stall_rounds=3, stall_tol=1e-3, refine_sweeps=1, refine_maxiter=2,
-                 refine_min_share=0.1, smoothness=1.0, eps=1e-6,
-                 max_negative_share=SETTINGS_DEFAULTS["max_negative_share"],
-                 held_out=SETTINGS_DEFAULTS["held_out"], compare_to=None, guard=True):
+    def __init__(self, channels=_DEFAULT.channels, band_hz=_DEFAULT.band_hz,
+                 spacing=_DEFAULT.spacing, criterion=None, cell_area=_DEFAULT.cell_area,
+                 chirp=_DEFAULT.chirp, refine=_DEFAULT.refine, evaluations=_DEFAULT.evaluations,
+                 time_limit_s=_DEFAULT.time_limit_s, bootstrap=_DEFAULT.bootstrap,
+                 seed=_DEFAULT.seed, jobs=_DEFAULT.jobs, subset=_DEFAULT.subset, batch=4,
+                 initial_points=None, stall_rounds=3, stall_tol=1e-3, refine_sweeps=1,
+                 refine_maxiter=2, refine_min_share=0.1, smoothness=1.0, eps=1e-6,
+                 max_negative_share=_DEFAULT.max_negative_share, held_out=_DEFAULT.held_out,
+                 compare_to=_DEFAULT.compare_to, guard=_DEFAULT.guard):
         self.channels = channels
         self.band_hz = band_hz
         self.spacing = spacing
@@ -82,7 +110,7 @@ class FilterbankSearch:
         self.time_limit_s = time_limit_s
         self.bootstrap = bootstrap
         self.seed = seed
-        self.n_jobs = n_jobs
+        self.jobs = jobs
         self.subset = subset
         self.batch = batch
         self.initial_points = initial_points
@@ -98,22 +126,23 @@ class FilterbankSearch:
         self.compare_to = compare_to
         self.guard = guard
 
+    @classmethod
+    def from_settings(cls, settings: JobSettings, **tuning) -> FilterbankSearch:
+        """The search of checked job settings (``search.settings.JobSettings``; its corpus
+        options are the reader's, not the search's), with ``tuning`` knobs (``batch``, ``eps``,
+        ...) as keywords."""
+        return cls(**settings.search_options(), **tuning)
+
     # -- settings ---------------------------------------------------------------------------
 
     def _resolve(self, corpus) -> dict:
-        opts = {"channels": self.channels, "band_hz": self.band_hz, "spacing": self.spacing,
-                "criterion": self.criterion if self.criterion is not None else "renyi",
-                "cell_area": self.cell_area, "chirp": self.chirp, "refine": self.refine,
-                "evaluations": self.evaluations, "time_limit_s": self.time_limit_s,
-                "bootstrap": self.bootstrap, "seed": self.seed, "n_jobs": self.n_jobs,
-                "subset": self.subset, "max_negative_share": self.max_negative_share,
-                "held_out": self.held_out, "compare_to": self.compare_to, "guard": self.guard}
+        settings = JobSettings.from_mapping({name: getattr(self, name) for name in SEARCH_KEYS})
         windows = np.asarray(corpus.windows)
         if windows.ndim != 2 or windows.shape[0] < 1:
             raise ValueError(f"corpus.windows must be a non-empty (M, N) array, got shape {windows.shape}")
         if not np.all(np.isfinite(windows)):
             raise ValueError("corpus.windows holds NaN or Inf samples")
-        s = resolve_search_options(opts, corpus.sampling_rate_hz, windows.shape[1])
+        s = settings.resolve(corpus.sampling_rate_hz, windows.shape[1])
         for name, value, ok in (("batch", self.batch, isinstance(self.batch, int) and self.batch >= 1),
                                 ("initial_points", self.initial_points,
                                  self.initial_points is None or (isinstance(self.initial_points, int)
@@ -150,21 +179,22 @@ class FilterbankSearch:
         refine | judge), ``round``, ``evaluations`` (stage-1 evaluations done) of ``budget``,
         ``evaluations_total``, ``best_objective`` and ``fraction`` (0–1, never decreasing).
 
-        ``checkpoint(state)`` gets, after every round, a snapshot dict that pickles: the
+        ``checkpoint(state)`` gets, after every round, a snapshot dict that pickles
+        (``search.fit.state.SearchState.to_dict``, layout ``STATE_VERSION``): the
         scikit-optimize ``Optimizer`` itself (its GP, its random state and its initial design),
         the refinement state (parameters and the ``(M, C, 4)`` row sums), the baselines, the
         convergence log and the elapsed time. Every other random choice is derived from
         ``seed`` (the subset is stored as indices), so ``fit(corpus, resume_from=state)`` on the
         same corpus and settings ends with exactly the filterbank of an uninterrupted run (any
-        ``n_jobs`` or backend); another corpus or other settings raise ``ValueError``.
+        ``jobs`` or backend); another corpus or other settings raise ``ValueError``, as does a
+        dict that is not a search state or is of another state version (the worker then starts
+        over).
 
         ``should_stop()`` returning True cancels at the next check (stop reason ``cancelled``;
         ``filterbank_`` is the best so far and the judgement is skipped). ``time_limit_s`` stops
         the family search and the refinement (stop reason ``time_limit``); the baselines and
         the judgement always run, since the gain needs them. Returns self.
         """
-        from burstlens.search.split import held_out_split
-
         settings = self._resolve(corpus)
         windows = np.asarray(corpus.windows)
         split = held_out_split(getattr(corpus, "window_meta", None), len(windows),
@@ -173,8 +203,6 @@ class FilterbankSearch:
         if settings["chirp"]:
             # the bound is part of the search space: found on the fit windows only, without
             # the site's steady lines
-            from burstlens.search.sweeps import sweep_rate_bound
-
             fit = lines.remove(windows[split.fit], settings["sampling_rate_hz"])
             found = sweep_rate_bound(fit, settings["sampling_rate_hz"], settings["band_hz"])
             settings.update(chirp_bound_hz_per_s=float(found["chirp_bound_hz_per_s"]),
@@ -193,24 +221,22 @@ class FilterbankSearch:
         still gets its record and its best filterbank so far)."""
         try:
             for phase, stage in STAGES:
-                if ctx.state["phase"] == phase:
+                if ctx.state.phase == phase:
                     t0 = time.perf_counter()
                     try:
                         stage(ctx)
                     finally:
-                        spent = ctx.state.setdefault("seconds", {})
+                        spent = ctx.state.seconds
                         spent[phase] = spent.get(phase, 0.0) + time.perf_counter() - t0
         except Cancelled:
-            ctx.state["stop_reason"] = "cancelled"
+            ctx.state.stop_reason = "cancelled"
         t0 = time.perf_counter()
         self.filterbank_, self.diagnostics_, self.objective_ = judge.run(ctx)
-        self.diagnostics_["stage_seconds"] = {**ctx.state.get("seconds", {}),
+        self.diagnostics_["stage_seconds"] = {**ctx.state.seconds,
                                               "judge": time.perf_counter() - t0}
 
     def transform(self, windows):
         """Apply the fitted filterbank: ``(M, N)`` windows -> ``(M, C, N)`` float32 images."""
         if not hasattr(self, "filterbank_"):
             raise ValueError("FilterbankSearch is not fitted yet: call fit(corpus) first")
-        from burstlens.search.tfd import transform
-
         return transform(windows, self.filterbank_, eps=self.eps)

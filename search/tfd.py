@@ -140,6 +140,24 @@ def transform(windows, filterbank: Filterbank, *, eps: float = 1e-6, dtype=np.fl
     (:func:`auto_chirp_method` tells which), ``"lag"`` lag by lag (one FFT over time per lag),
     ``"doppler"`` only at the θ bins their bands reach (Doppler rows); all are exact and agree to
     round-off. Unchirped channels ignore it.
+
+    Examples
+    --------
+    Two tones, each at the centre of one channel, in windows of 256 samples at 100 Hz:
+
+    >>> import numpy as np
+    >>> from burstlens.search import Channel, Filterbank, transform
+    >>> fs = 100.0
+    >>> bank = Filterbank([Channel(10.0, 0.1), Channel(25.0, 0.1)], fs)
+    >>> t = np.arange(256) / fs
+    >>> windows = np.stack([np.sin(2 * np.pi * 10 * t), np.sin(2 * np.pi * 25 * t)])
+    >>> image = transform(windows, bank)
+    >>> image.shape, image.dtype  # (M, C, N)
+    ((2, 2, 256), dtype('float32'))
+    >>> image[:, :, 64:192].mean(axis=2).argmax(axis=1)  # each tone fills its own channel
+    array([0, 1])
+    >>> transform(windows[0], bank).shape  # one 1-D window gives (C, N)
+    (2, 256)
     """
     prepared, workers = _checked_input(windows, filterbank, eps, workers, chirp_method)
     z = prepared.analytic

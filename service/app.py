@@ -8,6 +8,7 @@ trace (the log has it, under the same reference).
 from __future__ import annotations
 
 import logging
+import math
 import sqlite3
 import uuid
 
@@ -29,8 +30,9 @@ from burstlens.service.store import Conflict, IdempotencyMismatch, LeaseLost, No
 
 log = logging.getLogger("burstlens.api")
 
-# the domain's errors and the status each answers with (routes raise them as they are)
-_DOMAIN_STATUS = {NotFound: 404, Conflict: 409, LeaseLost: 409, QueueFull: 429,
+# the domain's errors and the status each answers with (routes raise them as they are;
+# QueueFull, a 429 with Retry-After, has a handler of its own)
+_DOMAIN_STATUS = {NotFound: 404, Conflict: 409, LeaseLost: 409,
                  IdempotencyMismatch: 422, CorpusRejected: 422, CorpusTooLarge: 413}
 
 DESCRIPTION = """\
@@ -111,6 +113,13 @@ def install_error_handlers(app: FastAPI) -> None:
                 return problem_response(status, str(exc), request)
             return _store
         app.add_exception_handler(cls, make(status))
+
+    @app.exception_handler(QueueFull)
+    async def _queue_full(request: Request, exc: QueueFull):
+        # a place frees when a worker claims a waiting job, which an idle worker tries every
+        # poll_s; a 429 may say when to retry (RFC 6585 §4), in whole seconds (RFC 9110 §10.2.3)
+        retry_after = max(1, math.ceil(request.app.state.settings.poll_s))
+        return problem_response(429, str(exc), request, headers={"Retry-After": str(retry_after)})
 
     @app.exception_handler(sqlite3.OperationalError)
     async def _store_unavailable(request: Request, exc: sqlite3.OperationalError):

@@ -20,9 +20,10 @@ from typing import Any
 
 import httpx
 
+from burstlens.service.results import DIAGNOSTICS_JSON, FILTERBANK_JSON, REPORT_HTML
+
 FINAL_STATES = ("done", "error", "withdrawn")
-RESULTS = {"filterbank": "filterbank.json", "diagnostics": "diagnostics.json",
-           "report": "report.html"}
+RESULTS = {"filterbank": FILTERBANK_JSON, "diagnostics": DIAGNOSTICS_JSON, "report": REPORT_HTML}
 
 
 class ServiceError(RuntimeError):

@@ -10,7 +10,14 @@ import math
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
+from burstlens.search.corpus import CorpusError
+from burstlens.search.corpus.given import read_corpus_as_given
+from burstlens.search.settings import CORPUS_OPTIONS, check_corpus_options
+
 log = logging.getLogger("burstlens.corpus")
+
 
 class CorpusRejected(ValueError):
     """The files cannot be read as a corpus, or the reading options are wrong (the message names
@@ -25,8 +32,6 @@ def parse_read_options(fields: dict[str, str]) -> dict[str, Any]:
     """Form fields of an upload (named as the corpus options, ``search.settings.CORPUS_OPTIONS``,
     values as text) → checked corpus reader options; a bad one is a :class:`CorpusRejected`
     naming it."""
-    from burstlens.search.settings import CORPUS_OPTIONS, check_corpus_options
-
     try:
         return check_corpus_options({name: CORPUS_OPTIONS[name].parse(text)
                                      for name, text in fields.items()})
@@ -51,8 +56,6 @@ def renamer(paths: list[Path], names: list[str]):
 
 def jsonable(obj: Any, rename=lambda s: s) -> Any:
     """Plain JSON types: numpy scalars/arrays unwrapped, non-finite floats → None, names mapped."""
-    import numpy as np
-
     if isinstance(obj, dict):
         return {str(k): jsonable(v, rename) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
@@ -76,9 +79,6 @@ def jsonable(obj: Any, rename=lambda s: s) -> Any:
 def load_corpus(paths: list[Path], names: list[str], options: dict[str, Any], mapper=None):
     """``search.read_corpus`` over stored files (its tasks on a cluster with ``mapper``); errors
     become :class:`CorpusRejected`."""
-    from burstlens.search.corpus import CorpusError
-    from burstlens.search.settings import read_corpus_as_given
-
     rename = renamer(paths, names)
     try:
         return read_corpus_as_given([str(p) for p in paths], options, mapper=mapper)

@@ -20,6 +20,12 @@ import tempfile
 import time
 from pathlib import Path
 
+import httpx
+
+from burstlens.service.client import Client
+from burstlens.service.commands.submit import expand, follow
+from burstlens.service.energy_channels import sample_windows
+
 ROOT = Path(__file__).resolve().parent.parent
 
 # Sized so the whole demo stays well inside 5 minutes on a 2-core machine, with the default
@@ -36,8 +42,6 @@ def free_port() -> int:
 
 
 def wait_healthy(client, proc: subprocess.Popen, timeout_s: float = 90.0) -> None:
-    import httpx
-
     deadline = time.monotonic() + timeout_s
     while time.monotonic() < deadline:
         if proc.poll() is not None:
@@ -50,17 +54,18 @@ def wait_healthy(client, proc: subprocess.Popen, timeout_s: float = 90.0) -> Non
     raise RuntimeError(f"the server did not answer /v1/health within {timeout_s:.0f} s")
 
 
-def summary_lines(filterbank: dict, diagnostics: dict, elapsed_s: float,
+def summary_lines(filterbank: dict, diagnostics, elapsed_s: float,
                   bursts=None) -> list[str]:
     """The held-out gain and any warnings first (``service.verdict``), then the run and the
     channels carrying the energy of the burst corpus ``bursts`` (``service.energy_channels``)."""
+    from burstlens.search.diagnostics_doc import Diagnostics
     from burstlens.service import verdict
     from burstlens.service.energy_channels import lines_or_note
 
-    lines = verdict.lines(diagnostics)  # the gain is said here once, with its interval
-    lines.append(f"stop reason: {diagnostics.get('stop_reason')}")
-    windows = diagnostics.get("windows") or {}
-    lines.append(f"windows used: {windows.get('used')}, rejected: {windows.get('rejected')}")
+    d = Diagnostics.of(diagnostics)
+    lines = verdict.lines(d)  # the gain is said here once, with its interval
+    lines.append(f"stop reason: {d.stop_reason}")
+    lines.append(f"windows used: {d.windows.used}, rejected: {d.windows.rejected}")
     lines.append(f"channels: {len(filterbank.get('channels') or [])} at "
                  f"{filterbank.get('sampling_rate_hz')} Hz")
     lines += lines_or_note(filterbank, bursts)
@@ -69,9 +74,6 @@ def summary_lines(filterbank: dict, diagnostics: dict, elapsed_s: float,
 
 
 def run(corpus_dir: Path, out_dir: Path, settings: dict) -> int:
-    from burstlens.service.client import Client
-    from burstlens.service.commands.submit import expand, follow
-
     files = expand([str(corpus_dir)])
     if not files:
         print(f"demo: no files in {corpus_dir}; generate them with `burstlens demo-corpus --out "
@@ -100,8 +102,6 @@ def run(corpus_dir: Path, out_dir: Path, settings: dict) -> int:
                 return 1
             saved = client.download_results(job["id"], out_dir)
             filterbank, diagnostics = client.filterbank(job["id"]), client.diagnostics(job["id"])
-        from burstlens.service.energy_channels import sample_windows
-
         elapsed_s = time.monotonic() - start
         bursts = sample_windows(files, filterbank)
         print("\n".join(summary_lines(filterbank, diagnostics, elapsed_s, bursts)))

@@ -1,6 +1,7 @@
 """Request and response bodies of the /v1 API (pydantic), with the examples shown in OpenAPI.
 
-``JobSettings`` mirrors the CLI settings flags in snake_case (docs/design.md §7). Every field is optional:
+``JobSettings`` mirrors the CLI settings flags in snake_case (docs/design.md §7); its
+``to_settings()`` is the engine's frozen ``search.settings.JobSettings``. Every field is optional:
 a missing one takes the engine's default, which the result records. Unknown keys are rejected
 (``extra="forbid"``) so a typo never silently runs a different job. Its corpus fields are made
 from the one definition of the corpus options (``search.settings.CORPUS_OPTIONS``): same names,
@@ -12,7 +13,10 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, create_model, field_validator
 
-from burstlens.search.settings import CORPUS_OPTIONS
+from burstlens.search.compare import parse_compare_to
+from burstlens.search.criteria_options import CRITERIA, SPARSITY_MEASURES
+from burstlens.search.settings import CORPUS_OPTIONS, SPACINGS
+from burstlens.search.settings import JobSettings as EngineSettings
 
 JobState = Literal["waiting", "working", "done", "error", "withdrawn"]
 JobKind = Literal["search", "check", "transform"]
@@ -25,12 +29,12 @@ class _Strict(BaseModel):
 class CriterionSettings(_Strict):
     """Sharpness criterion (lower is sharper)."""
 
-    name: Literal["renyi", "concentration", "sparsity", "detection"] | None = Field(
+    name: Literal[CRITERIA] | None = Field(
         None, description="renyi (default), concentration (Stanković M_p), sparsity, or "
                           "detection (the weakest burst an energy detector on the image finds).")
     alpha: float | None = Field(None, gt=0, le=100, description="Rényi order α (default 3).")
     p: float | None = Field(None, gt=0, le=100, description="Concentration exponent p (default 2).")
-    measure: Literal["gini", "hoyer"] | None = Field(None, description="Sparsity measure.")
+    measure: Literal[SPARSITY_MEASURES] | None = Field(None, description="Sparsity measure.")
     negative_mass_penalty: float | None = Field(
         None, ge=0, le=1e6, description="λ: adds λ·Σ|p⁻|/Σ|p| to the score.")
     excess: bool | None = Field(
@@ -66,7 +70,7 @@ class _SearchSettings(_Strict):
     channels: int | None = Field(None, ge=2, le=512, description="Number of channels.")
     band_hz: list[float] | None = Field(None, min_length=2, max_length=2,
                                         description="[low, high] channel band, Hz.")
-    spacing: Literal["log", "linear"] | None = Field(None, description="Channel centre spacing.")
+    spacing: Literal[SPACINGS] | None = Field(None, description="Channel centre spacing.")
     criterion: CriterionSettings | None = None
     cell_area: list[float] | None = Field(
         None, min_length=2, max_length=2,
@@ -98,8 +102,6 @@ class _SearchSettings(_Strict):
     def _compare_to(cls, value):
         if value is None:
             return None
-        from burstlens.search.compare import parse_compare_to
-
         return parse_compare_to(value).text
 
     @field_validator("band_hz")
@@ -116,8 +118,14 @@ class _SearchSettings(_Strict):
         return _pair("cell_area", value, positive=True)
 
     def to_options(self) -> dict[str, Any]:
-        """The settings dict handed to ``search.settings.split_settings`` (unset keys left out)."""
+        """The settings as the job records them: a JSON object of the keys set (unset keys left
+        out), for ``search.settings.JobSettings.from_mapping``."""
         return self.model_dump(exclude_none=True, mode="json")
+
+    def to_settings(self) -> EngineSettings:
+        """The engine's checked settings (``search.settings.JobSettings``); ``ValueError``
+        naming a setting the engine refuses."""
+        return EngineSettings.from_mapping(self.to_options())
 
 
 _KIND_TYPES = {"positive": float, "share": float, "integer": int, "codes": str,

@@ -17,7 +17,9 @@ import sys
 import time
 from pathlib import Path
 
+import httpx
 import numpy as np
+from scipy.signal import lfilter
 
 from burstlens.service.config import ServiceSettings
 
@@ -46,8 +48,6 @@ def drift_site_trace(seed: int, f_burst_hz: float = 120.0, seconds: float = 60.0
     """One trace of the generated site the drift checks use: decaying bursts
     x = A·exp(−t/τ)·sin(2πft), τ = 30 ms, every ~1.2 s, in AR(1) red noise with a steady 50 Hz
     line."""
-    from scipy.signal import lfilter
-
     rng = np.random.default_rng(seed)
     n = int(fs * seconds)
     t = np.arange(n) / fs
@@ -97,8 +97,6 @@ class LiveServer:
         self.proc: subprocess.Popen | None = None
 
     def start(self) -> LiveServer:
-        import httpx
-
         self.proc = subprocess.Popen(
             [sys.executable, "-m", "burstlens.service.cli", "serve", "--host", "127.0.0.1", "--port",
              str(self.port), "--data-dir", str(self.data_dir), "--workers", str(self.workers),
@@ -111,7 +109,8 @@ class LiveServer:
                 return self
             except httpx.TransportError:
                 time.sleep(0.1)
-        raise RuntimeError("server did not come up")
+        self.stop(signal.SIGKILL)  # never leave a server behind that did not come up in time
+        raise RuntimeError("server did not come up in 60 s")
 
     def worker_pids(self) -> list[int]:
         return child_pids(self.proc.pid)

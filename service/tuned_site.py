@@ -20,6 +20,17 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+from burstlens.search.continuous import transform_continuous
+from burstlens.search.corpus import CorpusError
+from burstlens.search.documents import DiagnosticsDocument, FilterbankDocument
+from burstlens.search.drift import MAX_WINDOWS, check_drift
+from burstlens.service.corpus_check import (CorpusRejected, enforce_limits, jsonable, load_corpus,
+                                            renamer)
+from burstlens.service.results import DIAGNOSTICS_JSON, FILTERBANK_JSON
+from burstlens.service.store import NotFound, write_blob
+
+# service.worker imports this module, so its PermanentError is imported where it is raised
+
 CHECK_FILE = "check.json"
 STORE_DIR = "store.zarr"
 
@@ -31,15 +42,13 @@ class Interrupted(Exception):
 
 def parent_documents(run):
     """The parent search's filterbank and diagnostics documents (PermanentError when gone)."""
-    from burstlens.search.documents import DiagnosticsDocument, FilterbankDocument
-    from burstlens.service.store import NotFound
     from burstlens.service.worker import PermanentError
 
     try:
         parent = run.store.get_job(run.job["parent_id"], None)
         folder = run.store.path(parent["result_dir"])
-        filterbank = FilterbankDocument.read(json.loads((folder / "filterbank.json").read_text()))
-        diagnostics = DiagnosticsDocument(json.loads((folder / "diagnostics.json").read_text()))
+        filterbank = FilterbankDocument.read(json.loads((folder / FILTERBANK_JSON).read_text()))
+        diagnostics = DiagnosticsDocument(json.loads((folder / DIAGNOSTICS_JSON).read_text()))
     except (NotFound, OSError, TypeError, ValueError) as exc:
         raise PermanentError(f"the search {run.job['parent_id']} has no readable filterbank "
                              f"({exc})") from None
@@ -48,7 +57,6 @@ def parent_documents(run):
 
 def corpus_of(run):
     """The job's corpus record, its stored paths and the client's names for them."""
-    from burstlens.service.store import NotFound
     from burstlens.service.worker import PermanentError
 
     try:
@@ -60,10 +68,6 @@ def corpus_of(run):
 
 def run_check(run) -> tuple[Path, dict]:
     """Judge the parent's filterbank on the job's corpus; write ``check.json``."""
-    from burstlens.search.drift import MAX_WINDOWS, check_drift
-    from burstlens.service.corpus_check import (CorpusRejected, enforce_limits, jsonable, load_corpus,
-                                                renamer)
-    from burstlens.service.store import write_blob
     from burstlens.service.worker import PermanentError
 
     filterbank, diagnostics = parent_documents(run)
@@ -88,9 +92,6 @@ def run_check(run) -> tuple[Path, dict]:
 
 def run_transform(run) -> tuple[Path, dict]:
     """The parent's filterbank over the job's corpus into ``results/<job>/store.zarr``."""
-    from burstlens.search.continuous import transform_continuous
-    from burstlens.search.corpus import CorpusError
-    from burstlens.service.corpus_check import renamer
     from burstlens.service.worker import PermanentError
 
     filterbank, _ = parent_documents(run)

@@ -1,6 +1,6 @@
 """What a person must read first about a tuned filterbank: the scorecard, the gain, the warnings.
 
-The search judges its result on windows the fit never saw (``diagnostics['judgement']``,
+The search judges its result on windows the fit never saw (``Diagnostics.judgement``,
 docs/design.md §8). ``scorecard_rows`` says, in three sentences, what the pipeline gains: how much weaker a
 burst the site's detector finds, how close the onsets stay to the waveform's, how much sharper
 the bursts are, each against the best plain spectrogram with its interval (and the user's own
@@ -8,14 +8,17 @@ spectrogram when one was named). ``gain_sentence`` states the sharpness gain in 
 ``gain_words`` says it in words for the report's headline, and ``warnings`` lists, as plain
 sentences, every reason to distrust it. The
 report page, ``burstlens tune``, ``burstlens submit`` and ``make demo`` all call these, so the
-rules live in one place. All accept
-diagnostics without a judgement (older files, cancelled runs) and never raise on missing or null
-fields.
+rules live in one place. Each takes the diagnostics as ``search.diagnostics_doc.Diagnostics`` or
+as the JSON object (read by ``Diagnostics.of``; None reads as a run that records nothing), so
+diagnostics without a judgement (older files, cancelled runs) and missing or null fields give
+notes, never errors.
 """
 from __future__ import annotations
 
 import math
 from collections.abc import Mapping
+
+from burstlens.search.diagnostics_doc import Diagnostics, Judgement, Scorecard
 
 # Above this share of negative absolute mass the image is no longer read as an energy density
 # without care, even when the search's own ceiling (max_negative_share) allowed it.
@@ -26,52 +29,28 @@ MIN_HELD_OUT_WINDOWS = 30
 GAIN_LEAD = "gain on windows the fit never saw"
 
 
-def _number(value) -> float | None:
-    if isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value):
-        return float(value)
-    return None
-
-
-def _mapping(value) -> Mapping:
-    return value if isinstance(value, Mapping) else {}
-
-
-def _count(value) -> int | None:
-    return int(value) if isinstance(value, int) and not isinstance(value, bool) else None
-
-
-def judgement(diagnostics) -> Mapping | None:
-    """``diagnostics['judgement']`` when it is a dict, else None (older or cancelled runs)."""
-    if not isinstance(diagnostics, Mapping):
-        return None
-    found = diagnostics.get("judgement")
-    return found if isinstance(found, Mapping) else None
-
-
-def _interval(low, high) -> str:
-    low, high = _number(low), _number(high)
+def _interval(low: float | None, high: float | None) -> str:
     return f" [{low:.2f}, {high:.2f}]" if low is not None and high is not None else " [no interval]"
 
 
 def gain_sentence(diagnostics) -> str:
     """One line: the gain in bits over the best spectrogram on held-out windows, its interval
     and how many windows it rests on; or why there is no such gain to state."""
-    judged = judgement(diagnostics)
+    d = Diagnostics.of(diagnostics)
+    judged = d.judgement
     if judged is None:
-        cancelled = _mapping(diagnostics).get("stop_reason") == "cancelled"
-        why = ("the search was cancelled before its result was judged" if cancelled else
+        why = ("the search was cancelled before its result was judged" if d.cancelled else
                "these diagnostics carry no judgement on held-out windows (made by an older "
                "version); any gain they record was measured on the windows the fit used")
         return f"{GAIN_LEAD}: not judged; {why}"
-    gain = _mapping(judged.get("gain_bits"))
-    estimate = _number(gain.get("estimate"))
-    value = (f"{estimate:.2f}{_interval(gain.get('low'), gain.get('high'))} bits"
-             if estimate is not None else "not determined")
-    if judged.get("in_sample") is True:
-        windows = _count(judged.get("fit_windows"))
+    gain = judged.gain_bits
+    value = (f"{gain.estimate:.2f}{_interval(gain.low, gain.high)} bits"
+             if gain.estimate is not None else "not determined")
+    if judged.in_sample is True:
+        windows = judged.fit_windows
         where = f" ({windows} windows)" if windows is not None else ""
         return f"gain on the windows the fit used, none held out: {value}{where}"
-    windows = _count(judged.get("held_out_windows"))
+    windows = judged.held_out_windows
     return f"{GAIN_LEAD}: {value} ({'?' if windows is None else windows} held-out windows)"
 
 
@@ -88,17 +67,18 @@ def gain_words(diagnostics) -> str:
     """The held-out gain as a person says it, e.g. "0.35 bit sharper than the best plain
     spectrogram on 32 windows the fit never saw, 90 % interval 0.15–0.54"; a negative gain is
     said as "less sharp". Without a judgement, the reason there is none (as ``gain_sentence``)."""
-    judged = judgement(diagnostics)
+    d = Diagnostics.of(diagnostics)
+    judged = d.judgement
     if judged is None:
-        return gain_sentence(diagnostics)
-    gain = _mapping(judged.get("gain_bits"))
-    estimate = _number(gain.get("estimate"))
-    if judged.get("in_sample") is True:
-        windows = _count(judged.get("fit_windows"))
+        return gain_sentence(d)
+    gain = judged.gain_bits
+    estimate = gain.estimate
+    if judged.in_sample is True:
+        windows = judged.fit_windows
         where = (f"on the {windows} windows the fit used" if windows is not None
                  else "on the windows the fit used") + " (none held out)"
     else:
-        windows = _count(judged.get("held_out_windows"))
+        windows = judged.held_out_windows
         where = f"on {'?' if windows is None else windows} windows the fit never saw"
     if estimate is None:
         return f"The gain over the best plain spectrogram {where} could not be determined"
@@ -107,26 +87,14 @@ def gain_words(diagnostics) -> str:
     else:
         words = (f"{_bits(abs(estimate))} {'sharper' if estimate > 0 else 'less sharp'} than the "
                  f"best plain spectrogram {where}")
-    low, high = _number(gain.get("low")), _number(gain.get("high"))
-    if low is not None and high is not None:
-        level = _number(gain.get("level"))
-        words += (f", {100 * level:g} % interval " if level is not None else ", interval ") \
-            + _span(low, high)
+    if gain.low is not None and gain.high is not None:
+        words += (f", {100 * gain.level:g} % interval " if gain.level is not None
+                  else ", interval ") + _span(gain.low, gain.high)
     return words
 
 
 # Frequency ranges named in a sentence before the rest are counted instead.
 RANGES_NAMED = 4
-
-
-def channel_centres(diagnostics) -> list[float] | None:
-    """Each channel's centre frequency (Hz) in channel order, from the refinement's per-channel
-    record (kept for every channel, refined or not); None when the diagnostics carry none."""
-    records = _mapping(diagnostics).get("refinement")
-    if not isinstance(records, list) or not records:
-        return None
-    centres = [_number(_mapping(r).get("center_hz")) for r in records]
-    return None if any(c is None for c in centres) else centres
 
 
 def _hz(value: float) -> str:
@@ -147,14 +115,14 @@ def _runs(indices: list[int]) -> list[tuple[int, int]]:
 def channels_text(channels, centres) -> str:
     """Channels as people read them, by frequency: " in the 12 channels from 40 to 62 Hz",
     " in 20 of 96 channels: 40–62 Hz and 900–1800 Hz", " in all 96 channels (40–1800 Hz)".
-    ``channels``: channel indices; ``centres``: every channel's centre (Hz) or None (the
+    ``channels``: channel indices (ints); ``centres``: every channel's centre (Hz) or None (the
     channels are then only counted, never listed by index). Empty for no channels."""
-    if not isinstance(channels, list) or not channels:
+    if not channels:
         return ""
-    indices = sorted({c for c in channels if isinstance(c, int) and not isinstance(c, bool)})
+    indices = sorted(set(channels))
     count = len(indices)
     plural = "s" if count > 1 else ""
-    if centres is None or not indices or indices[-1] >= len(centres) or indices[0] < 0:
+    if centres is None or indices[-1] >= len(centres) or indices[0] < 0:
         return f" in {count} channel{plural}"
     if count == len(centres):
         return f" in all {count} channels ({_hz(centres[0])}–{_hz(centres[-1])} Hz)"
@@ -182,8 +150,6 @@ def window_std_words(time_spread_s: float, sampling_rate_hz: float | None) -> st
     std = math.sqrt(2.0) * time_spread_s
     text = f"Gaussian window std {1e3 * std:.3g} ms"
     return text + (f", {std * sampling_rate_hz:.3g} samples" if sampling_rate_hz else "")
-
-
 # Each searched parameter in words: what it is and its value with units.
 PARAMETER_WORDS = {"time_spread_s": "window length", "cell_area": "cell area",
                    "chirp_hz_per_s": "matched sweep rate", "band_hz": "band"}
@@ -213,26 +179,25 @@ def _value_words(setting: str, value: float | None, fs: float | None) -> str:
     return f" ({value:.3g})"
 
 
-def _bound_sentence(setting: str, bound, value, channels, centres, fs) -> str:
+def _bound_sentence(setting: str, bound: str | None, value: float | None, channels, centres,
+                    fs: float | None) -> str:
     name = PARAMETER_WORDS.get(setting, setting.replace("_", " "))
     if bound in ("lower", "upper"):
         where = ("the smallest value searched" if bound == "lower" else
                  "the largest value searched") + _value_words(setting, value, fs)
     else:  # a bound the engine describes in words
-        where = "a search bound" + (f" ({str(bound).replace('_', ' ')})" if bound else "")
+        where = "a search bound" + (f" ({bound.replace('_', ' ')})" if bound else "")
     remedy = REMEDY.get((setting, bound)) or REMEDY.get((setting, "lower"))
     return (f"The result's {name} sits on {where}{channels_text(channels, centres)}: the "
             "sharpest value may lie beyond what was searched" + (f"; {remedy}." if remedy else "."))
 
 
-def _bound_sentences(judged: Mapping, centres, fs) -> list[str]:
-    details = [d for d in judged.get("bounds_detail") or [] if isinstance(d, Mapping)]
+def _bound_sentences(judged: Judgement, centres, fs: float | None) -> list[str]:
     sentences = []
-    for detail in details:
-        setting, bound = str(detail.get("setting") or "a parameter"), detail.get("bound")
-        value = _number(detail.get("value"))
+    for detail in judged.bounds_detail:
+        setting, value = detail.setting or "a parameter", detail.value
         if setting == "channels":
-            where = channels_text(detail.get("channels"), centres)
+            where = channels_text(detail.channels, centres)
             sentences.append(f"The channel spacing caps the window length{where}: a longer "
                              "window would fall between channel centres, so the grid cannot "
                              "hold it; more channels (--channels) would lift the cap.")
@@ -245,20 +210,20 @@ def _bound_sentences(judged: Mapping, centres, fs) -> list[str]:
                              "(--max-negative-share) permits more super-resolution, and more "
                              "Wigner–Ville interference with it.")
             continue
-        sentences.append(_bound_sentence(setting, bound, value, detail.get("channels"), centres,
+        sentences.append(_bound_sentence(setting, detail.bound, value, detail.channels, centres,
                                          fs))
-    described = {str(d.get("setting")) for d in details}
-    sentences += [_bound_sentence(str(setting), None, None, None, centres, fs)
-                  for setting in judged.get("bounds_hit") or [] if str(setting) not in described]
+    described = {str(d.setting) for d in judged.bounds_detail}
+    sentences += [_bound_sentence(setting, None, None, None, centres, fs)
+                  for setting in judged.bounds_hit if setting not in described]
     return sentences
 
 
-def _negative_sentence(judged: Mapping, centres) -> list[str]:
-    share = _mapping(judged.get("negative_share"))
-    overall = _number(share.get("overall"))
+def _negative_sentence(judged: Judgement, centres) -> list[str]:
+    share = judged.negative_share
+    overall = share.overall
     if overall is None or overall <= NEGATIVE_SHARE_WARN:
         return []
-    per_channel = [_number(v) for v in share.get("per_channel") or []]
+    per_channel = share.per_channel
     worst = max((i for i, v in enumerate(per_channel) if v is not None),
                 key=lambda i: per_channel[i], default=None)
     if worst is None:
@@ -279,38 +244,35 @@ def warnings(diagnostics) -> list[str]:
     there is none. Conditions: a parameter on a search bound (the positivity ceiling included),
     a negative share above 0.5 %, the spectrogram fallback, fewer than 30 held-out windows, a
     judgement made in-sample, a negative held-out gain, a stop by the time limit or a cancel."""
-    if not isinstance(diagnostics, Mapping):
-        return []
+    d = Diagnostics.of(diagnostics)
     out = []
-    stop = diagnostics.get("stop_reason")
-    if stop == "cancelled":
+    if d.stop_reason == "cancelled":
         out.append("The search was cancelled: the filterbank is the best found so far and was "
                    "not judged on held-out windows.")
-    elif stop == "time_limit":
+    elif d.stop_reason == "time_limit":
         out.append("The search stopped at its time limit before its budget was spent: a longer "
                    "run may find a sharper filterbank.")
-    fallback = diagnostics.get("fallback")
-    if isinstance(fallback, Mapping):
-        reason = fallback.get("reason")
+    if d.fallback is not None:
+        reason = d.fallback.reason
         out.append("The search returned the best spectrogram instead of a learned filterbank"
                    + (f": {reason}." if reason else "."))
-    judged = judgement(diagnostics)
+    judged = d.judgement
     if judged is None:
         return out
-    if judged.get("in_sample") is True:
+    if judged.in_sample is True:
         out.append("Judged in-sample (no windows held out): the gain was measured on the windows "
                    "the fit used and overstates what new bursts will show; keep a share of the "
                    "windows out (--held-out) to judge it.")
     else:
-        held = _count(judged.get("held_out_windows"))
+        held = judged.held_out_windows
         if held is not None and held < MIN_HELD_OUT_WINDOWS:
             out.append(f"Only {held} windows were held out (fewer than {MIN_HELD_OUT_WINDOWS}): "
                        "the gain and its interval rest on too few bursts to be trusted; use a "
                        "larger corpus or a larger held-out share (--held-out).")
-    gain = _mapping(judged.get("gain_bits"))
-    estimate, high = _number(gain.get("estimate")), _number(gain.get("high"))
-    by_detection = _mapping(_mapping(_mapping(diagnostics).get("settings")).get("criterion")) \
-        .get("name") == "detection"   # tuned for detection, not sharpness: no grid to blame
+    estimate, high = judged.gain_bits.estimate, judged.gain_bits.high
+    # tuned for detection, not sharpness: no grid to blame
+    by_detection = isinstance(d.settings.criterion, Mapping) \
+        and d.settings.criterion.get("name") == "detection"
     if estimate is not None and round(estimate, 2) < 0 and not by_detection:
         surely = high is not None and high < 0
         out.append("The tuned filterbank is less sharp than the best plain spectrogram on windows "
@@ -318,17 +280,18 @@ def warnings(diagnostics) -> list[str]:
                    + ": the channel grid shortens windows where its spacing is wider than their "
                    "frequency spread; more channels or a narrower band may help, or use the "
                    "plain spectrogram.")
-    centres = channel_centres(diagnostics)
-    fs = _number(_mapping(_mapping(diagnostics).get("settings")).get("sampling_rate_hz"))
-    out += _bound_sentences(judged, centres, fs)
+    centres = d.channel_centres
+    out += _bound_sentences(judged, centres, d.settings.sampling_rate_hz)
     out += _negative_sentence(judged, centres)
     return out
 
 
-def scorecard(diagnostics) -> Mapping | None:
-    """``diagnostics['judgement']['scorecard']`` when present (runs before it have none)."""
-    found = _mapping(judgement(diagnostics)).get("scorecard")
-    return found if isinstance(found, Mapping) else None
+def scorecard(diagnostics) -> dict | None:
+    """The scorecard as recorded (``judgement.scorecard``, for the service's job summary), None
+    when absent (runs before it have none)."""
+    judged = Diagnostics.of(diagnostics).judgement
+    card = None if judged is None else judged.scorecard
+    return None if card is None else card.to_json()
 
 
 def spectrogram_words(diagnostics) -> str:
@@ -337,32 +300,31 @@ def spectrogram_words(diagnostics) -> str:
     spectrogram with a Gaussian window of std 5.66 samples (1.41 ms), 61 samples long". The
     std is of the window h itself, √2·σ_t (σ_t, the recorded ``time_spread_s``, is the time
     std of |h|²: search.spectrogram)."""
-    base = _mapping(_mapping(_mapping(diagnostics).get("baselines")).get("spectrogram"))
-    params = _mapping(base.get("parameters"))
-    sigma = _number(params.get("time_spread_s"))
-    fs = _number(_mapping(_mapping(diagnostics).get("settings")).get("sampling_rate_hz"))
+    d = Diagnostics.of(diagnostics)
+    base = d.spectrogram
+    sigma = None if base is None else base.time_spread_s
+    fs = d.settings.sampling_rate_hz
     if sigma is None:
         return "the best plain spectrogram"
     std = math.sqrt(2.0) * sigma
     text = "the plain spectrogram with a Gaussian window of std " + (
         f"{std * fs:.3g} samples ({1e3 * std:.3g} ms)" if fs is not None else f"{1e3 * std:.3g} ms")
-    length = _count(params.get("window_samples"))
+    length = base.window_samples
     return text + (f", {length} samples long" if length is not None else "")
 
 
-def _row_interval(entry: Mapping, unit: str) -> tuple[str, bool]:
-    """(" [low, high] unit" or "", whether the interval includes zero)."""
-    low, high = _number(entry.get("low")), _number(entry.get("high"))
-    if low is None or high is None:
+def _row_interval(entry, unit: str) -> tuple[str, bool]:
+    """(" [low, high] unit" or "", whether the interval includes zero) of a scorecard Estimate."""
+    if entry is None or entry.low is None or entry.high is None:
         return "", False
-    return f" [{low:.2f}, {high:.2f}{unit}]", low <= 0.0 <= high
+    return f" [{entry.low:.2f}, {entry.high:.2f}{unit}]", entry.low <= 0.0 <= entry.high
 
 
-def _detection_sentence(card: Mapping, name: str, who: str, spectrogram: str) -> str | None:
-    entry = _mapping(_mapping(_mapping(card.get("rows")).get("detection_db")).get(name))
-    estimate = _number(entry.get("estimate"))
-    if not entry:
+def _detection_sentence(card: Scorecard, name: str, who: str, spectrogram: str) -> str | None:
+    entry = card.row("detection_db", name)
+    if entry is None:
         return None
+    estimate = entry.estimate
     if estimate is None:
         return f"{who}: the detection margin could not be measured (a threshold was never reached)"
     interval, zero = _row_interval(entry, " dB")
@@ -377,24 +339,23 @@ def _detection_sentence(card: Mapping, name: str, who: str, spectrogram: str) ->
             f"spectrogram does to find them{interval}")
 
 
-def _onset_sentence(card: Mapping, name: str, who: str) -> str | None:
-    reps = _mapping(card.get("representations"))
-    mine = _number(_mapping(reps.get(name)).get("onset_median_ms"))
-    theirs = _number(_mapping(reps.get("spectrogram")).get("onset_median_ms"))
-    entry = _mapping(_mapping(_mapping(card.get("rows")).get("onset_ms")).get(name))
+def _onset_sentence(card: Scorecard, name: str, who: str) -> str | None:
+    mine = card.representations[name].onset_median_ms
+    plain = card.representations.get("spectrogram")
+    theirs = None if plain is None else plain.onset_median_ms
     if mine is None:
         return None
     text = (f"{who}: onsets within {mine:.1f} ms of the waveform's (median; best plain "
             f"spectrogram {'?' if theirs is None else f'{theirs:.1f}'} ms)")
-    interval, zero = _row_interval(entry, " ms")
+    interval, zero = _row_interval(card.row("onset_ms", name), " ms")
     if interval:
         text += f", difference{interval}" + (": the interval includes zero" if zero else "")
     return text
 
 
-def _sharpness_sentence(card: Mapping, name: str, who: str) -> str | None:
-    entry = _mapping(_mapping(_mapping(card.get("rows")).get("sharpness_bits")).get(name))
-    estimate = _number(entry.get("estimate"))
+def _sharpness_sentence(card: Scorecard, name: str, who: str) -> str | None:
+    entry = card.row("sharpness_bits", name)
+    estimate = None if entry is None else entry.estimate
     if estimate is None:
         return None
     interval, zero = _row_interval(entry, " bit")
@@ -413,20 +374,19 @@ def scorecard_rows(diagnostics, result_sharpness: bool = True) -> list[str]:
     the spectrogram window that serves as well. Empty without a scorecard.
     ``result_sharpness`` False leaves out the result's sharpness row (the report says it in
     :func:`gain_words`)."""
-    card = scorecard(diagnostics)
+    d = Diagnostics.of(diagnostics)
+    card = None if d.judgement is None else d.judgement.scorecard
     if card is None:
         return []
-    spectrogram = spectrogram_words(diagnostics)
+    spectrogram = spectrogram_words(d)
     out = []
-    compare = _mapping(_mapping(diagnostics).get("settings")).get("compare_to")
-    fell_back = isinstance(_mapping(diagnostics).get("fallback"), Mapping)
     # after a fallback the result is the best plain spectrogram on the channel grid, not a
     # learned filterbank: say so, not "the tuned filterbank"
-    result = ("the returned spectrogram (the fallback, on the channel grid)" if fell_back
-              else "the tuned filterbank")
+    result = ("the returned spectrogram (the fallback, on the channel grid)"
+              if d.fallback is not None else "the tuned filterbank")
     for name, who in (("result", result),
-                      ("yours", f"your spectrogram ({compare})")):
-        if name not in _mapping(card.get("representations")):
+                      ("yours", f"your spectrogram ({d.settings.compare_to})")):
+        if name not in card.representations:
             continue
         sharpness = _sharpness_sentence(card, name, who) \
             if result_sharpness or name != "result" else None
@@ -434,7 +394,7 @@ def scorecard_rows(diagnostics, result_sharpness: bool = True) -> list[str]:
                          _onset_sentence(card, name, who), sharpness):
             if sentence:
                 out.append(sentence[0].upper() + sentence[1:])
-    if _mapping(card.get("rows")).get("detection_db") is None:
+    if card.rows.get("detection_db") is None:
         out.append("Detection margin: not measured (the corpus has no noise windows to inject "
                    "the bursts into: 'whole' or 'sliding' windows, or no quiet stretch)")
     return out
@@ -443,5 +403,6 @@ def scorecard_rows(diagnostics, result_sharpness: bool = True) -> list[str]:
 def lines(diagnostics) -> list[str]:
     """The scorecard rows (or, for runs without one, the gain sentence), then each warning
     prefixed ``warning: `` (the CLI's first lines)."""
-    lead = scorecard_rows(diagnostics) or [gain_sentence(diagnostics)]
-    return lead + [f"warning: {w}" for w in warnings(diagnostics)]
+    d = Diagnostics.of(diagnostics)
+    lead = scorecard_rows(d) or [gain_sentence(d)]
+    return lead + [f"warning: {w}" for w in warnings(d)]

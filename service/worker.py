@@ -4,12 +4,14 @@ One worker runs one job at a time:
 
 1. ``claim`` (BEGIN IMMEDIATE) takes the oldest fresh job, else one whose lease expired;
 2. a heartbeat thread renews the lease every third of its length and reads the withdraw flag;
-3. ``FilterbankSearch.fit`` runs with ``progress`` (→ the job's progress), ``checkpoint``
-   (→ a pickle blob whose sha256 is kept in the store) and ``resume_from`` (the last checkpoint,
-   when this is a reclaimed job; a torn or corrupt one is detected and the job restarts clean);
-4. the result files go under ``results/<job>/attempt-<n>/`` (the report is rendered on its
-   first request) and the job is finished — every
-   write conditioned on owner and attempt, so a worker that lost its lease changes nothing.
+3. the tuning pipeline ``service.tuning.tune`` (the one ``burstlens tune`` runs) fits the
+   search with ``progress`` (→ the job's progress), ``checkpoint`` (→ a pickle blob whose
+   sha256 is kept in the store) and ``resume_from`` (the last checkpoint, when this is a
+   reclaimed job; a torn or corrupt one is detected and the job restarts clean);
+4. the pipeline writes the result files under ``results/<job>/attempt-<n>/`` (server paths
+   renamed to the client's file names; the report is rendered on its first request) and the
+   job is finished — every store write conditioned on owner and attempt, so a worker that lost
+   its lease changes nothing.
 
 That is a ``search`` job; ``check`` and ``transform`` jobs (service.tuned_site) run the same
 way, with the same leases, withdrawals and retries.
@@ -27,7 +29,6 @@ from __future__ import annotations
 
 import errno
 import hashlib
-import io
 import logging
 import os
 import pickle
@@ -39,13 +40,15 @@ import threading
 import uuid
 from collections.abc import Callable
 from contextlib import nullcontext
-from pathlib import Path
 from typing import Any
 
-from burstlens.search.documents import DiagnosticsDocument, FilterbankDocument, JobRecord
+from burstlens.search.documents import JobRecord
+from burstlens.search.settings import JobSettings
+from burstlens.service import tuned_site, tuning, verdict
 from burstlens.service.config import ServiceSettings
 from burstlens.service.corpus_check import (CorpusRejected, CorpusTooLarge, enforce_limits, jsonable,
                                             load_corpus, renamer)
+from burstlens.service.results import WINDOWS_NPY
 from burstlens.service.store import DataDirTooNew, LeaseLost, NotFound, Store, write_blob
 
 log = logging.getLogger("burstlens.worker")
@@ -57,8 +60,6 @@ def disk_full(exc: BaseException) -> bool:
     if isinstance(exc, OSError) and exc.errno == errno.ENOSPC:
         return True
     return isinstance(exc, sqlite3.OperationalError) and "disk is full" in str(exc)
-
-REPORT_MAX_VALUES = 4_000_000  # windows × samples handed to the report renderer
 
 
 class Terminated(Exception):
@@ -99,24 +100,16 @@ class Heartbeat(threading.Thread):
         self.join(timeout=5.0)
 
 
-def default_search_factory(**options):
-    from burstlens.search.optimize import FilterbankSearch
-
-    return FilterbankSearch(**options)
-
-
 class Worker:
     """A job worker over ``settings.data_dir`` (see the module docstring)."""
 
     def __init__(self, settings: ServiceSettings, *, owner: str | None = None,
-                 search_factory: Callable[..., Any] = default_search_factory,
                  parent_pid: int | None = None,
                  on_progress: Callable[[JobRun, dict], None] | None = None,
                  on_checkpoint: Callable[[JobRun, int], None] | None = None):
         self.settings = settings
         self.store = Store(settings.data_dir)
         self.owner = owner or f"{socket.gethostname()}:{os.getpid()}:{uuid.uuid4().hex[:6]}"
-        self.search_factory = search_factory
         self.parent_pid = parent_pid
         self.on_progress, self.on_checkpoint = on_progress, on_checkpoint
         self.stopping = threading.Event()
@@ -301,75 +294,86 @@ class JobRun:
         return state
 
     def prepare(self):
-        from burstlens.search.settings import split_settings
-
+        """The job's checked settings (``jobs`` capped at this host's cores, or every Dask worker
+        core), its corpus read as uploaded and within the limits, and the renamer of its
+        stored paths to the client's file names. ``PermanentError`` for bad settings or a
+        corpus gone or unreadable."""
         try:
-            corpus_options, search_options = split_settings(dict(self.job["settings"]))
+            settings = JobSettings.from_mapping(dict(self.job["settings"]))
         except ValueError as exc:
             raise PermanentError(f"invalid settings: {exc}") from None
         try:
             record = self.store.get_corpus(self.job["corpus_id"], None)
         except NotFound:
             raise PermanentError(f"corpus {self.job['corpus_id']} no longer exists") from None
-        options = {**record["summary"].get("read_options", {}), **corpus_options}
+        options = {**record["summary"].get("read_options", {}), **settings.read_options()}
         paths = self.store.corpus_paths(record)
+        names = [f["name"] for f in record["files"]]
         try:
-            corpus = load_corpus(paths, [f["name"] for f in record["files"]], options,
-                                 mapper=self.worker.reading_mapper(paths))
+            corpus = load_corpus(paths, names, options, mapper=self.worker.reading_mapper(paths))
             enforce_limits(corpus, self.settings)
         except (CorpusRejected, CorpusTooLarge) as exc:
             raise PermanentError(str(exc)) from None
         if self.settings.dask:
-            if search_options.get("n_jobs", 1) == 1:
-                search_options["n_jobs"] = -1  # every Dask worker core
+            jobs = -1 if settings.jobs == 1 else settings.jobs  # 1: every Dask worker core
         else:
-            search_options["n_jobs"] = min(int(search_options.get("n_jobs", 1)), os.cpu_count() or 1)
-        return corpus, search_options, renamer(paths, [f["name"] for f in record["files"]])
+            jobs = min(settings.jobs, os.cpu_count() or 1)
+        return corpus, settings.replace(jobs=jobs), renamer(paths, names)
+
+    def resume_refused(self, exc: ValueError) -> bool:
+        """``service.tuning.fit``'s ``on_resume_refused``: the engine refused the checkpoint
+        (another version, other settings or another corpus). Before any progress the job starts
+        over, the problem kept in its progress; after some, the error is the attempt's."""
+        if self.progressed:
+            return False
+        log.warning("job %s: checkpoint not resumable (%s); starting over", self.job["id"], exc)
+        self.store.drop_checkpoint(self.job)
+        self.checkpoint_problem = f"checkpoint not resumable: {exc}"
+        self.resumed, self.last_evaluations = False, 0
+        return True
+
+    def keep_fit(self, _search) -> bool:
+        """``service.tuning.tune``'s ``fitted``: a fit is written unless the lease was lost or
+        the job withdrawn meanwhile (a finished fit is kept even on SIGTERM)."""
+        return not (self.beat.lost or self.beat.withdrawn)
 
     def execute(self) -> str:
         if self.job["kind"] != "search":
             return self._execute_on_site()
         job = self.job
         try:
-            corpus, search_options, rename = self.prepare()
+            corpus, settings, rename = self.prepare()
             resume = self.load_checkpoint()
-            try:
-                search = self.worker.search_factory(**search_options)
-            except (ValueError, TypeError) as exc:
-                raise PermanentError(f"invalid settings: {exc}") from None
             with self.worker.dask_context():
-                try:
-                    search.fit(corpus, progress=self.progress, checkpoint=self.checkpoint,
-                               resume_from=resume, should_stop=self.should_stop)
-                except ValueError as exc:
-                    if resume is None or self.progressed:
-                        raise
-                    # the engine refused the state (other version, settings or corpus): start over
-                    log.warning("job %s: checkpoint not resumable (%s); starting over", job["id"], exc)
-                    self.store.drop_checkpoint(job)
-                    self.checkpoint_problem = f"checkpoint not resumable: {exc}"
-                    self.resumed, self.last_evaluations = False, 0
-                    search = self.worker.search_factory(**search_options)
-                    search.fit(corpus, progress=self.progress, checkpoint=self.checkpoint,
-                               resume_from=None, should_stop=self.should_stop)
+                tuned = tuning.tune(
+                    corpus, settings, self.store.result_folder(job), progress=self.progress,
+                    should_stop=self.should_stop, checkpoint=self.checkpoint,
+                    resume_from=resume, on_resume_refused=self.resume_refused,
+                    fitted=self.keep_fit, job=JobRecord(job["id"], job["settings"]),
+                    rename=rename, final_newline=True, write=write_blob, extra=(WINDOWS_NPY,))
         except Terminated:
             return self._release()
         except LeaseLost:
             return "lost"
         except PermanentError as exc:
             return self._finish_quietly("error", error=str(exc))
+        except tuning.ResultsNotWritten as exc:
+            log.exception("job %s: writing the results failed", job["id"])
+            try:
+                return self.store.retry_or_fail(job, f"writing results: {exc}",
+                                                self.settings.max_attempts)
+            except LeaseLost:
+                return "lost"
         except Exception as exc:
             return self._after(exc)
         if self.beat.lost:
             return "lost"
-        if self.beat.withdrawn:
+        if tuned is None:  # withdrawn while the fit ran
             return self._finish_quietly("withdrawn", stop_reason="withdrawn")
-        return self._succeed(search, corpus, rename)  # a finished fit is kept, even on SIGTERM
+        return self._succeed(tuned)
 
     def _execute_on_site(self) -> str:
         """A check or a transform (service.tuned_site): its result folder and summary."""
-        from burstlens.service import tuned_site
-
         job = self.job
         try:
             with self.worker.dask_context():
@@ -443,56 +447,24 @@ class JobRun:
             for path in folder.glob(pattern):
                 path.unlink(missing_ok=True)
 
-    def _succeed(self, search, corpus, names: Callable[[str], str]) -> str:
-        job = self.job
-
-        try:
-            diagnostics = DiagnosticsDocument(jsonable(search.diagnostics_, names))
-            made = FilterbankDocument.of(search.filterbank_, JobRecord(job["id"], job["settings"]))
-            filterbank = FilterbankDocument(jsonable(made.data, names))
-            folder = self.store.result_folder(job)
-            write_blob(folder / "filterbank.json", filterbank.encode())
-            write_blob(folder / "diagnostics.json", diagnostics.encode())
-        except Exception as exc:
-            log.exception("job %s: writing the results failed", job["id"])
-            try:
-                return self.store.retry_or_fail(job, f"writing results: {type(exc).__name__}: {exc}",
-                                                self.settings.max_attempts)
-            except LeaseLost:
-                return "lost"
-        self._keep_windows(folder, corpus)
-        from burstlens.service import verdict
-
+    def _succeed(self, tuned: tuning.Tuned) -> str:
+        """Record a search written by the pipeline as done, with its summary."""
+        job, diagnostics = self.job, tuned.diagnostics
         # the scorecard leads: what a pipeline gains, in words and in numbers
         card = verdict.scorecard(diagnostics.data) or {}
         summary = {"scorecard": verdict.scorecard_rows(diagnostics.data),
                    "scorecard_rows": card.get("rows"),
                    "objective": diagnostics.objective, "gain_bits": diagnostics.gain_bits,
-                   "stop_reason": diagnostics.stop_reason, "channels": len(filterbank.channels)}
+                   "stop_reason": diagnostics.stop_reason,
+                   "channels": len(tuned.filterbank.channels)}
         try:
             self.store.finish(job, "done", stop_reason=diagnostics.stop_reason,
-                              result_dir=folder, summary=summary,
+                              result_dir=self.store.result_folder(job), summary=summary,
                               evaluations=diagnostics.evaluations)
         except LeaseLost:
             return "lost"
         self._cleanup_checkpoints()
         return "done"
-
-    def _keep_windows(self, folder: Path, corpus) -> None:
-        """Keep a window sample for the report's plots; a failure here never fails the job.
-        The report itself is rendered on its first request (GET /report): at success it would
-        triple a small job's cost, mostly matplotlib layout, for a page nobody may open."""
-        import numpy as np
-
-        windows = corpus.windows
-        if windows.size > REPORT_MAX_VALUES:
-            windows = windows[: max(1, REPORT_MAX_VALUES // windows.shape[1])]
-        try:
-            buffer = io.BytesIO()
-            np.save(buffer, np.ascontiguousarray(windows), allow_pickle=False)
-            write_blob(folder / "windows.npy", buffer.getvalue())
-        except Exception:
-            log.exception("job %s: keeping the report's window sample failed", self.job["id"])
 
 
 def run_worker(settings: ServiceSettings, parent_pid: int | None = None) -> int:

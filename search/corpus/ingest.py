@@ -11,7 +11,7 @@ from __future__ import annotations
 import hashlib
 import os
 from collections import Counter
-from dataclasses import dataclass, replace
+from dataclasses import asdict, dataclass, fields, replace
 from functools import partial
 
 import numpy as np
@@ -29,14 +29,80 @@ TRIGGER_KINDS = {
 }
 TRIGGERS = tuple(TRIGGER_KINDS)
 
-DEFAULT_TRIGGER = "boxcar"
-# Thresholds and STA/LTA lengths after Trnkoczy, "Understanding and parameter setting of STA/LTA
-# trigger algorithm", New Manual of Seismological Observatory Practice 2 (NMSOP-2), IS 8.1, 2012.
-DEFAULT_TRIGGER_ON = 3.5   # common practice for local events (Trnkoczy 2012: 3–4)
-DEFAULT_TRIGGER_OFF = 1.5  # common practice (Trnkoczy 2012: 1–1.5)
-DEFAULT_PRE_TRIGGER = 0.25
-DEFAULT_MAX_WINDOWS = 1000
-DEFAULT_SEED = 0
+
+@dataclass(frozen=True)
+class ReadOptions:
+    """The options of :func:`read_corpus` with the reader's defaults, defined once (the job
+    settings' ``search.settings.CORPUS_OPTIONS`` show these defaults). None: the reader chooses
+    the value from the data (recorded in ``Corpus.defaults``). :meth:`checked` makes one from
+    ``read_corpus``'s keywords, None meaning the default."""
+
+    windowing: str = "bursts"
+    window_s: float | None = None
+    max_windows: int = 1000
+    seed: int = 0
+    sampling_rate_hz: float | None = None
+    components: str | None = None
+    bandpass_hz: tuple | None = None
+    csv_sampling_rate_hz: float | None = None
+    sta_s: float | None = None
+    lta_s: float | None = None
+    # Thresholds after Trnkoczy, "Understanding and parameter setting of STA/LTA trigger
+    # algorithm", New Manual of Seismological Observatory Practice 2 (NMSOP-2), IS 8.1, 2012.
+    trigger_on: float = 3.5   # common practice for local events (Trnkoczy 2012: 3–4)
+    trigger_off: float = 1.5  # common practice (Trnkoczy 2012: 1–1.5)
+    pre_trigger: float = 0.25
+    trigger: str = "boxcar"
+    hop_s: float | None = None
+
+    @classmethod
+    def checked(cls, **given) -> ReadOptions:
+        """The options of ``given`` (``read_corpus``'s keywords; None or missing: the default),
+        checked; ``CorpusError`` naming the option and the value (``window_s=-1: must be a
+        positive number``)."""
+        o = {f.name: getattr(cls, f.name) for f in fields(cls)}
+        unknown = sorted(set(given) - set(o))
+        if unknown:
+            raise CorpusError(f"unknown option(s) {', '.join(unknown)}; known: {', '.join(o)}")
+        o.update({k: v for k, v in given.items() if v is not None})
+        for name in ("windowing", "trigger"):  # an empty choice is the default too
+            o[name] = o[name] or getattr(cls, name)
+        if o["windowing"] not in WINDOWINGS:
+            raise CorpusError(f"windowing={o['windowing']!r}: expected one of {', '.join(WINDOWINGS)}")
+        if o["trigger"] not in TRIGGERS:
+            kinds = ", ".join(f"{k} ({what})" for k, what in TRIGGER_KINDS.items())
+            raise CorpusError(f"trigger={o['trigger']!r}: expected one of {kinds}")
+        for name in ("window_s", "sampling_rate_hz", "csv_sampling_rate_hz", "sta_s", "lta_s",
+                     "trigger_on", "trigger_off", "hop_s"):
+            value = o[name]
+            if value is not None:
+                try:
+                    ok = float(value) > 0 and np.isfinite(float(value))
+                except (TypeError, ValueError):
+                    ok = False
+                if not ok:
+                    raise CorpusError(f"{name}={value!r}: must be a positive number")
+                o[name] = float(value)
+        if (not isinstance(o["max_windows"], (int, np.integer)) or isinstance(o["max_windows"], bool)
+                or o["max_windows"] < 1):
+            raise CorpusError(f"max_windows={o['max_windows']!r}: must be a positive integer")
+        if not isinstance(o["seed"], (int, np.integer)) or isinstance(o["seed"], bool):
+            raise CorpusError(f"seed={o['seed']!r}: must be an integer")
+        if not (isinstance(o["pre_trigger"], (int, float)) and 0.0 <= o["pre_trigger"] < 1.0):
+            raise CorpusError(f"pre_trigger={o['pre_trigger']!r}: must be a share in [0, 1)")
+        if o["trigger_off"] > o["trigger_on"]:
+            raise CorpusError(f"trigger_off={o['trigger_off']!r}: must not exceed trigger_on={o['trigger_on']!r}")
+        if o["sta_s"] is not None and o["lta_s"] is not None and o["sta_s"] >= o["lta_s"]:
+            raise CorpusError(f"sta_s={o['sta_s']!r}: must be shorter than lta_s={o['lta_s']!r}")
+        if o["components"] is not None:
+            comps = list(o["components"])
+            if not comps or not all(isinstance(c, str) and len(c) == 1 and c.isalnum() for c in comps):
+                raise CorpusError(f"components={o['components']!r}: expected orientation codes, e.g. 'Z' or 'ZNE'")
+            o["components"] = "".join(c.upper() for c in comps)
+        return cls(**o)
+
+
+DEFAULT_TRIGGER = ReadOptions.trigger  # search.corpus exports it
 # Largest |sample| read, raw and after preprocessing. A sum of squares of up to 2^64 samples of
 # |x| ≤ 2^464 stays below 2^992 < 2^1024 (the float64 range), so every energy the passes form
 # (survey frames, STA/LTA sums, windows) is finite; raw 2^448 leaves 2^16 for the gain of detrend,
@@ -172,14 +238,36 @@ def read_corpus(
         Naming the file (or files) and the cause, for any input it cannot read; among them
         samples beyond ±``MAX_ABS_SAMPLE`` (2^448 ≈ 7.3e134), so large that their energy
         overflows float64 (the message gives the trace and the largest |x|).
+
+    Examples
+    --------
+    Two decaying 8 Hz bursts in a minute of noise, saved as a NumPy file (which carries no
+    rate, so it is declared), cut into 5.12 s windows around their STA/LTA triggers:
+
+    >>> import os, tempfile
+    >>> import numpy as np
+    >>> fs = 100.0
+    >>> t = np.arange(6000) / fs
+    >>> x = 0.1 * np.random.default_rng(0).standard_normal(t.size)
+    >>> for onset in (15.0, 35.0):
+    ...     u = t - onset
+    ...     x += np.where(u >= 0, np.exp(-u / 0.5), 0.0) * np.sin(2 * np.pi * 8.0 * u)
+    >>> with tempfile.TemporaryDirectory() as folder:
+    ...     path = os.path.join(folder, "trace.npy")
+    ...     np.save(path, x)
+    ...     corpus = read_corpus(path, csv_sampling_rate_hz=fs, window_s=5.12)
+    >>> corpus.windows.shape  # (M, N)
+    (2, 512)
+    >>> [round(m["offset_s"] + m["trigger_offset_s"], 1) for m in corpus.window_meta]  # onsets, s
+    [15.0, 35.0]
     """
-    opts = _validate_options(
+    opts = asdict(ReadOptions.checked(
         windowing=windowing, window_s=window_s, max_windows=max_windows, seed=seed,
         sampling_rate_hz=sampling_rate_hz, components=components, bandpass_hz=bandpass_hz,
         csv_sampling_rate_hz=csv_sampling_rate_hz, sta_s=sta_s, lta_s=lta_s,
         trigger_on=trigger_on, trigger_off=trigger_off, pre_trigger=pre_trigger, trigger=trigger,
         hop_s=hop_s,
-    )
+    ))
     files, skipped = expand_paths(paths)
     report = _Reporter(progress, len(files))
     whole = opts["windowing"] == "whole"
@@ -349,50 +437,6 @@ def check_magnitude(piece: stream.Piece) -> None:
             f"{', '.join(files)}: trace {seg.trace_id}: samples so large that their energy overflows float64 "
             f"(after preprocessing |x| reaches {float(top):.4g} from samples between "
             f"{(seg.first_sample + e0) / fs:.6g} and {(seg.first_sample + e1) / fs:.6g} s into the trace; {limit})")
-
-
-def _validate_options(**o) -> dict:
-    o["windowing"] = o["windowing"] or "bursts"
-    if o["windowing"] not in WINDOWINGS:
-        raise CorpusError(f"windowing={o['windowing']!r}: expected one of {', '.join(WINDOWINGS)}")
-    o["trigger"] = o["trigger"] or DEFAULT_TRIGGER
-    if o["trigger"] not in TRIGGERS:
-        kinds = ", ".join(f"{k} ({what})" for k, what in TRIGGER_KINDS.items())
-        raise CorpusError(f"trigger={o['trigger']!r}: expected one of {kinds}")
-    for name in ("window_s", "sampling_rate_hz", "csv_sampling_rate_hz", "sta_s", "lta_s",
-                 "trigger_on", "trigger_off", "hop_s"):
-        value = o[name]
-        if value is not None:
-            try:
-                ok = float(value) > 0 and np.isfinite(float(value))
-            except (TypeError, ValueError):
-                ok = False
-            if not ok:
-                raise CorpusError(f"{name}={value!r}: must be a positive number")
-            o[name] = float(value)
-    o["max_windows"] = DEFAULT_MAX_WINDOWS if o["max_windows"] is None else o["max_windows"]
-    if (not isinstance(o["max_windows"], (int, np.integer)) or isinstance(o["max_windows"], bool)
-            or o["max_windows"] < 1):
-        raise CorpusError(f"max_windows={o['max_windows']!r}: must be a positive integer")
-    o["seed"] = DEFAULT_SEED if o["seed"] is None else o["seed"]
-    if not isinstance(o["seed"], (int, np.integer)) or isinstance(o["seed"], bool):
-        raise CorpusError(f"seed={o['seed']!r}: must be an integer")
-    o["pre_trigger"] = DEFAULT_PRE_TRIGGER if o["pre_trigger"] is None else o["pre_trigger"]
-    if not (isinstance(o["pre_trigger"], (int, float)) and 0.0 <= o["pre_trigger"] < 1.0):
-        raise CorpusError(f"pre_trigger={o['pre_trigger']!r}: must be a share in [0, 1)")
-    o["trigger_on"] = DEFAULT_TRIGGER_ON if o["trigger_on"] is None else o["trigger_on"]
-    o["trigger_off"] = DEFAULT_TRIGGER_OFF if o["trigger_off"] is None else o["trigger_off"]
-    if o["trigger_off"] > o["trigger_on"]:
-        raise CorpusError(f"trigger_off={o['trigger_off']!r}: must not exceed trigger_on={o['trigger_on']!r}")
-    if o["sta_s"] is not None and o["lta_s"] is not None and o["sta_s"] >= o["lta_s"]:
-        raise CorpusError(f"sta_s={o['sta_s']!r}: must be shorter than lta_s={o['lta_s']!r}")
-    if o["components"] is not None:
-        comps = o["components"]
-        comps = list(comps) if isinstance(comps, str) else list(comps)
-        if not comps or not all(isinstance(c, str) and len(c) == 1 and c.isalnum() for c in comps):
-            raise CorpusError(f"components={o['components']!r}: expected orientation codes, e.g. 'Z' or 'ZNE'")
-        o["components"] = "".join(c.upper() for c in comps)
-    return o
 
 
 def expand_paths(paths) -> tuple[list[tuple[str, str]], list[dict]]:

@@ -3,7 +3,8 @@
 - ``evaluate``: scoring filterbanks on fixed chunks of shared windows (the joblib pool, window
   sharing, the chunk tasks, the per-row statistics the refinement reuses)
 - ``space``: the channel grid and the bounds of the parameters (``SearchSpace``)
-- ``context``: one run's settings, windows, resumable state, progress and checkpoints
+- ``state``: the resumable state, typed (``SearchState``), and its checkpoint layout and version
+- ``context``: one run's settings, windows, state, progress and checkpoints
 - ``baselines``: stage 0, the best spectrogram and scalogram
 - ``family``: stage 1, the family search (scikit-optimize)
 - ``refine``: stage 2, per-channel coordinate sweeps by bounded Brent

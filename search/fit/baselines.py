@@ -17,6 +17,8 @@ import numpy as np
 
 from burstlens.search import diagnostics as dg
 from burstlens.search.fit import detect
+from burstlens.search.fit.state import BaselineFit
+from burstlens.search.spectrogram import grid_description
 
 # 1-D baseline searches: (grid points over log σ_t, then bounded Brent steps between the best
 # point's neighbours). The spectrogram gets the finer search: the gain is measured against it.
@@ -42,11 +44,11 @@ def pseudo_wvd(space, n_samples: int) -> tuple:
 
 
 def run(ctx) -> None:
-    """Fit the spectrogram and scalogram baselines into ``ctx.state["baselines"]`` (each
+    """Fit the spectrogram and scalogram baselines into ``ctx.state.baselines`` (each
     resumable on its own), then hand over to the family search."""
-    space, full, base = ctx.space, ctx.evaluator("full"), ctx.state["baselines"]
+    space, full, base = ctx.space, ctx.evaluator("full"), ctx.state.baselines
     lo, hi = space.bounds("log_sigma_ref")
-    log = ctx.state["log"]
+    log = ctx.state.log
 
     def search(kind, score):
         def objective(x):
@@ -62,26 +64,22 @@ def run(ctx) -> None:
         return math.exp(x), y, len(tried)
 
     by_detection = detect.applies(ctx)
-    if "spectrogram" not in base:
+    if base.spectrogram is None:
         sub, band = ctx.evaluator("subset"), ctx.s["band_hz"]
         sigma, y, n = search("spectrogram", (lambda s: detect.spectrogram_threshold(ctx, s))
                              if by_detection else (lambda s: sub.spectrogram(s, band)))
-        from burstlens.search.spectrogram import grid_description
-
-        base["spectrogram"] = {"objective": y, "evaluations": n,
-                               "parameters": {"time_spread_s": sigma, "cell_area": 1.0,
+        base.spectrogram = BaselineFit(y, n, {"time_spread_s": sigma, "cell_area": 1.0,
                                               "chirp_hz_per_s": 0.0,
                                               **grid_description(sigma, space.fs,
                                                                  ctx.windows.shape[1],
-                                                                 ctx.s["eps"])}}
+                                                                 ctx.s["eps"])})
         ctx.report("baselines", 0.5)
-    if "scalogram" not in base:
+    if base.scalogram is None:
         sigma, y, n = search("scalogram", (
             lambda s: detect.filterbank_threshold(ctx, scalogram(space, s))) if by_detection
             else (lambda s: full.score([scalogram(space, s)])[0]))
-        base["scalogram"] = {"objective": y, "evaluations": n,
-                             "parameters": {"cycles": sigma * space.f_ref_hz,
+        base.scalogram = BaselineFit(y, n, {"cycles": sigma * space.f_ref_hz,
                                             "time_spread_at_reference_s": sigma,
-                                            "reference_hz": space.f_ref_hz, "cell_area": 1.0}}
-    ctx.state["phase"] = "family"
+                                            "reference_hz": space.f_ref_hz, "cell_area": 1.0})
+    ctx.state.phase = "family"
     ctx.report("baselines", 1.0)

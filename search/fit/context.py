@@ -4,32 +4,23 @@
 the held-out split, the site's steady lines (``lines``, search.noise) and the windows with them
 removed (``all_windows`` (M, N) float64; ``windows``, the fit windows stages 0–2 see;
 ``noise_windows`` (K, N), the corpus's noise sample), the criterion, the evaluators
-(created on first use, closed by :meth:`close`) and the resumable ``state`` dict that is
-checkpointed after every round. Each stage module
-(baselines, family, refine, judge) is a function of it.
-
-The state is plain data plus the scikit-optimize ``Optimizer`` and a
-``search.diagnostics.ConvergenceLog``; it pickles, and ``format``/``version`` say which code
-reads it.
+(created on first use, closed by :meth:`close`) and the resumable ``state``
+(:class:`~search.fit.state.SearchState`) that is checkpointed after every round, as the dict of
+:meth:`~search.fit.state.SearchState.to_dict`. Each stage module (baselines, family, refine,
+judge) is a function of it.
 """
 from __future__ import annotations
 
 import copy
-import math
 import time
 
 import numpy as np
 
-from burstlens.search import diagnostics as dg
 from burstlens.search.criteria import ceiling_objective
 from burstlens.search.fit.evaluate import Evaluator, make_criterion
+from burstlens.search.fit.state import SearchState
 from burstlens.search.noise import site_lines
 from burstlens.search.safe_io import finite_or_none
-
-STATE_FORMAT = "burstlens-search-state"
-# 3: modules pickled in the state moved under the burstlens namespace (burstlens.search.…);
-# 2: chirp signs as users see them. An older state starts over instead of failing to unpickle.
-STATE_VERSION = 3
 
 
 class Cancelled(Exception):
@@ -67,7 +58,7 @@ class RunContext:
         self.full = None
         self.sub = None
         self.held = None
-        self.state = None
+        self.state: SearchState | None = None
 
     # -- the resumable state ----------------------------------------------------------------
 
@@ -78,36 +69,30 @@ class RunContext:
                 "checksum": float(np.sum(self.all_windows[:, ::7])),
                 "held_out": self.split.held_out.tolist()}
 
-    def new_state(self) -> dict:
-        seed = self.s["seed"]
+    def new_state(self) -> SearchState:
+        """A fresh state: phase ``baselines``, the stage-1 subset drawn from ``seed``."""
         m = len(self.windows)
-        rng = np.random.default_rng(np.random.SeedSequence([seed, 1]))
+        rng = np.random.default_rng(np.random.SeedSequence([self.s["seed"], 1]))
         subset = np.sort(rng.choice(m, size=self.s["subset"], replace=False)) if self.s["subset"] < m \
             else np.arange(m)
-        return {"format": STATE_FORMAT, "version": STATE_VERSION, "fingerprint": self.fingerprint(),
-                "phase": "baselines", "round": 0, "elapsed_s": 0.0, "best": math.inf,
-                "subset": subset.tolist(), "log": dg.ConvergenceLog(), "baselines": {},
-                "family": None, "refine": None, "stop_reason": None}
+        return SearchState(fingerprint=self.fingerprint(), subset=subset.tolist())
 
     def start(self, resume_from) -> None:
-        """Set ``state``: a fresh one, or a copy of ``resume_from`` after checking that it was
-        taken by this code on this corpus with these settings (``ValueError`` otherwise)."""
+        """Set ``state``: a fresh one, or a copy of the checkpoint dict ``resume_from``
+        (``SearchState.from_dict``) after checking that it was taken on this corpus with these
+        settings (``ValueError`` otherwise, as for another format or version)."""
         if resume_from is None:
             self.state = self.new_state()
             return
-        if not isinstance(resume_from, dict) or resume_from.get("format") != STATE_FORMAT:
-            raise ValueError("resume_from is not a burstlens search state")
-        if resume_from.get("version") != STATE_VERSION:
-            raise ValueError(f"resume_from has state version {resume_from.get('version')}, "
-                             f"this code reads version {STATE_VERSION}")
-        if resume_from["fingerprint"] != self.fingerprint():
+        state = SearchState.from_dict(resume_from)
+        if state.fingerprint != self.fingerprint():
             raise ValueError("resume_from was taken on a different corpus or different settings")
-        self.state = copy.deepcopy(resume_from)
+        self.state = copy.deepcopy(state)
 
     # -- time, cancel, progress -------------------------------------------------------------
 
     def elapsed(self) -> float:
-        return self.state["elapsed_s"] + (time.perf_counter() - self.t_start)
+        return self.state.elapsed_s + (time.perf_counter() - self.t_start)
 
     def out_of_time(self) -> bool:
         limit = self.s["time_limit_s"]
@@ -125,15 +110,15 @@ class RunContext:
         False)."""
         lo, hi = self.STAGE_SPAN[stage]
         st = self.state
-        msg = {"stage": stage, "round": st["round"], "evaluations": st["log"].count("family"),
-               "evaluations_total": st["log"].count(),
-               "budget": self.s["evaluations"], "best_objective": finite_or_none(st["best"]),
+        msg = {"stage": stage, "round": st.round, "evaluations": st.log.count("family"),
+               "evaluations_total": st.log.count(),
+               "budget": self.s["evaluations"], "best_objective": finite_or_none(st.best),
                "fraction": float(lo + (hi - lo) * min(max(fraction_in_stage, 0.0), 1.0))}
         msg.update(extra)
         if self.progress_cb:
             self.progress_cb(msg)
         if self.checkpoint_cb and save:
-            snap = copy.deepcopy(self.state)
+            snap = copy.deepcopy(self.state.to_dict())
             snap["elapsed_s"] = self.elapsed()
             self.checkpoint_cb(snap)
 
@@ -154,7 +139,7 @@ class RunContext:
                 self.held = make(self.all_windows[self.split.held_out])
             return self.held
         if self.sub is None:
-            self.sub = make(self.windows[np.asarray(self.state["subset"], dtype=np.int64)])
+            self.sub = make(self.windows[np.asarray(self.state.subset, dtype=np.int64)])
         return self.sub
 
     def ceiling(self, scores, shares):

@@ -17,6 +17,8 @@ import math
 import numpy as np
 
 from burstlens.search.fit.evaluate import make_filterbank
+from burstlens.search.scorecard import detection_threshold_db, filterbank_representation
+from burstlens.search.spectrogram import spectrogram_representation
 
 NAME = "detection"
 
@@ -28,28 +30,22 @@ def applies(ctx) -> bool:
 
 def bursts(ctx) -> np.ndarray:
     """The stage-1 subset of the fit windows: the bursts the criterion injects."""
-    return ctx.windows[np.asarray(ctx.state["subset"], dtype=np.int64)]
+    return ctx.windows[np.asarray(ctx.state.subset, dtype=np.int64)]
 
 
 def threshold(ctx, representation) -> float:
     """Detection threshold (dB) of ``representation`` on :func:`bursts` and the noise windows."""
-    from burstlens.search.scorecard import detection_threshold_db
-
     return detection_threshold_db(representation, bursts(ctx), ctx.noise_windows)
 
 
 def filterbank_threshold(ctx, params) -> float:
     """:func:`threshold` of the filterbank with per-channel arrays ``params``."""
-    from burstlens.search.scorecard import filterbank_representation
-
     fb = make_filterbank(*params, ctx.space.fs)
     return threshold(ctx, filterbank_representation("candidate", fb, ctx.s["eps"]))
 
 
 def spectrogram_threshold(ctx, sigma: float) -> float:
     """:func:`threshold` of the plain Gaussian spectrogram of time spread ``sigma`` (s)."""
-    from burstlens.search.spectrogram import spectrogram_representation
-
     return threshold(ctx, spectrogram_representation(sigma, ctx.space.fs, ctx.s["band_hz"],
                                                      ctx.windows.shape[1], ctx.s["eps"]))
 

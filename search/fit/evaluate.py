@@ -25,6 +25,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from burstlens.search.criteria import Criterion, negative_share, shares_from_totals
+from burstlens.search.filterbank import Channel, Filterbank
+from burstlens.search.spectrogram import spectrogram_scores
+from burstlens.search.tfd import clear_plans, prepare, transform
 
 CHUNK = 16                      # windows per task; fixed so results never depend on n_jobs
 
@@ -39,8 +42,6 @@ _PREPARED_MAX = 128             # cached prepared chunks per process (LRU)
 
 def _prepared(token: str, windows, start: int, stop: int):
     """Prepared form (search.tfd.prepare) of windows[start:stop], cached per process."""
-    from burstlens.search.tfd import prepare
-
     key = (token, start, stop)
     with _PREPARED_LOCK:
         hit = _PREPARED.get(key)
@@ -75,8 +76,6 @@ def _transform_kept(prepared, filterbank, eps: float, one_plan: bool) -> np.ndar
     each candidate on its chunks and then never again, so older weights (tens of MB for a
     chirped 96-channel grid) would pile up to the transform's cache bound in every worker,
     which loky reads as a memory leak and answers by restarting the worker mid-batch."""
-    from burstlens.search.tfd import clear_plans, transform
-
     if one_plan:
         key = filterbank.key()
         if _KEPT_PLAN[0] != key:
@@ -89,8 +88,6 @@ def make_filterbank(centers_hz, sigma_s, area, beta, fs, provenance=None, steady
     """Filterbank from per-channel arrays (Hz, s, dimensionless, Hz/s) at sampling rate fs (Hz)
     (``steady_lines_hz``: the lines its transform removes first; the search's own scoring
     filterbanks have none, their windows are already clean)."""
-    from burstlens.search.filterbank import Channel, Filterbank
-
     channels = [Channel(float(f), float(s), float(a), float(b))
                 for f, s, a, b in zip(centers_hz, sigma_s, area, beta, strict=True)]
     return Filterbank(channels, float(fs), provenance=provenance, steady_lines_hz=steady_lines_hz)
@@ -159,8 +156,6 @@ def _score_task(token, windows, start, stop, fs, centers, sigma, area, beta, cel
 def _spectrogram_task(token, windows, start, stop, fs, sigma, band, criterion, eps):
     """Per-window scores of the plain Gaussian spectrogram of time spread ``sigma`` (s) on its
     own FFT grid over ``band`` (search.spectrogram) on windows[start:stop]."""
-    from burstlens.search.spectrogram import spectrogram_scores
-
     t0 = time.perf_counter()
     prepared = _prepared(token, windows, start, stop)
     scores = spectrogram_scores(prepared.analytic, fs, sigma, band, criterion, eps)
@@ -204,6 +199,8 @@ class Evaluator:
 
     def __init__(self, windows: np.ndarray, fs: float, criterion: Criterion, eps: float,
                  n_jobs: int, cell: np.ndarray, chunk: int = CHUNK):
+        # joblib loads with the first Evaluator, not with the stages: the drift check and the
+        # commands importing the judgement's constants never score
         from joblib import Parallel
         from joblib.parallel import get_active_backend
 

@@ -16,11 +16,17 @@ import numpy as np
 
 from burstlens.search import __version__
 from burstlens.search import diagnostics as dg
+from burstlens.search import scorecard as sc
+from burstlens.search.compare import parse_compare_to
 from burstlens.search.criteria import L1, NEGATIVE
 from burstlens.search.fit import refine
 from burstlens.search.fit.baselines import pseudo_wvd, scalogram
 from burstlens.search.fit.evaluate import CHUNK, Scored, make_filterbank, scores_from_stats
+from burstlens.search.fit.state import ChannelRecord
+from burstlens.search.onset import error_summary_ms, image_onsets
 from burstlens.search.safe_io import finite_or_none
+from burstlens.search.spectrogram import spectrogram_representation
+from burstlens.search.tfd import transform
 
 RESAMPLES = 2000               # the scorecard's paired bootstrap (held-out windows)
 GUARD_WINDOWS = 64             # fit windows the pipeline guard measures on
@@ -32,15 +38,15 @@ ONSET_TOLERANCE_SAMPLES = 2.0  # AIC onsets of two images differ by this much on
 def _result_params(ctx) -> tuple:
     """(per-channel parameters, origin) of the run's result before the judgement."""
     st, space = ctx.state, ctx.space
-    fam, ref, base = st["family"], st["refine"], st["baselines"]
+    fam, ref, base = st.family, st.refine, st.baselines
     if ref is not None:
-        p = (space.centers_hz, *[np.asarray(a) for a in ref["params"]])
-        origin = "refinement" if ref["status"] in ("converged", "sweeps done") \
-            or ref["status"].startswith("stopped") else ref["start"]
-    elif fam is not None and fam["best_x"] is not None:
-        p, origin = space.family(fam["best_x"]), "family"
+        p = (space.centers_hz, *[np.asarray(a) for a in ref.params])
+        origin = "refinement" if ref.status in ("converged", "sweeps done") \
+            or ref.status.startswith("stopped") else ref.start
+    elif fam is not None and fam.best_x is not None:
+        p, origin = space.family(fam.best_x), "family"
     else:   # cancelled before the family search had a result
-        sigma = base.get("spectrogram", {}).get("parameters", {}).get("time_spread_s")
+        sigma = None if base.spectrogram is None else base.spectrogram_time_spread_s
         p = space.family(space.point(sigma or math.exp(np.mean(space.bounds("log_sigma_ref")))))
         origin = "spectrogram"
     return p, origin
@@ -50,12 +56,12 @@ def run(ctx) -> tuple:
     """Stage 3, then the record: returns ``(filterbank, diagnostics, objective)`` (objective
     None when cancelled). Skips the judgement when the run was cancelled."""
     st, s, space = ctx.state, ctx.s, ctx.space
-    fam, ref = st["family"], st["refine"]
+    fam, ref = st.family, st.refine
     p, origin = _result_params(ctx)
-    cancelled = st["stop_reason"] == "cancelled"
+    cancelled = st.stop_reason == "cancelled"
     ctx.report("judge", 0.0)     # a checkpoint: a worker told to stop leaves here, not mid-judge
-    d = {"stop_reason": st["stop_reason"] or "budget",
-         "evaluations": st["log"].evaluations, "best_so_far": st["log"].best_so_far,
+    d = {"stop_reason": st.stop_reason or "budget",
+         "evaluations": st.log.evaluations, "best_so_far": st.log.best_so_far,
          "refinement": refinement_records(ctx)}
     fallback = judgement = None
     result = None
@@ -74,19 +80,18 @@ def run(ctx) -> tuple:
     d["origin"] = origin
     d["spectrogram_in_search_space"] = space.spectrogram_in_space()
     d["family"] = None if fam is None else {
-        "stop_reason": fam["stop_reason"], "rounds": fam["round"],
-        "evaluations": st["log"].count("family"),
-        "best_objective_subset": finite_or_none(fam["best_y"]),
-        "best": space.describe(fam["best_x"]) if fam["best_x"] is not None else None,
+        "stop_reason": fam.stop_reason, "rounds": fam.round,
+        "evaluations": st.log.count("family"),
+        "best_objective_subset": finite_or_none(fam.best_y),
+        "best": space.describe(fam.best_x) if fam.best_x is not None else None,
         "dimensions": list(space.dims), "reference_hz": space.f_ref_hz}
     d["refine"] = None if ref is None else {
-        "start": ref["start"], "status": ref["status"], "sweeps": ref["sweep"],
-        "objective": finite_or_none(ref["objective"]),
-        "channels_refined": len(ref["active"] or []),
-        "changed_channels": sorted(int(k) for k, r in ref["records"].items()
-                                   if r["status"] == "improved")}
+        "start": ref.start, "status": ref.status, "sweeps": ref.sweep,
+        "objective": finite_or_none(ref.objective),
+        "channels_refined": len(ref.active or []),
+        "changed_channels": sorted(c for c, r in ref.records.items() if r.status == "improved")}
     d["noise"] = noise_record(ctx)
-    d["subset"] = [int(i) for i in ctx.split.fit[np.asarray(st["subset"], dtype=np.int64)]]
+    d["subset"] = [int(i) for i in ctx.split.fit[np.asarray(st.subset, dtype=np.int64)]]
     d["split"] = ctx.split.to_json()
     rejections = list(getattr(ctx.corpus, "rejections", []) or [])
     d["windows"] = {"used": int(len(ctx.all_windows)), "rejected": len(rejections),
@@ -98,7 +103,7 @@ def run(ctx) -> tuple:
     d["seed"] = s["seed"]
     d["elapsed_s"] = ctx.elapsed() + 0.0
     d["version"] = __version__
-    st["phase"] = "done"
+    st.phase = "done"
     objective = None if result is None else float(result)
     filterbank = make_filterbank(
         *p, space.fs, steady_lines_hz=ctx.lines.lines_hz, provenance={
@@ -111,11 +116,11 @@ def run(ctx) -> tuple:
             "corpus_hash": getattr(ctx.corpus, "source_hash", None),
             "settings": settings, "burstlens_version": __version__})
     if ctx.progress_cb:
-        ctx.progress_cb({"stage": "judge", "round": st["round"],
-                         "evaluations": st["log"].count("family"),
-                         "evaluations_total": st["log"].count(), "budget": s["evaluations"],
+        ctx.progress_cb({"stage": "judge", "round": st.round,
+                         "evaluations": st.log.count("family"),
+                         "evaluations_total": st.log.count(), "budget": s["evaluations"],
                          "best_objective": finite_or_none(result if result is not None
-                                                          else st["best"]),
+                                                          else st.best),
                          "fraction": 1.0})
     return filterbank, d, objective
 
@@ -141,15 +146,14 @@ def held_out_judgement(ctx, p, origin):
     """Score the result and the baselines on the held-out windows (the fit windows when
     ``held_out`` is 0) and decide the fallback there. Returns (parameters, origin, fallback,
     the ``judgement`` record, {"baselines", "per_window"})."""
-    s, space, base = ctx.s, ctx.space, ctx.state["baselines"]
+    s, space, base = ctx.s, ctx.space, ctx.state.baselines
     in_sample = ctx.split.held_out.size == 0
     judged = ctx.split.fit if in_sample else ctx.split.held_out
     ev = ctx.evaluator("full" if in_sample else "held")
-    sigma = base["spectrogram"]["parameters"]["time_spread_s"]
+    sigma = base.spectrogram_time_spread_s
     on_grid = space.constant(sigma)
     reference = {"spectrogram_on_grid": on_grid,
-                 "scalogram": scalogram(space, base["scalogram"]["parameters"]
-                                        ["time_spread_at_reference_s"]),
+                 "scalogram": scalogram(space, base.scalogram_time_spread_s),
                  "pseudo_wvd": pseudo_wvd(space, ctx.windows.shape[1])}
     scored = ev.score([p, *reference.values()], want_stats=True)
     r, refs = scored[0], dict(zip(reference, scored[1:], strict=True))
@@ -177,13 +181,13 @@ def held_out_judgement(ctx, p, origin):
     gain = dg.paired_gain(r.scores, refs["spectrogram"].scores, draws(), ctx.how)
     # per baseline: its parameters, and how it was fitted (None: not fitted, only judged)
     described = {
-        "spectrogram": (dict(base["spectrogram"]["parameters"]), base["spectrogram"]),
+        "spectrogram": (dict(base.spectrogram.parameters), base.spectrogram),
         "spectrogram_on_grid": (
             {"time_spread_s": sigma, "cell_area": 1.0, "chirp_hz_per_s": 0.0,
              "capped_channels": int(np.sum(on_grid[1] < sigma)),
              "note": "the best spectrogram window on the channel grid, shortened where the "
                      "grid cannot sample it; the fallback"}, None),
-        "scalogram": (dict(base["scalogram"]["parameters"]), base["scalogram"]),
+        "scalogram": (dict(base.scalogram.parameters), base.scalogram),
         "pseudo_wvd": (
             {"time_spread_s": float(reference["pseudo_wvd"][1][0]),
              "cell_area": float(reference["pseudo_wvd"][2][0]),
@@ -194,8 +198,8 @@ def held_out_judgement(ctx, p, origin):
         baselines[name] = {
             **dg.interval_on(refs[name].scores, draws(), ctx.how),
             "parameters": parameters,
-            "evaluations": fitted["evaluations"] if fitted else 1,
-            "objective_fit": finite_or_none(fitted["objective"]) if fitted else None,
+            "evaluations": fitted.evaluations if fitted is not None else 1,
+            "objective_fit": finite_or_none(fitted.objective) if fitted is not None else None,
             "negative_share": finite_or_none(np.mean(refs[name].shares))}
     result = dg.interval_on(r.scores, draws(), ctx.how)
     judgement = {
@@ -220,28 +224,21 @@ def representations(ctx, p, sigma: float, envelope: bool = True) -> dict:
     ``p``, on the windows the lines already left), the best plain spectrogram (time spread
     ``sigma`` on its own FFT grid, as the gain is measured), the user's own spectrogram
     (``compare_to``) and the raw envelope."""
-    from burstlens.search.scorecard import envelope_representation, filterbank_representation
-    from burstlens.search.spectrogram import spectrogram_representation
-
     s, fs = ctx.s, ctx.space.fs
-    out = {"result": filterbank_representation("result", make_filterbank(*p, fs), s["eps"]),
+    out = {"result": sc.filterbank_representation("result", make_filterbank(*p, fs), s["eps"]),
            "spectrogram": spectrogram_representation(sigma, fs, s["band_hz"],
                                                      ctx.all_windows.shape[1], s["eps"])}
     if s.get("compare_to"):
-        from burstlens.search.compare import parse_compare_to
-
         out["yours"] = parse_compare_to(s["compare_to"]).representation(fs, s["band_hz"])
     if envelope:
-        out["envelope"] = envelope_representation(fs)
+        out["envelope"] = sc.envelope_representation(fs)
     return out
 
 
 def scorecard(ctx, bursts, p, sigma: float, *, resamples: int, envelope: bool = True) -> dict:
     """``search.scorecard.scorecard`` of the result, the best plain spectrogram, the user's own
     and the raw envelope on ``bursts`` (M, N) and the corpus's noise windows."""
-    from burstlens.search.scorecard import scorecard as card
-
-    return card(representations(ctx, p, sigma, envelope), bursts, ctx.noise_windows, ctx.space.fs,
+    return sc.scorecard(representations(ctx, p, sigma, envelope), bursts, ctx.noise_windows, ctx.space.fs,
                 ctx.criterion, resamples=resamples, seed=ctx.s["seed"])
 
 
@@ -334,9 +331,6 @@ def onset_timing(ctx, judged, p, centers, sigma) -> dict | None:
     judged burst windows (search.onset), for the result and the best plain spectrogram
     (window std ``sigma`` on the channel ``centers``; the channel sum is its band energy
     envelope, whatever the grid samples)."""
-    from burstlens.search.onset import error_summary_ms, image_onsets
-    from burstlens.search.tfd import transform
-
     meta = getattr(ctx.corpus, "window_meta", None) or []
     offsets = [meta[i].get("trigger_offset_s") if i < len(meta) and isinstance(meta[i], dict)
                else None for i in judged]
@@ -359,18 +353,18 @@ def onset_timing(ctx, judged, p, centers, sigma) -> dict | None:
 
 def refinement_records(ctx) -> list:
     """Per channel: the refinement's record, or why it has none."""
-    ref = ctx.state["refine"]
+    ref = ctx.state.refine
     f = ctx.space.centers_hz
     out = []
     for c in range(len(f)):
-        rec = (ref or {}).get("records", {}).get(str(c))
+        rec = None if ref is None else ref.records.get(c)
         if rec is None:
             status = ("disabled" if not ctx.s["refine"] else
-                      ref["status"] if ref is not None else "not reached")
-            rec = {"channel": c, "center_hz": float(f[c]), "status": status,
-                   "objective_before": None, "objective_after": None}
-        out.append({k: (finite_or_none(v) if k.startswith("objective") else v)
-                    for k, v in rec.items()})
+                      ref.status if ref is not None else "not reached")
+            rec = ChannelRecord(c, float(f[c]), status, None, None)
+        out.append({"channel": rec.channel, "center_hz": rec.center_hz, "status": rec.status,
+                    "objective_before": finite_or_none(rec.objective_before),
+                    "objective_after": finite_or_none(rec.objective_after)})
     return out
 
 
@@ -386,8 +380,8 @@ def stability(ctx, p, origin) -> dict:
     indices = dg.bootstrap_indices(len(ctx.windows), s["bootstrap"], boot_rng)
     channels = None
     if len(indices) and ctx.criterion.separable:
-        ref = ctx.state["refine"]
-        stats = ref["stats"] if origin == "refinement" and ref and ref["stats"] is not None \
+        ref = ctx.state.refine
+        stats = ref.stats if origin == "refinement" and ref is not None and ref.stats is not None \
             else ctx.evaluator("full").stats(p)
         channels = channel_intervals(ctx, p, stats, indices)
     return {"resamples": int(s["bootstrap"]),

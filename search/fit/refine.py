@@ -24,6 +24,7 @@ import numpy as np
 from burstlens.search.criteria import L1, TOTAL, shares_from_totals
 from burstlens.search.fit.context import Cancelled
 from burstlens.search.fit.evaluate import scores_from_stats
+from burstlens.search.fit.state import ChannelRecord, RefineState, RefineStep
 
 # ---------------------------------------------------------------------------------------------
 # Bounded Brent as a coroutine, so that many 1-D searches can share each transform call
@@ -199,15 +200,15 @@ def start_params(ctx) -> tuple:
     """Refinement start: the family's best or the best spectrogram, whichever scores better
     on all windows (the family was only scored on the subset); returns (name, per-channel
     arrays, row stats on all windows or None)."""
-    fam, base = ctx.state["family"], ctx.state["baselines"]["spectrogram"]
+    fam, base = ctx.state.family, ctx.state.baselines
     candidates = []
     want = ctx.criterion.separable
-    if fam["best_x"] is not None:
-        p = ctx.space.family(fam["best_x"])
+    if fam.best_x is not None:
+        p = ctx.space.family(fam.best_x)
         r = ctx.evaluator("full").score([p], want_stats=want)[0]
         candidates.append(("family", ctx.ceiling(r.scores, r.shares), p, r.stats))
     if ctx.space.spectrogram_in_space() or not candidates:
-        p = ctx.space.constant(base["parameters"]["time_spread_s"])
+        p = ctx.space.constant(base.spectrogram_time_spread_s)
         r = ctx.evaluator("full").score([p], want_stats=want)[0]
         candidates.append(("spectrogram", ctx.ceiling(r.scores, r.shares), p, r.stats))
     name, _, p, stats = min(candidates, key=lambda c: c[1])
@@ -220,25 +221,23 @@ def start_params(ctx) -> tuple:
 # The stage
 # ---------------------------------------------------------------------------------------------
 
-def _new_refine(ctx) -> dict:
+def _new_refine(ctx) -> RefineState:
     s = ctx.s
     start, p, stats = start_params(ctx)
     params = [np.array(a, dtype=np.float64) for a in p[1:]]
     status = "running" if ctx.criterion.separable else \
         "skipped: the Gini index is not separable by channel"
-    ref = {"start": start, "params": params, "stats": stats, "sweep": 0, "coord": 0,
-           "objective": None, "records": {}, "changed_in_sweep": 0, "status": status,
-           "active": None}
+    ref = RefineState(start=start, params=params, stats=stats, status=status)
     if stats is not None:
         value = objective(ctx, stats, params)
         shares = channel_shares(ctx, stats)
         active = [int(c) for c in np.flatnonzero(shares >= s["refine_min_share"] / len(shares))]
-        ref.update(objective=value, active=active)
+        ref.objective, ref.active = value, active
         for c in range(len(shares)):
-            ref["records"][str(c)] = {
-                "channel": c, "center_hz": float(ctx.space.centers_hz[c]),
-                "status": "unchanged" if c in active else "skipped: low energy",
-                "objective_before": value, "objective_after": value}
+            ref.records[c] = ChannelRecord(
+                channel=c, center_hz=float(ctx.space.centers_hz[c]),
+                status="unchanged" if c in active else "skipped: low energy",
+                objective_before=value, objective_after=value)
     return ref
 
 
@@ -256,57 +255,57 @@ def run(ctx) -> None:
     if ctx.spec["name"] == "detection":
         # a corpus-level objective has no per-row statistics to refine by: the family's best
         # is the result
-        st["phase"] = "judge"
+        st.phase = "judge"
         return
-    if st["refine"] is None:
-        st["refine"] = _new_refine(ctx)
-    ref = st["refine"]
-    if ref["status"] != "running":
-        st["phase"] = "judge"
+    if st.refine is None:
+        st.refine = _new_refine(ctx)
+    ref = st.refine
+    if ref.status != "running":
+        st.phase = "judge"
         return
-    st["best"] = ref["objective"]
+    st.best = ref.objective
     names = coords(ctx.space)
     stop = None
-    while ref["sweep"] < s["refine_sweeps"]:
-        while ref["coord"] < len(names):
+    while ref.sweep < s["refine_sweeps"]:
+        while ref.coord < len(names):
             if ctx.cancelled():
                 raise Cancelled()
             if ctx.out_of_time():
                 stop = "time_limit"
                 break
-            changed = _round(ctx, names[ref["coord"]])
-            ref["changed_in_sweep"] += changed
-            ref["coord"] += 1
-            st["round"] += 1
-            st["best"] = ref["objective"]
-            frac = (ref["sweep"] + ref["coord"] / len(names)) / s["refine_sweeps"]
-            ctx.report("refine", frac, coordinate=names[ref["coord"] - 1])
+            changed = _round(ctx, names[ref.coord])
+            ref.changed_in_sweep += changed
+            ref.coord += 1
+            st.round += 1
+            st.best = ref.objective
+            frac = (ref.sweep + ref.coord / len(names)) / s["refine_sweeps"]
+            ctx.report("refine", frac, coordinate=names[ref.coord - 1])
         if stop is not None:
             break
-        converged = ref["changed_in_sweep"] == 0
-        ref["sweep"] += 1
-        ref["coord"] = 0
-        ref["changed_in_sweep"] = 0
+        converged = ref.changed_in_sweep == 0
+        ref.sweep += 1
+        ref.coord = 0
+        ref.changed_in_sweep = 0
         if converged:
-            ref["status"] = "converged"
+            ref.status = "converged"
             break
     if stop is not None:
-        ref["status"] = f"stopped: {stop}"
-        st["stop_reason"] = stop
-    elif ref["status"] == "running":
-        ref["status"] = "sweeps done"
-    st["phase"] = "judge"
+        ref.status = f"stopped: {stop}"
+        st.stop_reason = stop
+    elif ref.status == "running":
+        ref.status = "sweeps done"
+    st.phase = "judge"
 
 
 def _round(ctx, coord: str) -> int:
     """One coordinate for every active channel; returns the number of channels changed."""
-    ref, log = ctx.state["refine"], ctx.state["log"]
-    params, stats, current = ref["params"], ref["stats"], ref["objective"]
+    ref, log = ctx.state.refine, ctx.state.log
+    params, stats, current = ref.params, ref.stats, ref.objective
     half, tol = coord_setup(ctx.space, coord)[2:]
     glo, ghi = channel_limits(ctx.space, coord, params)
     x0 = coord_values(coord, params)
     gens, pending, best = {}, {}, {}
-    for c in ref["active"]:
+    for c in ref.active:
         lo, hi = max(glo[c], x0[c] - half), min(ghi[c], x0[c] + half)
         if hi - lo <= tol:
             continue
@@ -332,7 +331,7 @@ def _round(ctx, coord: str) -> int:
         for i, c in enumerate(chans):   # the penalty with channel c changed alone
             one = with_coord(coord, params, [c], [values[i]])
             objs[i] += penalty(ctx, *one)
-        log.add("refine", ctx.state["round"],
+        log.add("refine", ctx.state.round,
                 {"coordinate": coord, "channels": len(chans),
                  "best_channel": int(chans[int(np.argmin(objs))])},
                 float(np.min(objs)), time.perf_counter() - t0)
@@ -387,13 +386,12 @@ def _round(ctx, coord: str) -> int:
     if not y_best < current - margin:
         return 0
     for c in moved:
-        rec = ref["records"][str(int(c))]
-        if rec["status"] != "improved":
-            rec["objective_before"] = current
-        rec["status"] = "improved"
-        rec["objective_after"] = y_best
-    ref["params"], ref["stats"], ref["objective"] = new_params, new_stats, y_best
-    ref.setdefault("steps", []).append({"coordinate": coord, "sweep": ref["sweep"],
-                                        "step": how, "channels": len(moved),
-                                        "objective": y_best})
+        rec = ref.records[int(c)]
+        if rec.status != "improved":
+            rec.objective_before = current
+        rec.status = "improved"
+        rec.objective_after = y_best
+    ref.params, ref.stats, ref.objective = new_params, new_stats, y_best
+    ref.steps.append(RefineStep(coordinate=coord, sweep=ref.sweep, step=how,
+                                channels=len(moved), objective=y_best))
     return len(moved)

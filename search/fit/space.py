@@ -11,6 +11,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from burstlens.search.criteria import channel_widths_hz
+from burstlens.search.filterbank import center_grid
+
 Q_BOUNDS = (-1.0, 0.5)          # exponent q of the family σ_t(f) = σ_ref·(f/f_ref)^q
 
 
@@ -40,9 +43,6 @@ class SearchSpace:
     @classmethod
     def from_settings(cls, s: dict) -> SearchSpace:
         """The space of resolved search settings (``search.settings.resolve_search_options``)."""
-        from burstlens.search.criteria import channel_widths_hz
-        from burstlens.search.filterbank import center_grid
-
         lo, hi = s["band_hz"]
         centers = np.asarray(center_grid(s["band_hz"], s["channels"], s["spacing"]), dtype=np.float64)
         f_ref = math.sqrt(lo * hi) if s["spacing"] == "log" else 0.5 * (lo + hi)
@@ -82,6 +82,7 @@ class SearchSpace:
                 "chirp_hz_per_s": (-self.beta_bound, self.beta_bound)}[dim]
 
     def skopt_dimensions(self):
+        # scikit-optimize (and scikit-learn under it) loads only when a family search starts
         from skopt.space import Real
 
         return [Real(*self.bounds(d), name=d) for d in self.dims]

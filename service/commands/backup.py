@@ -7,16 +7,19 @@ full, I/O error); every message names the path and the cause.
 from __future__ import annotations
 
 import argparse
+import sys
+
+from tqdm import tqdm
+
+from burstlens.service.backup import BackupError, backup
 
 
-def register(subparsers) -> None:
-    p = subparsers.add_parser(
-        "backup", help="back up a data dir, also while the service runs",
-        description="Copy the store with SQLite's online backup API (one consistent snapshot, "
-                    "while the service runs) and the blobs it names into the new folder DEST, "
-                    "with a manifest of every file's sha256. DEST appears only once complete; "
-                    "an interrupted run leaves at most a folder named "
-                    ".burstlens-incomplete-backup.*, which the next run removes.")
+def register(p) -> None:
+    p.description = ("Copy the store with SQLite's online backup API (one consistent snapshot, "
+                     "while the service runs) and the blobs it names into the new folder DEST, "
+                     "with a manifest of every file's sha256. DEST appears only once complete; "
+                     "an interrupted run leaves at most a folder named "
+                     ".burstlens-incomplete-backup.*, which the next run removes.")
     p.add_argument("data_dir", metavar="DATA_DIR", help="the service's data dir")
     p.add_argument("dest", metavar="DEST", help="the backup folder to create (must not exist)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
@@ -34,10 +37,6 @@ class ProgressBar:
         if self.quiet:
             return
         if stage != self.stage:
-            import sys
-
-            from tqdm import tqdm
-
             self.close()
             unit = "page" if stage == "store" else "B"
             self.bar = tqdm(total=total, desc=stage, unit=unit, unit_scale=unit == "B",
@@ -55,10 +54,6 @@ class ProgressBar:
 def run_reporting(name: str, work, quiet: bool) -> int:
     """``work(progress)`` with a progress bar; its exit status, or 2 for bad input and 1 for a
     failure while working, with the message on stderr."""
-    import sys
-
-    from burstlens.service.backup import BackupError
-
     bar = ProgressBar(quiet)
     try:
         result = work(bar)
@@ -77,8 +72,6 @@ def run_reporting(name: str, work, quiet: bool) -> int:
 
 
 def run_backup(args: argparse.Namespace) -> int:
-    from burstlens.service.backup import backup
-
     def work(bar) -> int:
         done = backup(args.data_dir, args.dest, progress=bar)
         c = done.counts

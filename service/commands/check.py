@@ -15,17 +15,26 @@ operator's cron), 2 bad input. A progress bar on stderr unless ``--quiet``.
 from __future__ import annotations
 
 import argparse
+import json
+import os
+import sys
+
+from tqdm import tqdm
+
+from burstlens.search.corpus import CorpusError
+from burstlens.search.documents import FilterbankDocument, encode
+from burstlens.search.drift import MAX_WINDOWS, check_drift
+from burstlens.service.commands.inspect import read_with_progress
+from burstlens.service.results import DIAGNOSTICS_JSON
 
 EXIT_CODES = {"keep": 0, "retune": 1}
 
 
-def register(subparsers) -> None:
-    p = subparsers.add_parser(
-        "check", help="judge a tuned filterbank on new files: keep it or re-tune",
-        description="Read new waveform files as the filterbank's tuning read its corpus, judge "
-                    "the filterbank there against the new data's best plain spectrogram and a "
-                    "quick refit, compare the site with the tuning's record, and answer keep "
-                    "(exit 0) or re-tune (exit 1).")
+def register(p) -> None:
+    p.description = ("Read new waveform files as the filterbank's tuning read its corpus, judge "
+                     "the filterbank there against the new data's best plain spectrogram and a "
+                     "quick refit, compare the site with the tuning's record, and answer keep "
+                     "(exit 0) or re-tune (exit 1).")
     p.add_argument("--filterbank", required=True, metavar="FILE", help="filterbank.json from tune")
     p.add_argument("paths", nargs="+", metavar="PATH", help="new waveform files or folders")
     p.add_argument("--diagnostics", metavar="FILE",
@@ -36,18 +45,9 @@ def register(subparsers) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    import json
-    import os
-    import sys
-
     def fail(message: str) -> int:
         print(f"burstlens check: {message}", file=sys.stderr)
         return 2
-
-    from burstlens.search.corpus import CorpusError
-    from burstlens.search.documents import FilterbankDocument
-    from burstlens.search.drift import MAX_WINDOWS, check_drift
-    from burstlens.service.commands.inspect import read_with_progress
 
     try:
         with open(args.filterbank, encoding="utf-8") as fh:
@@ -59,7 +59,7 @@ def run(args: argparse.Namespace) -> int:
         return fail(f"--filterbank {args.filterbank}: {exc}")
     path = args.diagnostics
     if path is None:
-        beside = os.path.join(os.path.dirname(os.path.abspath(args.filterbank)), "diagnostics.json")
+        beside = os.path.join(os.path.dirname(os.path.abspath(args.filterbank)), DIAGNOSTICS_JSON)
         path = beside if os.path.isfile(beside) else None
     diagnostics = None
     if path is not None:
@@ -84,8 +84,6 @@ def run(args: argparse.Namespace) -> int:
 
     bar = None
     if not args.quiet:
-        from tqdm import tqdm
-
         bar = tqdm(total=1000, desc="check", file=sys.stderr,
                    bar_format="{desc} {percentage:3.0f}%|{bar}| {elapsed}")
 
@@ -102,8 +100,6 @@ def run(args: argparse.Namespace) -> int:
         if bar is not None:
             bar.close()
     if args.json:
-        from burstlens.search.documents import encode
-
         sys.stdout.write(encode(answer.to_json()).decode("utf-8"))
     else:
         for line in answer.words():

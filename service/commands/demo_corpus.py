@@ -4,21 +4,19 @@ from __future__ import annotations
 import hashlib
 import sys
 
+from burstlens.search import demo_site
 
-def register(subparsers) -> None:
-    p = subparsers.add_parser(
-        "demo-corpus", help="write the synthetic demo site (miniSEED) into a folder",
-        description="Generate the invented Quillmoor Deep geophone array record from physics "
-                    "(Brune sources, attenuation, coda, guided waves, site noise): one miniSEED "
-                    "file per station plus catalogue.json. The same seed gives identical bytes.")
+
+def register(p) -> None:
+    p.description = ("Generate the invented Quillmoor Deep geophone array record from physics "
+                     "(Brune sources, attenuation, coda, guided waves, site noise): one miniSEED "
+                     "file per station plus catalogue.json. The same seed gives identical bytes.")
     p.add_argument("--out", required=True, metavar="DIR", help="folder to write into (created if missing)")
     p.add_argument("--seed", type=int, default=None, help="generator seed (default: the committed demo's)")
     p.set_defaults(func=run)
 
 
 def run(args) -> int:
-    from burstlens.search import demo_site
-
     seed = demo_site.DEFAULT_SEED if args.seed is None else args.seed
     try:
         paths = demo_site.write_demo_corpus(args.out, seed=seed)

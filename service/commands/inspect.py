@@ -14,14 +14,15 @@ import sys
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 
+from tqdm import tqdm
 
-def register(subparsers) -> None:
-    from burstlens.service.commands.options import add_corpus_options, add_paths
+from burstlens.search.corpus.given import read_corpus_as_given
+from burstlens.service.commands.options import add_corpus_options, add_paths, corpus_options_from_args
 
-    p = subparsers.add_parser(
-        "inspect", help="show what the corpus holds: traces, rates, windows found, rejections",
-        description="Read waveform files or folders as the tuner would, and show the traces, the "
-                    "windows found per trace, every default chosen, and the rejected windows with reasons.")
+
+def register(p) -> None:
+    p.description = ("Read waveform files or folders as the tuner would, and show the traces, the "
+                     "windows found per trace, every default chosen, and the rejected windows with reasons.")
     add_paths(p)
     add_corpus_options(p)
     p.add_argument("--json", action="store_true", help="print the corpus summary as JSON (default: text)")
@@ -34,8 +35,6 @@ def register(subparsers) -> None:
 
 
 def run(args) -> int:
-    from burstlens.service.commands.options import corpus_options_from_args
-
     try:
         corpus = read_with_progress(args.paths, corpus_options_from_args(args), quiet=args.quiet,
                                     jobs=args.reading_jobs)
@@ -53,15 +52,13 @@ def run(args) -> int:
 
 
 def read_with_progress(paths, options: dict, *, quiet: bool = False, jobs: int | None = 1):
-    """The corpus as ``search.settings.read_corpus_as_given(paths, options)`` reads it, with a
+    """The corpus as ``search.corpus.given.read_corpus_as_given(paths, options)`` reads it, with a
     tqdm bar on stderr unless ``quiet``: the reader's stage and its count (files, then segments),
     and after it the files read, hours of data (summed over traces) and, once cutting, the
     windows found before the ``max_windows`` cap. The bar is closed before this returns or raises;
     errors are the reader's. ``jobs`` other than 1 reads on that many local processes (joblib;
     -1: every core): one task per file, then per group of files joined by their traces, with the
     same result."""
-    from burstlens.search.settings import read_corpus_as_given
-
     bar = None if quiet else _ReadingBar()
     try:
         return read_corpus_as_given(paths, options, progress=None if bar is None else bar.show,
@@ -88,8 +85,6 @@ class _ReadingBar:
         self.bar = None  # drawn from the first state on, when the number of files is known
 
     def show(self, p) -> None:
-        from tqdm import tqdm
-
         n, total = (p.files_read, p.files_total) if p.stage == "reading" else (p.segments_done, p.segments_total)
         if self.bar is None:
             self.bar = tqdm(total=total, desc=p.stage, file=sys.stderr,

@@ -3,12 +3,13 @@ the service settings that ``serve``, ``worker`` and ``tokens`` share (:func:`ser
 
 Each command adds the groups it takes (:func:`add_paths`, :func:`add_corpus_options`,
 :func:`add_job_settings`) and turns the parsed flags into settings here: :func:`settings_from_args`
-gives the JSON settings of ``POST /v1/jobs`` (corpus options included), which
-``search.settings`` checks for every entry point alike; :func:`corpus_options_from_args` gives
-the checked ``read_corpus`` options alone. The corpus flags come from the one definition of the
-corpus options, ``search.settings.CORPUS_OPTIONS`` (name, kind, default, help, check); the job
-settings flags are :data:`JOB_FLAGS`, with their choices and defaults read from
-``search.settings``.
+gives the checked ``search.settings.JobSettings`` (corpus options included), as the API and
+Python callers build them; :func:`settings_json_from_args` the JSON settings of ``POST /v1/jobs``
+(the flags given); :func:`corpus_options_from_args` the checked ``read_corpus`` options alone.
+The corpus flags come from the one definition of the corpus options,
+``search.settings.CORPUS_OPTIONS`` (name, kind, default, help, check); the job settings flags
+are :data:`JOB_FLAGS`, with their choices and defaults read from ``search.settings`` and
+``search.criteria_options``.
 """
 from __future__ import annotations
 
@@ -16,8 +17,9 @@ import argparse
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
-from burstlens.search.settings import (CORPUS_OPTIONS, CRITERIA, CRITERION_DEFAULTS, MAX_HELD_OUT,
-                             SETTINGS_DEFAULTS, SPACINGS, check_corpus_options)
+from burstlens.search.criteria_options import CRITERIA, CRITERION_DEFAULTS
+from burstlens.search.settings import (CORPUS_OPTIONS, MAX_HELD_OUT, SETTINGS_DEFAULTS, SPACINGS,
+                                       JobSettings, check_corpus_options)
 
 
 class _NotGiven:
@@ -204,10 +206,10 @@ def corpus_options_from_args(args: argparse.Namespace) -> dict:
     return check_corpus_options(_corpus_flags_given(args))
 
 
-def settings_from_args(args: argparse.Namespace) -> dict:
-    """Flags → the JSON settings of POST /v1/jobs (only the flags given: the corpus options,
-    then the job settings; a command without the job settings flags gives only corpus
-    options)."""
+def settings_json_from_args(args: argparse.Namespace) -> dict:
+    """Flags → the JSON settings of POST /v1/jobs: only the flags given (the corpus options,
+    then the job settings; a command without the job settings flags gives only corpus options),
+    unchecked, so a job records what its client set."""
     settings = _corpus_flags_given(args)
     for flag in JOB_FLAGS:
         value = getattr(args, flag.dest, None)
@@ -217,6 +219,12 @@ def settings_from_args(args: argparse.Namespace) -> dict:
         group, _, name = flag.setting.rpartition(".")
         (settings.setdefault(group, {}) if group else settings)[name] = value
     return settings
+
+
+def settings_from_args(args: argparse.Namespace) -> JobSettings:
+    """Flags → the checked job settings (``JobSettings.from_mapping`` of
+    :func:`settings_json_from_args`); ``ValueError`` naming a bad one."""
+    return JobSettings.from_mapping(settings_json_from_args(args))
 
 
 def service_settings_from(args: argparse.Namespace, *names: str):

@@ -2,15 +2,20 @@
 from __future__ import annotations
 
 import argparse
+import logging
+import sys
+
+from pydantic import ValidationError
+
+from burstlens.service.commands.options import service_settings_from
+from burstlens.service.serving import serve
 
 
-def register(subparsers) -> None:
-    p = subparsers.add_parser(
-        "serve", help="run the HTTP API and local job workers",
-        description="Run the burstlens HTTP API (uvicorn) and N local worker processes sharing "
-                    "the SQLite store under --data-dir. Without any token stored the server only "
-                    "binds to loopback; add one with `burstlens tokens add NAME`. Every flag "
-                    "defaults to its BURSTLENS_* environment variable.")
+def register(p) -> None:
+    p.description = ("Run the burstlens HTTP API (uvicorn) and N local worker processes sharing "
+                     "the SQLite store under --data-dir. Without any token stored the server only "
+                     "binds to loopback; add one with `burstlens tokens add NAME`. Every flag "
+                     "defaults to its BURSTLENS_* environment variable.")
     p.add_argument("--host", help="address to bind (default $BURSTLENS_HOST, else 127.0.0.1)")
     p.add_argument("--port", type=int, help="port (default $BURSTLENS_PORT, else 8000)")
     p.add_argument("--data-dir", metavar="DIR",
@@ -26,13 +31,6 @@ def register(subparsers) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    import logging
-    import sys
-
-    from pydantic import ValidationError
-
-    from burstlens.service.commands.options import service_settings_from
-
     try:
         settings = service_settings_from(args, "host", "port", "data_dir", "workers", "dask")
     except ValidationError as exc:
@@ -40,6 +38,5 @@ def run(args: argparse.Namespace) -> int:
         return 2
     logging.basicConfig(level=args.log_level.upper(),
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
-    from burstlens.service.serving import serve
 
     return serve(settings, log_level=args.log_level)

@@ -7,16 +7,25 @@ first, on stderr, before the saved paths or the summary JSON on stdout.
 from __future__ import annotations
 
 import argparse
+import json
+import os
+import sys
+from pathlib import Path
+
+from tqdm import tqdm
+
+from burstlens.search.corpus import folder_files, is_waveform_file
+from burstlens.service import verdict
+from burstlens.service.client import Client, ServiceError
+from burstlens.service.commands.options import (add_corpus_options, add_job_settings, add_paths,
+                                                settings_from_args, settings_json_from_args)
+from burstlens.service.energy_channels import lines_or_note, sample_windows
 
 
-def register(subparsers) -> None:
-    from burstlens.service.commands.options import add_corpus_options, add_job_settings, add_paths
-
-    p = subparsers.add_parser(
-        "submit", help="tune on a server: upload, queue, follow, download",
-        description="Upload waveform files as a corpus, queue a filterbank search on a burstlens "
-                    "server, and (with --wait) follow its progress and download filterbank.json, "
-                    "diagnostics.json and report.html into --out.")
+def register(p) -> None:
+    p.description = ("Upload waveform files as a corpus, queue a filterbank search on a burstlens "
+                     "server, and (with --wait) follow its progress and download filterbank.json, "
+                     "diagnostics.json and report.html into --out.")
     add_paths(p)
     p.add_argument("--server", required=True, metavar="URL", help="e.g. http://127.0.0.1:8000")
     p.add_argument("--token", help="bearer token (default: $BURSTLENS_TOKEN)")
@@ -34,10 +43,6 @@ def expand(paths: list[str]) -> list:
     entries and non-waveform files such as a README skipped, by the reader's own
     ``search.corpus.folder_files`` and ``is_waveform_file``), so the upload holds what the job
     reads. ``FileNotFoundError`` for a missing path, ``OSError`` for an unreadable file."""
-    from pathlib import Path
-
-    from burstlens.search.corpus import folder_files, is_waveform_file
-
     files = []
     for raw in paths:
         path = Path(raw)
@@ -52,11 +57,10 @@ def expand(paths: list[str]) -> list:
 
 def follow(client, job_id: str, *, stream=None) -> dict:
     """Poll the job with a tqdm bar driven by its progress ``fraction``; returns the final job."""
-    from tqdm import tqdm
-
     bar = tqdm(total=1000, unit="‰", file=stream, bar_format="{desc} {percentage:3.0f}%|{bar}| "
                "{elapsed}<{remaining}{postfix}", desc=f"job {job_id[:8]}")
 
+    # imported here: the tune command loads the engine, which following a job does not need
     from burstlens.service.commands.tune import ProgressWords
 
     words = ProgressWords()  # the fit's best kept apart from the judgement, as `tune` shows it
@@ -88,20 +92,10 @@ def follow(client, job_id: str, *, stream=None) -> dict:
 
 
 def run(args: argparse.Namespace) -> int:
-    import json
-    import os
-    import sys
-
-    from burstlens.search.settings import split_settings
-    from burstlens.service import verdict
-    from burstlens.service.client import Client, ServiceError
-    from burstlens.service.commands.options import settings_from_args
-    from burstlens.service.energy_channels import lines_or_note, sample_windows
-
     token = args.token or os.environ.get("BURSTLENS_TOKEN")
-    settings = settings_from_args(args)
+    settings = settings_json_from_args(args)  # what the job records: the flags given
     try:
-        corpus_options, _ = split_settings(settings)
+        corpus_options = settings_from_args(args).read_options()
     except ValueError as exc:  # the server's own checks, before any upload
         print(f"burstlens submit: {exc}", file=sys.stderr)
         return 2

@@ -2,11 +2,15 @@
 from __future__ import annotations
 
 import argparse
+import sys
+
+from burstlens.service.auth import create_token
+from burstlens.service.commands.options import service_settings_from
+from burstlens.service.store import Conflict, DataDirTooNew, Store
 
 
-def register(subparsers) -> None:
-    p = subparsers.add_parser("tokens", help="manage API bearer tokens",
-                              description="Create, revoke and list bearer tokens of the API.")
+def register(p) -> None:
+    p.description = "Create, revoke and list bearer tokens of the API."
     p.add_argument("--data-dir", metavar="DIR",
                    help="store folder (default $BURSTLENS_DATA_DIR, else ./burstlens-data)")
     # --data-dir is accepted after the action too (`tokens add NAME --data-dir D`)
@@ -24,12 +28,6 @@ def register(subparsers) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    import sys
-
-    from burstlens.service.auth import create_token
-    from burstlens.service.commands.options import service_settings_from
-    from burstlens.service.store import Conflict, DataDirTooNew, Store
-
     try:
         store = Store(service_settings_from(args, "data_dir").data_dir)
     except DataDirTooNew as exc:

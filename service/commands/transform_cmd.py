@@ -15,15 +15,22 @@ never the whole (M, C, N) image; a progress bar on stderr counts the windows (``
 from __future__ import annotations
 
 import argparse
+import json
+import os
+import sys
+
+from tqdm import tqdm
+
+from burstlens.search.continuous import transform_continuous
+from burstlens.search.corpus import CorpusError, read_corpus
+from burstlens.search.documents import FilterbankDocument
+from burstlens.search.npz_stream import write_transform_npz
+from burstlens.service.commands.options import add_corpus_option, corpus_options_from_args
 
 
-def register(subparsers) -> None:
-    from burstlens.service.commands.options import add_corpus_option
-
-    p = subparsers.add_parser(
-        "transform", help="apply a filterbank to waveform files, write an NPZ",
-        description="Cut windows from the waveform files as the tuning did and write the learned "
-                    "representation (windows x channels x samples) with its axes to an NPZ.")
+def register(p) -> None:
+    p.description = ("Cut windows from the waveform files as the tuning did and write the learned "
+                     "representation (windows x channels x samples) with its axes to an NPZ.")
     p.add_argument("--filterbank", required=True, metavar="FILE", help="filterbank.json from tune")
     p.add_argument("paths", nargs="+", metavar="PATH", help="waveform files or folders")
     p.add_argument("--out", required=True, metavar="FILE.npz", help="output NPZ file")
@@ -43,18 +50,9 @@ def register(subparsers) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    import json
-    import os
-    import sys
-
     def fail(message: str) -> int:
         print(f"burstlens transform: {message}", file=sys.stderr)
         return 2
-
-    from burstlens.search.corpus import CorpusError, read_corpus
-    from burstlens.search.documents import FilterbankDocument
-    from burstlens.search.npz_stream import write_transform_npz
-    from burstlens.service.commands.options import corpus_options_from_args
 
     try:  # --max-windows, checked as tune checks it; None when not given
         args.max_windows = corpus_options_from_args(args).get("max_windows")
@@ -95,8 +93,6 @@ def run(args: argparse.Namespace) -> int:
         return fail(f"--out {args.out}: folder {folder} does not exist")
     bar = None
     if not args.quiet:
-        from tqdm import tqdm
-
         bar = tqdm(total=corpus.windows.shape[0], desc="transform", unit="window", file=sys.stderr)
     try:
         m, c, n = write_transform_npz(out, corpus.windows, filterbank, corpus.window_meta,
@@ -111,12 +107,6 @@ def run(args: argparse.Namespace) -> int:
 
 
 def _run_continuous(args, document, options, fail) -> int:
-    import os
-    import sys
-
-    from burstlens.search.continuous import transform_continuous
-    from burstlens.search.corpus import CorpusError
-
     if not args.out.endswith(".zarr"):
         return fail(f"--out {args.out}: with --continuous the output is a Zarr store named *.zarr")
     folder = os.path.dirname(os.path.abspath(args.out))
@@ -129,8 +119,6 @@ def _run_continuous(args, document, options, fail) -> int:
         return fail(f"--jobs {jobs}: must be at least 1, or -1 for all CPUs")
     bar = None
     if not args.quiet:
-        from tqdm import tqdm
-
         bar = tqdm(total=0, desc="transform", unit="chunk", file=sys.stderr)
 
     def plan(total):
@@ -143,7 +131,7 @@ def _run_continuous(args, document, options, fail) -> int:
 
     try:
         result = transform_continuous(args.paths, document, args.out, step_s=args.time_step,
-                                      reading=options, progress=progress, on_plan=plan, n_jobs=jobs)
+                                      reading=options, progress=progress, on_plan=plan, jobs=jobs)
     except (CorpusError, ValueError) as exc:
         return fail(str(exc))
     except OSError as exc:

@@ -1,22 +1,34 @@
 """``burstlens tune PATH... --out DIR``: fit a filterbank locally (no server), with a progress bar.
 
-Writes ``filterbank.json`` and ``diagnostics.json`` (docs/design.md §8) into DIR, and ``report.html``
-when the report module is available; prints a short summary. Exit codes: 0 done (also when
+Writes ``filterbank.json``, ``diagnostics.json`` and ``report.html`` (docs/design.md §8) into DIR
+through the one tuning pipeline (``service.tuning.tune``, which the worker's search jobs run
+too); prints a short summary. Exit codes: 0 done (also when
 cancelled with Ctrl-C: the best result so far is written), 2 bad input or bad settings.
 """
 from __future__ import annotations
 
 import argparse
+import math
+import os
+import signal
+import sys
+from pathlib import Path
+
+from tqdm import tqdm
+
+from burstlens.search.corpus import CorpusError
+from burstlens.service import tuning
+from burstlens.service.commands.inspect import read_with_progress
+from burstlens.service.commands.options import (add_corpus_options, add_job_settings, add_paths,
+                                                settings_from_args)
+from burstlens.service.energy_channels import lines_or_note
+from burstlens.service.results import REPORT_HTML
 
 
-def register(subparsers) -> None:
-    from burstlens.service.commands.options import add_corpus_options, add_job_settings, add_paths
-
-    p = subparsers.add_parser(
-        "tune", help="fit a filterbank to a corpus on this machine",
-        description="Read the waveform files, cut burst windows, search the filterbank whose "
-                    "output is sharpest, and write filterbank.json, diagnostics.json and "
-                    "report.html into --out.")
+def register(p) -> None:
+    p.description = ("Read the waveform files, cut burst windows, search the filterbank whose "
+                     "output is sharpest, and write filterbank.json, diagnostics.json and "
+                     "report.html into --out.")
     add_paths(p)
     p.add_argument("--out", required=True, metavar="DIR", help="folder for the results")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
@@ -25,36 +37,44 @@ def register(subparsers) -> None:
     p.set_defaults(func=run)
 
 
-def summary_lines(diagnostics: dict) -> list[str]:
+def summary_lines(diagnostics) -> list[str]:
     """The few lines a person reads after a tune (also used by tests): the held-out gain and the
-    warnings first (``service.verdict``), then the run in numbers."""
+    warnings first (``service.verdict``), then the run in numbers. ``diagnostics``: the JSON
+    object or ``search.diagnostics_doc.Diagnostics``."""
     from burstlens.search.diagnostics import wide_channels
+    from burstlens.search.diagnostics_doc import Diagnostics
     from burstlens.service import verdict
 
-    d = diagnostics
+    d = Diagnostics.of(diagnostics)
     lines = verdict.lines(d)
-    lines += [f"windows used: {d['windows']['used']} (rejected {d['windows']['rejected']})",
-              f"stop reason: {d['stop_reason']}"]
-    result = d.get("result")
-    if result:
+    lines += [f"windows used: {d.windows.used} (rejected {d.windows.rejected})",
+              f"stop reason: {d.stop_reason}"]
+    result = d.result
+    if result is not None and result.objective is not None:
         iv = ""
-        if result.get("low") is not None:
-            iv = f" [{result['low']:.4f}, {result['high']:.4f}]"
-        label = "held-out objective" if (verdict.judgement(d) or {}).get("in_sample") is False \
-            else "objective"
-        lines.append(f"{label}: {result['objective']:.4f} bits{iv}")
-        spec = d["baselines"]["spectrogram"]
-        window_ms = 1e3 * spec["parameters"]["time_spread_s"]
-        # the gain itself is the scorecard's sharpness row above: said once
-        lines.append(f"best spectrogram: {spec['objective']:.4f} bits (window std {window_ms:.3g} ms)")
-    boot = d.get("bootstrap") or {}
-    if boot.get("channels"):
-        wide = wide_channels(boot, chirp_bound_hz_per_s=d["settings"].get("chirp_bound_hz_per_s", 0.0))
+        if result.low is not None and result.high is not None:
+            iv = f" [{result.low:.4f}, {result.high:.4f}]"
+        label = "held-out objective" if d.judgement is not None \
+            and d.judgement.in_sample is False else "objective"
+        lines.append(f"{label}: {result.objective:.4f} bits{iv}")
+        spec = d.spectrogram
+        if spec is not None and spec.objective is not None and spec.time_spread_s is not None:
+            # the window's std s = √2·σ_t, as the report states it (service.report.terms)
+            window_ms = 1e3 * math.sqrt(2.0) * spec.time_spread_s
+            # the gain itself is the scorecard's sharpness row above: said once
+            lines.append(f"best spectrogram: {spec.objective:.4f} bits (window std "
+                         f"{window_ms:.3g} ms)")
+    boot = d.bootstrap
+    if boot is not None and boot.channels:
+        # an entry the file does not record is no interval, so never a wide one
+        recorded = {"channels": [{} if c is None else c.to_json() for c in boot.channels]}
+        wide = wide_channels(recorded, chirp_bound_hz_per_s=d.settings.chirp_bound_hz_per_s or 0.0)
         lines.append(f"channels with wide stability intervals (refits on resamples of the fit "
-                     f"windows): {len(wide)} of {len(boot['channels'])}"
+                     f"windows): {len(wide)} of {len(boot.channels)}"
                      + (f" ({', '.join(map(str, wide[:12]))}{' …' if len(wide) > 12 else ''})"
                         if wide else ""))
-        off = [i for i, ch in enumerate(boot["channels"]) if ch.get("at_optimum") is False]
+        off = [i for i, ch in enumerate(boot.channels)
+               if ch is not None and ch.at_optimum is False]
         if off:
             lines.append(f"channels whose resamples all move one way (against a bound, or not "
                          f"converged): {len(off)}")
@@ -96,42 +116,28 @@ class ProgressWords:
 
 
 def run(args: argparse.Namespace) -> int:
-    import os
-    import sys
-    from pathlib import Path
-
-    from burstlens.service.commands.options import settings_from_args
-
     def fail(message: str) -> int:
         print(f"burstlens tune: {message}", file=sys.stderr)
         return 2
 
     try:
-        from burstlens.search.settings import split_settings
-
-        corpus_options, search_options = split_settings(settings_from_args(args))
+        settings = settings_from_args(args)
     except ValueError as exc:
         return fail(str(exc))
     out = Path(args.out)
     if out.exists() and not out.is_dir():
         return fail(f"--out {out}: exists and is not a folder")
-
-    from burstlens.search.corpus import CorpusError
-    from burstlens.search.optimize import FilterbankSearch
-    from burstlens.service.commands.inspect import read_with_progress
-
     missing = [p for p in args.paths if not os.path.exists(p)]
     if missing:
         return fail(f"{missing[0]}: no such file or folder")
     try:
-        corpus = read_with_progress(args.paths, corpus_options, quiet=args.quiet, jobs=args.jobs)
+        corpus = read_with_progress(args.paths, settings.read_options(), quiet=args.quiet,
+                                    jobs=settings.jobs)
     except (CorpusError, ValueError, OSError) as exc:
         return fail(str(exc))
 
     bar = None
     if not args.quiet:
-        from tqdm import tqdm
-
         bar = tqdm(total=1000, desc="tune", file=sys.stderr, bar_format="{desc} {percentage:3.0f}%"
                    "|{bar}| {elapsed}<{remaining}{postfix}")
     shown = ProgressWords()
@@ -143,12 +149,17 @@ def run(args: argparse.Namespace) -> int:
         bar.set_postfix_str(shown.during(msg), refresh=False)
         bar.refresh()
 
+    def fitted(search) -> bool:
+        if bar is not None:
+            bar.n = 1000
+            bar.set_postfix_str(shown.after(search.diagnostics_), refresh=False)
+            bar.close()
+        return True
+
     interrupted = []
 
     def should_stop() -> bool:
         return bool(interrupted)
-
-    import signal
 
     previous = signal.getsignal(signal.SIGINT)
 
@@ -159,12 +170,11 @@ def run(args: argparse.Namespace) -> int:
 
     signal.signal(signal.SIGINT, on_sigint)
     try:
-        search = FilterbankSearch(**search_options)
-        search.fit(corpus, progress=progress, should_stop=should_stop)
-        if bar is not None:
-            bar.n = 1000
-            bar.set_postfix_str(shown.after(search.diagnostics_), refresh=False)
-            bar.refresh()
+        # burstlens tune has always written its JSON files without a final newline
+        tuned = tuning.tune(corpus, settings, out, progress=progress, should_stop=should_stop,
+                            fitted=fitted, final_newline=False, extra=(REPORT_HTML,))
+    except tuning.ResultsNotWritten as exc:
+        return fail(f"--out {out}: the results could not be written ({exc})")
     except ValueError as exc:
         return fail(str(exc))
     finally:
@@ -172,32 +182,8 @@ def run(args: argparse.Namespace) -> int:
         if bar is not None:
             bar.close()
 
-    out.mkdir(parents=True, exist_ok=True)
-    from burstlens.search.documents import DiagnosticsDocument, FilterbankDocument
-    from burstlens.search.safe_io import atomic_write
-
-    filterbank_doc = FilterbankDocument.of(search.filterbank_)
-    diagnostics_doc = DiagnosticsDocument(search.diagnostics_)
-    fb_json = filterbank_doc.to_json()
-    for name, doc in (("filterbank.json", filterbank_doc), ("diagnostics.json", diagnostics_doc)):
-        atomic_write(out / name, lambda fh, doc=doc: fh.write(doc.encode(final_newline=False)))
-    wrote = ["filterbank.json", "diagnostics.json"]
-    report = _render_report(fb_json, search.diagnostics_, corpus)
-    if report is not None:
-        atomic_write(out / "report.html", lambda fh: fh.write(report.encode("utf-8")))
-        wrote.append("report.html")
-    from burstlens.service.energy_channels import lines_or_note
-
-    for line in summary_lines(search.diagnostics_) + lines_or_note(fb_json, corpus):
+    for line in summary_lines(tuned.diagnostics.typed) + lines_or_note(tuned.search.filterbank_,
+                                                                       corpus):
         print(line)
-    print(f"wrote {', '.join(wrote)} to {out}")
+    print(f"wrote {', '.join(tuned.written)} to {out}")
     return 0
-
-
-def _render_report(fb_json: dict, diagnostics: dict, corpus):
-    """report.html text if ``service.report.render_report`` exists, else None."""
-    try:
-        from burstlens.service.report import render_report
-    except ImportError:
-        return None
-    return render_report(fb_json, diagnostics, corpus.windows, corpus.sampling_rate_hz)

@@ -2,13 +2,18 @@
 from __future__ import annotations
 
 import argparse
+import logging
+import sys
+
+from pydantic import ValidationError
+
+from burstlens.service.commands.options import service_settings_from
+from burstlens.service.worker import run_worker
 
 
-def register(subparsers) -> None:
-    p = subparsers.add_parser(
-        "worker", help="run a job worker against a data dir",
-        description="Claim and run jobs (searches, checks, continuous transforms) from the store "
-                    "under --data-dir until SIGTERM (then: checkpoint, release the job, exit 0).")
+def register(p) -> None:
+    p.description = ("Claim and run jobs (searches, checks, continuous transforms) from the store "
+                     "under --data-dir until SIGTERM (then: checkpoint, release the job, exit 0).")
     p.add_argument("--data-dir", metavar="DIR",
                    help="store and blob folder (default $BURSTLENS_DATA_DIR, else ./burstlens-data)")
     p.add_argument("--dask", metavar="ADDR",
@@ -21,13 +26,6 @@ def register(subparsers) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    import logging
-    import sys
-
-    from pydantic import ValidationError
-
-    from burstlens.service.commands.options import service_settings_from
-
     try:
         settings = service_settings_from(args, "data_dir", "dask")
     except ValidationError as exc:
@@ -35,6 +33,5 @@ def run(args: argparse.Namespace) -> int:
         return 2
     logging.basicConfig(level=args.log_level.upper(),
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
-    from burstlens.service.worker import run_worker
 
     return run_worker(settings, parent_pid=args.parent_pid)

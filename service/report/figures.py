@@ -1,4 +1,5 @@
-"""The report's PNG figures with their alt text and captions, built from the two documents.
+"""The report's PNG figures with their alt text and captions, built from the two documents
+(the filterbank JSON and the diagnostics, read as ``search.diagnostics_doc.Diagnostics``).
 
 ``build_plots(filterbank_json, diagnostics, windows, sampling_rate_hz)`` returns every plot in
 page order as a ``Plot``; one the documents cannot support carries ``png=None`` and a note saying
@@ -13,11 +14,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from burstlens.service.report.wording import utc_text
-
+from burstlens.search.diagnostics_doc import Baseline, Diagnostics, PerWindow
 from burstlens.search.safe_io import finite_or_none
-from burstlens.service import plots, verdict
+from burstlens.service import plots
 from burstlens.service.report.inputs import channel_column, channel_rows, check_windows, criterion_of
+from burstlens.service.report.wording import utc_text
 
 PLOT_NAMES = ("tiling", "examples", "convergence", "channels", "baselines")
 SQRT2 = math.sqrt(2.0)  # window std s = √2·σ_t (service.report.terms)
@@ -77,22 +78,26 @@ def _tiling(channels: list[dict]) -> Plot:
     return Plot("tiling", png, alt, caption)
 
 
-def example_indices(per_window: Mapping, available: int) -> list[tuple[str, int, float]]:
+def example_indices(per_window: PerWindow | Mapping, available: int) -> list[tuple[str, int, float]]:
     """(label, window index, gain in bits) for the sharpest gain, the median and the worst window.
 
     Gain per window = spectrogram score − result score (both lower-is-sharper), from
-    ``diagnostics['per_window']``: scores of the judged (held-out) windows, whose corpus indices
-    are ``per_window['windows']`` (absent in older files: the scores are in corpus order). Only
-    corpus windows below ``available`` are candidates (a caller may hand over the leading part
-    of a large corpus); windows whose scores are not finite are left out; duplicates are dropped.
+    ``Diagnostics.per_window`` (or its JSON object): scores of the judged (held-out) windows,
+    whose corpus indices are ``windows`` (absent in older files: the scores are in corpus
+    order). Only corpus windows below ``available`` are candidates (a caller may hand over the
+    leading part of a large corpus); windows whose scores are not finite are left out;
+    duplicates are dropped.
     """
-    result = np.asarray(per_window.get("result") or [], dtype=float)
-    spectrogram = np.asarray(per_window.get("spectrogram") or [], dtype=float)
+    if not isinstance(per_window, PerWindow):
+        per_window = PerWindow.from_json(per_window)
+    result = np.array([np.nan if v is None else v for v in per_window.result], dtype=float)
+    spectrogram = np.array([np.nan if v is None else v for v in per_window.spectrogram],
+                           dtype=float)
     if result.size != spectrogram.size:
         raise ValueError(f"diagnostics['per_window']: result has {result.size} scores but "
                          f"spectrogram {spectrogram.size}")
-    where = per_window.get("windows")
-    where = np.arange(result.size) if where is None else np.asarray(where, dtype=np.int64)
+    where = per_window.windows
+    where = np.arange(result.size) if where is None else np.array(where, dtype=np.int64)
     if where.size != result.size:
         raise ValueError(f"diagnostics['per_window']: {where.size} window indices for "
                          f"{result.size} scores")
@@ -111,10 +116,10 @@ def example_indices(per_window: Mapping, available: int) -> list[tuple[str, int,
     return chosen[:EXAMPLE_ROWS]
 
 
-def _spectrogram_spread(diagnostics: Mapping) -> float:
-    parameters = ((diagnostics.get("baselines") or {}).get("spectrogram") or {}).get("parameters")
-    recorded = parameters.get("time_spread_s") if isinstance(parameters, Mapping) else None
-    spread = finite_or_none(recorded)
+def _spectrogram_spread(diagnostics: Diagnostics) -> float:
+    baseline = diagnostics.spectrogram or Baseline()
+    recorded = baseline.parameters.get("time_spread_s")  # as written, for the message
+    spread = baseline.time_spread_s
     if spread is None or spread <= 0:
         raise ValueError("diagnostics['baselines']['spectrogram']['parameters']['time_spread_s']: "
                          f"expected a positive number, got {recorded!r}")
@@ -137,7 +142,7 @@ def window_place(meta: Mapping, index: int) -> str:
     return f"{trace} {when}" if trace else when
 
 
-def _examples(filterbank_json: Mapping, diagnostics: Mapping, windows, fs: float | None) -> Plot:
+def _examples(filterbank_json: Mapping, diagnostics: Diagnostics, windows, fs: float | None) -> Plot:
     omitted = "Example bursts are not shown: "
     if windows is None:
         note = omitted + "the report was made without the corpus windows."
@@ -148,7 +153,7 @@ def _examples(filterbank_json: Mapping, diagnostics: Mapping, windows, fs: float
     filterbank = Filterbank.from_json(filterbank_json)
     fs = filterbank.sampling_rate_hz
     try:  # the diagnostics may lack what the examples need (e.g. a cancelled run)
-        picks = example_indices(diagnostics.get("per_window") or {}, windows.shape[0])
+        picks = example_indices(diagnostics.per_window, windows.shape[0])
         spread = _spectrogram_spread(diagnostics)
     except ValueError as exc:
         note = omitted + str(exc)
@@ -159,11 +164,9 @@ def _examples(filterbank_json: Mapping, diagnostics: Mapping, windows, fs: float
                           fs, steady_lines_hz=filterbank.steady_lines_hz)
     spectrograms = transform(chosen, baseline)
     learned = transform(chosen, filterbank)
-    meta = (diagnostics.get("corpus") or {}).get("window_meta")
     labels, triggers = [], []
     for label, index, gain in picks:
-        entry = meta[index] if isinstance(meta, list) and index < len(meta) \
-            and isinstance(meta[index], Mapping) else {}
+        entry = diagnostics.corpus.meta_of(index)
         labels.append(f"{label} ({gain:+.2f} bits): " + window_place(entry, index))
         triggers.append(finite_or_none(entry.get("trigger_offset_s")))
     times = np.arange(windows.shape[1]) / fs
@@ -184,16 +187,17 @@ def _examples(filterbank_json: Mapping, diagnostics: Mapping, windows, fs: float
     return Plot("examples", plots.figure_png(figure), alt, caption)
 
 
-def _convergence(diagnostics: Mapping, label: str) -> Plot:
-    evaluations = diagnostics.get("evaluations") or []
-    best = diagnostics.get("best_so_far") or []
-    stop = str(diagnostics.get("stop_reason", "not recorded"))
+def _convergence(diagnostics: Diagnostics, label: str) -> Plot:
+    evaluations = diagnostics.evaluations
+    stop = diagnostics.stop_reason or "not recorded"
     if not evaluations:
         note = "Convergence is not shown: the diagnostics record no evaluations."
         return Plot("convergence", None, note, note)
-    figure = plots.convergence_figure(evaluations, best, stop, objective_label=label)
-    stages = list(dict.fromkeys(str(e["stage"]) for e in evaluations))
-    finite = [v for v in (finite_or_none(e.get("objective")) for e in evaluations) if v is not None]
+    figure = plots.convergence_figure([e.to_json() for e in evaluations],
+                                      [b.to_json() for b in diagnostics.best_so_far], stop,
+                                      objective_label=label)
+    stages = list(dict.fromkeys(e.stage for e in evaluations))
+    finite = [e.objective for e in evaluations if e.objective is not None]
     best_text = f"; best objective {min(finite):.4g}" if finite else ""
     alt = (f"Convergence: objective of each of {len(evaluations)} evaluations in order, stages "
            f"{', '.join(stages)}, with the best so far per stage as a step line{best_text}; the "
@@ -204,39 +208,33 @@ def _convergence(diagnostics: Mapping, label: str) -> Plot:
     return Plot("convergence", plots.figure_png(figure), alt, caption)
 
 
-def _or_nan(value) -> float:
-    number = finite_or_none(value)
-    return math.nan if number is None else number
-
-
-def _bootstrap_bands(diagnostics: Mapping, count: int) -> dict[str, np.ndarray]:
-    """(C, 2) [low, high] per field from ``diagnostics['bootstrap']['channels']``; channels without
+def _bootstrap_bands(diagnostics: Diagnostics, count: int) -> dict[str, np.ndarray]:
+    """(C, 2) [low, high] per field from ``Diagnostics.bootstrap.channels``; channels without
     an interval (None, e.g. skipped for low energy) are NaN rows, drawn as gaps."""
-    per_channel = (diagnostics.get("bootstrap") or {}).get("channels")
-    if not isinstance(per_channel, list) or len(per_channel) != count:
+    per_channel = None if diagnostics.bootstrap is None else diagnostics.bootstrap.channels
+    if per_channel is None or len(per_channel) != count:
         return {}
     bands = {}
     for field in ("time_spread_s", "cell_area", "chirp_hz_per_s"):
         rows = []
         for entry in per_channel:
-            pair = entry.get(field) if isinstance(entry, Mapping) else None
-            if isinstance(pair, (list, tuple)) and len(pair) == 2:
-                rows.append([_or_nan(pair[0]), _or_nan(pair[1])])
-            else:
-                rows.append([math.nan, math.nan])
+            pair = None if entry is None else getattr(entry, field)
+            rows.append([math.nan, math.nan] if pair is None
+                        else [math.nan if v is None else v for v in pair])
         band = np.array(rows, dtype=float)
         if np.isfinite(band).all(axis=1).any():
             bands[field] = band
     return bands
 
 
-def _channels(channels: list[dict], diagnostics: Mapping) -> Plot:
+def _channels(channels: list[dict], diagnostics: Diagnostics) -> Plot:
     bands = _bootstrap_bands(diagnostics, len(channels))
     fc = channel_column(channels, "center_hz")
     figure = plots.channel_parameters_figure(fc, channel_column(channels, "time_spread_s"),
                                              channel_column(channels, "cell_area"),
                                              channel_column(channels, "chirp_hz_per_s"), bands)
-    resamples = (diagnostics.get("bootstrap") or {}).get("resamples")
+    boot = diagnostics.bootstrap
+    resamples = None if boot is None else boot.resamples
     band_text = (f"shaded stability intervals (refits on {resamples} resamples of the fit "
                  f"windows) for {', '.join(sorted(bands))}" if bands
                  else "no stability intervals recorded")
@@ -246,8 +244,8 @@ def _channels(channels: list[dict], diagnostics: Mapping) -> Plot:
            f" {band_text}.")
     caption = ("Fitted value per channel (line) and its stability interval from refits on "
                "resampled windows (band and bars).")
-    skipped = [i for i, e in enumerate((diagnostics.get("bootstrap") or {}).get("channels") or [])
-               if isinstance(e, Mapping) and str(e.get("method", "")).startswith("skipped")]
+    skipped = [i for i, e in enumerate((boot.channels if boot else None) or ())
+               if e is not None and (e.method or "").startswith("skipped")]
     if skipped:
         caption += (f" {len(skipped)} of {len(channels)} channels carry too little of the image "
                     "energy for an interval and show none.")
@@ -258,9 +256,9 @@ def _channels(channels: list[dict], diagnostics: Mapping) -> Plot:
 BASELINE_PARAMETER = {"spectrogram": "time_spread_s", "scalogram": "cycles"}
 
 
-def _parameter_text(name: str, parameters) -> str:
+def _parameter_text(name: str, baseline: Baseline) -> str:
     key = BASELINE_PARAMETER.get(name)
-    value = finite_or_none(parameters.get(key)) if isinstance(parameters, Mapping) and key else None
+    value = {"time_spread_s": baseline.time_spread_s, "cycles": baseline.cycles}.get(key)
     if value is None:
         return ""
     if key == "time_spread_s":
@@ -268,56 +266,50 @@ def _parameter_text(name: str, parameters) -> str:
     return f"{value:.3g} cycles"
 
 
-def negative_ceiling(diagnostics: Mapping) -> float | None:
+def negative_ceiling(diagnostics: Diagnostics) -> float | None:
     """The negative share a representation may have (``max_negative_share``, the positivity
     ceiling of docs/design.md §4.3): the judgement's record, else the run's settings."""
-    judged = verdict.judgement(diagnostics) or {}
-    share = judged.get("negative_share") if isinstance(judged.get("negative_share"), Mapping) else {}
-    recorded = finite_or_none(share.get("max_allowed"))
-    if recorded is not None:
-        return recorded
-    return finite_or_none((diagnostics.get("settings") or {}).get("max_negative_share"))
+    judged = diagnostics.judgement
+    recorded = None if judged is None else judged.negative_share.max_allowed
+    return diagnostics.settings.max_negative_share if recorded is None else recorded
 
 
-def exclusion(baseline: Mapping, ceiling: float | None) -> str | None:
+def exclusion(baseline: Baseline, ceiling: float | None) -> str | None:
     """Why a baseline was not eligible as a result, or None: its negative share of the image's
     absolute mass above the positivity ceiling (docs/design.md §4.3)."""
-    share = finite_or_none(baseline.get("negative_share"))
+    share = baseline.negative_share
     if share is None or ceiling is None or share <= ceiling:
         return None
     return f"{100 * share:.0f} % of its mass is negative (at most {100 * ceiling:g} % allowed)"
 
 
-def baseline_entries(diagnostics: Mapping) -> list[dict]:
+def baseline_entries(diagnostics: Diagnostics | Mapping) -> list[dict]:
     """Baselines and the result as plot entries (label, objective, low, high, is_result, and
     ``excluded``: the reason a baseline was not eligible, or None)."""
+    diagnostics = Diagnostics.of(diagnostics)
     entries = []
     ceiling = negative_ceiling(diagnostics)
-    for key, value in (diagnostics.get("baselines") or {}).items():
-        objective = finite_or_none(value.get("objective")) if isinstance(value, Mapping) else None
-        if objective is None:
+    for key, baseline in diagnostics.baselines.items():
+        if baseline.objective is None:
             continue
         label = BASELINE_NAMES.get(key, key.replace("_", " "))
-        detail = _parameter_text(key, value.get("parameters"))
+        detail = _parameter_text(key, baseline)
         entries.append({"label": f"{label} ({detail})" if detail else label,
-                        "objective": objective, "low": finite_or_none(value.get("low")),
-                        "high": finite_or_none(value.get("high")),
-                        "excluded": exclusion(value, ceiling)})
-    result = diagnostics.get("result") or {}
-    objective = finite_or_none(result.get("objective"))
-    if objective is not None:
-        entries.append({"label": "learned filterbank", "objective": objective,
-                        "low": finite_or_none(result.get("low")), "high": finite_or_none(result.get("high")),
-                        "is_result": True})
+                        "objective": baseline.objective, "low": baseline.low,
+                        "high": baseline.high, "excluded": exclusion(baseline, ceiling)})
+    result = diagnostics.result
+    if result is not None and result.objective is not None:
+        entries.append({"label": "learned filterbank", "objective": result.objective,
+                        "low": result.low, "high": result.high, "is_result": True})
     return entries
 
 
-def _baselines(diagnostics: Mapping, label: str) -> Plot:
+def _baselines(diagnostics: Diagnostics, label: str) -> Plot:
     entries = baseline_entries(diagnostics)
     if not entries:
         note = "Baselines are not shown: the diagnostics record no finite baseline objective."
         return Plot("baselines", None, note, note)
-    gain = finite_or_none(diagnostics.get("gain_bits"))
+    gain = diagnostics.gain_bits
     figure = plots.baselines_figure(entries, objective_label=label, gain_bits=gain)
 
     def interval(e):
@@ -330,8 +322,8 @@ def _baselines(diagnostics: Mapping, label: str) -> Plot:
            + "; ".join(f"{e['label']} {e['objective']:.4g}{interval(e)}{excluded(e)}"
                        for e in entries)
            + (f". Gain over the best spectrogram {gain:+.3f} bits." if gain is not None else "."))
-    judged = verdict.judgement(diagnostics)
-    held_out = judged is not None and judged.get("in_sample") is not True
+    judged = diagnostics.judgement
+    held_out = judged is not None and judged.in_sample is not True
     where = "the held-out windows the fit never saw" if held_out else "the same windows"
     caption = f"Points: objective over {where}; bars: intervals where recorded."
     out = [e for e in entries if e.get("excluded")]
@@ -339,18 +331,19 @@ def _baselines(diagnostics: Mapping, label: str) -> Plot:
         caption += (" Open grey points are excluded: they score sharp only through Wigner–Ville "
                     "interference, which a representation may not use beyond the positivity "
                     "ceiling (" + "; ".join(f"{e['label']}: {e['excluded']}" for e in out) + ").")
-    missing = [BASELINE_NAMES.get(k, k) for k, v in (diagnostics.get("baselines") or {}).items()
-               if not (isinstance(v, Mapping) and finite_or_none(v.get("objective")) is not None)]
+    missing = [BASELINE_NAMES.get(k, k) for k, v in diagnostics.baselines.items()
+               if v.objective is None]
     if missing:
         caption += f" Not shown, no finite score (an invalid image): {', '.join(missing)}."
     return Plot("baselines", plots.figure_png(figure), alt, caption)
 
 
-def build_plots(filterbank_json: Mapping, diagnostics: Mapping, windows=None,
+def build_plots(filterbank_json: Mapping, diagnostics: Diagnostics | Mapping, windows=None,
                 sampling_rate_hz: float | None = None) -> list[Plot]:
-    """All report plots in page order (omitted ones carry ``png=None`` and an explanatory note)."""
-    if not isinstance(diagnostics, Mapping):
-        raise ValueError(f"diagnostics: expected a dict, got {type(diagnostics).__name__}")
+    """All report plots in page order (omitted ones carry ``png=None`` and an explanatory note).
+    ``diagnostics``: typed, or the JSON object (read by ``Diagnostics.from_json``)."""
+    if not isinstance(diagnostics, Diagnostics):
+        diagnostics = Diagnostics.from_json(diagnostics)  # ValueError: not a JSON object
     channels = channel_rows(filterbank_json)
     check_windows(filterbank_json, windows, sampling_rate_hz)
     label = objective_label(criterion_of(filterbank_json, diagnostics))
@@ -364,7 +357,7 @@ def build_plots(filterbank_json: Mapping, diagnostics: Mapping, windows=None,
     return [build() for build in builders]
 
 
-def report_plots(filterbank_json: Mapping, diagnostics: Mapping, windows=None,
+def report_plots(filterbank_json: Mapping, diagnostics: Diagnostics | Mapping, windows=None,
                  sampling_rate_hz: float | None = None) -> dict[str, bytes]:
     """The report's plots as ``{name: PNG bytes}`` (names from ``PLOT_NAMES``; omitted ones absent)."""
     return {p.name: p.png for p in build_plots(filterbank_json, diagnostics, windows,

@@ -1,7 +1,8 @@
 """Reading the report's inputs: the filterbank's channels, its criterion, counts and windows.
 
 Checks what the report draws on and raises ``ValueError`` naming the bad value; what else a
-document may lack becomes a note on the page (figures, sections), never an error.
+document may lack becomes a note on the page (figures, sections), never an error. The
+diagnostics arrive typed (``search.diagnostics_doc.Diagnostics``), their gaps already filled.
 """
 from __future__ import annotations
 
@@ -10,6 +11,7 @@ from collections.abc import Mapping
 
 import numpy as np
 
+from burstlens.search.diagnostics_doc import Diagnostics, WindowCounts
 from burstlens.search.documents import FilterbankDocument
 
 CHANNEL_FIELDS = ("center_hz", "time_spread_s", "cell_area", "chirp_hz_per_s")
@@ -34,12 +36,12 @@ def channel_column(channels: list[dict], field: str) -> np.ndarray:
     return np.array([float(c[field]) for c in channels])
 
 
-def criterion_of(filterbank_json: Mapping, diagnostics: Mapping) -> dict:
+def criterion_of(filterbank_json: Mapping, diagnostics: Diagnostics) -> dict:
     """The criterion as a dict with at least ``name``: the filterbank's, else the run settings',
     else Rényi."""
     criterion = filterbank_json.get("criterion")
     if criterion is None:
-        criterion = (diagnostics.get("settings") or {}).get("criterion")
+        criterion = diagnostics.settings.criterion
     if isinstance(criterion, str):
         return {"name": criterion}
     return dict(criterion) if isinstance(criterion, Mapping) else {"name": "renyi"}
@@ -47,7 +49,8 @@ def criterion_of(filterbank_json: Mapping, diagnostics: Mapping) -> dict:
 
 def count_of(value) -> int | None:
     """A recorded count: an int as is, a list or tuple by its length; None for anything else
-    (booleans included)."""
+    (booleans included). For the filterbank's and checks' records (``wording.onset_text``);
+    the diagnostics' counts are typed by ``Diagnostics``."""
     if isinstance(value, bool):
         return None
     if isinstance(value, int):
@@ -71,7 +74,8 @@ def check_windows(filterbank_json: Mapping, windows, sampling_rate_hz) -> None:
                          f"the filterbank at {fs:g} Hz")
 
 
-def window_counts(windows_info: Mapping) -> dict:
-    """``used`` / ``rejected`` (and any other scalar) as counts; lists count their items."""
-    return {k: len(v) if isinstance(v, list) else v for k, v in windows_info.items()
+def window_counts(windows: WindowCounts) -> dict:
+    """``used`` / ``rejected`` (and any other scalar the file records) as counts, in the
+    file's order; lists count their items."""
+    return {k: len(v) if isinstance(v, list) else v for k, v in windows.to_json().items()
             if k != "rejected_by_reason" and not isinstance(v, Mapping)}

@@ -7,7 +7,8 @@ script and no external asset (a Content-Security-Policy meta tag forbids loading
 works offline, opened from disk. All text that comes from data is escaped with ``html.escape``.
 
 Inputs: ``filterbank_json`` is the filterbank JSON of docs/design.md §8 (``Filterbank.to_json()``),
-``diagnostics`` the ``FilterbankSearch.diagnostics_`` dict (DEVELOPERS.md lists its keys),
+``diagnostics`` the ``FilterbankSearch.diagnostics_`` dict (DEVELOPERS.md lists its keys; read
+once by ``search.diagnostics_doc.Diagnostics.from_json``, or given already typed),
 ``windows`` the corpus windows ``(M, N)`` float in window order (or None: the example-burst plot
 is then omitted with a note), ``sampling_rate_hz`` their rate in Hz (None: the filterbank's).
 
@@ -18,7 +19,8 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 
-from burstlens.search.documents import DiagnosticsDocument, FilterbankDocument
+from burstlens.search.diagnostics_doc import Diagnostics
+from burstlens.search.documents import FilterbankDocument
 from burstlens.service import palette
 from burstlens.service.report.figures import build_plots
 from burstlens.service.report.inputs import channel_rows, window_counts
@@ -102,7 +104,7 @@ footer { color: var(--muted); font-size: .82rem; padding: 0 32px 24px; }
 """
 
 
-def render_report(filterbank_json: Mapping, diagnostics: Mapping, windows=None,
+def render_report(filterbank_json: Mapping, diagnostics: Diagnostics | Mapping, windows=None,
                   sampling_rate_hz: float | None = None, *, checks: list[dict] | None = None) -> str:
     """The complete, self-contained HTML report of one tuned filterbank (see module docstring).
 
@@ -111,31 +113,30 @@ def render_report(filterbank_json: Mapping, diagnostics: Mapping, windows=None,
     (UTC epoch seconds) and ``files`` (file names); shown newest first in their own section,
     which is absent when there are none."""
     channels = channel_rows(filterbank_json)
-    figures = {p.name: p for p in build_plots(filterbank_json, diagnostics, windows,
-                                              sampling_rate_hz)}
-    corpus = diagnostics.get("corpus") or {}
-    windows_info = diagnostics.get("windows") or {}
-    recorded_run = DiagnosticsDocument(diagnostics)
+    d = diagnostics if isinstance(diagnostics, Diagnostics) else Diagnostics.from_json(diagnostics)
+    figures = {p.name: p for p in build_plots(filterbank_json, d, windows, sampling_rate_hz)}
+    corpus = d.corpus
+    resolved, reader_defaults = d.settings.to_json(), corpus.defaults
     # the job's own settings, as the service records them beside the resolved ones (None for
     # a filterbank from `burstlens tune`: settings then carry no given/default tag)
     given = FilterbankDocument(filterbank_json).job_settings
-    run = {k: diagnostics.get(k) for k in ("stop_reason", "origin", "seed", "elapsed_s", "version")
-           if diagnostics.get(k) is not None}
-    fallback = diagnostics.get("fallback")
-    if isinstance(fallback, Mapping) and fallback.get("reason"):
-        run["fallback"] = f"{fallback.get('to', '')}: {fallback['reason']}"
+    run = {k: v for k, v in (("stop_reason", d.stop_reason), ("origin", d.origin),
+                             ("seed", d.seed), ("elapsed_s", d.elapsed_s),
+                             ("version", d.version)) if v is not None}
+    if d.fallback is not None and d.fallback.reason:
+        run["fallback"] = f"{d.fallback.to or ''}: {d.fallback.reason}"
     recorded = people_items({k: v for k, v in filterbank_json.items()
                              if k not in ("channels", "settings", "job")})
-    tuned = what_was_tuned(filterbank_json, diagnostics, channels)
+    tuned = what_was_tuned(filterbank_json, d, channels)
     drift = checks_section(checks)
     fs = FilterbankDocument(filterbank_json).sampling_rate_hz
     samples = filterbank_json.get("window_samples")
     body = f"""
 <header><h1>burstlens report: tuned time–frequency filterbank</h1>
 <p class="tuned" id="tuned">{esc(tuned)}</p>
-{settings_note(given, recorded_run.settings, recorded_run.reader_defaults)}
+{settings_note(given, resolved, reader_defaults)}
 <p class="aid">An analysis aid, not a safety or warning system: see the cautions below.</p></header>
-{verdict_lead(diagnostics)}
+{verdict_lead(d)}
 <nav><a href="#examples">Example bursts</a><a href="#channels">Channels</a>\
 <a href="#tiling">Tiling and convergence</a><a href="#judgement">Judgement in numbers</a>\
 {'<a href="#checks">Drift checks</a>' if drift else ""}\
@@ -148,16 +149,16 @@ def render_report(filterbank_json: Mapping, diagnostics: Mapping, windows=None,
 (super-resolution) or coarser (smoothing) than a spectrogram its time–frequency cell is, the
 sweep rate it is matched to, and how stable its window and cell area were when refitted on
 resampled windows.</p>
-{window_definition(filterbank_json, diagnostics)}
-{channel_table(channels, diagnostics, fs, samples if isinstance(samples, int) else None)}
+{window_definition(filterbank_json, d)}
+{channel_table(channels, d, fs, samples if isinstance(samples, int) else None)}
 {figure_html(figures["channels"])}</section>
 <section id="tiling"><h2>Tiling and convergence</h2>
 {figure_html(figures["tiling"])}{figure_html(figures["convergence"])}</section>
 <section id="judgement"><h2>Judgement in numbers</h2>
-{scorecard_table(diagnostics)}
-{headline(filterbank_json, diagnostics, channels)}
+{scorecard_table(d)}
+{headline(filterbank_json, d, channels)}
 <div class="columns">
-<div><h3>On held-out windows</h3>{judgement_table(diagnostics)}</div>
+<div><h3>On held-out windows</h3>{judgement_table(d)}</div>
 <div>{figure_html(figures["baselines"])}</div>
 </div></section>
 {drift}
@@ -166,16 +167,16 @@ resampled windows.</p>
 <div class="columns">
 <div><h3>Site corpus</h3>{corpus_summary(corpus)}
 <h3>Run</h3>{kv_table(run)}</div>
-<div><h3>Windows</h3>{kv_table(window_counts(windows_info))}
-<h4>Rejected windows by reason</h4>{rejections(windows_info, corpus)}</div>
+<div><h3>Windows</h3>{kv_table(window_counts(d.windows))}
+<h4>Rejected windows by reason</h4>{rejections(d.windows, corpus)}</div>
 </div>
-{settings_section(recorded_run.settings, given, recorded_run.reader_defaults)}
+{settings_section(resolved, given, reader_defaults)}
 {trace_table(corpus)}
 <h3>Recorded in the filterbank file</h3>
 {setting_cells((*i, None) for i in recorded)}
 </details>
 </main>
-<footer>Generated by burstlens {esc(diagnostics.get("version", ""))}. \
+<footer>Generated by burstlens {esc(d.version or "")}. \
 This page is self-contained: it loads nothing from the network.</footer>"""
     return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
             "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"

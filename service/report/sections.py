@@ -2,22 +2,26 @@
 tables, rejections, corpus and trace tables, settings, figures and the one-line summary.
 
 Each function returns a piece of markup from the two documents (``filterbank_json``, the
-filterbank JSON of docs/design.md §8; ``diagnostics``, the search's diagnostics dict); every text that
-comes from data goes through ``esc``. The words themselves are ``service.report.wording``'s.
+filterbank JSON of docs/design.md §8; ``diagnostics``, the search's diagnostics as
+``search.diagnostics_doc.Diagnostics``); every text that comes from data goes through ``esc``.
+The words themselves are ``service.report.wording``'s.
 """
 from __future__ import annotations
 
 import base64
+import datetime
 import html
 import math
 import re
 from collections.abc import Mapping
 
-from burstlens.search.documents import DiagnosticsDocument, FilterbankDocument
+from burstlens.search.diagnostics_doc import CorpusRecord, Diagnostics, Interval, WindowCounts
+from burstlens.search.documents import FilterbankDocument
 from burstlens.search.safe_io import finite_or_none
+from burstlens.search.settings import CRITERION_DEFAULTS, SEARCH_KEYS, SETTINGS_DEFAULTS
 from burstlens.service import verdict
 from burstlens.service.report.figures import Plot
-from burstlens.service.report.inputs import channel_column, count_of
+from burstlens.service.report.inputs import channel_column
 from burstlens.service.report.terms import FWHM_PER_STD, stft_line, window_terms
 from burstlens.service.report.wording import (JOB_SETTINGS, SETTING_ALIASES, equivalent_text, fmt,
                                               key_stem, label_of, onset_text, people_items,
@@ -68,7 +72,7 @@ CHANNEL_COLUMNS = (
 )
 
 
-def window_definition(filterbank_json: Mapping, diagnostics: Mapping) -> str:
+def window_definition(filterbank_json: Mapping, diagnostics: Diagnostics) -> str:
     """The page's one definition of a window's spread, and the best plain spectrogram as a
     copyable ``scipy.signal.ShortTimeFFT`` line (when its time spread is recorded)."""
     text = ("<p class=\"muted\" id=\"window-definition\">Window spread, as used on this whole "
@@ -82,10 +86,8 @@ def window_definition(filterbank_json: Mapping, diagnostics: Mapping) -> str:
             "burstlens uses for that spectrogram.</p>")
     fs = FilterbankDocument(filterbank_json).sampling_rate_hz
     samples = filterbank_json.get("window_samples")
-    spectrogram = (diagnostics.get("baselines") or {}).get("spectrogram")
-    parameters = spectrogram.get("parameters") if isinstance(spectrogram, Mapping) else None
-    sigma = finite_or_none(parameters.get("time_spread_s")) if isinstance(parameters, Mapping) \
-        else None
+    spectrogram = diagnostics.spectrogram
+    sigma = None if spectrogram is None else spectrogram.time_spread_s
     if not (fs and isinstance(samples, int) and sigma is not None and sigma > 0):
         return text
     best = window_terms(sigma, fs, samples)
@@ -96,14 +98,15 @@ def window_definition(filterbank_json: Mapping, diagnostics: Mapping) -> str:
                    f'<pre id="stft-line"><code>{esc(stft_line(sigma, fs, samples))}</code></pre>')
 
 
-def channel_table(channels: list[dict], diagnostics: Mapping, sampling_rate_hz: float | None = None,
+def channel_table(channels: list[dict], diagnostics: Diagnostics,
+                  sampling_rate_hz: float | None = None,
                   window_samples: int | None = None) -> str:
     """One row per channel (``CHANNEL_COLUMNS``, its stability interval, its reading); each
     drawn field carries ``data-field`` and the exact JSON float as ``data-value``. The sample
     columns need the rate (Hz) and the burst windows' length (samples); without them they
     read "not recorded"."""
-    boot = (diagnostics.get("bootstrap") or {}).get("channels")
-    boot = boot if isinstance(boot, list) and len(boot) == len(channels) else [None] * len(channels)
+    boot = None if diagnostics.bootstrap is None else diagnostics.bootstrap.channels
+    boot = boot if boot is not None and len(boot) == len(channels) else (None,) * len(channels)
     head = '<th scope="col">#</th>' + "".join(
         '<th scope="col"' + (f' data-field="{field}"' if field else "") + f">{esc(title)}</th>"
         for title, _, field, _ in CHANNEL_COLUMNS) + \
@@ -119,7 +122,7 @@ def channel_table(channels: list[dict], diagnostics: Mapping, sampling_rate_hz: 
             exact = f' data-field="{field}" data-value="{float(channel[field])!r}"' if field else ""
             shown = "not recorded" if terms is None and unit == "samples" else text(channel, terms)
             cells.append(f'<td class="num"{exact}>{esc(shown)}</td>')
-        cells.append(f"<td>{esc(stability_text(entry))}</td>")
+        cells.append(f"<td>{esc(stability_text(None if entry is None else entry.to_json()))}</td>")
         cells.append(f'<td data-field="equivalent">{esc(equivalent_text(channel.get("equivalent")))}</td>')
         body.append(f'<tr data-channel="{index}">{"".join(cells)}</tr>')
     unit_row = "".join(f"<td>{esc(u)}</td>" for u in units)
@@ -143,17 +146,17 @@ def cell_text(key: str, value) -> str:
     return plain_words(fmt(value)) if isinstance(value, str) else fmt(value)
 
 
-def rejections(windows_info: Mapping, corpus: Mapping) -> str:
+def rejections(windows: WindowCounts, corpus: CorpusRecord) -> str:
     """Counts by reason, then each rejection (file, trace, offset, reason, detail) folded away."""
-    reasons = windows_info.get("rejected_by_reason")
-    if not (isinstance(reasons, Mapping) and reasons):
+    reasons = windows.rejected_by_reason
+    if not reasons:
         return '<p class="muted">no window was rejected</p>'
     rows = "".join(f"<tr><td>{esc(k)}</td><td class=\"num\">{esc(fmt(v))}</td></tr>"
                    for k, v in sorted(reasons.items(), key=lambda kv: str(kv[0])))
     out = ('<table class="grid small"><thead><tr><th scope="col">reason</th>'
            f'<th scope="col">windows</th></tr></thead><tbody>{rows}</tbody></table>')
-    each = corpus.get("rejections") if isinstance(corpus, Mapping) else None
-    if isinstance(each, list) and each:
+    each = corpus.rejections
+    if each:
         keys = ("file", "trace_id", "offset_s", "reason", "detail")
         head = "".join(f'<th scope="col">{esc(column_label(k))}</th>' for k in keys)
         body = "".join("<tr>" + "".join(f"<td>{esc(cell_text(k, r.get(k, '')))}</td>" for k in keys)
@@ -167,20 +170,17 @@ def rejections(windows_info: Mapping, corpus: Mapping) -> str:
     return out
 
 
-def headline(filterbank_json: Mapping, diagnostics: Mapping, channels: list[dict]) -> str:
+def headline(filterbank_json: Mapping, diagnostics: Diagnostics, channels: list[dict]) -> str:
     """The judgement's cards: gain, objective, negative share, onset timing, stop reason, windows,
     channels and sampling rate."""
-    gain = finite_or_none(diagnostics.get("gain_bits"))
-    result = diagnostics.get("result") or {}
-    objective = finite_or_none(result.get("objective"))
-    low, high = finite_or_none(result.get("low")), finite_or_none(result.get("high"))
-    windows_info = diagnostics.get("windows") or {}
-    used, rejected = count_of(windows_info.get("used")), count_of(windows_info.get("rejected"))
-    judged = verdict.judgement(diagnostics)
-    held_out = judged is not None and judged.get("in_sample") is not True
-    negative = (judged or {}).get("negative_share")
-    negative = negative if isinstance(negative, Mapping) else {}
-    ceiling = finite_or_none(negative.get("max_allowed"))
+    gain = diagnostics.gain_bits
+    result = diagnostics.result or Interval()
+    objective, low, high = result.objective, result.low, result.high
+    used, rejected = diagnostics.windows.used, diagnostics.windows.rejected
+    judged = diagnostics.judgement
+    held_out = judged is not None and judged.in_sample is not True
+    negative = None if judged is None else judged.negative_share
+    ceiling = None if negative is None else negative.max_allowed
     fs = FilterbankDocument(filterbank_json).sampling_rate_hz
     cards = [
         ("gain over the best spectrogram" + (", held-out" if held_out else ""),
@@ -188,11 +188,12 @@ def headline(filterbank_json: Mapping, diagnostics: Mapping, channels: list[dict
         (("held-out objective" if held_out else "objective") + " of the result",
          (f"{objective:.4g}" if objective is not None else "not recorded")
          + (f" [{low:.4g}, {high:.4g}]" if low is not None and high is not None else "")),
-        ("negative share of the image", percent_text(negative.get("overall"))
+        ("negative share of the image", percent_text(None if negative is None else negative.overall)
          + (f" (ceiling {100 * ceiling:.2g} %)" if ceiling is not None else "")),
-        ("onset timing, median / p90", onset_text((judged or {}).get("onset"))
+        ("onset timing, median / p90",
+         onset_text(None if judged.onset is None else judged.onset.to_json())
          if judged is not None else "not recorded"),
-        ("stop reason", str(diagnostics.get("stop_reason", "not recorded"))),
+        ("stop reason", diagnostics.stop_reason or "not recorded"),
         ("windows used / rejected", f"{'?' if used is None else used} / "
                                      f"{'?' if rejected is None else rejected}"),
         ("channels", str(len(channels))),
@@ -203,29 +204,26 @@ def headline(filterbank_json: Mapping, diagnostics: Mapping, channels: list[dict
         for k, v in cards) + "</div>"
 
 
-def verdict_lead(diagnostics: Mapping) -> str:
+def verdict_lead(diagnostics: Diagnostics) -> str:
     """The lead under the title: the scorecard (detection margin and onset fidelity against the
     best plain spectrogram, and the user's own spectrogram), the held-out sharpness gain
     sentence, how it was measured, and a warnings box only when some warning applies."""
-    judged = verdict.judgement(diagnostics)
+    judged = diagnostics.judgement
     kind = "lead note" if judged is None else "lead"
     rows = verdict.scorecard_rows(diagnostics, result_sharpness=False)
     lead = ('<ul class="lead" id="scorecard">' + "".join(f"<li>{esc(r)}</li>" for r in rows)
             + "</ul>") if rows else ""
     lead += f'<p class="{kind}" id="gain">{esc(verdict.gain_words(diagnostics))}</p>'
     if judged is not None:
-        gain = judged.get("gain_bits")
-        gain = gain if isinstance(gain, Mapping) else {}
-        level, resamples = finite_or_none(gain.get("level")), count_of(gain.get("resamples"))
-        judged_on = "fitted" if judged.get("in_sample") is True else "held-out"
+        level, resamples = judged.gain_bits.level, judged.gain_bits.resamples
+        judged_on = "fitted" if judged.in_sample is True else "held-out"
         interval = f"{100 * level:.0f} % interval" if level is not None else "interval"
         if resamples:
             interval += f" from {resamples} resamples of the {judged_on} windows"
         how = [interval,
-               f"{judged['fit_windows']} windows fitted" if count_of(judged.get("fit_windows"))
-               is not None else None,
-               f"{judged['guard_windows']} left out of the fit because they overlap held-out ones"
-               if count_of(judged.get("guard_windows")) else None]
+               f"{judged.fit_windows} windows fitted" if judged.fit_windows is not None else None,
+               f"{judged.guard_windows} left out of the fit because they overlap held-out ones"
+               if judged.guard_windows else None]
         lead += f'<p class="muted">{esc("; ".join(h for h in how if h))}.</p>'
     found = verdict.warnings(diagnostics)
     if found:
@@ -253,28 +251,26 @@ SCORECARD_METHOD = {
 }
 
 
-def scorecard_table(diagnostics: Mapping) -> str:
+def scorecard_table(diagnostics: Diagnostics) -> str:
     """The scorecard per representation: the burst gain an energy detector needs (dB, lower
     finds weaker bursts), onset error against the waveform's envelope (median / 90th
     percentile, ms) and burst sharpness (bits, lower is sharper); then how each was measured."""
-    card = verdict.scorecard(diagnostics)
+    card = None if diagnostics.judgement is None else diagnostics.judgement.scorecard
     if card is None:
         return ""
-    reps = card.get("representations") if isinstance(card.get("representations"), Mapping) else {}
 
-    def number(value, spec: str) -> str:
-        value = finite_or_none(value)
+    def number(value: float | None, spec: str) -> str:
         return "—" if value is None else format(value, spec)
 
     rows = "".join(
         f'<tr><th scope="row">{esc(SCORECARD_NAMES.get(name, name))}</th>'
-        f'<td>{esc(number(r.get("detection_threshold_db"), "+.1f"))}</td>'
-        f'<td>{esc(number(r.get("onset_median_ms"), ".1f"))} / '
-        f'{esc(number(r.get("onset_p90_ms"), ".1f"))}</td>'
-        f'<td>{esc(number(r.get("sharpness_bits"), ".3f"))}</td></tr>'
-        for name, r in reps.items() if isinstance(r, Mapping))
-    method = card.get("method") if isinstance(card.get("method"), Mapping) else {}
-    notes = "".join(f"<li>{esc(SCORECARD_METHOD[k])}</li>" for k in SCORECARD_METHOD if k in method)
+        f'<td>{esc(number(r.detection_threshold_db, "+.1f"))}</td>'
+        f'<td>{esc(number(r.onset_median_ms, ".1f"))} / '
+        f'{esc(number(r.onset_p90_ms, ".1f"))}</td>'
+        f'<td>{esc(number(r.sharpness_bits, ".3f"))}</td></tr>'
+        for name, r in card.representations.items())
+    notes = "".join(f"<li>{esc(SCORECARD_METHOD[k])}</li>" for k in SCORECARD_METHOD
+                    if k in card.method)
     return ('<table class="scorecard" id="scorecard-table"><thead><tr><th scope="col"></th>'
             '<th scope="col">detected at gain, dB</th><th scope="col">onset error, median / '
             'p90 ms</th><th scope="col">burst sharpness, bits</th></tr></thead>'
@@ -282,69 +278,66 @@ def scorecard_table(diagnostics: Mapping) -> str:
             + (f'<ul class="muted">{notes}</ul>' if notes else ""))
 
 
-def judgement_table(diagnostics: Mapping) -> str:
+def judgement_table(diagnostics: Diagnostics) -> str:
     """The held-out judgement in numbers, or a note when the diagnostics carry none."""
-    judged = verdict.judgement(diagnostics)
+    judged = diagnostics.judgement
     if judged is None:
         return ('<p class="muted">no judgement on held-out windows recorded (an older run or a '
                 "cancelled one): objectives and gain here were measured on the windows the fit "
                 "used</p>")
 
-    def objective(entry) -> str:
-        entry = entry if isinstance(entry, Mapping) else {}
-        value, low, high = (finite_or_none(entry.get(k)) for k in ("objective", "low", "high"))
+    def objective(entry: Interval) -> str:
+        value, low, high = entry.objective, entry.low, entry.high
         if value is None:
             return "not recorded"
         return f"{value:.4g}" + (f" [{low:.4g}, {high:.4g}]" if low is not None and high is not None
                                  else "")
 
-    negative = judged.get("negative_share")
-    negative = negative if isinstance(negative, Mapping) else {}
-    per_channel = [finite_or_none(v) for v in negative.get("per_channel") or []]
-    worst = max((v for v in per_channel if v is not None), default=None)
+    negative = judged.negative_share
+    worst = max((v for v in negative.per_channel if v is not None), default=None)
     rows = {
-        "judged in-sample": judged.get("in_sample"),
-        "held-out share": judged.get("held_out_share"),
+        "judged in-sample": judged.in_sample,
+        "held-out share": judged.held_out_share,
         "windows held out / fitted / guard": " / ".join(
-            "?" if count_of(judged.get(k)) is None else str(judged[k])
-            for k in ("held_out_windows", "fit_windows", "guard_windows")),
-        "result objective, judged windows": objective(judged.get("result")),
-        "best spectrogram objective, judged windows": objective(judged.get("spectrogram")),
+            "?" if n is None else str(n)
+            for n in (judged.held_out_windows, judged.fit_windows, judged.guard_windows)),
+        "result objective, judged windows": objective(judged.result),
+        "best spectrogram objective, judged windows": objective(judged.spectrogram),
         "negative share, largest channel": percent_text(worst),
-        "negative share allowed": percent_text(negative.get("max_allowed")),
-        "settings on a search bound": ", ".join(map(str, judged.get("bounds_hit") or [])) or "none",
+        "negative share allowed": percent_text(negative.max_allowed),
+        "settings on a search bound": ", ".join(judged.bounds_hit) or "none",
     }
-    if judged.get("grouping"):  # how windows were kept apart, as the search words it
-        rows["held-out grouping"] = judged["grouping"]
+    if judged.grouping:  # how windows were kept apart, as the search words it
+        rows["held-out grouping"] = judged.grouping
     return kv_table(rows)
 
 
-def corpus_summary(corpus: Mapping) -> str:
-    """The corpus record's scalars, with files and traces as counts."""
-    if not isinstance(corpus, Mapping) or not corpus:
+def corpus_summary(corpus: CorpusRecord) -> str:
+    """The corpus record's scalars (every one the file records, in its order), with files and
+    traces as counts."""
+    recorded = corpus.to_json()
+    if not recorded:
         return '<p class="muted">no corpus summary recorded</p>'
-    scalars = {k: v for k, v in corpus.items()
+    scalars = {k: v for k, v in recorded.items()
                if not isinstance(v, (list, dict)) and k != "defaults"}
-    files = corpus.get("files")
-    if isinstance(files, list) and files:
-        scalars["files"] = len(files)
-    traces = corpus.get("traces")
-    if isinstance(traces, list):
-        scalars["traces"] = len(traces)
+    if corpus.files:
+        scalars["files"] = len(corpus.files)
+    if isinstance(recorded.get("traces"), list):
+        scalars["traces"] = len(recorded["traces"])
     return kv_table(scalars)
 
 
-def trace_table(corpus: Mapping) -> str:
+def trace_table(corpus: CorpusRecord) -> str:
     """Every trace segment read (file, SEED id, rate, start, duration, windows it gave)."""
-    traces = corpus.get("traces") if isinstance(corpus, Mapping) else None
-    if not isinstance(traces, list) or not traces:
+    traces = corpus.traces
+    if not traces:
         return ""
     keys = [k for k in ("file", "trace_id", "sampling_rate_hz", "start", "duration_s", "windows")
-            if any(isinstance(t, Mapping) and k in t for t in traces)]
+            if any(k in t for t in traces)]
     head = "".join(f'<th scope="col">{esc(column_label(k))}</th>' for k in keys)
     rows = "".join("<tr>" + "".join(f"<td>{esc(cell_text(k, t.get(k, '')))}</td>" for k in keys)
                    + "</tr>"
-                   for t in traces[:TRACE_LIST_LIMIT] if isinstance(t, Mapping))
+                   for t in traces[:TRACE_LIST_LIMIT])
     more = (f'<p class="muted">{len(traces) - TRACE_LIST_LIMIT} more traces not listed</p>'
             if len(traces) > TRACE_LIST_LIMIT else "")
     return (f'<h3>Traces read ({len(traces)})</h3><div class="scroll"><table class="grid traces">'
@@ -408,30 +401,29 @@ def figure_html(plot: Plot) -> str:
             f'alt="{esc(plot.alt)}"><figcaption>{esc(plot.caption)}</figcaption></figure>')
 
 
-def what_was_tuned(filterbank_json: Mapping, diagnostics: Mapping, channels: list[dict]) -> str:
+def what_was_tuned(filterbank_json: Mapping, diagnostics: Diagnostics, channels: list[dict]) -> str:
     """One line: the site (stations), the files, the channels and band, the windows."""
-    corpus = diagnostics.get("corpus") if isinstance(diagnostics.get("corpus"), Mapping) else {}
-    traces = [t for t in corpus.get("traces") or [] if isinstance(t, Mapping)]
+    corpus = diagnostics.corpus
+    traces = corpus.traces
     stations = list(dict.fromkeys(".".join(str(t["trace_id"]).split(".")[:2]) for t in traces
                                   if t.get("trace_id")))
     site = (", ".join(stations[:SITES_NAMED]) + (f" and {len(stations) - SITES_NAMED} more"
                                                   if len(stations) > SITES_NAMED else "")
-            if stations else "corpus " + str(corpus.get("source_hash") or
+            if stations else "corpus " + str(corpus.source_hash or
                                              filterbank_json.get("corpus_hash") or "?")[:12])
-    files = corpus.get("files")
-    if isinstance(files, list):
+    files = corpus.files
+    if files is not None:
         site += (f" ({len(files)} file{'s' if len(files) != 1 else ''}, {len(traces)} "
                  f"trace{'s' if len(traces) != 1 else ''})")
     fc = channel_column(channels, "center_hz")
-    settings = diagnostics.get("settings") if isinstance(diagnostics.get("settings"), Mapping) else {}
-    spacing = f", {settings['spacing']} spacing" if settings.get("spacing") else ""
+    spacing = diagnostics.settings.spacing
+    spacing = f", {spacing} spacing" if spacing else ""
     parts = [site, f"{len(channels)} channels at {fc.min():.4g}–{fc.max():.4g} Hz{spacing}"]
-    used = count_of((diagnostics.get("windows") or {}).get("used"))
+    used = diagnostics.windows.used
     fs = FilterbankDocument(filterbank_json).sampling_rate_hz
     samples = filterbank_json.get("window_samples")
     if used is not None and fs and isinstance(samples, int):
-        kind = "burst windows" if DiagnosticsDocument(diagnostics).windowing == "bursts" \
-            else "windows"
+        kind = "burst windows" if corpus.windowing == "bursts" else "windows"
         parts.append(f"{used} {kind} of {1e3 * samples / fs:.4g} ms at {fs:g} Hz")
     return " · ".join(parts)
 
@@ -451,8 +443,6 @@ def non_default_settings(given, resolved, reader_defaults) -> list[tuple[str, st
     and differs from ``search.settings.SETTINGS_DEFAULTS``. ``given``: the job's settings as
     submitted (None for a run of ``burstlens tune``, whose resolved ``settings`` and the
     reader's ``given`` options are compared instead)."""
-    from burstlens.search.settings import CRITERION_DEFAULTS, SEARCH_KEYS, SETTINGS_DEFAULTS
-
     resolved = resolved if isinstance(resolved, Mapping) else {}
     if isinstance(given, Mapping):
         chosen = {k: v for k, v in given.items() if v is not None}
@@ -539,8 +529,6 @@ def checks_section(checks) -> str:
         if isinstance(when, bool) or not isinstance(when, (int, float)) or not math.isfinite(when):
             raise ValueError(f"checks[{index}]['finished_at']: expected UTC epoch seconds, got "
                              f"{when!r}")
-    import datetime
-
     rows = []
     for answer in sorted(checks, key=lambda a: -float(a["finished_at"])):
         when = datetime.datetime.fromtimestamp(float(answer["finished_at"]), tz=datetime.UTC)

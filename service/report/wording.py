@@ -19,7 +19,8 @@ from burstlens.service.report.inputs import count_of
 JOB_SETTINGS = ("channels", "band_hz", "spacing", "window_s", "criterion", "cell_area", "chirp",
                 "refine", "evaluations", "time_limit_s", "bootstrap", "seed", "windowing",
                 "max_windows", "held_out", "max_negative_share", "subset", "n_jobs")
-# resolved name -> the job settings' name for it
+# recorded name -> the job settings' name for it: the record of a run (diagnostics_["settings"],
+# copied into filterbank.json) spells the setting jobs as n_jobs, as every file written so far does
 SETTING_ALIASES = {"n_jobs": "jobs"}
 
 # Words for setting names whose spelling out is not enough; the rest are spelled out from the key.

@@ -377,7 +377,7 @@ def test_pool_writes_the_same_bytes(tmp_path):
     doc = FilterbankDocument.of(_filterbank())
     serial, pool = str(tmp_path / "serial.zarr"), str(tmp_path / "pool.zarr")
     one = transform_continuous(paths, doc, serial, piece_samples=2048)
-    two = transform_continuous(paths, doc, pool, piece_samples=2048, n_jobs=2)
+    two = transform_continuous(paths, doc, pool, piece_samples=2048, jobs=2)
     a, b = _all_images(serial), _all_images(pool)
     assert len(a) == 2 and a.keys() == b.keys()
     for key in a:
@@ -404,11 +404,11 @@ def test_dask_backend_writes_the_same_bytes(tmp_path):
     assert a.keys() == b.keys() and all(np.array_equal(a[k][0], b[k][0]) for k in a)
 
 
-def test_bad_n_jobs(tmp_path):
-    """Property: n_jobs 0 or below −1 is a ValueError naming n_jobs."""
+def test_bad_jobs(tmp_path):
+    """Property: jobs 0 or below −1 is a ValueError naming jobs."""
     path = _write(tmp_path / "a.mseed", _samples(3000))
-    with pytest.raises(ValueError, match="n_jobs"):
-        transform_continuous([path], FilterbankDocument.of(_filterbank()), str(tmp_path / "o.zarr"), n_jobs=0)
+    with pytest.raises(ValueError, match="jobs="):
+        transform_continuous([path], FilterbankDocument.of(_filterbank()), str(tmp_path / "o.zarr"), jobs=0)
 
 
 def test_cli_jobs_flag(tmp_path, capsys):

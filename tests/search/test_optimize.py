@@ -242,10 +242,10 @@ def test_resume_from_a_checkpoint_equals_the_uninterrupted_run(mixed):
 
 
 def test_same_filterbank_for_one_or_two_loky_workers(mixed):
-    """Chunks are fixed and per-window scores are reduced in window order, so n_jobs = 1 and 2
+    """Chunks are fixed and per-window scores are reduced in window order, so jobs = 1 and 2
     give identical filterbanks (docs/design.md §5 determinism; joblib loky backend)."""
-    one = FilterbankSearch(**SMALL, n_jobs=1).fit(mixed)
-    two = FilterbankSearch(**SMALL, n_jobs=2).fit(mixed)
+    one = FilterbankSearch(**SMALL, jobs=1).fit(mixed)
+    two = FilterbankSearch(**SMALL, jobs=2).fit(mixed)
     assert one.filterbank_ == two.filterbank_
     assert one.diagnostics_["per_window"] == two.diagnostics_["per_window"]
 
@@ -259,12 +259,12 @@ def test_same_filterbank_on_a_dask_cluster(mixed, workers):
     distributed = pytest.importorskip("distributed")
     from joblib import parallel_config
 
-    local = FilterbankSearch(**SMALL, n_jobs=1).fit(mixed)
+    local = FilterbankSearch(**SMALL, jobs=1).fit(mixed)
     with distributed.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                                   host="127.0.0.1", dashboard_address="127.0.0.1:0") as cluster, \
             distributed.Client(cluster) as client:
         with parallel_config(backend="dask"):
-            remote = FilterbankSearch(**SMALL, n_jobs=2).fit(mixed)
+            remote = FilterbankSearch(**SMALL, jobs=2).fit(mixed)
         assert client.run(lambda: 1)            # the workers were alive throughout
     assert remote.filterbank_ == local.filterbank_
 

@@ -1,18 +1,18 @@
 """Job settings: defaults, the corpus/search split, and errors that name the setting."""
 import pytest
 
-from burstlens.search.settings import (SETTINGS_DEFAULTS, resolve_search_options, split_settings,
-                             validate_settings)
+from burstlens.search.settings import SETTINGS_DEFAULTS, JobSettings, split_settings
 
 
 def test_split_routes_every_key_and_fills_defaults():
     """split_settings sends the corpus options given (here window_s/windowing/max_windows/seed)
-    to the corpus reader and the rest to the search, with jobs renamed n_jobs (docs/design.md §7
-    settings; DEVELOPERS.md contract). Common practice: unset values take the documented defaults."""
+    to the corpus reader and the rest to the search, each under its one name, jobs included
+    (docs/design.md §7 settings; DEVELOPERS.md contract). Common practice: unset values take the
+    documented defaults."""
     corpus, search = split_settings({"window_s": 0.5, "windowing": "whole", "max_windows": 10,
                                      "seed": 7, "jobs": 2, "channels": 12})
     assert corpus == {"window_s": 0.5, "windowing": "whole", "max_windows": 10, "seed": 7}
-    assert search["n_jobs"] == 2 and "jobs" not in search
+    assert search["jobs"] == 2 and "n_jobs" not in search
     assert search["channels"] == 12 and search["seed"] == 7
     assert search["evaluations"] == SETTINGS_DEFAULTS["evaluations"]
     assert search["criterion"]["name"] == "renyi" and search["criterion"]["alpha"] == 3.0
@@ -22,8 +22,9 @@ def test_split_routes_every_key_and_fills_defaults():
 def test_nulls_mean_defaults():
     """A JSON body may carry nulls: each means the default (common practice for PATCH-like
     bodies)."""
-    out = validate_settings({"channels": None, "bootstrap": None, "band_hz": None})
-    assert out["channels"] == 96 and out["bootstrap"] == 8 and out["band_hz"] is None
+    out = JobSettings.from_mapping({"channels": None, "bootstrap": None, "band_hz": None})
+    assert out == JobSettings()
+    assert out.channels == 96 and out.bootstrap == 8 and out.band_hz is None
 
 
 @pytest.mark.parametrize("settings, name", [
@@ -62,23 +63,23 @@ def test_unknown_keys_are_all_named():
 def test_band_above_nyquist_is_refused_against_the_corpus_rate():
     """The band must stay below fs/2 (Nyquist–Shannon sampling theorem; common practice)."""
     with pytest.raises(ValueError, match="band_hz.*Nyquist frequency 2000 Hz"):
-        resolve_search_options({"band_hz": [10, 3000]}, 4000.0, 1024)
+        JobSettings(band_hz=(10, 3000)).resolve(4000.0, 1024)
 
 
 def test_resolved_defaults_follow_the_data():
     """Data-dependent defaults are written out: band [fs/100, 0.45 fs], σ_t bounds
     [4/fs, window/6] and |β| ≤ band width / window duration (docs/design.md §5)."""
-    s = resolve_search_options({}, 4000.0, 1024)
+    s = JobSettings().resolve(4000.0, 1024)
     assert s["band_hz"] == [40.0, 1800.0]
     assert s["time_spread_bounds_s"] == [pytest.approx(1e-3), pytest.approx(0.256 / 6)]
     assert s["chirp_bound_hz_per_s"] == pytest.approx(1760.0 / 0.256)
-    assert resolve_search_options({"chirp": False}, 4000.0, 1024)["chirp_bound_hz_per_s"] == 0.0
+    assert JobSettings(chirp=False).resolve(4000.0, 1024)["chirp_bound_hz_per_s"] == 0.0
 
 
 def test_too_short_windows_are_refused():
     """Windows under 25 samples leave no room between 4/fs and window/6 (docs/design.md §5 bounds)."""
     with pytest.raises(ValueError, match="too short"):
-        resolve_search_options({}, 1000.0, 20)
+        JobSettings().resolve(1000.0, 20)
 
 
 def test_every_corpus_option_is_a_setting_for_read_corpus():
@@ -168,3 +169,67 @@ def test_upload_text_parses_to_the_same_values():
     assert CORPUS_OPTIONS["bandpass_hz"].parse("1,40") == [1.0, 40.0]
     with pytest.raises(ValueError, match="'max_windows'"):
         CORPUS_OPTIONS["max_windows"].parse("many")
+
+
+def test_settings_are_frozen_and_checked_however_made():
+    """A JobSettings is immutable, and made directly (not through from_mapping) its values are
+    checked by the same code, with the same message naming the setting (project rule: one
+    check per setting); replace() checks again."""
+    import dataclasses
+
+    settings = JobSettings(jobs=2)
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        settings.jobs = 3
+    with pytest.raises(ValueError, match="setting 'channels' = 1: must be at least 2"):
+        JobSettings(channels=1)
+    with pytest.raises(ValueError, match="setting 'jobs' = 0"):
+        settings.replace(jobs=0)
+    assert settings.replace(jobs=-1).jobs == -1 and settings.jobs == 2
+
+
+def test_defaults_are_written_once():
+    """SETTINGS_DEFAULTS, FilterbankSearch's keyword defaults and JobSettings() are one source:
+    every search setting's default is the dataclass field's (DEVELOPERS.md: one definition)."""
+    import inspect
+
+    from burstlens.search.optimize import FilterbankSearch
+    from burstlens.search.settings import SEARCH_KEYS
+
+    defaults = JobSettings().as_dict()
+    assert defaults == SETTINGS_DEFAULTS
+    parameters = inspect.signature(FilterbankSearch).parameters
+    for key in SEARCH_KEYS:
+        if key == "criterion":  # None: the default criterion
+            assert parameters[key].default is None
+            continue
+        value = parameters[key].default
+        assert (list(value) if isinstance(value, tuple) else value) == defaults[key], key
+
+
+def test_the_record_keeps_every_setting_in_order():
+    """resolve() records every setting in the order of SETTINGS_DEFAULTS, then the derived
+    bounds (docs/design.md §8: the record of a run lists every setting and default it used);
+    the corpus options given stay the reader's, not the search's."""
+    record = JobSettings.from_mapping({"seed": 3, "max_windows": 9, "jobs": 2}).resolve(1000.0, 256)
+    assert list(record)[:len(SETTINGS_DEFAULTS)] == list(SETTINGS_DEFAULTS)
+    assert record["seed"] == 3 and record["jobs"] == 2 and record["max_windows"] == 9
+    assert record["window_s"] == 0.256 and record["nyquist_hz"] == 500.0
+
+
+def test_the_readers_defaults_are_its_read_options():
+    """The corpus options' defaults (CLI help, API documents, the trigger pair check) are the
+    reader's own ReadOptions, which read_corpus fills in for every option not given; the
+    thresholds are Trnkoczy's (NMSOP-2 IS 8.1, 2012: trigger on 3–4, off 1–1.5 for local
+    events)."""
+    from dataclasses import fields
+
+    from burstlens.search.corpus.ingest import ReadOptions
+    from burstlens.search.settings import CORPUS_OPTIONS
+
+    assert [f.name for f in fields(ReadOptions)] == list(CORPUS_OPTIONS)
+    for option in CORPUS_OPTIONS.values():
+        if option.reader_default:
+            assert option.default == getattr(ReadOptions(), option.name), option.name
+    filled = ReadOptions.checked(trigger_on=4, components="zn")
+    assert filled == ReadOptions(trigger_on=4.0, components="ZN")
+    assert 3 <= filled.trigger_on <= 4 and 1 <= ReadOptions().trigger_off <= 1.5

@@ -2,9 +2,12 @@
 
 The conventions checked are argparse's own (Python documentation, "argparse — Parser for
 command-line options": ``%(default)s`` and ``%(choices)s`` in help strings, and the ``{a,b}``
-metavar argparse draws for an option with ``choices=`` and no metavar).
+metavar argparse draws for an option with ``choices=`` and no metavar). ``build_parser()``
+builds every command's parser, so the walk below sees them all; ``burstlens --help`` itself
+imports none of the command modules, which the tests at the end check in a fresh interpreter.
 """
 import argparse
+import json
 import subprocess
 import sys
 
@@ -104,12 +107,75 @@ def test_help_speaks_of_what_the_user_controls():
             assert "capped there" not in _shown(parser, action), words
 
 
-def test_building_the_parser_reads_no_corpus_module():
-    """Listing choices in --help must not make every command import the corpus reader (scipy,
-    seconds on a loaded machine): building the parser leaves ``burstlens.search.corpus``
-    unimported; formatting tune's help then lists its windowing choices."""
-    code = ("import sys; from burstlens.service.cli import build_parser; p = build_parser(); "
-            "print('burstlens.search.corpus' in sys.modules)")
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
-    assert out.stdout.strip() == "False"
-    assert "--windowing {bursts,whole,sliding}" in COMMANDS[("tune",)].format_help()
+def _run_cli(argv) -> dict:
+    """``main(argv)`` in a fresh interpreter: its exit status, stdout, stderr, the command modules
+    (under ``service.commands``) it imported, and whether numpy or scipy got imported."""
+    code = ("import contextlib, io, json, sys\n"
+            "from burstlens.service.cli import main\n"
+            "out, err = io.StringIO(), io.StringIO()\n"
+            "with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):\n"
+            "    try:\n"
+            f"        status = main({list(argv)!r})\n"
+            "    except SystemExit as exc:\n"
+            "        status = exc.code\n"
+            "prefix = 'burstlens.service.commands.'\n"
+            "print(json.dumps({'status': status, 'stdout': out.getvalue(), 'stderr': err.getvalue(),\n"
+            "    'modules': sorted(m[len(prefix):] for m in sys.modules if m.startswith(prefix)),\n"
+            "    'numpy': 'numpy' in sys.modules, 'scipy': 'scipy' in sys.modules}))\n")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    return json.loads(done.stdout)
+
+
+@pytest.mark.parametrize("argv, status", [(["--help"], 0), ([], 2)], ids=["--help", "no command"])
+def test_listing_the_commands_imports_no_command_module(argv, status):
+    """Property: ``burstlens --help`` (exit 0) and ``burstlens`` alone (help, exit 2) list every
+    command with its one-line help while importing none of the command modules, nor numpy or
+    scipy (the modules import those at their top; a listing must not pay for them)."""
+    from burstlens.service.cli import COMMANDS as REGISTERED
+
+    ran = _run_cli(argv)
+    assert ran["status"] == status
+    assert ran["modules"] == [], ran["modules"]
+    assert not ran["numpy"] and not ran["scipy"]
+    words = " ".join(ran["stdout"].split())  # --help wraps long lines
+    for name, command in REGISTERED.items():
+        assert f"{name} {command.help}" in words, name
+
+
+def test_a_command_imports_its_module_alone():
+    """Property: ``burstlens backup --help`` builds backup's parser by importing backup's module
+    and none of the other commands' modules, and prints backup's own help (its DEST argument)."""
+    ran = _run_cli(["backup", "--help"])
+    assert ran["status"] == 0
+    assert ran["modules"] == ["backup"], ran["modules"]
+    assert "usage: burstlens backup" in ran["stdout"] and "DEST" in ran["stdout"]
+
+
+def test_the_listing_does_not_depend_on_the_modules_loaded():
+    """Property: ``burstlens --help`` built without any command module is, character for
+    character, the page built with all of them, in the order of :data:`COMMANDS`; and every
+    module's ``register`` gives its command a description of its own (the page of
+    ``burstlens COMMAND --help``). Common practice for a lazily loaded command line."""
+    from burstlens.service.cli import COMMANDS as REGISTERED
+
+    def listed(parser):
+        (action,) = (a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+        return [(a.dest, a.help) for a in action._choices_actions], action.choices
+
+    full = build_parser()
+    rows, parsers = listed(full)
+    assert rows == [(name, c.help) for name, c in REGISTERED.items()]
+    assert build_parser([]).format_help() == full.format_help()
+    for name, parser in parsers.items():
+        assert parser.description and len(parser.description) > 20, name
+        assert not listed(build_parser([]))[1][name].description, name  # only listed, not built
+
+
+def test_an_unknown_command_is_refused_by_name():
+    """An unknown command word exits 2 naming it (argparse's "invalid choice"), without
+    importing any command module; ``build_parser`` refuses one with a ValueError naming it."""
+    ran = _run_cli(["tunne", "x.wav"])
+    assert ran["status"] == 2 and ran["modules"] == []
+    assert "invalid choice: 'tunne'" in ran["stderr"]
+    with pytest.raises(ValueError, match="tunne"):
+        build_parser(["tunne"])

@@ -19,7 +19,7 @@ def test_submit_uploads_exactly_the_files_the_reader_reads(tmp_path, monkeypatch
     .dat, an empty file, hidden files), submit uploads exactly ``read_corpus(folder).files``:
     the upload holds what the job reads, no README, no waveform left behind. Source: the Corpus
     contract in DEVELOPERS.md (the reader recognises formats from the content)."""
-    from burstlens.service import client as client_module
+    from burstlens.service.commands import submit
 
     trace = Trace(np.rint(_noise(0)).astype(np.int32), header={
         "network": "XX", "station": "A1", "location": "00", "channel": "HHZ",
@@ -37,7 +37,7 @@ def test_submit_uploads_exactly_the_files_the_reader_reads(tmp_path, monkeypatch
     np.save(tmp_path / ".scratch.npy", _noise(5))
 
     calls = {}
-    monkeypatch.setattr(client_module, "Client", recording_client(calls))
+    monkeypatch.setattr(submit, "Client", recording_client(calls))
     assert main(["submit", str(tmp_path), "--server", "http://127.0.0.1:1",
                  "--csv-sampling-rate", str(FS), "--windowing", "whole"]) == 0
     read = read_corpus(tmp_path, csv_sampling_rate_hz=FS, windowing="whole").files

@@ -193,17 +193,22 @@ def test_transform_bad_filterbank_exits_2(wav_dir, tmp_path, capsys):
 def test_judgement_flags_map_to_the_settings_the_api_accepts():
     """--held-out and --max-negative-share become held_out and max_negative_share, which
     JobSettings accepts; unset, they are left to the engine's defaults."""
+    from burstlens.search.settings import SETTINGS_DEFAULTS
     from burstlens.service.cli import build_parser
-    from burstlens.service.commands.options import settings_from_args
+    from burstlens.service.commands.options import settings_from_args, settings_json_from_args
     from burstlens.service.models import JobSettings
 
     args = build_parser().parse_args(["tune", "x.wav", "--out", "o", "--held-out", "0.3",
                                       "--max-negative-share", "0.02"])
-    settings = settings_from_args(args)
+    settings = settings_json_from_args(args)
     assert settings == {"held_out": 0.3, "max_negative_share": 0.02}
     assert JobSettings(**settings).to_options() == settings
+    assert JobSettings(**settings).to_settings() == settings_from_args(args)
+    checked = settings_from_args(args)
+    assert (checked.held_out, checked.max_negative_share) == (0.3, 0.02)
+    assert checked.evaluations == SETTINGS_DEFAULTS["evaluations"]
     plain = build_parser().parse_args(["submit", "x.wav", "--server", "http://127.0.0.1:1"])
-    assert settings_from_args(plain) == {}
+    assert settings_json_from_args(plain) == {}
 
 
 @pytest.mark.parametrize("flag, value", [("--held-out", "0.95"), ("--held-out", "-0.1"),
@@ -286,7 +291,7 @@ def test_inspect_tune_and_submit_share_the_corpus_flags():
     the job settings of POST /v1/jobs, which JobSettings accepts unchanged."""
     from burstlens.search.settings import CORPUS_OPTIONS
     from burstlens.service.cli import build_parser
-    from burstlens.service.commands.options import settings_from_args
+    from burstlens.service.commands.options import settings_json_from_args
     from burstlens.service.models import JobSettings
 
     kind = _trigger_kind()
@@ -296,7 +301,7 @@ def test_inspect_tune_and_submit_share_the_corpus_flags():
              "--windowing", "sliding", "--window-s", "2", "--max-windows", "9", "--seed", "5"]
     heads = (["inspect", "x.wav"], ["tune", "x.wav", "--out", "o"],
              ["submit", "x.wav", "--server", "http://127.0.0.1:1"])
-    found = [settings_from_args(build_parser().parse_args([*head, *flags])) for head in heads]
+    found = [settings_json_from_args(build_parser().parse_args([*head, *flags])) for head in heads]
     assert found[0] == found[1] == found[2]
     assert set(found[0]) == set(CORPUS_OPTIONS)
     assert found[0]["bandpass_hz"] == [1.0, 40.0] and found[0]["trigger"] == kind
@@ -306,12 +311,13 @@ def test_inspect_tune_and_submit_share_the_corpus_flags():
 def test_job_flags_set_the_engines_settings_with_its_choices():
     """Every job-settings flag sets a setting ``search.settings`` knows (a key of
     SETTINGS_DEFAULTS, or a field of the criterion), offers exactly its choice list, and all of
-    them given at once make settings that ``validate_settings`` accepts; inspect has none of
-    them. Source: DEVELOPERS.md (one definition of each option set, one CLI declaration)."""
-    from burstlens.search.settings import (CRITERIA, CRITERION_DEFAULTS, SETTINGS_DEFAULTS, SPACINGS,
-                                 validate_settings)
+    them given at once make settings that ``JobSettings.from_mapping`` accepts, under the same
+    names; inspect has none of them. Source: DEVELOPERS.md (one definition of each option set,
+    one CLI declaration)."""
+    from burstlens.search.criteria_options import CRITERIA, CRITERION_DEFAULTS
+    from burstlens.search.settings import SETTINGS_DEFAULTS, SPACINGS
     from burstlens.service.cli import build_parser
-    from burstlens.service.commands.options import JOB_FLAGS, settings_from_args
+    from burstlens.service.commands.options import JOB_FLAGS, settings_from_args, settings_json_from_args
 
     for flag in JOB_FLAGS:
         group, _, name = flag.setting.rpartition(".")
@@ -328,23 +334,25 @@ def test_job_flags_set_the_engines_settings_with_its_choices():
             "--no-chirp", "--no-refine", "--no-guard", "--evaluations", "3", "--time-limit", "9",
             "--bootstrap", "0", "--held-out", "0.2", "--max-negative-share", "0.05", "--jobs", "2",
             "--compare-to", "hann:8:4"]
-    settings = settings_from_args(parser.parse_args(argv))
+    settings = settings_json_from_args(parser.parse_args(argv))
     assert set(settings) == {flag.setting.split(".")[0] for flag in JOB_FLAGS}
-    checked = validate_settings(settings)
+    checked = settings_from_args(parser.parse_args(argv)).as_dict()
     assert {k: checked[k] for k in settings if k != "criterion"} == {
         k: v for k, v in settings.items() if k != "criterion"}
     assert checked["criterion"]["name"] == CRITERIA[-1] and checked["criterion"]["alpha"] == 2.0
-    assert settings_from_args(parser.parse_args(["inspect", "x.wav", "--seed", "3"])) == {"seed": 3}
+    seeded = parser.parse_args(["inspect", "x.wav", "--seed", "3"])
+    assert settings_json_from_args(seeded) == {"seed": 3}
+    assert settings_from_args(seeded).read_options() == {"seed": 3}
 
 
 def test_submit_sends_the_corpus_options_with_the_upload_and_the_job(wav_dir, monkeypatch,
                                                                      capsys):
     """submit reads no corpus itself: the upload check reads the corpus with the corpus options
     (so it finds the windows the job will), and the job's settings carry them too."""
-    from burstlens.service import client as client_module
+    from burstlens.service.commands import submit
 
     calls = {}
-    monkeypatch.setattr(client_module, "Client", recording_client(calls))
+    monkeypatch.setattr(submit, "Client", recording_client(calls))
     assert main(["submit", str(wav_dir), "--server", "http://127.0.0.1:1", "--windowing", "whole",
                  "--components", "z", "--channels", "8"]) == 0
     assert calls["upload"] == {"windowing": "whole", "components": "Z"}

@@ -248,10 +248,10 @@ def test_a_one_thread_cluster_runs_the_search_on_the_cluster(tmp_path):
         client = connect(one.scheduler_address)
         try:
             with evaluations_on(client):
-                on_cluster = FilterbankSearch(**options, n_jobs=-1).fit(corpus)
+                on_cluster = FilterbankSearch(**options, jobs=-1).fit(corpus)
             ran_there = client.run(_prepared_chunks)
         finally:
             client.close()
-    serial = FilterbankSearch(**options, n_jobs=1).fit(corpus)
+    serial = FilterbankSearch(**options, jobs=1).fit(corpus)
     assert list(ran_there.values())[0] > 0, "no chunk was prepared on the Dask worker"
     assert comparable(on_cluster.filterbank_.to_json()) == comparable(serial.filterbank_.to_json())

@@ -329,3 +329,21 @@ def test_scorecard_words_name_what_was_returned_and_skip_the_grid_warning_for_de
     assert all(r.startswith("The returned spectrogram") for r in verdict.scorecard_rows(fell))
     tuned_for_detection = {**diag, "settings": {"criterion": {"name": "detection"}}}
     assert not any("channel grid" in w for w in verdict.warnings(tuned_for_detection))
+
+
+def test_cli_and_report_name_the_same_window_std():
+    """The best spectrogram's window in `tune`'s summary is the std s = √2·σ_t of the Gaussian
+    h(u) = exp(−u²/2s²) (scipy.signal.windows.gaussian's ``std``), the number the report
+    prints (service.report.terms.window_terms); σ_t is the time std of |h|², s/√2 (Gabor 1946,
+    from memory). A σ_t of 4 ms is a window std of 5.66 ms."""
+    from burstlens.service.commands import tune
+    from burstlens.service.report.terms import window_terms
+
+    diag = clean()
+    diag.update(stop_reason="completed", windows={"used": 211, "rejected": 0}, bootstrap=None,
+                baselines={"spectrogram": {"objective": 11.6,
+                                           "parameters": {"time_spread_s": 0.004}}},
+                settings={})
+    (line,) = [x for x in tune.summary_lines(copy.deepcopy(diag)) if x.startswith("best spectrogram")]
+    std_ms = 1e3 * window_terms(0.004, 1000.0, 256).std_s
+    assert f"window std {std_ms:.3g} ms" in line and "5.66 ms" in line
