@@ -47,19 +47,6 @@ def criterion_of(filterbank_json: Mapping, diagnostics: Diagnostics) -> dict:
     return dict(criterion) if isinstance(criterion, Mapping) else {"name": "renyi"}
 
 
-def count_of(value) -> int | None:
-    """A recorded count: an int as is, a list or tuple by its length; None for anything else
-    (booleans included). For the filterbank's and checks' records (``wording.onset_text``);
-    the diagnostics' counts are typed by ``Diagnostics``."""
-    if isinstance(value, bool):
-        return None
-    if isinstance(value, int):
-        return value
-    if isinstance(value, (list, tuple)):
-        return len(value)
-    return None
-
-
 def check_windows(filterbank_json: Mapping, windows, sampling_rate_hz) -> None:
     """Windows must be (M, N) with M ≥ 1, at the filterbank's sampling rate when one is given."""
     if windows is None:

@@ -191,7 +191,7 @@ def headline(filterbank_json: Mapping, diagnostics: Diagnostics, channels: list[
         ("negative share of the image", percent_text(None if negative is None else negative.overall)
          + (f" (ceiling {100 * ceiling:.2g} %)" if ceiling is not None else "")),
         ("onset timing, median / p90",
-         onset_text(None if judged.onset is None else judged.onset.to_json())
+         onset_text(judged.onset)
          if judged is not None else "not recorded"),
         ("stop reason", diagnostics.stop_reason or "not recorded"),
         ("windows used / rejected", f"{'?' if used is None else used} / "

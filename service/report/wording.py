@@ -12,7 +12,7 @@ import re
 from collections.abc import Mapping
 
 from burstlens.search.safe_io import finite_or_none
-from burstlens.service.report.inputs import count_of
+from burstlens.search.diagnostics_doc import Onset
 
 # The job settings of docs/design.md §7 (what a person sets); everything else the engine resolved is a
 # default it chose, shown apart with the corpus reader's choices.
@@ -144,18 +144,17 @@ def percent_text(value) -> str:
     return "not recorded" if number is None else f"{100 * number:.3g} %"
 
 
-def onset_text(onset) -> str:
-    """'result m / p ms · spectrogram m / p ms (n windows)' from ``judgement['onset']``."""
-    if not isinstance(onset, Mapping):
+def onset_text(onset: Onset | None) -> str:
+    """'result m / p ms · spectrogram m / p ms (n windows)' from the judgement's onset timing
+    (``Diagnostics.judgement.onset``; None: not measured)."""
+    if onset is None:
         return "not measured (no trigger offsets)"
     parts, counts = [], set()
-    for name in ("result", "spectrogram"):
-        entry = onset.get(name) if isinstance(onset.get(name), Mapping) else {}
-        median, p90 = finite_or_none(entry.get("median_ms")), finite_or_none(entry.get("p90_ms"))
-        shown = [f"{v:.3g}" if v is not None else "?" for v in (median, p90)]
+    for name, entry in (("result", onset.result), ("spectrogram", onset.spectrogram)):
+        shown = [f"{v:.3g}" if v is not None else "?" for v in (entry.median_ms, entry.p90_ms)]
         parts.append(f"{name} {shown[0]} / {shown[1]} ms")
-        if count_of(entry.get("windows")) is not None:
-            counts.add(entry["windows"])
+        if entry.windows is not None:
+            counts.add(entry.windows)
     windows = f" ({', '.join(map(str, sorted(counts)))} windows)" if counts else ""
     return " · ".join(parts) + windows
 
