@@ -7,6 +7,7 @@ what they need (numpy, scipy, the service) at their top.
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 from collections.abc import Iterable, Sequence
 from importlib import import_module
@@ -74,7 +75,14 @@ def main(argv: Sequence[str] | None = None) -> int:
     if not getattr(args, "func", None):
         parser.print_help()
         return 2
-    return int(args.func(args) or 0)
+    try:
+        return int(args.func(args) or 0)
+    except BrokenPipeError:
+        # the reader of the output went away (`burstlens inspect … | head`): stop quietly, and
+        # point stdout at /dev/null so the interpreter's final flush fails no more (Python
+        # docs, "Note on SIGPIPE")
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 1
 
 
 if __name__ == "__main__":

@@ -14,7 +14,7 @@ from typing import Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, create_model, field_validator
 
 from burstlens.search.compare import parse_compare_to
-from burstlens.search.criteria_options import CRITERIA, SPARSITY_MEASURES
+from burstlens.search.criteria_options import CRITERIA, REDUCERS, SPARSITY_MEASURES
 from burstlens.search.settings import CORPUS_OPTIONS, SPACINGS
 from burstlens.search.settings import JobSettings as EngineSettings
 
@@ -40,6 +40,9 @@ class CriterionSettings(_Strict):
     excess: bool | None = Field(
         None, description="Score each burst's excess over the site's steady level (default "
                           "true); false scores whole windows.")
+    reduce: Literal[REDUCERS] | None = Field(
+        None, description="How the windows' scores make the corpus's: mean (default), median or "
+                          "trimmed mean.")
 
     @field_validator("alpha")
     @classmethod

@@ -124,6 +124,26 @@ def test_invalid_setting_values(make_client):
         assert field in response.json()["detail"]
 
 
+def test_the_api_takes_every_criterion_field_the_engine_does(make_client):
+    """The criterion of POST /v1/jobs has the engine's fields, no fewer (a setting keeps one
+    name from the command line to the report, docs/design.md §7): ``reduce`` is accepted and
+    recorded, and a reducer the engine lacks is a 422 naming it."""
+    from burstlens.search.criteria_options import CRITERION_DEFAULTS
+    from burstlens.service.models import CriterionSettings
+
+    assert set(CriterionSettings.model_fields) == set(CRITERION_DEFAULTS)
+    client = make_client()
+    corpus = _upload(client)
+    criterion = {"name": "renyi", "reduce": "median"}
+    response = client.post("/v1/jobs", json={"corpus_id": corpus["id"],
+                                             "settings": {**TINY, "criterion": criterion}})
+    assert response.status_code == 201, response.text
+    assert response.json()["settings"]["criterion"] == criterion
+    wrong = client.post("/v1/jobs", json={"corpus_id": corpus["id"],
+                                          "settings": {**TINY, "criterion": {"reduce": "mode"}}})
+    assert wrong.status_code == 422 and "reduce" in wrong.json()["detail"]
+
+
 def test_job_takes_the_corpus_options(make_client):
     """A job's settings take every corpus option by its CLI name in snake_case (docs/design.md §7): a job
     with sta_s is accepted and records it; an out-of-range trigger_on, or one that leaves the

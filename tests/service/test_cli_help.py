@@ -179,3 +179,26 @@ def test_an_unknown_command_is_refused_by_name():
     assert "invalid choice: 'tunne'" in ran["stderr"]
     with pytest.raises(ValueError, match="tunne"):
         build_parser(["tunne"])
+
+
+def test_a_reader_that_leaves_early_gets_no_traceback():
+    """`burstlens … | head -1`: when the reader of stdout closes the
+    pipe, the command stops with status 1 and no traceback (Python docs, "Note on SIGPIPE")."""
+    import subprocess
+    import sys
+
+    code = ("import sys\n"
+            "from burstlens.service.cli import main\n"
+            "from burstlens.service.commands import tokens\n"
+            "def chatty(args):\n"
+            "    for i in range(100000):\n"
+            "        print('line', i)\n"
+            "    return 0\n"
+            "tokens.run = chatty\n"
+            "sys.exit(main(['tokens', 'list']))\n")
+    proc = subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE)
+    assert proc.stdout.readline() == b"line 0\n"
+    proc.stdout.close()
+    stderr = proc.stderr.read().decode()
+    assert proc.wait(timeout=60) == 1 and "Traceback" not in stderr, stderr
