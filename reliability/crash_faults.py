@@ -34,11 +34,9 @@ the search. Most of a fault's time is process start and the report's figures, no
 from __future__ import annotations
 
 import hashlib
-import json
 import pickle
 import random
 import sqlite3
-import subprocess
 import tempfile
 import threading
 import time
@@ -120,12 +118,7 @@ class _Campaign:
 
     def run_faulty(self, spec: str, timeout: float = 180.0) -> tuple[int | None, dict]:
         stats = self.tmp / f"stats-{time.monotonic_ns()}.json"
-        proc = self.workers.start(fault=spec, stats=stats)
-        try:
-            code = proc.wait(timeout=timeout)
-        except subprocess.TimeoutExpired:
-            code = self.workers.stop(proc)
-        return code, (json.loads(stats.read_text()) if stats.exists() else {})
+        return self.workers.outcome(self.workers.start(fault=spec, stats=stats), stats, timeout)
 
     def recover(self, job_id: str, timeout: float = 180.0) -> dict:
         """A plain worker takes the job over (after its lease expires) and runs it to the end."""

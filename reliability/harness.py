@@ -8,6 +8,7 @@ and the deployment use. Extra ``burstlens worker`` processes (plain or with a fa
 from __future__ import annotations
 
 import hashlib
+import json
 import os
 import signal
 import sqlite3
@@ -114,6 +115,15 @@ class Workers:
                 proc.kill()
                 proc.wait()
         return proc.returncode
+
+    def outcome(self, proc: subprocess.Popen, stats: Path, timeout: float) -> tuple[int | None, dict]:
+        """Wait for a fault-injected worker (stopped past ``timeout``): its exit code and the
+        JSON it noted in ``stats`` ({} when it wrote none)."""
+        try:
+            code = proc.wait(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            code = self.stop(proc)
+        return code, (json.loads(stats.read_text()) if stats.exists() else {})
 
     def stop_all(self) -> None:
         for proc in self.procs:

@@ -376,11 +376,7 @@ class _Site:
                                  str(self.data), "--kill", moment.spec, "--stats", str(stats)],
                                 cwd=ROOT, env=self.workers.env)
         self.workers.procs.append(proc)
-        try:
-            code = proc.wait(timeout=timeout)
-        except subprocess.TimeoutExpired:
-            code = self.workers.stop(proc)
-        return code, (json.loads(stats.read_text()) if stats.exists() else {})
+        return self.workers.outcome(proc, stats, timeout)
 
     def recover(self, job_id: str, timeout: float = 180.0) -> dict:
         """A plain worker reclaims the job once its lease expires and runs it to the end."""
